@@ -1,0 +1,35 @@
+"""clusterlab: embedded quantum chemistry of molecules carved from organic
+semiconductor films.
+
+Results are model estimates: every function says which physics its model
+leaves out.
+"""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+from .cluster import Cluster
+from .errors import (
+    CalculationError,
+    CarvingError,
+    ChargeError,
+    ClusterlabError,
+    ConvergenceError,
+    FilmError,
+    GeometryError,
+    InputError,
+)
+
+__all__ = [
+    "Cluster",
+    "ClusterlabError",
+    "InputError",
+    "FilmError",
+    "ChargeError",
+    "CarvingError",
+    "CalculationError",
+    "ConvergenceError",
+    "GeometryError",
+    "__version__",
+]
