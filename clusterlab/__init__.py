@@ -9,7 +9,9 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
+from .charges import ChargeSource, MoleculeTypeCharges, TableCharges, TopologyCharges
 from .cluster import Cluster
+from .film import Film, film_from_universe, load_film
 from .errors import (
     CalculationError,
     CarvingError,
@@ -23,6 +25,13 @@ from .errors import (
 
 __all__ = [
     "Cluster",
+    "Film",
+    "load_film",
+    "film_from_universe",
+    "ChargeSource",
+    "TopologyCharges",
+    "TableCharges",
+    "MoleculeTypeCharges",
     "ClusterlabError",
     "InputError",
     "FilmError",

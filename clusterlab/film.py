@@ -1,0 +1,599 @@
+"""Film loading: an MDAnalysis Universe seen as molecules with charges.
+
+:func:`load_film` reads any topology/trajectory pair MDAnalysis reads.
+Molecules are the Universe's bonded **fragments** when the topology has
+bonds, otherwise its **residues** (one molecule per residue).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import re
+import warnings
+from collections import OrderedDict
+from dataclasses import dataclass
+from functools import cached_property
+from typing import Any, Sequence
+
+import MDAnalysis as mda
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+
+from .carve import MoleculeIndex, select_images
+from .charges import ChargeSource, as_charge_source
+from .cluster import Cluster
+from .errors import CarvingError, ChargeError, FilmError
+from .geometry import box_vectors, make_whole, minimum_image, perpendicular_widths, wrap_molecules
+
+FloatArray = npt.NDArray[np.float64]
+
+#: element symbols MDAnalysis knows masses for (title case)
+try:
+    from MDAnalysis.guesser.tables import masses as _MASSES
+except ImportError:  # pragma: no cover - older MDAnalysis
+    from MDAnalysis.topology.tables import masses as _MASSES
+
+_KNOWN = {k.title(): v for k, v in _MASSES.items() if re.fullmatch(r"[A-Za-z]{1,2}", k)}
+_KNOWN.pop("Du", None)
+
+#: net molecular charges must be integers within this tolerance (e)
+CHARGE_INTEGER_TOL = 1e-3
+
+
+def _hash_file(path: str, h: "hashlib._Hash") -> None:
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+
+
+def _element_from_mass(mass: float) -> str | None:
+    if not np.isfinite(mass) or mass <= 0:
+        return None
+    sym, ref = min(_KNOWN.items(), key=lambda kv: abs(kv[1] - mass))
+    return sym if abs(ref - mass) < 0.6 else None
+
+
+def _guess_from_name(name: str) -> str | None:
+    from MDAnalysis.guesser.default_guesser import DefaultGuesser
+
+    try:
+        sym = DefaultGuesser(None).guess_atom_element(name)
+    except Exception:  # noqa: BLE001 - guesser raises various things
+        return None
+    sym = str(sym).title()
+    return sym if sym in _KNOWN else None
+
+
+@dataclass(frozen=True)
+class FrameGeometry:
+    """One frame with whole molecules whose centroids lie in the primary cell."""
+
+    frame: int
+    positions_A: FloatArray
+    centroids_A: FloatArray
+    box: FloatArray | None
+
+
+class Film:
+    """A molecular film: Universe + molecules + charges.
+
+    Do not build directly; use :func:`load_film`.
+
+    Attributes
+    ----------
+    universe : MDAnalysis.Universe
+    molecules : pandas.DataFrame
+        One row per molecule: ``molecule`` (0-based id), ``resname``,
+        ``resid``, ``n_atoms``, ``charge`` (net, e; NaN when no charges are
+        available), ``formula`` (Hill order).
+    molecule_kind : {"fragments", "residues"}
+        How molecules were defined.
+    symbols : ndarray of str, (n_atoms,)
+        Element symbol of every atom.
+    guessed_elements : pandas.DataFrame
+        Atoms whose element was guessed (from name or mass), with the reason.
+    """
+
+    def __init__(self, universe: mda.Universe, topology_path: str, trajectory_paths: list[str],
+                 charge_source: ChargeSource, *, cache_frames: int = 2):
+        self.universe = universe
+        self.topology_path = topology_path
+        self.trajectory_paths = trajectory_paths
+        self.charge_source = charge_source
+        self._frame_cache: OrderedDict[int, FrameGeometry] = OrderedDict()
+        self._cache_frames = cache_frames
+        self._charges: FloatArray | None = None
+        self._charge_error: ChargeError | None = None
+
+        atoms = universe.atoms
+        has_bonds = hasattr(atoms, "bonds") and len(atoms.bonds) > 0
+        if has_bonds:
+            groups = list(atoms.fragments)
+            self.molecule_kind = "fragments"
+            mol_of_atom = np.empty(len(atoms), dtype=np.int64)
+            # order fragments by their lowest atom index so ids are stable
+            groups.sort(key=lambda g: int(g.indices.min()))
+            for i, g in enumerate(groups):
+                mol_of_atom[g.indices] = i
+        else:
+            self.molecule_kind = "residues"
+            mol_of_atom = np.asarray(atoms.resindices, dtype=np.int64)
+        self.molecule_of_atom = mol_of_atom
+        self.index = MoleculeIndex.from_molecule_of_atom(mol_of_atom)
+        first = self.index.atoms[self.index.offsets[:-1]]
+        #: residue name of each molecule (of its first atom)
+        self.molecule_resnames = np.asarray(atoms.resnames).astype(str)[first]
+        self.symbols, self.guessed_elements = self._resolve_elements()
+        self.molecules = self._molecule_table()
+
+    # ------------------------------------------------------------ basic facts
+    @property
+    def n_atoms(self) -> int:
+        return len(self.universe.atoms)
+
+    @property
+    def n_frames(self) -> int:
+        return len(self.universe.trajectory)
+
+    @property
+    def n_molecules(self) -> int:
+        return self.index.n_molecules
+
+    @property
+    def has_box(self) -> bool:
+        dims = self.universe.dimensions
+        return dims is not None and bool(np.all(np.asarray(dims[:3]) > 0))
+
+    def molecule_atoms(self, molecule: int) -> npt.NDArray[np.int64]:
+        """Atom indices (0-based, ascending) of one molecule."""
+        self._check_molecule(molecule)
+        return self.index.of(int(molecule))
+
+    def _check_molecule(self, molecule: Any) -> int:
+        if isinstance(molecule, (bool, np.bool_)) or not isinstance(molecule, (int, np.integer)):
+            raise CarvingError(f"molecule must be an integer id; got {molecule!r}.")
+        if not (0 <= int(molecule) < self.n_molecules):
+            raise CarvingError(
+                f"molecule {int(molecule)} does not exist in {self.topology_path!r}; "
+                f"valid ids are 0..{self.n_molecules - 1}."
+            )
+        return int(molecule)
+
+    def _check_frame(self, frame: Any) -> int:
+        if isinstance(frame, (bool, np.bool_)) or not isinstance(frame, (int, np.integer)):
+            raise CarvingError(f"frame must be an integer; got {frame!r}.")
+        f = int(frame)
+        if f < 0:
+            f += self.n_frames
+        if not (0 <= f < self.n_frames):
+            raise CarvingError(f"frame {frame} is out of range; the film has {self.n_frames} frame(s).")
+        return f
+
+    @cached_property
+    def film_id(self) -> str:
+        """Content hash of topology, trajectory files and the charge source."""
+        h = hashlib.sha256()
+        paths = [p for p in [self.topology_path, *self.trajectory_paths] if p and os.path.isfile(p)]
+        if paths:
+            for p in paths:
+                _hash_file(p, h)
+        else:  # an in-memory Universe: hash what defines it
+            atoms = self.universe.atoms
+            h.update("|".join(np.asarray(atoms.names).astype(str)).encode())
+            h.update("|".join(np.asarray(atoms.resnames).astype(str)).encode())
+            for ts in self.universe.trajectory:
+                h.update(np.asarray(ts.positions, dtype="<f4").tobytes())
+                if ts.dimensions is not None:
+                    h.update(np.asarray(ts.dimensions, dtype="<f4").tobytes())
+            self.universe.trajectory[0]
+        try:  # the charges themselves, so equal charges from any source give one id
+            h.update(np.round(self.charges, 6).astype("<f8").tobytes())
+        except ChargeError:
+            h.update(self.charge_source.fingerprint().encode())
+        return h.hexdigest()[:20]
+
+    def __repr__(self) -> str:
+        return (f"<Film {os.path.basename(self.topology_path)}: {self.n_molecules} molecules "
+                f"({self.molecule_kind}), {self.n_atoms} atoms, {self.n_frames} frame(s)>")
+
+    def describe(self) -> str:
+        """A short human-readable summary (used by the CLI)."""
+        lines = [repr(self)]
+        if self.has_box:
+            b = self.universe.dimensions
+            lines.append("box: {:.2f} x {:.2f} x {:.2f} Å, angles {:.1f} {:.1f} {:.1f}°".format(*b))
+        else:
+            lines.append("box: none (only non-periodic carving is possible)")
+        species = self.molecules.groupby(["resname", "formula"]).size()
+        for (res, formula), n in species.items():
+            lines.append(f"  {n:6d} x {res} ({formula})")
+        lines.append(f"charges: {self.charge_source.describe()}"
+                     + ("" if self.charges_available else " - NOT AVAILABLE"))
+        if len(self.guessed_elements):
+            lines.append(f"elements guessed for {len(self.guessed_elements)} atom(s)")
+        return "\n".join(lines)
+
+    # ------------------------------------------------------------- elements
+    def _resolve_elements(self) -> tuple[np.ndarray, pd.DataFrame]:
+        atoms = self.universe.atoms
+        n = len(atoms)
+        syms = np.array([""] * n, dtype=object)
+        if hasattr(atoms, "elements"):
+            raw = np.asarray(atoms.elements).astype(str)
+            for i, e in enumerate(raw):
+                e2 = e.strip().title()
+                if e2 in _KNOWN:
+                    syms[i] = e2
+        names = np.asarray(atoms.names).astype(str)
+        masses = np.asarray(atoms.masses, dtype=float) if hasattr(atoms, "masses") else np.full(n, np.nan)
+        types = np.asarray(atoms.types).astype(str) if hasattr(atoms, "types") else names
+        guessed = []
+        todo = np.flatnonzero(syms == "")
+        cache: dict[tuple[str, str, float], tuple[str | None, str]] = {}
+        for i in todo:
+            key = (names[i], types[i], round(float(masses[i]), 2) if np.isfinite(masses[i]) else -1.0)
+            if key not in cache:
+                sym, how = None, ""
+                by_mass = _element_from_mass(masses[i])
+                by_name = _guess_from_name(names[i]) or _guess_from_name(types[i])
+                if by_name and (by_mass is None or by_mass == by_name):
+                    sym, how = by_name, "name"
+                elif by_mass:
+                    sym, how = by_mass, "mass"
+                cache[key] = (sym, how)
+            sym, how = cache[key]
+            if sym is None:
+                continue
+            syms[i] = sym
+            guessed.append((int(i), names[i], str(atoms[i].resname), sym, how))
+        unknown = np.flatnonzero(syms == "")
+        if unknown.size:
+            ex = ", ".join(f"atom {i} (name {names[i]!r}, resname {atoms[i].resname!r})" for i in unknown[:5])
+            raise FilmError(
+                f"Cannot determine the element of {unknown.size} atom(s) in {self.topology_path!r}: "
+                f"{ex}. Give the topology element or mass columns, or standard atom names."
+            )
+        table = pd.DataFrame(guessed, columns=["atom", "name", "resname", "element", "guessed_from"])
+        if len(table):
+            groups = table.groupby(["resname", "name", "element", "guessed_from"]).size()
+            summary = "; ".join(f"{r}:{nm}->{e} (by {how}, {k} atoms)" for (r, nm, e, how), k in list(groups.items())[:8])
+            warnings.warn(
+                f"{self.topology_path}: elements guessed for {len(table)} atom(s): {summary}"
+                + (" ..." if len(groups) > 8 else ""),
+                stacklevel=3,
+            )
+        return syms.astype(str), table
+
+    # ----------------------------------------------------------- molecules
+    def _molecule_table(self) -> pd.DataFrame:
+        atoms = self.universe.atoms
+        n_mol = self.n_molecules
+        first = self.index.atoms[self.index.offsets[:-1]]
+        resnames = self.molecule_resnames
+        resids = np.asarray(atoms.resids)[first]
+        formulas = []
+        for i in range(n_mol):
+            els, cnt = np.unique(self.symbols[self.index.of(i)], return_counts=True)
+            d = dict(zip(els, cnt))
+            order = (["C", "H"] if "C" in d else []) + sorted(k for k in d if k not in (("C", "H") if "C" in d else ()))
+            formulas.append("".join(f"{k}{d[k] if d[k] > 1 else ''}" for k in order))
+        try:  # raw source charges, so non-integer molecules show up in the table
+            q = np.asarray(self.charge_source.atom_charges(self), dtype=np.float64)
+            net = np.bincount(self.molecule_of_atom, weights=q, minlength=n_mol)
+        except ChargeError:
+            net = np.full(n_mol, np.nan)
+        return pd.DataFrame({
+            "molecule": np.arange(n_mol), "resname": resnames, "resid": resids,
+            "n_atoms": self.index.sizes(), "charge": net, "formula": formulas,
+        })
+
+    def select(self, selection: str | Sequence[int] | None = None) -> npt.NDArray[np.int64]:
+        """Molecule ids from an MDAnalysis selection string (e.g. ``"resname HST"``),
+        an explicit list of ids, or None (all). A molecule is selected when any
+        of its atoms is."""
+        if selection is None or (isinstance(selection, str) and selection.strip() == "all"):
+            return np.arange(self.n_molecules)
+        if isinstance(selection, str):
+            try:
+                ag = self.universe.select_atoms(selection)
+            except Exception as exc:  # noqa: BLE001 - MDAnalysis raises SelectionError and others
+                raise CarvingError(f"selection {selection!r} is invalid: {exc}") from exc
+            ids = np.unique(self.molecule_of_atom[ag.indices])
+            if ids.size == 0:
+                raise CarvingError(f"selection {selection!r} matches no atoms in {self.topology_path!r}.")
+            return ids
+        ids = np.asarray([self._check_molecule(int(i)) for i in selection], dtype=np.int64)
+        return ids
+
+    # --------------------------------------------------------------- charges
+    @property
+    def charges_available(self) -> bool:
+        try:
+            self.charges
+        except ChargeError:
+            return False
+        return True
+
+    @property
+    def charges(self) -> FloatArray:
+        """Partial charge of every atom (e), from the film's charge source.
+
+        Raises
+        ------
+        ChargeError
+            If the source has no charges, or a molecule's net charge is not an
+            integer within 1e-3 e.
+        """
+        if self._charges is not None:
+            return self._charges
+        if self._charge_error is not None:
+            raise self._charge_error
+        try:
+            q = np.asarray(self.charge_source.atom_charges(self), dtype=np.float64)
+            if q.shape != (self.n_atoms,):
+                raise ChargeError(f"charge source gave {q.shape} charges for {self.n_atoms} atoms.")
+            net = np.bincount(self.molecule_of_atom, weights=q, minlength=self.n_molecules)
+            bad = np.flatnonzero(np.abs(net - np.round(net)) > CHARGE_INTEGER_TOL)
+            if bad.size:
+                ex = ", ".join(f"molecule {i} ({self.universe.atoms[self.index.of(i)[0]].resname}) "
+                               f"net {net[i]:+.4f} e" for i in bad[:5])
+                raise ChargeError(
+                    f"{bad.size} molecule(s) of {self.topology_path!r} have a net charge that is not an "
+                    f"integer within {CHARGE_INTEGER_TOL} e ({self.charge_source.describe()}): {ex}. "
+                    "Check the charges or how molecules are defined (bonds vs residues)."
+                )
+        except ChargeError as exc:
+            self._charge_error = exc
+            raise
+        self._charges = q
+        return q
+
+    def set_charges(self, charges: Any) -> None:
+        """Replace the charge source (mapping, CSV path, or a ChargeSource)."""
+        self.charge_source = as_charge_source(charges)
+        self._charges = None
+        self._charge_error = None
+        self.__dict__.pop("film_id", None)
+        self.molecules = self._molecule_table()
+
+    # ---------------------------------------------------------------- frames
+    def box(self, frame: int = 0) -> FloatArray | None:
+        """Box ``[lx, ly, lz, alpha, beta, gamma]`` of a frame, or None."""
+        self.universe.trajectory[self._check_frame(frame)]
+        return None if not self.has_box else np.asarray(self.universe.dimensions, dtype=np.float64).copy()
+
+    def frame_geometry(self, frame: int = 0, *, periodic: bool = True) -> FrameGeometry:
+        """Whole molecules of one frame with centroids in the primary cell (cached)."""
+        f = self._check_frame(frame)
+        key = f if periodic else -1 - f
+        if key in self._frame_cache:
+            self._frame_cache.move_to_end(key)
+            return self._frame_cache[key]
+        ts = self.universe.trajectory[f]
+        pos = np.asarray(ts.positions, dtype=np.float64).copy()
+        box = None
+        if periodic:
+            if not self.has_box:
+                raise CarvingError(
+                    f"The film {self.topology_path!r} (frame {f}) has no periodic box, so periodic "
+                    "carving is impossible. Pass periodic=False to carve without periodic images "
+                    "(molecules are then taken as they are in the file)."
+                )
+            box = np.asarray(ts.dimensions, dtype=np.float64).copy()
+            whole = make_whole(pos, self.molecule_of_atom, box)
+            whole = self._repair_whole(whole, box)
+            pos, cent = wrap_molecules(whole, self.molecule_of_atom, self.n_molecules, box)
+        else:
+            from .geometry import molecule_centroids
+
+            cent = molecule_centroids(pos, self.molecule_of_atom, self.n_molecules)
+        geo = FrameGeometry(frame=f, positions_A=pos, centroids_A=cent, box=box)
+        self._frame_cache[key] = geo
+        while len(self._frame_cache) > self._cache_frames:
+            self._frame_cache.popitem(last=False)
+        return geo
+
+    def _repair_whole(self, whole: FloatArray, box: FloatArray) -> FloatArray:
+        """Molecules larger than half the box defeat the reference-atom
+        make-whole; walk their bond graph instead (MDAnalysis ``make_whole``)."""
+        widths = perpendicular_widths(box_vectors(box))
+        if not hasattr(self.universe.atoms, "bonds") or len(self.universe.atoms.bonds) == 0:
+            return whole
+        b = self.universe.atoms.bonds.indices
+        vec = whole[b[:, 1]] - whole[b[:, 0]]
+        bad_bonds = np.linalg.norm(vec, axis=1) > 0.5 * widths.min() - 1e-6
+        if not bad_bonds.any():
+            return whole
+        from MDAnalysis.lib.mdamath import make_whole as mda_make_whole
+
+        fixed = whole.copy()
+        for mol in np.unique(self.molecule_of_atom[b[bad_bonds, 0]]):
+            ag = self.universe.atoms[self.index.of(int(mol))]
+            saved = ag.positions.copy()
+            ag.positions = fixed[ag.indices]
+            mda_make_whole(ag)
+            fixed[ag.indices] = ag.positions
+            ag.positions = saved
+        return fixed
+
+    # ----------------------------------------------------------------- carve
+    def carve(
+        self,
+        molecule: int,
+        radius: float,
+        *,
+        frame: int = 0,
+        qm_shell: float = 0.0,
+        rule: str = "atom",
+        periodic: bool = True,
+    ) -> Cluster:
+        """Carve a cluster around ``molecule``.
+
+        Parameters
+        ----------
+        molecule : int
+            Central molecule id (row of :attr:`molecules`).
+        radius : float, Å
+            Cut radius (see ``rule``). Radii beyond half the box are allowed:
+            every periodic image inside is included once, images of the
+            central molecule included.
+        frame : int
+        qm_shell : float, Å
+            Whole neighbour molecules whose closest atom is within this
+            distance of the central molecule join the QM region.
+        rule : {"atom", "centroid"}
+        periodic : bool
+            False carves without periodic images (the only choice for films
+            without a box).
+
+        Returns
+        -------
+        Cluster
+
+        Raises
+        ------
+        CarvingError
+            Bad molecule, frame, radius or rule, or a periodic carve of a
+            film with no box.
+        ChargeError
+            No charges available or non-integer molecular charges.
+        """
+        mol = self._check_molecule(molecule)
+        try:
+            radius = float(radius)
+        except (TypeError, ValueError) as exc:
+            raise CarvingError(f"radius must be a number of Å; got {radius!r}.") from exc
+        geo = self.frame_geometry(frame, periodic=periodic)
+        charges = self.charges
+        sel = select_images(geo.positions_A, geo.centroids_A, self.index, mol, radius,
+                            box=geo.box, rule=rule, qm_shell_A=float(qm_shell))
+        h = box_vectors(geo.box) if geo.box is not None else np.zeros((3, 3))
+
+        def gather(mols: np.ndarray, imgs: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+            if len(mols) == 0:
+                return (np.zeros(0, np.int64), np.zeros((0, 3)), np.zeros(0, np.int64), np.zeros((0, 3), np.int64))
+            sizes = self.index.sizes()[mols]
+            starts = self.index.offsets[mols]
+            within = np.arange(sizes.sum()) - np.repeat(np.cumsum(sizes) - sizes, sizes)
+            atoms = self.index.atoms[np.repeat(starts, sizes) + within]
+            img = np.repeat(imgs, sizes, axis=0)
+            pos = geo.positions_A[atoms] + img @ h
+            return atoms, pos, np.repeat(mols, sizes), img
+
+        c_atoms = self.index.of(mol)
+        qa, qp, qm_mol, _ = gather(sel.molecules[sel.in_qm], sel.images[sel.in_qm])
+        ea, ep, em, ei = gather(sel.molecules[~sel.in_qm], sel.images[~sel.in_qm])
+        qm_atoms = np.r_[c_atoms, qa]
+        qm_pos = np.vstack([geo.positions_A[c_atoms], qp])
+        qm_atom_mol = np.r_[np.full(len(c_atoms), mol), qm_mol]
+        qm_charge_f = float(charges[qm_atoms].sum())
+        return Cluster(
+            qm_symbols=list(self.symbols[qm_atoms]),
+            qm_positions=qm_pos,
+            env_positions=ep,
+            env_charges=charges[ea],
+            qm_molecules=(mol, *[int(m) for m in sel.molecules[sel.in_qm]]),
+            qm_atom_molecules=qm_atom_mol,
+            env_molecules=em,
+            env_images=ei,
+            env_symbols=list(self.symbols[ea]),
+            qm_charge=int(round(qm_charge_f)),
+            frame=geo.frame,
+            radius_A=radius,
+            rule=rule,
+            center=mol,
+            box=geo.box,
+            film_id=self.film_id,
+            film_path=os.path.abspath(self.topology_path),
+        )
+
+    def radius_warnings(self, radius: float, frame: int = 0) -> list[str]:
+        """Plain-language warnings about a cut radius (beyond half the box...)."""
+        out = []
+        if self.has_box:
+            w = perpendicular_widths(box_vectors(self.box(frame)))
+            if radius > 0.5 * w.min():
+                out.append(f"radius {radius:g} Å exceeds half the smallest box width ({0.5 * w.min():.1f} Å): "
+                           "periodic images of molecules (and of the central molecule) are included.")
+        return out
+
+    def minimum_image(self, vectors_A: FloatArray, frame: int = 0) -> FloatArray:
+        """Minimum-image version of difference vectors in this frame's box."""
+        return minimum_image(vectors_A, self.box(frame))
+
+
+def film_from_universe(universe: mda.Universe, *, charges: Any = None, name: str = "<memory>") -> Film:
+    """Wrap an existing MDAnalysis Universe (e.g. one built in memory) as a Film.
+
+    The Film keeps a reference to the Universe: moving its frame moves yours.
+    """
+    if len(universe.atoms) == 0:
+        raise FilmError(f"{name!r} contains no atoms.")
+    top = getattr(universe, "filename", None) or name
+    trajs = [universe.trajectory.filename] if getattr(universe.trajectory, "filename", None) else []
+    return Film(universe, str(top), [str(t) for t in trajs], as_charge_source(charges))
+
+
+def _atom_count(path: str, fmt: str | None = None) -> int | None:
+    try:
+        return len(mda.Universe(path).atoms)
+    except Exception:  # noqa: BLE001
+        return None
+
+
+def load_film(
+    topology: str | os.PathLike[str],
+    trajectory: str | os.PathLike[str] | Sequence[str | os.PathLike[str]] | None = None,
+    *,
+    charges: Any = None,
+    **universe_kwargs: Any,
+) -> Film:
+    """Load a film from any topology/trajectory pair MDAnalysis reads.
+
+    Parameters
+    ----------
+    topology : path
+        GRO, PDB, PSF, TPR, PQR, MOL2, PRMTOP, LAMMPS data, ...
+    trajectory : path or list of paths, optional
+        XTC, TRR, DCD, LAMMPS dump, ...; None uses the coordinates in the topology.
+    charges : None, mapping, CSV path or ChargeSource
+        None takes the topology's charges. See :mod:`clusterlab.charges`.
+    **universe_kwargs
+        Passed to :class:`MDAnalysis.Universe` (e.g. ``format=``, ``topology_format=``).
+
+    Raises
+    ------
+    FilmError
+        Missing files, atom-count mismatch between topology and trajectory,
+        unreadable files, unknown elements.
+
+    Examples
+    --------
+    >>> film = load_film("demo_traj/bithiophene_film.psf", "demo_traj/bithiophene_film.xtc")  # doctest: +SKIP
+    >>> cluster = film.carve(0, radius=12.0)  # doctest: +SKIP
+    """
+    top = os.fspath(topology)
+    trajs: list[str] = []
+    if trajectory is not None:
+        trajs = [os.fspath(trajectory)] if isinstance(trajectory, (str, os.PathLike)) else [os.fspath(t) for t in trajectory]
+    for p in [top, *trajs]:
+        if not os.path.exists(p):
+            raise FilmError(f"File not found: {p!r}.")
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=".*(guess|Guess|No coordinate reader|Reader has no dt).*")
+        try:
+            u = mda.Universe(top, *trajs, **universe_kwargs)
+        except Exception as exc:  # noqa: BLE001 - MDAnalysis raises many kinds
+            msg = str(exc)
+            if trajs and ("atoms" in msg.lower() and ("match" in msg.lower() or "number" in msg.lower() or "differ" in msg.lower())):
+                n_top = _atom_count(top)
+                raise FilmError(
+                    f"Topology {top!r} and trajectory {', '.join(map(repr, trajs))} have different numbers of "
+                    f"atoms (topology: {n_top if n_top is not None else '?'}). MDAnalysis said: {msg}"
+                ) from exc
+            raise FilmError(f"MDAnalysis cannot read {top!r}{' with ' + ', '.join(trajs) if trajs else ''}: {msg}") from exc
+    if len(u.atoms) == 0:
+        raise FilmError(f"{top!r} contains no atoms.")
+    return Film(u, top, trajs, as_charge_source(charges))

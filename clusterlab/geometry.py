@@ -1,0 +1,143 @@
+"""Periodic-box geometry on plain arrays (Å, degrees).
+
+Every function takes ``box = [lx, ly, lz, alpha, beta, gamma]`` as MDAnalysis
+does, or ``None`` for no periodicity. Nothing here knows about files or
+Universes.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import numpy.typing as npt
+from MDAnalysis.lib.distances import minimize_vectors
+from MDAnalysis.lib.mdamath import triclinic_vectors
+
+from .errors import InputError
+
+FloatArray = npt.NDArray[np.float64]
+
+
+def box_vectors(box: npt.ArrayLike) -> FloatArray:
+    """Lattice vectors (rows a, b, c; Å) of ``box = [lx, ly, lz, alpha, beta, gamma]``.
+
+    Raises
+    ------
+    InputError
+        If the box has a non-positive length or degenerate angles.
+    """
+    b = np.asarray(box, dtype=np.float64).reshape(-1)
+    if b.shape != (6,) or not np.all(np.isfinite(b)):
+        raise InputError(f"box must be [lx, ly, lz, alpha, beta, gamma]; got {box!r}.")
+    if np.any(b[:3] <= 0):
+        raise InputError(f"box lengths must be positive; got {b[:3].tolist()} Å.")
+    h = np.asarray(triclinic_vectors(b), dtype=np.float64)
+    if abs(np.linalg.det(h)) < 1e-6:
+        raise InputError(f"box {b.tolist()} is degenerate (zero volume).")
+    return h
+
+
+def box_volume_A3(box: npt.ArrayLike) -> float:
+    """Cell volume in Å³."""
+    return float(abs(np.linalg.det(box_vectors(box))))
+
+
+def perpendicular_widths(h: FloatArray) -> FloatArray:
+    """Distances between opposite faces of the cell spanned by rows of ``h`` (Å).
+
+    Half the smallest width is the largest radius for which a sphere around
+    any point holds at most one image of any other point.
+    """
+    vol = abs(np.linalg.det(h))
+    a, b, c = h
+    return np.array(
+        [vol / np.linalg.norm(np.cross(b, c)), vol / np.linalg.norm(np.cross(c, a)),
+         vol / np.linalg.norm(np.cross(a, b))]
+    )
+
+
+def to_fractional(positions_A: FloatArray, h: FloatArray) -> FloatArray:
+    """Cartesian (n, 3) → fractional coordinates in the cell of rows ``h``."""
+    return np.asarray(positions_A) @ np.linalg.inv(h)
+
+
+def minimum_image(vectors_A: FloatArray, box: npt.ArrayLike | None) -> FloatArray:
+    """Shortest periodic image of each difference vector (n, 3), Å.
+
+    Uses MDAnalysis's compiled ``minimize_vectors``, exact for orthorhombic and
+    triclinic cells. ``box=None`` returns the vectors unchanged.
+    """
+    v = np.ascontiguousarray(vectors_A, dtype=np.float64).reshape(-1, 3)
+    if box is None:
+        return v.copy()
+    b = np.asarray(box, dtype=np.float64).reshape(6)
+    box_vectors(b)  # validates
+    return np.asarray(minimize_vectors(v, b.astype(np.float32)), dtype=np.float64)
+
+
+def make_whole(
+    positions_A: FloatArray,
+    molecule_of_atom: npt.NDArray[np.int64],
+    box: npt.ArrayLike | None,
+) -> FloatArray:
+    """Make every molecule whole across periodic boundaries (vectorised).
+
+    Each atom is moved to the periodic image nearest to the first atom of its
+    molecule. Correct whenever every atom lies within half the smallest box
+    width of that atom, which holds for any molecule smaller than half the
+    box; :class:`clusterlab.Film` checks bond lengths afterwards and falls back
+    to a bond-graph walk otherwise.
+
+    Parameters
+    ----------
+    positions_A : ndarray, shape (n, 3)
+    molecule_of_atom : ndarray of int, shape (n,)
+        Molecule index of each atom; atoms of one molecule need not be
+        contiguous.
+    box : array-like (6,) or None
+    """
+    pos = np.asarray(positions_A, dtype=np.float64)
+    if box is None:
+        return pos.copy()
+    mol = np.asarray(molecule_of_atom)
+    order = np.argsort(mol, kind="stable")
+    sorted_mol = mol[order]
+    first_idx = np.empty(mol.max() + 1, dtype=np.int64)
+    # first atom (in atom order) of each molecule
+    starts = np.flatnonzero(np.r_[True, sorted_mol[1:] != sorted_mol[:-1]])
+    first_idx[sorted_mol[starts]] = order[starts]
+    ref = pos[first_idx[mol]]
+    return ref + minimum_image(pos - ref, box)
+
+
+def wrap_molecules(
+    whole_A: FloatArray, molecule_of_atom: npt.NDArray[np.int64], n_molecules: int, box: npt.ArrayLike
+) -> tuple[FloatArray, FloatArray]:
+    """Translate whole molecules by lattice vectors so each centroid lies in the
+    primary cell [0, 1)³ (fractional). Returns ``(positions, centroids)``."""
+    h = box_vectors(box)
+    cent = molecule_centroids(whole_A, molecule_of_atom, n_molecules)
+    shift_frac = -np.floor(to_fractional(cent, h))
+    shift = shift_frac @ h
+    return whole_A + shift[molecule_of_atom], cent + shift
+
+
+def molecule_centroids(
+    positions_A: FloatArray, molecule_of_atom: npt.NDArray[np.int64], n_molecules: int
+) -> FloatArray:
+    """Geometric centroid of each molecule (unweighted mean of its atoms)."""
+    mol = np.asarray(molecule_of_atom)
+    counts = np.bincount(mol, minlength=n_molecules).astype(float)
+    out = np.empty((n_molecules, 3))
+    for k in range(3):
+        out[:, k] = np.bincount(mol, weights=positions_A[:, k], minlength=n_molecules)
+    return out / counts[:, None]
+
+
+def lattice_translations(h: FloatArray, cutoff_A: float) -> npt.NDArray[np.int64]:
+    """All integer translations n (k, 3) such that a point in the reduced cell
+    [-0.5, 0.5)³ shifted by n·h can come within ``cutoff_A`` of the origin."""
+    widths = perpendicular_widths(h)
+    n_max = np.ceil(cutoff_A / widths + 0.5).astype(int)
+    rng = [np.arange(-m, m + 1) for m in n_max]
+    grid = np.stack(np.meshgrid(*rng, indexing="ij"), axis=-1).reshape(-1, 3)
+    return grid.astype(np.int64)

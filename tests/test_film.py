@@ -1,0 +1,159 @@
+"""Film loading from files MDAnalysis reads, charge sources, and bad input."""
+
+from __future__ import annotations
+
+import warnings
+
+import MDAnalysis as mda
+import numpy as np
+import pytest
+
+from clusterlab import load_film
+from clusterlab.charges import MoleculeTypeCharges
+from clusterlab.errors import ChargeError, FilmError
+
+from conftest import TIP3P_Q, build_water_universe, lattice_centres
+
+BOX = np.array([15.0, 15.0, 15.0, 90.0, 90.0, 90.0])
+
+
+@pytest.fixture
+def water_files(tmp_path):
+    u, truth = build_water_universe(lattice_centres(3, 0.1, np.random.default_rng(0)), BOX, n_frames=4)
+    gro = tmp_path / "w.gro"
+    xtc = tmp_path / "w.xtc"
+    pqr = tmp_path / "w.pqr"
+    u.atoms.write(str(gro))
+    with mda.Writer(str(xtc), len(u.atoms)) as w:
+        for _ in u.trajectory:
+            w.write(u.atoms)
+    u.trajectory[0]
+    u.add_TopologyAttr("radii", [1.5, 1.0, 1.0] * (len(u.atoms) // 3))
+    u.atoms.write(str(pqr))
+    return dict(gro=str(gro), xtc=str(xtc), pqr=str(pqr), n_mol=27, tmp=tmp_path)
+
+
+def test_gro_xtc_with_charge_table_csv(water_files):
+    csv = water_files["tmp"] / "q.csv"
+    csv.write_text("resname,name,charge\nWAT,OW,-0.834\nWAT,HW1,0.417\nWAT,HW2,0.417\n")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        film = load_film(water_files["gro"], water_files["xtc"], charges=str(csv))
+    assert film.n_frames == 4
+    assert film.molecule_kind == "residues"  # GRO carries no bonds
+    m = film.molecules
+    assert list(m.columns[:6]) == ["molecule", "resname", "resid", "n_atoms", "charge", "formula"]
+    assert len(m) == 27 and set(m.formula) == {"H2O"} and np.allclose(m.charge, 0.0)
+    np.testing.assert_allclose(film.charges, np.tile(TIP3P_Q, 27))
+    cl = film.carve(0, 6.0, frame=2)
+    assert cl.frame == 2 and cl.n_charges % 3 == 0
+
+
+def test_pqr_topology_charges(water_files):
+    film = load_film(water_files["pqr"])
+    np.testing.assert_allclose(film.charges, np.tile(TIP3P_Q, 27), atol=1e-4)
+    assert film.n_frames == 1
+
+
+def test_mapping_by_atom_name_and_per_residue_order(water_files):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        f1 = load_film(water_files["gro"], charges={"OW": -0.8, "HW1": 0.4, "HW2": 0.4})
+        f2 = load_film(water_files["gro"], charges={"WAT": [-0.8, 0.4, 0.4]})
+        f3 = load_film(water_files["gro"], charges=MoleculeTypeCharges({"WAT": [-0.8, 0.4, 0.4]}))
+    np.testing.assert_allclose(f1.charges, f2.charges)
+    np.testing.assert_allclose(f1.charges, f3.charges)
+    assert f1.film_id == f2.film_id  # same charges give the same content id
+    f4 = load_film(water_files["gro"], charges={"WAT": [-0.6, 0.3, 0.3]})
+    assert f4.film_id != f1.film_id
+
+
+def test_atom_count_mismatch_names_both_files(water_files, tmp_path):
+    u = mda.Universe(water_files["gro"])
+    small = tmp_path / "small.xtc"
+    with mda.Writer(str(small), 30) as w:
+        w.write(u.atoms[:30])
+    with pytest.raises(FilmError, match=r"different numbers of atoms.*small\.xtc|small\.xtc.*different numbers of atoms"):
+        load_film(water_files["gro"], str(small))
+
+
+def test_missing_file():
+    with pytest.raises(FilmError, match="File not found: 'nope.gro'"):
+        load_film("nope.gro")
+
+
+def test_no_charges_when_needed(water_files):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        film = load_film(water_files["gro"])
+    assert np.isnan(film.molecules.charge).all()
+    with pytest.raises(ChargeError, match=r"w\.gro.*carries no partial charges"):
+        film.carve(0, 5.0)
+
+
+def test_non_integer_molecular_charge(water_files):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        film = load_film(water_files["gro"], charges={"OW": -0.8, "HW1": 0.41, "HW2": 0.41})
+    with pytest.raises(ChargeError, match=r"not an integer within 0\.001 e.*molecule 0 \(WAT\) net \+0\.0200 e"):
+        film.carve(0, 5.0)
+    assert np.allclose(film.molecules.charge, 0.02)  # the table shows the culprits
+
+
+def test_missing_table_entry_names_atoms(water_files):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        film = load_film(water_files["gro"], charges={"OW": -0.834, "HW1": 0.417})
+    with pytest.raises(ChargeError, match=r"no charge for 27 atom\(s\).*WAT:HW2"):
+        film.charges
+
+
+def test_no_box(tmp_path):
+    u, _ = build_water_universe(lattice_centres(2, 0.1, np.random.default_rng(0)), BOX, wrap=False)
+    pdb = tmp_path / "nobox.pdb"
+    u.trajectory.ts.dimensions = None
+    u.atoms.write(str(pdb))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        film = load_film(str(pdb), charges={"OW": -0.834, "HW1": 0.417, "HW2": 0.417})
+    assert not film.has_box
+    with pytest.raises(Exception, match="no periodic box.*periodic=False"):
+        film.carve(0, 5.0)
+    assert film.carve(0, 50.0, periodic=False).n_env_molecules == 7
+
+
+def test_element_guessing_is_reported(tmp_path):
+    # a PDB without element columns: elements must be guessed from the names
+    text = ["CRYST1   20.000   20.000   20.000  90.00  90.00  90.00 P 1           1"]
+    names = ["C1", "O1", "N1", "H1"]
+    for i, nm in enumerate(names):
+        text.append(f"ATOM  {i + 1:5d} {nm:<4s} UNK A   1    {i * 1.2:8.3f}{0:8.3f}{0:8.3f}  1.00  0.00          ")
+    text.append("END")
+    p = tmp_path / "noelem.pdb"
+    p.write_text("\n".join(text) + "\n")
+    with pytest.warns(UserWarning, match="elements guessed for 4 atom"):
+        film = load_film(str(p))
+    assert list(film.symbols) == ["C", "O", "N", "H"]
+    assert list(film.guessed_elements.element) == ["C", "O", "N", "H"]
+
+
+def test_unknown_element_is_an_error(tmp_path):
+    text = ["CRYST1   20.000   20.000   20.000  90.00  90.00  90.00 P 1           1",
+            "ATOM      1 QQ9  UNK A   1       0.000   0.000   0.000  1.00  0.00          ",
+            "END"]
+    p = tmp_path / "bad.pdb"
+    p.write_text("\n".join(text) + "\n")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(FilmError, match=r"Cannot determine the element.*QQ9"):
+            load_film(str(p))
+
+
+def test_selection_and_describe(water_files):
+    film = load_film(water_files["pqr"])
+    assert list(film.select("resname WAT")) == list(range(27))
+    assert list(film.select([3, 4])) == [3, 4]
+    with pytest.raises(ValueError, match="matches no atoms"):
+        film.select("resname XYZ")
+    text = film.describe()
+    assert "27 x WAT (H2O)" in text
