@@ -100,16 +100,19 @@ def _candidate_images(
     shift = -np.round(f)
     fr = f + shift
     trans = lattice_translations(h, cutoff_A)
+    v0 = fr @ h  # reduced (near-minimum-image) centroid vectors, (n_mol, 3)
+    v0_sq = np.einsum("mi,mi->m", v0, v0)
     mols, imgs, dists = [], [], []
-    chunk = max(1, int(2_000_000 // max(n_mol, 1)))
+    chunk = max(1, int(4_000_000 // max(n_mol, 1)))
     for start in range(0, len(trans), chunk):
         t = trans[start:start + chunk]
-        vec = (fr[:, None, :] + t[None, :, :]) @ h  # (n_mol, n_t, 3)
-        dist = np.sqrt(np.einsum("mti,mti->mt", vec, vec))
-        mi, ti = np.nonzero(dist <= cutoff_A)
+        tv = t @ h
+        # |v0 + T|^2 = |v0|^2 + |T|^2 + 2 v0.T, as one matrix product
+        d2 = v0_sq[:, None] + np.einsum("ti,ti->t", tv, tv)[None, :] + 2.0 * (v0 @ tv.T)
+        mi, ti = np.nonzero(d2 <= cutoff_A * cutoff_A * (1 + 1e-12) + 1e-9)
         mols.append(mi)
         imgs.append(t[ti] + shift[mi].astype(np.int64))
-        dists.append(dist[mi, ti])
+        dists.append(np.linalg.norm(v0[mi] + tv[ti], axis=1))
     mol = np.concatenate(mols).astype(np.int64)
     img = np.concatenate(imgs).astype(np.int64)
     dist = np.concatenate(dists)

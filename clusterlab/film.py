@@ -109,6 +109,9 @@ class Film:
 
         atoms = universe.atoms
         has_bonds = hasattr(atoms, "bonds") and len(atoms.bonds) > 0
+        #: (n_bonds, 2) atom indices, read once (MDAnalysis builds bond groups slowly)
+        self._bond_index = (np.asarray(atoms.bonds.indices, dtype=np.int64) if has_bonds
+                            else np.zeros((0, 2), dtype=np.int64))
         if has_bonds:
             groups = list(atoms.fragments)
             self.molecule_kind = "fragments"
@@ -399,9 +402,9 @@ class Film:
         """Molecules larger than half the box defeat the reference-atom
         make-whole; walk their bond graph instead (MDAnalysis ``make_whole``)."""
         widths = perpendicular_widths(box_vectors(box))
-        if not hasattr(self.universe.atoms, "bonds") or len(self.universe.atoms.bonds) == 0:
+        b = self._bond_index
+        if len(b) == 0:
             return whole
-        b = self.universe.atoms.bonds.indices
         vec = whole[b[:, 1]] - whole[b[:, 0]]
         bad_bonds = np.linalg.norm(vec, axis=1) > 0.5 * widths.min() - 1e-6
         if not bad_bonds.any():

@@ -1,0 +1,810 @@
+"""Statistics of site energies: disorder widths, decompositions, spatial
+correlation and radius convergence.
+
+Pure array kernels (layer 1): numpy / scipy / pandas in, numbers, Series,
+DataFrames and small dataclasses out. No files, no MDAnalysis Universe
+(only ``MDAnalysis.lib.distances`` for periodic minimum-image distances).
+
+Energies may be in any unit; every output is in the unit of the input,
+except the plain-text messages of :func:`converged_radius`, which assume eV
+and print meV.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+from scipy import special, stats
+
+from .errors import InputError
+from .geometry import box_vectors, perpendicular_widths
+
+__all__ = [
+    "disorder_stats",
+    "static_dynamic",
+    "conformational_environmental",
+    "spatial_correlation",
+    "converged_radius",
+    "ConvergenceVerdict",
+]
+
+#: Above this sample size the normality test switches from Shapiro-Wilk to
+#: D'Agostino-Pearson (scipy's Shapiro-Wilk p-value is only reliable up to
+#: about 5000 values).
+SHAPIRO_MAX_N = 5000
+
+#: Largest number of bootstrap values drawn in one block (memory bound).
+_BOOT_BLOCK = 4_000_000
+
+
+# --------------------------------------------------------------------------
+# helpers
+# --------------------------------------------------------------------------
+def _as_1d_float(values: Any, name: str = "values") -> npt.NDArray[np.float64]:
+    try:
+        arr = np.asarray(values, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"{name} must be numbers; got {type(values).__name__} ({exc})") from exc
+    if arr.ndim != 1:
+        raise InputError(f"{name} must be one-dimensional; got shape {arr.shape}")
+    return arr
+
+
+def _check_confidence(confidence: float) -> float:
+    c = float(confidence)
+    if not 0.0 < c < 1.0:
+        raise InputError(f"confidence={confidence!r} is invalid; use a number between 0 and 1 (e.g. 0.95)")
+    return c
+
+
+def _bootstrap_indices(rng: np.random.Generator, n_boot: int, n: int) -> list[npt.NDArray[np.intp]]:
+    """Resampling indices, (n_boot, n) in as few blocks as memory allows."""
+    rows = max(1, _BOOT_BLOCK // max(n, 1))
+    return [rng.integers(0, n, size=(min(rows, n_boot - start), n)) for start in range(0, n_boot, rows)]
+
+
+def _bca(
+    theta_hat: float,
+    theta_boot: npt.NDArray[np.float64],
+    theta_jack: npt.NDArray[np.float64],
+    confidence: float,
+) -> tuple[float, float]:
+    """Bias-corrected and accelerated (BCa) bootstrap interval.
+
+    Efron, J. Am. Stat. Assoc. 82, 171 (1987); Efron & Tibshirani,
+    "An Introduction to the Bootstrap", Chapman & Hall (1993), ch. 14.
+    """
+    alpha = 0.5 * (1.0 - confidence)
+    if np.ptp(theta_boot) == 0.0:
+        return float(theta_boot[0]), float(theta_boot[0])
+    # bias correction: fraction of replicates below the estimate (ties half)
+    below = np.mean(theta_boot < theta_hat) + 0.5 * np.mean(theta_boot == theta_hat)
+    below = min(max(below, 0.5 / theta_boot.size), 1.0 - 0.5 / theta_boot.size)
+    z0 = special.ndtri(below)
+    # acceleration from the jackknife
+    d = theta_jack.mean() - theta_jack
+    den = 6.0 * np.sum(d**2) ** 1.5
+    a = np.sum(d**3) / den if den > 0 else 0.0
+    z = special.ndtri(np.array([alpha, 1.0 - alpha]))
+    adj = special.ndtr(z0 + (z0 + z) / (1.0 - a * (z0 + z)))
+    lo, hi = np.quantile(theta_boot, adj)
+    return float(lo), float(hi)
+
+
+# --------------------------------------------------------------------------
+# 1. one-sample disorder statistics
+# --------------------------------------------------------------------------
+def disorder_stats(
+    values: npt.ArrayLike | pd.Series,
+    *,
+    n_boot: int = 2000,
+    seed: int | np.random.Generator | None = None,
+    confidence: float = 0.95,
+    method: str = "BCa",
+) -> pd.Series:
+    """Mean, width and shape of a set of site energies, with confidence intervals.
+
+    Parameters
+    ----------
+    values : array_like or pandas.Series, shape (n,), energy (e.g. eV)
+        Site energies (or shifts). NaN values are dropped and counted.
+    n_boot : int, default 2000
+        Number of bootstrap resamples (drawn as one ``(n_boot, n)`` index
+        array, in blocks when that would exceed a few million values).
+    seed : int, numpy.random.Generator or None
+        Seed of ``numpy.random.default_rng``; the same seed gives the same
+        intervals.
+    confidence : float, default 0.95
+        Confidence level of every interval.
+    method : {"BCa", "percentile"}, default "BCa"
+        Bootstrap interval: bias-corrected and accelerated (Efron, J. Am.
+        Stat. Assoc. 82, 171, 1987) or plain percentile.
+
+    Returns
+    -------
+    pandas.Series
+        ``n`` (values used), ``n_dropped`` (NaN dropped), ``mean``,
+        ``sigma`` (sample standard deviation, ddof=1), ``mean_lo``,
+        ``mean_hi``, ``sigma_lo``, ``sigma_hi`` (bootstrap intervals),
+        ``sigma_chi2_lo``, ``sigma_chi2_hi`` (exact interval for σ of a
+        Gaussian sample, from the chi-square law of (n-1)s²/σ²),
+        ``skewness`` (moment estimator g1 = m3/m2^1.5, scipy's default
+        ``bias=True``), ``excess_kurtosis`` (g2 = m4/m2² - 3),
+        ``normality_p`` and ``normality_test`` (Shapiro-Wilk for
+        n <= 5000, else D'Agostino-Pearson), ``gauss_mu``, ``gauss_sigma``
+        (maximum-likelihood Gaussian: the mean and the ddof=0 standard
+        deviation), ``confidence``, ``ci_method``, ``n_boot``.
+        Energies are in the unit of ``values``.
+
+    Raises
+    ------
+    InputError
+        If fewer than 3 finite values remain, ``values`` is not 1-D, or
+        ``n_boot``, ``confidence`` or ``method`` is invalid.
+
+    Notes
+    -----
+    A bootstrap interval for σ from a small sample is too narrow: at n = 40
+    a nominal 95 % BCa interval covers the true σ of a Gaussian about 92-94 %
+    of the time. For Gaussian data the chi-square interval is exact.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(1)
+    >>> s = disorder_stats(rng.normal(0.0, 0.1, 40), seed=2)
+    >>> bool(s["sigma_lo"] < s["sigma"] < s["sigma_hi"])
+    True
+    """
+    arr = _as_1d_float(values)
+    confidence = _check_confidence(confidence)
+    if int(n_boot) != n_boot or n_boot < 100:
+        raise InputError(f"n_boot={n_boot!r} is invalid; use an integer of at least 100 (default 2000)")
+    n_boot = int(n_boot)
+    kind = {"bca": "BCa", "percentile": "percentile"}.get(str(method).lower())
+    if kind is None:
+        raise InputError(f"method={method!r} is invalid; use 'BCa' or 'percentile'")
+    finite = np.isfinite(arr)
+    n_dropped = int(arr.size - finite.sum())
+    x = arr[finite]
+    n = x.size
+    if n < 3:
+        raise InputError(f"disorder_stats needs at least 3 finite values; got {n} ({n_dropped} NaN dropped)")
+
+    mean = float(x.mean())
+    dev = x - mean
+    ss = float(np.sum(dev**2))
+    sigma = math.sqrt(ss / (n - 1))
+    alpha = 0.5 * (1.0 - confidence)
+
+    # bootstrap replicates of mean and sigma
+    rng = np.random.default_rng(seed)
+    boot_mean = np.empty(n_boot)
+    boot_sigma = np.empty(n_boot)
+    start = 0
+    for idx in _bootstrap_indices(rng, n_boot, n):
+        xb = x[idx]
+        stop = start + idx.shape[0]
+        boot_mean[start:stop] = xb.mean(axis=1)
+        boot_sigma[start:stop] = xb.std(axis=1, ddof=1)
+        start = stop
+    if kind == "BCa":
+        # jackknife (leave-one-out) values in closed form
+        jack_mean = (n * mean - x) / (n - 1)
+        jack_ss = np.maximum(ss - dev**2 * n / (n - 1), 0.0)
+        jack_sigma = np.sqrt(jack_ss / (n - 2))
+        mean_lo, mean_hi = _bca(mean, boot_mean, jack_mean, confidence)
+        sigma_lo, sigma_hi = _bca(sigma, boot_sigma, jack_sigma, confidence)
+    else:
+        mean_lo, mean_hi = (float(v) for v in np.quantile(boot_mean, [alpha, 1 - alpha]))
+        sigma_lo, sigma_hi = (float(v) for v in np.quantile(boot_sigma, [alpha, 1 - alpha]))
+
+    # exact Gaussian interval: (n-1) s^2 / sigma^2 ~ chi2(n-1)
+    chi_hi, chi_lo = stats.chi2.ppf([1 - alpha, alpha], n - 1)
+    sigma_chi2_lo = math.sqrt(ss / chi_hi)
+    sigma_chi2_hi = math.sqrt(ss / chi_lo)
+
+    if ss > 0.0:
+        skewness = float(stats.skew(x))
+        excess_kurtosis = float(stats.kurtosis(x, fisher=True))
+        if n <= SHAPIRO_MAX_N:
+            test_name = "Shapiro-Wilk"
+            normality_p = float(stats.shapiro(x).pvalue)
+        else:
+            test_name = "D'Agostino-Pearson"
+            normality_p = float(stats.normaltest(x).pvalue)
+    else:  # all values equal: shape undefined
+        skewness = excess_kurtosis = normality_p = float("nan")
+        test_name = "Shapiro-Wilk" if n <= SHAPIRO_MAX_N else "D'Agostino-Pearson"
+
+    out = {
+        "n": n,
+        "n_dropped": n_dropped,
+        "mean": mean,
+        "sigma": sigma,
+        "mean_lo": mean_lo,
+        "mean_hi": mean_hi,
+        "sigma_lo": sigma_lo,
+        "sigma_hi": sigma_hi,
+        "sigma_chi2_lo": sigma_chi2_lo,
+        "sigma_chi2_hi": sigma_chi2_hi,
+        "skewness": skewness,
+        "excess_kurtosis": excess_kurtosis,
+        "normality_p": normality_p,
+        "normality_test": test_name,
+        "gauss_mu": mean,
+        "gauss_sigma": math.sqrt(ss / n),
+        "confidence": confidence,
+        "ci_method": kind,
+        "n_boot": n_boot,
+    }
+    name = values.name if isinstance(values, pd.Series) else None
+    return pd.Series(out, name=name, dtype=object)
+
+
+# --------------------------------------------------------------------------
+# 2. decompositions
+# --------------------------------------------------------------------------
+def _tidy_columns(df: pd.DataFrame, columns: list[str], what: str) -> pd.DataFrame:
+    if not isinstance(df, pd.DataFrame):
+        raise InputError(f"{what} needs a pandas DataFrame; got {type(df).__name__}")
+    missing = [c for c in columns if c not in df.columns]
+    if missing:
+        raise InputError(
+            f"{what}: column {missing[0]!r} is missing; the table has columns {list(df.columns)}"
+        )
+    return df[columns]
+
+
+def static_dynamic(df: pd.DataFrame, value: str = "S1_eV") -> pd.Series:
+    """Split the spread of site energies into a static and a dynamic part.
+
+    Static: the spread across molecules of each molecule's time average.
+    Dynamic: the spread in time of each molecule's energy, averaged over
+    molecules.
+
+    Parameters
+    ----------
+    df : pandas.DataFrame
+        Tidy table with columns ``frame``, ``molecule`` and ``value``, one
+        row per (frame, molecule). Rows with NaN in ``value`` are dropped.
+    value : str, default "S1_eV"
+        Column holding the energies.
+
+    Returns
+    -------
+    pandas.Series
+        In the unit of ``value`` (variances in its square):
+
+        ``sigma_static``, ``sigma_dynamic``, ``sigma_total`` and
+        ``var_static``, ``var_dynamic``, ``var_total``
+            Population (ddof=0) quantities, with molecules weighted by their
+            number of frames (equal weights when every molecule is seen in
+            every frame). ``var_static`` is the weighted variance of the
+            molecule means, ``var_dynamic`` the weighted mean of each
+            molecule's ddof=0 variance in time, ``var_total`` the ddof=0
+            variance of all values. With this convention
+            ``var_total = var_static + var_dynamic`` holds exactly (law of
+            total variance); ``identity_residual`` is the difference.
+        ``var_static_corrected``, ``var_dynamic_corrected``, ``sigma_static_corrected``
+            One-way random-effects ANOVA estimators (Searle, Casella &
+            McCulloch, "Variance Components", Wiley 1992, ch. 3):
+            ``var_dynamic_corrected = MSW``, ``var_static_corrected =
+            (MSB - MSW)/n0`` with n0 the (mean) number of frames per
+            molecule. For balanced data this is
+            M/(M-1)·var_static - var_dynamic_corrected/n_frames: the static
+            variance with the finite-frame bias removed. It can come out
+            negative when the static part is small; the sigma is then 0.
+        ``n_molecules``, ``n_frames`` (distinct frames), ``n_values``,
+        ``n_dropped``, ``balanced``.
+
+    Raises
+    ------
+    InputError
+        If a column is missing, a (frame, molecule) pair appears twice, or
+        fewer than 2 molecules remain.
+    """
+    sub = _tidy_columns(df, ["frame", "molecule", value], "static_dynamic")
+    n_all = len(sub)
+    sub = sub[np.isfinite(sub[value].to_numpy(dtype=np.float64))]
+    n_dropped = n_all - len(sub)
+    if sub.duplicated(["frame", "molecule"]).any():
+        bad = sub[sub.duplicated(["frame", "molecule"], keep=False)].iloc[0]
+        raise InputError(
+            f"static_dynamic: (frame={bad['frame']!r}, molecule={bad['molecule']!r}) appears more than "
+            "once; give one row per frame and molecule"
+        )
+    codes, _ = pd.factorize(sub["molecule"])
+    m = int(codes.max()) + 1 if codes.size else 0
+    if m < 2:
+        raise InputError(f"static_dynamic needs at least 2 molecules with finite {value!r}; got {m}")
+    e = sub[value].to_numpy(dtype=np.float64)
+    n_i = np.bincount(codes, minlength=m).astype(np.float64)
+    n_tot = e.size
+    mean_i = np.bincount(codes, weights=e, minlength=m) / n_i
+    grand = e.mean()
+    within_ss = float(np.sum((e - mean_i[codes]) ** 2))
+    between_ss = float(np.sum(n_i * (mean_i - grand) ** 2))
+    var_total = float(np.mean((e - grand) ** 2))
+    var_static = between_ss / n_tot
+    var_dynamic = within_ss / n_tot
+    # ANOVA (Searle et al. 1992): E[MSW] = s_d^2, E[MSB] = s_d^2 + n0 s_s^2
+    if n_tot > m:
+        msw = within_ss / (n_tot - m)
+        msb = between_ss / (m - 1)
+        n0 = (n_tot - np.sum(n_i**2) / n_tot) / (m - 1)
+        var_static_corr = (msb - msw) / n0
+    else:
+        msw = var_static_corr = float("nan")
+    return pd.Series(
+        {
+            "sigma_static": math.sqrt(var_static),
+            "sigma_dynamic": math.sqrt(var_dynamic),
+            "sigma_total": math.sqrt(var_total),
+            "var_static": var_static,
+            "var_dynamic": var_dynamic,
+            "var_total": var_total,
+            "identity_residual": var_total - (var_static + var_dynamic),
+            "var_static_corrected": float(var_static_corr),
+            "var_dynamic_corrected": float(msw),
+            "sigma_static_corrected": math.sqrt(max(var_static_corr, 0.0))
+            if np.isfinite(var_static_corr)
+            else float("nan"),
+            "n_molecules": m,
+            "n_frames": int(sub["frame"].nunique()),
+            "n_values": int(n_tot),
+            "n_dropped": int(n_dropped),
+            "balanced": bool(np.all(n_i == n_i[0])),
+        },
+        name=value,
+        dtype=object,
+    )
+
+
+def conformational_environmental(
+    df: pd.DataFrame, vacuum: str = "S1_vacuum_eV", shift: str = "S1_shift_eV"
+) -> pd.Series:
+    """Split the spread of site energies into conformational and environmental parts.
+
+    The site energy is E = E_vac + ΔE_env: the vacuum energy at the
+    molecule's own geometry (conformational disorder) plus the environment
+    shift. Then var(E) = var(E_vac) + var(ΔE_env) + 2 cov(E_vac, ΔE_env),
+    exactly, for sample (ddof=1) variances and covariance.
+
+    Parameters
+    ----------
+    df : pandas.DataFrame
+        One row per site, with columns ``vacuum`` and ``shift``. Rows with
+        NaN in either are dropped.
+    vacuum, shift : str
+        Column names.
+
+    Returns
+    -------
+    pandas.Series
+        ``sigma_total``, ``sigma_conf``, ``sigma_env`` (ddof=1),
+        ``covariance``, ``correlation`` (Pearson), ``frac_conf``,
+        ``frac_env``, ``frac_cov`` (var_vac, var_shift and 2 cov as
+        fractions of var_total; they sum to 1), ``identity_residual``,
+        ``n``, ``n_dropped``. Units of the columns (variances squared).
+
+    Raises
+    ------
+    InputError
+        If a column is missing or fewer than 3 complete rows remain.
+    """
+    sub = _tidy_columns(df, [vacuum, shift], "conformational_environmental")
+    a = sub[vacuum].to_numpy(dtype=np.float64)
+    b = sub[shift].to_numpy(dtype=np.float64)
+    ok = np.isfinite(a) & np.isfinite(b)
+    a, b = a[ok], b[ok]
+    n = a.size
+    if n < 3:
+        raise InputError(f"conformational_environmental needs at least 3 complete rows; got {n}")
+    cov = np.cov(np.vstack([a, b]), ddof=1)
+    var_a, var_b, c_ab = float(cov[0, 0]), float(cov[1, 1]), float(cov[0, 1])
+    var_t = float(np.var(a + b, ddof=1))
+    corr = c_ab / math.sqrt(var_a * var_b) if var_a > 0 and var_b > 0 else float("nan")
+    frac = (lambda v: v / var_t) if var_t > 0 else (lambda v: float("nan"))
+    return pd.Series(
+        {
+            "sigma_total": math.sqrt(var_t),
+            "sigma_conf": math.sqrt(var_a),
+            "sigma_env": math.sqrt(var_b),
+            "covariance": c_ab,
+            "correlation": corr,
+            "frac_conf": frac(var_a),
+            "frac_env": frac(var_b),
+            "frac_cov": frac(2.0 * c_ab),
+            "identity_residual": var_t - (var_a + var_b + 2.0 * c_ab),
+            "n": int(n),
+            "n_dropped": int(ok.size - n),
+        },
+        dtype=object,
+    )
+
+
+# --------------------------------------------------------------------------
+# 3. spatial correlation
+# --------------------------------------------------------------------------
+def _half_width_A(box: npt.NDArray[np.float64]) -> float:
+    """Half the smallest distance between opposite cell faces (Å): the
+    largest radius at which the minimum image is unique."""
+    return 0.5 * float(perpendicular_widths(box_vectors(box)).min())
+
+
+def _check_box(box: Any) -> npt.NDArray[np.float64] | None:
+    if box is None:
+        return None
+    b = np.asarray(box, dtype=np.float64).ravel()
+    if b.size == 3:
+        b = np.concatenate([b, [90.0, 90.0, 90.0]])
+    bad = b.size != 6 or not np.all(np.isfinite(b))
+    if bad or np.any(b[:3] <= 0) or np.any(b[3:] <= 0) or np.any(b[3:] >= 180):
+        raise InputError(
+            f"box={box!r} is invalid; use [lx, ly, lz, alpha, beta, gamma] in Å and degrees "
+            "(lengths > 0, angles in (0, 180)) or None"
+        )
+    return b
+
+
+def spatial_correlation(
+    positions_A: npt.ArrayLike,
+    values: npt.ArrayLike,
+    box: npt.ArrayLike | Mapping[Any, npt.ArrayLike] | None = None,
+    *,
+    r_max_A: float | None = None,
+    n_bins: int = 20,
+    frames: npt.ArrayLike | None = None,
+) -> pd.DataFrame:
+    """Correlation of site-energy fluctuations against centroid distance.
+
+    C(r) = <δE_i δE_j>_{|r_ij| in bin} / σ², with δE = E - <E> and σ² the
+    ddof=0 variance of all values (mean and variance over every frame
+    together). Distances are periodic minimum-image distances from
+    ``MDAnalysis.lib.distances`` (orthorhombic and triclinic boxes).
+
+    Parameters
+    ----------
+    positions_A : array_like, shape (n, 3), Å
+        Site (molecule centroid) positions.
+    values : array_like, shape (n,)
+        Site energies; rows with NaN are dropped.
+    box : array_like shape (6,), mapping frame -> box, or None
+        ``[lx, ly, lz, alpha, beta, gamma]`` (Å, degrees) as MDAnalysis
+        uses, one box per frame through a mapping, or None for no periodic
+        boundaries.
+    r_max_A : float, optional
+        Largest distance binned. Default: half the smallest face-to-face
+        width of the box (the largest radius where the minimum image is
+        unique), or the largest pair distance without a box. Must not
+        exceed that half width with a box.
+    n_bins : int, default 20
+        Number of equal-width bins on [0, r_max_A].
+    frames : array_like, shape (n,), optional
+        Frame label of each row; pairs are only formed within a frame.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per bin: ``r_A`` (bin centre), ``r_lo_A``, ``r_hi_A``,
+        ``n_pairs``, ``covariance`` (<δE_i δE_j>, unit of values squared;
+        NaN for empty bins), ``C`` (covariance / σ²). ``attrs`` holds
+        ``variance`` and ``mean``.
+
+    Raises
+    ------
+    InputError
+        On mismatched shapes, an invalid box, r_max_A beyond half the box
+        width, fewer than 2 sites, or zero variance.
+    """
+    from MDAnalysis.lib import distances as mda_dist  # layer-1 use: array routines only
+
+    pos = np.asarray(positions_A, dtype=np.float64)
+    val = _as_1d_float(values)
+    if pos.ndim != 2 or pos.shape[1] != 3 or pos.shape[0] != val.size:
+        raise InputError(
+            f"positions_A must have shape (n, 3) with n = len(values) = {val.size}; got {pos.shape}"
+        )
+    if frames is None:
+        fr = np.zeros(val.size, dtype=np.intp)
+        labels: list[Any] = [None]
+    else:
+        fr_raw = np.asarray(frames)
+        if fr_raw.shape != (val.size,):
+            raise InputError(f"frames must have shape ({val.size},); got {fr_raw.shape}")
+        fr, uniq = pd.factorize(fr_raw, sort=True)
+        labels = uniq.tolist() if hasattr(uniq, "tolist") else list(uniq)
+    ok = np.isfinite(val) & np.all(np.isfinite(pos), axis=1)
+    pos, val, fr = pos[ok], val[ok], fr[ok]
+    if val.size < 2:
+        raise InputError(f"spatial_correlation needs at least 2 sites with finite values; got {val.size}")
+    if int(n_bins) != n_bins or n_bins < 1:
+        raise InputError(f"n_bins={n_bins!r} is invalid; use a positive integer")
+    n_bins = int(n_bins)
+
+    if isinstance(box, Mapping):
+        boxes = []
+        for lab in labels:
+            if lab not in box:
+                raise InputError(f"box has no entry for frame {lab!r}; give one box per frame")
+            boxes.append(_check_box(box[lab]))
+    else:
+        boxes = [_check_box(box)] * len(labels)
+
+    mean = float(val.mean())
+    dv = val - mean
+    var = float(np.mean(dv**2))
+    if var <= 0.0:
+        raise InputError("spatial_correlation: all values are equal (zero variance); C(r) is undefined")
+
+    if r_max_A is None:
+        if boxes[0] is not None:
+            r_max = min(_half_width_A(b) for b in boxes if b is not None)
+        else:
+            r_max = 0.0
+            for f in range(len(labels)):
+                p = pos[fr == f]
+                if len(p) > 1:
+                    r_max = max(r_max, float(mda_dist.self_distance_array(p).max()))
+            r_max *= 1.0 + 1e-9
+    else:
+        r_max = float(r_max_A)
+        if not r_max > 0:
+            raise InputError(f"r_max_A={r_max_A!r} is invalid; use a positive distance in Å")
+        for b in boxes:
+            if b is not None and r_max > _half_width_A(b) * (1 + 1e-12):
+                raise InputError(
+                    f"r_max_A={r_max_A!r} Å exceeds half the box width ({_half_width_A(b):.3f} Å), "
+                    "beyond which minimum-image distances undercount pairs; use a smaller r_max_A"
+                )
+    edges = np.linspace(0.0, r_max, n_bins + 1)
+    counts = np.zeros(n_bins, dtype=np.int64)
+    sums = np.zeros(n_bins)
+    for f in range(len(labels)):
+        sel = np.flatnonzero(fr == f)
+        if sel.size < 2:
+            continue
+        pairs, dist = mda_dist.self_capped_distance(pos[sel], r_max, box=boxes[f])
+        if len(dist) == 0:
+            continue
+        keep = dist < r_max
+        pairs, dist = pairs[keep], dist[keep]
+        k = np.minimum((dist / r_max * n_bins).astype(np.intp), n_bins - 1)
+        prod = dv[sel[pairs[:, 0]]] * dv[sel[pairs[:, 1]]]
+        counts += np.bincount(k, minlength=n_bins)
+        sums += np.bincount(k, weights=prod, minlength=n_bins)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cov = np.where(counts > 0, sums / np.maximum(counts, 1), np.nan)
+    out = pd.DataFrame(
+        {
+            "r_A": 0.5 * (edges[:-1] + edges[1:]),
+            "r_lo_A": edges[:-1],
+            "r_hi_A": edges[1:],
+            "n_pairs": counts,
+            "covariance": cov,
+            "C": cov / var,
+        }
+    )
+    out.attrs["variance"] = var
+    out.attrs["mean"] = mean
+    return out
+
+
+# --------------------------------------------------------------------------
+# 4. radius convergence
+# --------------------------------------------------------------------------
+@dataclass(frozen=True)
+class ConvergenceVerdict:
+    """Outcome of :func:`converged_radius`.
+
+    Attributes
+    ----------
+    converged : bool
+        Whether every quantity stays within ``tol`` of its reference from
+        ``radius_A`` on.
+    radius_A : float or None
+        Smallest such radius (Å); None when not converged.
+    reference : float or dict of str to float
+        Reference value(s) used (one per quantity for a table).
+    reference_kind : {"largest radius", "periodic limit"}
+    max_deviation_after : float
+        Largest |value - reference| at radii >= ``radius_A`` over all
+        quantities (NaN when not converged). Unit of the values.
+    message : str
+        Plain-text verdict (assumes eV, prints meV).
+    quantity : str or None
+        The slowest quantity (the one that decides the verdict).
+    tol : float
+        Tolerance used (unit of the values).
+    radius_by_quantity : dict of str to float or None
+        Converged radius of each quantity.
+    """
+
+    converged: bool
+    radius_A: float | None
+    reference: float | dict[str, float]
+    reference_kind: str
+    max_deviation_after: float
+    message: str
+    quantity: str | None = None
+    tol: float = 0.010
+    radius_by_quantity: dict[str, float | None] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain dictionary (JSON-ready)."""
+        return asdict(self)
+
+
+def _pretty(name: str) -> str:
+    s = str(name)
+    for suffix in ("_eV", "_ev"):
+        if s.endswith(suffix):
+            s = s[: -len(suffix)]
+    return s.replace("_", " ")
+
+
+def _fmt_r(r: float) -> str:
+    return f"{r:g} Å"
+
+
+def converged_radius(
+    radii: npt.ArrayLike,
+    values: npt.ArrayLike | pd.Series | pd.DataFrame,
+    *,
+    tol: float = 0.010,
+    reference: float | Mapping[str, float] | pd.Series | None = None,
+) -> ConvergenceVerdict:
+    """Smallest cluster radius from which a quantity stays converged.
+
+    The converged radius is the smallest radius R such that the value at R
+    and at every larger radius lies within ``tol`` of the reference. The
+    reference is the value at the largest radius, or the periodic limit
+    when ``reference`` is given. Against the largest-radius value at least
+    two radii must agree (R below the largest radius), otherwise the scan
+    is not converged.
+
+    Parameters
+    ----------
+    radii : array_like, shape (n,), Å
+        Cluster radii, in any order (duplicates not allowed).
+    values : array_like shape (n,), pandas.Series or pandas.DataFrame shape (n, k), eV
+        One quantity, or one column per quantity (e.g. ``S1_shift_eV``,
+        ``T1_shift_eV``). NaN entries are dropped, per quantity.
+    tol : float, default 0.010
+        Tolerance (eV: 0.010 = 10 meV).
+    reference : float, mapping or Series, optional
+        Periodic (Ewald) limit: a number for one quantity, or a value per
+        column name for a table.
+
+    Returns
+    -------
+    ConvergenceVerdict
+        For a table every quantity must be converged; the verdict's radius
+        is the largest of their converged radii and ``quantity`` names the
+        slowest.
+
+    Raises
+    ------
+    InputError
+        On mismatched lengths, duplicate or non-finite radii, a
+        non-positive tolerance, a reference missing for a column, or a
+        quantity with fewer than two finite values.
+
+    Examples
+    --------
+    >>> r = np.array([6.0, 10.0, 14.0, 18.0, 22.0])
+    >>> converged_radius(r, 0.2 - 5.0 / r**3, tol=0.01).radius_A
+    10.0
+    """
+    r = _as_1d_float(radii, "radii")
+    tol = float(tol)
+    if not tol > 0:
+        raise InputError(f"tol={tol!r} is invalid; use a positive tolerance in eV (e.g. 0.010)")
+    if isinstance(values, pd.DataFrame):
+        table = values.reset_index(drop=True)
+    else:
+        v = values if isinstance(values, pd.Series) else _as_1d_float(values)
+        name = values.name if isinstance(values, pd.Series) and values.name is not None else "value"
+        table = pd.DataFrame({name: np.asarray(v, dtype=np.float64)})
+    if table.shape[1] == 0:
+        raise InputError("values has no columns; give one column per quantity (e.g. 'S1_shift_eV')")
+    if len(table) != r.size:
+        raise InputError(f"radii has {r.size} entries but values has {len(table)}; give one value per radius")
+    if not np.all(np.isfinite(r)):
+        raise InputError(f"radii must be finite; got {r.tolist()}")
+    if np.unique(r).size != r.size:
+        raise InputError(f"radii contain duplicates: {r.tolist()}; give each radius once")
+    order = np.argsort(r)
+    r = r[order]
+    table = table.iloc[order].reset_index(drop=True)
+
+    periodic = reference is not None
+    if periodic and not isinstance(reference, (Mapping, pd.Series)):
+        if table.shape[1] != 1:
+            raise InputError(
+                f"reference={reference!r} is one number but values has {table.shape[1]} columns; "
+                "give a mapping column -> periodic limit"
+            )
+        reference = {table.columns[0]: float(reference)}  # type: ignore[arg-type]
+
+    refs: dict[str, float] = {}
+    radius_by: dict[str, float | None] = {}
+    info: dict[str, dict[str, Any]] = {}
+    for col in table.columns:
+        y = table[col].to_numpy(dtype=np.float64)
+        ok = np.isfinite(y)
+        rr, yy = r[ok], y[ok]
+        if yy.size < 2:
+            raise InputError(f"quantity {col!r} has {yy.size} finite values; convergence needs at least 2")
+        if periodic:
+            if col not in reference:  # type: ignore[operator]
+                raise InputError(f"reference has no periodic limit for {col!r}; give one per column")
+            ref = float(reference[col])  # type: ignore[index]
+        else:
+            ref = float(yy[-1])
+        dev = np.abs(yy - ref)
+        within = dev <= tol * (1 + 1e-9)
+        # first index of the all-within tail
+        bad = np.flatnonzero(~within)
+        k = int(bad[-1]) + 1 if bad.size else 0
+        last_ok = k < yy.size if periodic else k < yy.size - 1
+        refs[str(col)] = ref
+        radius_by[str(col)] = float(rr[k]) if last_ok else None
+        info[str(col)] = {"r": rr, "y": yy, "dev": dev, "k": k}
+
+    not_conv = [c for c, rad in radius_by.items() if rad is None]
+    kind = "periodic limit" if periodic else "largest radius"
+    target = "the periodic limit" if periodic else "the largest-radius value"
+    ref_out: float | dict[str, float] = refs if len(refs) > 1 else next(iter(refs.values()))
+    if not_conv:
+        # slowest: the one furthest out of tolerance at its end
+        def badness(c: str) -> float:
+            d = info[c]
+            return float(d["dev"][-1]) if periodic else float(abs(d["y"][-1] - d["y"][-2]))
+
+        slow = max(not_conv, key=badness)
+        d = info[slow]
+        if periodic:
+            detail = (
+                f"{_pretty(slow)} at {_fmt_r(d['r'][-1])} is {1e3 * d['dev'][-1]:.0f} meV from the "
+                f"periodic limit, tolerance {1e3 * tol:g} meV"
+            )
+        else:
+            detail = (
+                f"{_pretty(slow)} still changes by {1e3 * abs(d['y'][-1] - d['y'][-2]):.0f} meV between "
+                f"{d['r'][-2]:g} and {_fmt_r(d['r'][-1])}, tolerance {1e3 * tol:g} meV"
+            )
+        return ConvergenceVerdict(
+            converged=False,
+            radius_A=None,
+            reference=ref_out,
+            reference_kind=kind,
+            max_deviation_after=float("nan"),
+            message=f"not converged within the radii given ({detail})",
+            quantity=slow,
+            tol=tol,
+            radius_by_quantity=radius_by,
+        )
+    slow = max(radius_by, key=lambda c: radius_by[c])  # type: ignore[arg-type,return-value]
+    radius = float(radius_by[slow])  # type: ignore[arg-type]
+    max_dev = max(float(np.max(d["dev"][d["r"] >= radius])) for d in info.values())
+    n_q = len(radius_by)
+    who = _pretty(slow) if n_q == 1 else f"all {n_q} quantities (slowest: {_pretty(slow)})"
+    return ConvergenceVerdict(
+        converged=True,
+        radius_A=radius,
+        reference=ref_out,
+        reference_kind=kind,
+        max_deviation_after=max_dev,
+        message=f"{who} converged to within {1e3 * tol:g} meV of {target} from {_fmt_r(radius)} on",
+        quantity=slow,
+        tol=tol,
+        radius_by_quantity=radius_by,
+    )
+

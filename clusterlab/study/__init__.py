@@ -1,0 +1,1 @@
+"""Studies over molecules, frames and radii (radius scans, site sampling, plots)."""
