@@ -57,6 +57,14 @@ class ChargeSource:
     def describe(self) -> str:
         return self.name
 
+    def to_spec(self) -> dict[str, Any]:
+        """A small JSON-able description from which :func:`charge_source_from_spec`
+        rebuilds the source in another process (workers rebuild films from files)."""
+        raise ChargeError(
+            f"The charge source {self.describe()!r} cannot be sent to worker processes; "
+            "use the serial runner, or a topology / table / per-molecule-type source."
+        )
+
 
 class TopologyCharges(ChargeSource):
     """Charges read from the topology file."""
@@ -77,6 +85,9 @@ class TopologyCharges(ChargeSource):
 
     def fingerprint(self) -> str:
         return "topology"
+
+    def to_spec(self) -> dict[str, Any]:
+        return {"kind": "topology"}
 
 
 def _read_charge_csv(path: str) -> list[dict[str, str]]:
@@ -204,6 +215,14 @@ class TableCharges(ChargeSource):
     def describe(self) -> str:
         return f"table ({self.source})"
 
+    def to_spec(self) -> dict[str, Any]:
+        return {
+            "kind": "table", "source": self.source,
+            "by_name": self.by_name,
+            "by_res_name": [[r, n, q] for (r, n), q in self.by_res_name.items()],
+            "by_res_order": {k: v.tolist() for k, v in self.by_res_order.items()},
+        }
+
 
 class MoleculeTypeCharges(ChargeSource):
     """One charge vector per residue name, in the molecule's atom order.
@@ -239,6 +258,30 @@ class MoleculeTypeCharges(ChargeSource):
 
     def describe(self) -> str:
         return f"{self.label} per molecule type ({', '.join(sorted(self.charges))})"
+
+    def to_spec(self) -> dict[str, Any]:
+        return {"kind": "per-molecule-type", "label": self.label,
+                "charges": {k: v.tolist() for k, v in self.charges.items()},
+                "fallback": None if self.fallback is None else self.fallback.to_spec()}
+
+
+def charge_source_from_spec(spec: Mapping[str, Any]) -> ChargeSource:
+    """Inverse of :meth:`ChargeSource.to_spec`."""
+    kind = spec.get("kind")
+    if kind == "topology":
+        return TopologyCharges()
+    if kind == "table":
+        src = TableCharges({})
+        src.source = spec.get("source", "mapping")
+        src.by_name = {str(k): float(v) for k, v in spec.get("by_name", {}).items()}
+        src.by_res_name = {(str(r), str(n)): float(q) for r, n, q in spec.get("by_res_name", [])}
+        src.by_res_order = {str(k): np.asarray(v, float) for k, v in spec.get("by_res_order", {}).items()}
+        return src
+    if kind == "per-molecule-type":
+        fb = spec.get("fallback")
+        return MoleculeTypeCharges(spec["charges"], label=spec.get("label", "fitted"),
+                                   fallback=None if fb is None else charge_source_from_spec(fb))
+    raise ChargeError(f"Unknown charge source kind {kind!r} in a task spec.")
 
 
 def as_charge_source(charges: Any) -> ChargeSource:

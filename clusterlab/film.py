@@ -201,6 +201,16 @@ class Film:
         return (f"<Film {os.path.basename(self.topology_path)}: {self.n_molecules} molecules "
                 f"({self.molecule_kind}), {self.n_atoms} atoms, {self.n_frames} frame(s)>")
 
+    def spec(self) -> dict[str, Any]:
+        """A small JSON-able description from which :func:`film_from_spec`
+        rebuilds this film in a worker process (paths + charge source)."""
+        return {
+            "topology": os.path.abspath(self.topology_path) if os.path.isfile(self.topology_path) else self.topology_path,
+            "trajectory": [os.path.abspath(t) for t in self.trajectory_paths],
+            "charges": self.charge_source.to_spec(),
+            "film_id": self.film_id,
+        }
+
     def describe(self) -> str:
         """A short human-readable summary (used by the CLI)."""
         lines = [repr(self)]
@@ -525,6 +535,46 @@ class Film:
     def minimum_image(self, vectors_A: FloatArray, frame: int = 0) -> FloatArray:
         """Minimum-image version of difference vectors in this frame's box."""
         return minimum_image(vectors_A, self.box(frame))
+
+
+#: films of this process by film id, so serial/threaded workers reuse the
+#: caller's Film (also in-memory ones) and process workers load each film once
+_FILM_CACHE: "OrderedDict[str, Film]" = OrderedDict()
+_FILM_CACHE_SIZE = 4
+
+
+def remember_film(film: Film) -> None:
+    """Make ``film`` findable by :func:`film_from_spec` in this process."""
+    _FILM_CACHE[film.film_id] = film
+    _FILM_CACHE.move_to_end(film.film_id)
+    while len(_FILM_CACHE) > _FILM_CACHE_SIZE:
+        _FILM_CACHE.popitem(last=False)
+
+
+def film_from_spec(spec: dict[str, Any]) -> Film:
+    """Rebuild (or reuse, in this process) the film a :meth:`Film.spec` describes.
+
+    Raises
+    ------
+    FilmError
+        If the files changed since the spec was made (content id differs).
+    """
+    from .charges import charge_source_from_spec
+
+    fid = spec.get("film_id")
+    if fid and fid in _FILM_CACHE:
+        return _FILM_CACHE[fid]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        film = load_film(spec["topology"], spec.get("trajectory") or None,
+                         charges=charge_source_from_spec(spec.get("charges", {"kind": "topology"})))
+    if fid and film.film_id != fid:
+        raise FilmError(
+            f"The film files {spec['topology']!r} changed since the study started "
+            f"(content id {film.film_id} != {fid}); results would not match their keys."
+        )
+    remember_film(film)
+    return film
 
 
 def film_from_universe(universe: mda.Universe, *, charges: Any = None, name: str = "<memory>") -> Film:

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import numpy as np
 import numpy.typing as npt
-from MDAnalysis.lib.distances import minimize_vectors
 from MDAnalysis.lib.mdamath import triclinic_vectors
 
 from .errors import InputError
@@ -18,21 +17,34 @@ FloatArray = npt.NDArray[np.float64]
 
 
 def box_vectors(box: npt.ArrayLike) -> FloatArray:
-    """Lattice vectors (rows a, b, c; Å) of ``box = [lx, ly, lz, alpha, beta, gamma]``.
+    """Lattice vectors (rows a, b, c; Å) of a box.
+
+    Parameters
+    ----------
+    box : array_like, shape (6,) or (3, 3)
+        ``[lx, ly, lz, alpha, beta, gamma]`` in Å and degrees (``a`` along x,
+        ``b`` in the xy plane, as MDAnalysis), or the three vectors as rows.
 
     Raises
     ------
     InputError
-        If the box has a non-positive length or degenerate angles.
+        Wrong shape, non-positive lengths, angles outside (0, 180) degrees,
+        or zero volume.
     """
-    b = np.asarray(box, dtype=np.float64).reshape(-1)
-    if b.shape != (6,) or not np.all(np.isfinite(b)):
-        raise InputError(f"box must be [lx, ly, lz, alpha, beta, gamma]; got {box!r}.")
-    if np.any(b[:3] <= 0):
-        raise InputError(f"box lengths must be positive; got {b[:3].tolist()} Å.")
-    h = np.asarray(triclinic_vectors(b), dtype=np.float64)
-    if abs(np.linalg.det(h)) < 1e-6:
-        raise InputError(f"box {b.tolist()} is degenerate (zero volume).")
+    b = np.asarray(box, dtype=np.float64)
+    if b.shape == (3, 3):
+        h = b.copy()
+    else:
+        b = b.reshape(-1)
+        if b.shape != (6,) or not np.all(np.isfinite(b)):
+            raise InputError(f"box must be [lx, ly, lz, alpha, beta, gamma] or 3 row vectors; got {box!r}.")
+        if np.any(b[:3] <= 0):
+            raise InputError(f"box lengths must be positive Å; got {b[:3].tolist()}.")
+        if not np.all((b[3:] > 0) & (b[3:] < 180)):
+            raise InputError(f"box angles must lie in (0, 180) degrees; got {b[3:].tolist()}.")
+        h = np.asarray(triclinic_vectors(b, dtype=np.float64), dtype=np.float64)
+    if not np.all(np.isfinite(h)) or abs(np.linalg.det(h)) < 1e-6:
+        raise InputError(f"box {np.asarray(box).tolist()} is degenerate (zero volume).")
     return h
 
 
@@ -60,18 +72,34 @@ def to_fractional(positions_A: FloatArray, h: FloatArray) -> FloatArray:
     return np.asarray(positions_A) @ np.linalg.inv(h)
 
 
-def minimum_image(vectors_A: FloatArray, box: npt.ArrayLike | None) -> FloatArray:
-    """Shortest periodic image of each difference vector (n, 3), Å.
+def minimum_image(vectors_A: npt.ArrayLike, box: npt.ArrayLike | None) -> FloatArray:
+    """Shortest periodic image of each difference vector (n, 3), Å, in double
+    precision (MDAnalysis keeps boxes in single precision).
 
-    Uses MDAnalysis's compiled ``minimize_vectors``, exact for orthorhombic and
-    triclinic cells. ``box=None`` returns the vectors unchanged.
+    Exact for orthorhombic and triclinic cells: vectors are reduced to
+    [-0.5, 0.5) in fractional coordinates and, for a triclinic cell, the 27
+    neighbouring translations are searched. ``box`` is ``[lx, ly, lz, alpha,
+    beta, gamma]`` or a (3, 3) matrix of row vectors; ``None`` returns the
+    vectors unchanged.
     """
-    v = np.ascontiguousarray(vectors_A, dtype=np.float64).reshape(-1, 3)
+    v = np.atleast_2d(np.asarray(vectors_A, dtype=np.float64))
     if box is None:
         return v.copy()
-    b = np.asarray(box, dtype=np.float64).reshape(6)
-    box_vectors(b)  # validates
-    return np.asarray(minimize_vectors(v, b.astype(np.float32)), dtype=np.float64)
+    h = box_vectors(box)
+    if np.allclose(h, np.diag(np.diag(h)), rtol=0, atol=1e-12):
+        L = np.diag(h)
+        return v - L * np.round(v / L)
+    f = v @ np.linalg.inv(h)
+    f -= np.round(f)
+    d0 = f @ h
+    shifts = np.array(np.meshgrid([-1, 0, 1], [-1, 0, 1], [-1, 0, 1], indexing="ij")).reshape(3, -1).T @ h
+    out = np.empty_like(d0)
+    step = 50_000
+    for s in range(0, len(d0), step):
+        cand = d0[s:s + step, None, :] + shifts[None, :, :]
+        best = np.argmin(np.einsum("pkx,pkx->pk", cand, cand), axis=1)
+        out[s:s + step] = cand[np.arange(len(best)), best]
+    return out
 
 
 def make_whole(
