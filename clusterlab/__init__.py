@@ -12,6 +12,18 @@ __version__ = "0.1.0"
 from .charges import ChargeSource, MoleculeTypeCharges, TableCharges, TopologyCharges
 from .cluster import Cluster
 from .film import Film, film_from_universe, load_film
+from .qm import (
+    ChargedResult,
+    EmbeddingWarning,
+    ExcitationResult,
+    ExcitedState,
+    Method,
+    charged_states,
+    excitation_series,
+    excitations,
+    periodic_cluster,
+    periodic_excitations,
+)
 from .errors import (
     CalculationError,
     CarvingError,
@@ -32,6 +44,16 @@ __all__ = [
     "TopologyCharges",
     "TableCharges",
     "MoleculeTypeCharges",
+    "Method",
+    "excitations",
+    "excitation_series",
+    "charged_states",
+    "periodic_excitations",
+    "periodic_cluster",
+    "ExcitationResult",
+    "ExcitedState",
+    "ChargedResult",
+    "EmbeddingWarning",
     "ClusterlabError",
     "InputError",
     "FilmError",

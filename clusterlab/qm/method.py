@@ -1,0 +1,230 @@
+"""The :class:`Method`: everything that defines a quantum calculation.
+
+A method is written once, hashed stably (:meth:`Method.key`) and attached to
+every result, so results can be cached and compared. Named starting points
+come from :meth:`Method.preset`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+from dataclasses import dataclass
+from typing import Any
+
+from ..errors import InputError
+
+#: Valid values of :attr:`Method.excited`.
+EXCITED_MODELS = ("tda", "tddft", "stda")
+
+#: Default Gaussian width (Å) of the environment charges. A Gaussian charge
+#: exp(-r^2/w^2) differs from a point charge in its potential by
+#: q erfc(r/w)/r; for w = 1.0 Å that is below 0.2 % at 2.2 Å (the shortest
+#: intermolecular H...H contacts in organic solids) and below 1e-5 at 3 Å,
+#: so the field at the QM nuclei is unchanged, while the 1/r singularity the
+#: tail of the QM electron density would otherwise fall into (over-
+#: polarisation by bare charges, "electron spill-out") is removed. This is
+#: common practice in electrostatic embedding; 0 gives bare point charges.
+DEFAULT_SMEARING_A = 1.0
+
+_PRESETS: dict[str, tuple[str, dict[str, Any]]] = {
+    "draft": (
+        "B3LYP/6-31G, density fitting, coarse grids, TDA 3+3 states: tests and quick looks",
+        dict(xc="b3lyp", basis="6-31g", density_fit=True, grid_level=2, response_grid_level=1,
+             n_singlets=3, n_triplets=3, excited="tda"),
+    ),
+    "balanced": (
+        "B3LYP/def2-SVP, density fitting, SCF grid 3 / response grid 1, TDA 5+5 states: standard",
+        dict(xc="b3lyp", basis="def2-svp", density_fit=True, grid_level=3, response_grid_level=1,
+             n_singlets=5, n_triplets=5, excited="tda"),
+    ),
+    "ct-rsh": (
+        "CAM-B3LYP/def2-SVP (range-separated hybrid), density fitting, TDA 5+5: charge-transfer states",
+        dict(xc="camb3lyp", basis="def2-svp", density_fit=True, grid_level=3, response_grid_level=1,
+             n_singlets=5, n_triplets=5, excited="tda"),
+    ),
+    "site-energy": (
+        "B3LYP/def2-SVP ground state plus cation/anion by ΔSCF, no excited states: IP/EA site energies",
+        dict(xc="b3lyp", basis="def2-svp", density_fit=True, grid_level=3, response_grid_level=None,
+             n_singlets=0, n_triplets=0, excited="tda", charged_states=True),
+    ),
+}
+
+
+@dataclass(frozen=True)
+class Method:
+    """A quantum-chemistry method for embedded-cluster calculations.
+
+    Parameters
+    ----------
+    xc : str
+        Exchange-correlation functional as PySCF spells it ("b3lyp",
+        "camb3lyp", "pbe0", ...), or "hf" for Hartree-Fock/CIS.
+    basis : str
+        Basis set name as PySCF spells it ("sto-3g", "6-31g", "def2-svp").
+    density_fit : bool
+        Density fitting of the Coulomb/exchange integrals (SCF and response).
+    grid_level : int
+        PySCF integration-grid level (0-9) of the SCF.
+    response_grid_level : int or None
+        Grid level for the exchange-correlation kernel of the response step
+        (TDA/TDDFT); None uses the SCF grid. The kernel is smooth, so a
+        coarser grid costs little accuracy (see ``bench/``).
+    n_singlets, n_triplets : int
+        Number of excited states of each spin kind (0 allowed).
+    excited : {"tda", "tddft", "stda"}
+        Response model: Tamm-Dancoff, full linear response, or the
+        simplified TDA of :mod:`clusterlab.qm.stda`.
+    charged_states : bool
+        Also compute the cation and anion by ΔSCF (IP/EA site energies).
+    charge_smearing_A : float
+        Gaussian width w (Å) of each environment charge, rho ~ exp(-r^2/w^2)
+        (PySCF's ``radii``); 0 means bare point charges. Default
+        :data:`DEFAULT_SMEARING_A` (1.0 Å, see its note for the reason).
+    conv_tol : float
+        SCF energy convergence threshold (Hartree).
+    max_cycle : int
+        SCF iteration limit of each attempt.
+    min_charge_distance_A : float
+        A point charge closer than this to a QM atom raises
+        :class:`~clusterlab.errors.GeometryError`.
+    threads : int or None
+        OpenMP threads for PySCF (None: leave PySCF's setting).
+    response_conv_tol : float
+        Residual threshold of the Davidson solver.
+
+    Examples
+    --------
+    >>> m = Method.preset("draft").replace(n_singlets=2)
+    >>> m.n_singlets
+    2
+    >>> len(m.key())
+    64
+    """
+
+    xc: str = "b3lyp"
+    basis: str = "def2-svp"
+    density_fit: bool = True
+    grid_level: int = 3
+    response_grid_level: int | None = 1
+    n_singlets: int = 5
+    n_triplets: int = 5
+    excited: str = "tda"
+    charged_states: bool = False
+    charge_smearing_A: float = DEFAULT_SMEARING_A
+    conv_tol: float = 1e-9
+    max_cycle: int = 100
+    min_charge_distance_A: float = 0.8
+    threads: int | None = None
+    response_conv_tol: float = 1e-5
+
+    def __post_init__(self) -> None:
+        set_ = object.__setattr__
+        if not isinstance(self.xc, str) or not self.xc.strip():
+            raise InputError(f"xc={self.xc!r} is not a functional name; use e.g. 'b3lyp', 'camb3lyp' or 'hf'.")
+        if not isinstance(self.basis, str) or not self.basis.strip():
+            raise InputError(f"basis={self.basis!r} is not a basis name; use e.g. 'sto-3g', '6-31g' or 'def2-svp'.")
+        set_(self, "xc", self.xc.strip().lower())
+        set_(self, "basis", self.basis.strip().lower())
+        excited = str(self.excited).strip().lower()
+        if excited not in EXCITED_MODELS:
+            raise InputError(
+                f"excited={self.excited!r} is not a response model. Use one of {', '.join(map(repr, EXCITED_MODELS))}."
+            )
+        set_(self, "excited", excited)
+        for name in ("n_singlets", "n_triplets"):
+            v = getattr(self, name)
+            if isinstance(v, bool) or int(v) != v or v < 0:
+                raise InputError(f"{name}={v!r} must be a non-negative integer number of states.")
+            set_(self, name, int(v))
+        for name in ("grid_level", "response_grid_level"):
+            v = getattr(self, name)
+            if v is None and name == "response_grid_level":
+                continue
+            if isinstance(v, bool) or int(v) != v or not 0 <= int(v) <= 9:
+                raise InputError(f"{name}={v!r} must be an integer PySCF grid level from 0 to 9"
+                                 + (" (or None for the SCF grid)." if name == "response_grid_level" else "."))
+            set_(self, name, int(v))
+        for name in ("density_fit", "charged_states"):
+            v = getattr(self, name)
+            if not isinstance(v, bool):
+                raise InputError(f"{name}={v!r} must be True or False.")
+        for name, positive in (("charge_smearing_A", False), ("conv_tol", True),
+                               ("min_charge_distance_A", False), ("response_conv_tol", True)):
+            v = float(getattr(self, name))
+            if not v == v or v < 0 or (positive and v == 0) or v == float("inf"):
+                raise InputError(f"{name}={getattr(self, name)!r} must be a finite "
+                                 f"{'positive' if positive else 'non-negative'} number.")
+            set_(self, name, v)
+        if isinstance(self.max_cycle, bool) or int(self.max_cycle) != self.max_cycle or self.max_cycle < 1:
+            raise InputError(f"max_cycle={self.max_cycle!r} must be a positive integer.")
+        set_(self, "max_cycle", int(self.max_cycle))
+        if self.threads is not None:
+            if isinstance(self.threads, bool) or int(self.threads) != self.threads or self.threads < 1:
+                raise InputError(f"threads={self.threads!r} must be a positive integer or None.")
+            set_(self, "threads", int(self.threads))
+
+    # ------------------------------------------------------------ presets
+    @classmethod
+    def preset(cls, name: str, **overrides: Any) -> "Method":
+        """A named starting point, optionally with fields overridden.
+
+        Raises
+        ------
+        InputError
+            If ``name`` is not a preset (the message lists them).
+        """
+        key = str(name).strip().lower()
+        if key not in _PRESETS:
+            raise InputError(f"{name!r} is not a method preset. Use one of {', '.join(map(repr, _PRESETS))}.")
+        fields = dict(_PRESETS[key][1])
+        fields.update(overrides)
+        return cls(**fields)
+
+    @staticmethod
+    def presets() -> dict[str, str]:
+        """Preset names with a one-line description each."""
+        return {k: v[0] for k, v in _PRESETS.items()}
+
+    # ----------------------------------------------------------- identity
+    def to_dict(self) -> dict[str, Any]:
+        """All fields as a JSON-friendly dict."""
+        return dataclasses.asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> "Method":
+        """Inverse of :meth:`to_dict`; unknown keys raise :class:`InputError`."""
+        names = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(data) - names)
+        if unknown:
+            raise InputError(f"Unknown Method field(s) {unknown}; valid fields are {sorted(names)}.")
+        return cls(**data)
+
+    def replace(self, **changes: Any) -> "Method":
+        """A copy with some fields changed (validated again)."""
+        names = {f.name for f in dataclasses.fields(self)}
+        unknown = sorted(set(changes) - names)
+        if unknown:
+            raise InputError(f"Unknown Method field(s) {unknown}; valid fields are {sorted(names)}.")
+        return dataclasses.replace(self, **changes)
+
+    def canonical_json(self) -> str:
+        """Canonical JSON of the fields (sorted keys, floats by repr)."""
+        return json.dumps(self.to_dict(), sort_keys=True, separators=(",", ":"))
+
+    def key(self) -> str:
+        """SHA-256 hex digest of :meth:`canonical_json`: stable across
+        processes, machines and Python versions (unlike ``hash()``)."""
+        return hashlib.sha256(self.canonical_json().encode("utf-8")).hexdigest()
+
+    @property
+    def is_hf(self) -> bool:
+        return self.xc in ("hf", "rhf", "uhf")
+
+    def describe(self) -> str:
+        """One-line human summary, logged once at the start of a run."""
+        grid = "" if self.is_hf else f", grid {self.grid_level}/{self.response_grid_level or self.grid_level}"
+        return (f"{self.xc.upper()}/{self.basis}{' +DF' if self.density_fit else ''}{grid}, "
+                f"{self.excited.upper()} {self.n_singlets}S+{self.n_triplets}T"
+                f"{', ΔSCF IP/EA' if self.charged_states else ''}, charge width {self.charge_smearing_A:g} Å")
