@@ -24,6 +24,16 @@ from .qm import (
     periodic_cluster,
     periodic_excitations,
 )
+from .stats import (
+    conformational_environmental,
+    converged_radius,
+    disorder_stats,
+    spatial_correlation,
+    static_dynamic,
+)
+from .store import ResultStore
+from .study import SiteSample, ScanResult, radius_scan, sample_sites
+from .study.plots import plot_convergence, plot_correlation, plot_growth, plot_histogram, plot_parity
 from .errors import (
     CalculationError,
     CarvingError,
@@ -54,6 +64,21 @@ __all__ = [
     "ExcitedState",
     "ChargedResult",
     "EmbeddingWarning",
+    "radius_scan",
+    "ScanResult",
+    "sample_sites",
+    "SiteSample",
+    "ResultStore",
+    "disorder_stats",
+    "static_dynamic",
+    "conformational_environmental",
+    "spatial_correlation",
+    "converged_radius",
+    "plot_convergence",
+    "plot_histogram",
+    "plot_growth",
+    "plot_correlation",
+    "plot_parity",
     "ClusterlabError",
     "InputError",
     "FilmError",

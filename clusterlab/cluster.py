@@ -227,6 +227,14 @@ class Cluster:
         h.update(str(int(self.qm_charge)).encode())
         return h.hexdigest()
 
+    def fingerprint_qm(self) -> str:
+        """Stable SHA-256 of the QM region alone (symbols, positions, charge)."""
+        h = hashlib.sha256()
+        h.update(",".join(self.qm_symbols).encode())
+        h.update(np.round(self.qm_positions, 6).astype("<f8").tobytes())
+        h.update(str(int(self.qm_charge)).encode())
+        return h.hexdigest()
+
     def __repr__(self) -> str:
         return (
             f"<Cluster molecule={self.center} frame={self.frame} radius={self.radius_A:g} Å "

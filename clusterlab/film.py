@@ -482,22 +482,9 @@ class Film:
         charges = self.charges
         sel = select_images(geo.positions_A, geo.centroids_A, self.index, mol, radius,
                             box=geo.box, rule=rule, qm_shell_A=float(qm_shell))
-        h = box_vectors(geo.box) if geo.box is not None else np.zeros((3, 3))
-
-        def gather(mols: np.ndarray, imgs: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-            if len(mols) == 0:
-                return (np.zeros(0, np.int64), np.zeros((0, 3)), np.zeros(0, np.int64), np.zeros((0, 3), np.int64))
-            sizes = self.index.sizes()[mols]
-            starts = self.index.offsets[mols]
-            within = np.arange(sizes.sum()) - np.repeat(np.cumsum(sizes) - sizes, sizes)
-            atoms = self.index.atoms[np.repeat(starts, sizes) + within]
-            img = np.repeat(imgs, sizes, axis=0)
-            pos = geo.positions_A[atoms] + img @ h
-            return atoms, pos, np.repeat(mols, sizes), img
-
         c_atoms = self.index.of(mol)
-        qa, qp, qm_mol, _ = gather(sel.molecules[sel.in_qm], sel.images[sel.in_qm])
-        ea, ep, em, ei = gather(sel.molecules[~sel.in_qm], sel.images[~sel.in_qm])
+        qa, qp, qm_mol, _ = self._gather(geo, sel.molecules[sel.in_qm], sel.images[sel.in_qm])
+        ea, ep, em, ei = self._gather(geo, sel.molecules[~sel.in_qm], sel.images[~sel.in_qm])
         qm_atoms = np.r_[c_atoms, qa]
         qm_pos = np.vstack([geo.positions_A[c_atoms], qp])
         qm_atom_mol = np.r_[np.full(len(c_atoms), mol), qm_mol]
@@ -520,6 +507,42 @@ class Film:
             box=geo.box,
             film_id=self.film_id,
             film_path=os.path.abspath(self.topology_path),
+        )
+
+    def _gather(self, geo: FrameGeometry, mols: np.ndarray, imgs: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Atoms of molecule images: ``(atom indices, positions, molecule per atom, image per atom)``."""
+        if len(mols) == 0:
+            return (np.zeros(0, np.int64), np.zeros((0, 3)), np.zeros(0, np.int64), np.zeros((0, 3), np.int64))
+        h = box_vectors(geo.box) if geo.box is not None else np.zeros((3, 3))
+        sizes = self.index.sizes()[mols]
+        starts = self.index.offsets[mols]
+        within = np.arange(sizes.sum()) - np.repeat(np.cumsum(sizes) - sizes, sizes)
+        atoms = self.index.atoms[np.repeat(starts, sizes) + within]
+        img = np.repeat(imgs, sizes, axis=0)
+        return atoms, geo.positions_A[atoms] + img @ h, np.repeat(mols, sizes), img
+
+    def cell_cluster(self, molecule: int, *, frame: int = 0) -> Cluster:
+        """The central molecule as QM region and every other molecule of the
+        box once, whole, at the periodic image whose centroid is nearest the
+        central centroid: the input of the periodic (Ewald) embedding, where
+        the box itself is then repeated to infinity."""
+        mol = self._check_molecule(molecule)
+        geo = self.frame_geometry(frame, periodic=True)
+        charges = self.charges
+        h = box_vectors(geo.box)
+        f = (geo.centroids_A - geo.centroids_A[mol]) @ np.linalg.inv(h)
+        others = np.array([i for i in range(self.n_molecules) if i != mol], dtype=np.int64)
+        imgs = -np.round(f[others]).astype(np.int64)
+        ea, ep, em, ei = self._gather(geo, others, imgs)
+        c_atoms = self.index.of(mol)
+        return Cluster(
+            qm_symbols=list(self.symbols[c_atoms]), qm_positions=geo.positions_A[c_atoms],
+            env_positions=ep, env_charges=charges[ea], qm_molecules=(mol,),
+            qm_atom_molecules=np.full(len(c_atoms), mol), env_molecules=em, env_images=ei,
+            env_symbols=list(self.symbols[ea]), qm_charge=int(round(float(charges[c_atoms].sum()))),
+            frame=geo.frame, radius_A=float("inf"), rule="cell", center=mol, box=geo.box,
+            film_id=self.film_id, film_path=os.path.abspath(self.topology_path),
         )
 
     def radius_warnings(self, radius: float, frame: int = 0) -> list[str]:

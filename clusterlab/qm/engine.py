@@ -561,7 +561,7 @@ def _charged_result(cluster, method, emb: _Calc, vac: _Calc | None, env_pos, env
     return res
 
 
-def excitations(cluster: Cluster, method: Method, *, vacuum: bool = True, guess=None,
+def excitations(cluster: Cluster, method: Method, *, vacuum: "bool | ExcitationResult" = True, guess=None,
                 raise_on_failure: bool = False, progress: Callable[[str], None] | None = None) -> ExcitationResult:
     """Excited states of the QM region in the field of the environment charges.
 
@@ -570,9 +570,11 @@ def excitations(cluster: Cluster, method: Method, *, vacuum: bool = True, guess=
     cluster : Cluster
         QM region (Å) and point charges (Å, e).
     method : Method
-    vacuum : bool
+    vacuum : bool or ExcitationResult
         Also compute the QM region alone, giving ``vacuum_eV``, ``shift_eV``
-        and state following (by transition-density overlap).
+        and state following (by transition-density overlap). An earlier
+        in-memory result *of the same QM region* reuses its vacuum
+        calculation instead of repeating it (radius series).
     guess : ExcitationResult, ndarray (nao, nao) or None
         Warm start: a previous result (its density is the SCF guess and its
         response vectors, rotated into the new orbitals, the Davidson guess)
@@ -601,6 +603,12 @@ def excitations(cluster: Cluster, method: Method, *, vacuum: bool = True, guess=
     >>> r = excitations(c, Method.preset("draft", n_triplets=0))  # doctest: +SKIP
     >>> r.to_frame()[["state", "energy_eV", "shift_eV"]]  # doctest: +SKIP
     """
+    if isinstance(vacuum, ExcitationResult):
+        vac = (vacuum._work or {}).get("vacuum")
+        if vac is None:
+            raise InputError("vacuum= was given a result without an in-memory vacuum calculation "
+                             "(results loaded from JSON carry none); pass vacuum=True.")
+        vacuum = vac
     return _excitations(cluster, method, vacuum=vacuum, guess=guess, raise_on_failure=raise_on_failure,
                         progress=progress)
 

@@ -1,0 +1,232 @@
+"""Radius convergence: how the environment shift grows with the cluster.
+
+:func:`radius_scan` runs the embedded calculation of one molecule at each cut
+radius (plus vacuum, and optionally the periodic Ewald limit) through the
+common runner and store, and judges the converged radius with
+:func:`clusterlab.stats.converged_radius`.
+
+Model notes: each radius is a point-charge (electrostatic) embedding of a
+fixed ground-state charge distribution; the environment does not polarise
+in response to the QM region and there is no exchange repulsion or
+dispersion, so the shifts are electrostatic model estimates.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tempfile
+import threading
+from dataclasses import dataclass, field
+from typing import Any, Callable, Sequence
+
+import numpy as np
+import pandas as pd
+
+from ..errors import InputError
+from ..film import Film
+from ..qm.method import Method
+from ..runner import RunReport, run_tasks
+from ..stats import ConvergenceVerdict, converged_radius
+from ..store import ResultStore
+from .tasks import TASK_FN, cluster_task
+
+#: the columns a scan tracks for convergence, when present
+TRACKED = ("S1_shift_eV", "T1_shift_eV", "dEST_eV", "S1_followed_shift_eV", "IP_shift_eV", "EA_shift_eV")
+
+SCAN_COLUMNS = ("radius_A", "n_env_molecules", "n_charges", "net_env_charge", "S1_eV", "S1_shift_eV",
+                "S1_osc", "S1_followed_shift_eV", "S1_follow_overlap", "T1_eV", "T1_shift_eV", "dEST_eV",
+                "IP_eV", "IP_shift_eV", "EA_eV", "EA_shift_eV", "converged", "wall_s")
+
+
+def open_store(store: ResultStore | str | os.PathLike[str] | None) -> ResultStore:
+    """A :class:`ResultStore` from a store, a path, or None (a temporary file)."""
+    if isinstance(store, ResultStore):
+        return store
+    if store is None:
+        return ResultStore(os.path.join(tempfile.mkdtemp(prefix="clusterlab-"), "results.sqlite"))
+    return ResultStore(store)
+
+
+def _check_radii(radii: Sequence[float]) -> list[float]:
+    try:
+        r = [float(x) for x in radii]
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"radii must be numbers of Å; got {radii!r}.") from exc
+    if not r:
+        raise InputError("radii is empty; give at least one cut radius in Å.")
+    bad = [x for x in r if not (np.isfinite(x) and x > 0)]
+    if bad:
+        raise InputError(f"radii must be positive and finite; got {bad}. (The vacuum and periodic limits are added "
+                         "by the scan itself.)")
+    if len(set(r)) != len(r):
+        raise InputError(f"radii contain duplicates: {r}.")
+    return sorted(r)
+
+
+@dataclass
+class ScanResult:
+    """A radius scan of one molecule.
+
+    Attributes
+    ----------
+    table : pandas.DataFrame
+        One row per radius (ascending), a first row ``radius_A = 0`` for the
+        vacuum and, with the periodic limit, a last row ``radius_A = inf``.
+        Columns :data:`SCAN_COLUMNS` (shifts in eV relative to vacuum).
+    verdict : ConvergenceVerdict
+    tracked : list of str
+        The quantities the verdict covers.
+    periodic : dict or None
+        The periodic-limit values of the tracked quantities.
+    report : RunReport
+    """
+
+    table: pd.DataFrame
+    verdict: ConvergenceVerdict
+    tracked: list[str]
+    molecule: int
+    frame: int
+    method: Method
+    tol_eV: float
+    periodic: dict[str, float] | None = None
+    report: RunReport | None = None
+    notes: list[str] = field(default_factory=list)
+
+    def to_frame(self) -> pd.DataFrame:
+        return self.table.copy()
+
+    def plot(self, **kw: Any):
+        """Shift vs radius with the tolerance band (see :func:`plot_convergence`)."""
+        from .plots import plot_convergence
+
+        return plot_convergence(self.table[np.isfinite(self.table.radius_A) & (self.table.radius_A > 0)],
+                                states=kw.pop("states", None), tol_eV=self.tol_eV, periodic=self.periodic, **kw)
+
+    def __repr__(self) -> str:
+        return f"<ScanResult molecule={self.molecule} frame={self.frame}: {self.verdict.message}>"
+
+
+def scan_tasks(film: Film, molecule: int, radii: Sequence[float], method: Method, *, frame: int = 0,
+               rule: str = "atom", qm_shell: float = 0.0, periodic_limit: bool = False) -> list:
+    """The tasks of a scan, smallest radius first (so warm starts chain)."""
+    tasks = [cluster_task(film, molecule, r, method, frame=frame, rule=rule, qm_shell_A=qm_shell) for r in radii]
+    if periodic_limit:
+        tasks.append(cluster_task(film, molecule, math.inf, method, frame=frame, rule=rule,
+                                  qm_shell_A=qm_shell, kind="periodic"))
+    return tasks
+
+
+def radius_scan(
+    film: Film,
+    molecule: int,
+    radii: Sequence[float],
+    method: Method,
+    *,
+    frame: int = 0,
+    rule: str = "atom",
+    qm_shell: float = 0.0,
+    periodic_limit: bool = False,
+    tol_eV: float = 0.010,
+    store: ResultStore | str | None = None,
+    runner: str = "serial",
+    progress: bool = True,
+    on_result: Callable[[dict], Any] | None = None,
+    cancel: threading.Event | None = None,
+    **runner_kw: Any,
+) -> ScanResult:
+    """Embedded excitations of one molecule at growing cut radii.
+
+    Parameters
+    ----------
+    film : Film
+    molecule : int
+    radii : sequence of float, Å
+    method : Method
+    frame : int
+    rule : {"atom", "centroid"}
+    qm_shell : float, Å
+    periodic_limit : bool
+        Also compute the Ewald-embedded limit (orthorhombic boxes); the
+        verdict is then judged against it.
+    tol_eV : float
+        Convergence tolerance (default 10 meV).
+    store : ResultStore, path or None
+        Results go here and are reused on a re-run (None: a temporary file).
+    runner : str
+        ``"serial"`` (default; consecutive radii reuse the vacuum calculation
+        and start from the previous density) or any runner of
+        :func:`clusterlab.runner.run_tasks`.
+    on_result : callable(dict), optional
+        Called with each finished radius's row (for live plots).
+    cancel : threading.Event, optional
+
+    Returns
+    -------
+    ScanResult
+    """
+    if not isinstance(method, Method):
+        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__}.")
+    radii = _check_radii(radii)
+    st = open_store(store)
+    tasks = scan_tasks(film, molecule, radii, method, frame=frame, rule=rule, qm_shell=qm_shell,
+                       periodic_limit=periodic_limit)
+
+    def _cb(task, summary):
+        if on_result is not None:
+            on_result(dict(summary))
+
+    report = run_tasks(tasks, TASK_FN, store=st, runner=runner, progress=progress, desc=f"radius scan m{molecule}",
+                       on_result=_cb, cancel=cancel, **runner_kw)
+    rows, failures = [], []
+    for t in tasks:
+        rec = st.get(t.key)
+        if rec is None:
+            continue
+        if not rec.done:
+            failures.append(f"radius {t.payload['radius_A']}: {rec.error}")
+            continue
+        rows.append(dict(rec.summary))
+    if not rows:
+        raise InputError("The scan produced no results" + (f": {failures}" if failures else
+                         " (cancelled before the first radius finished)."))
+    df = pd.DataFrame(rows)
+    vac = _vacuum_row(rows[0])
+    table = pd.concat([pd.DataFrame([vac]), df], ignore_index=True)
+    table["radius_A"] = table["radius_A"].astype(float)
+    table = table.sort_values("radius_A", kind="stable").reset_index(drop=True)
+    cols = [c for c in SCAN_COLUMNS if c in table.columns] + [c for c in table.columns if c not in SCAN_COLUMNS]
+    table = table[cols]
+    tracked = [c for c in TRACKED if c in table.columns and table[c].notna().any()]
+    finite = table[np.isfinite(table.radius_A) & (table.radius_A > 0)]
+    periodic = None
+    per_rows = table[np.isinf(table.radius_A)]
+    if len(per_rows):
+        periodic = {c: float(per_rows.iloc[0][c]) for c in tracked}
+    if len(finite) == 0:
+        raise InputError("No finite-radius result to judge convergence on: " + "; ".join(failures))
+    ref = None if periodic is None else pd.Series(periodic)
+    verdict = converged_radius(finite.radius_A.to_numpy(), finite[tracked], tol=tol_eV, reference=ref)
+    notes = list(failures)
+    if not finite.converged.all():
+        notes.append("some radii did not converge (converged=False rows); the verdict uses their NaN values")
+    return ScanResult(table=table, verdict=verdict, tracked=tracked, molecule=int(molecule), frame=int(frame),
+                      method=method, tol_eV=tol_eV, periodic=periodic, report=report, notes=notes)
+
+
+def _vacuum_row(row: dict) -> dict:
+    """The vacuum row from any embedded result of the same QM region."""
+    out = {k: row.get(k) for k in ("frame", "molecule", "resname", "rule", "qm_shell_A", "method_key",
+                                    "centroid_x_A", "centroid_y_A", "centroid_z_A")}
+    out.update({"radius_A": 0.0, "n_env_molecules": 0, "n_charges": 0, "net_env_charge": 0.0,
+                "kind": "vacuum", "converged": True})
+    for q in ("S1", "T1", "IP", "EA"):
+        if f"{q}_vacuum_eV" in row:
+            out[f"{q}_eV"] = row[f"{q}_vacuum_eV"]
+            out[f"{q}_vacuum_eV"] = row[f"{q}_vacuum_eV"]
+            out[f"{q}_shift_eV"] = 0.0
+    if "dEST_vacuum_eV" in row:
+        out["dEST_eV"] = row["dEST_vacuum_eV"]
+    if "S1_followed_shift_eV" in row:
+        out["S1_followed_shift_eV"] = 0.0
+    return out

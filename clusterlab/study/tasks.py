@@ -1,0 +1,124 @@
+"""The work unit of every study: one embedded cluster calculation.
+
+:func:`cluster_task` describes a calculation as a small JSON spec
+(:class:`~clusterlab.runner.Task`); :func:`run_cluster_task` is the worker
+function that rebuilds the film from its files, carves the cluster and runs
+the quantum engine. Workers keep, per process, the last result of each QM
+region so that consecutive radii of one molecule reuse its vacuum
+calculation and start from its density (warm starts), whichever runner
+executes them.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import threading
+from collections import OrderedDict
+from typing import Any
+
+import numpy as np
+
+from .. import __version__
+from ..errors import InputError
+from ..film import Film, film_from_spec, remember_film
+from ..qm.method import Method
+from ..runner import Task
+from ..store import task_key
+
+#: import path of the worker function, for the runner
+TASK_FN = "clusterlab.study.tasks:run_cluster_task"
+
+KINDS = ("excitations", "periodic")
+
+_WARM: "OrderedDict[tuple, Any]" = OrderedDict()
+_WARM_SIZE = 8
+_WARM_LOCK = threading.Lock()
+
+
+def cluster_task(
+    film: Film,
+    molecule: int,
+    radius_A: float,
+    method: Method,
+    *,
+    frame: int = 0,
+    rule: str = "atom",
+    qm_shell_A: float = 0.0,
+    kind: str = "excitations",
+) -> Task:
+    """Describe one cluster calculation as a :class:`~clusterlab.runner.Task`.
+
+    The key hashes the film content, frame, molecule, radius, rule, QM shell,
+    method and clusterlab version, so a re-run finds results it already has.
+    ``kind="periodic"`` is the Ewald-embedded limit (radius ∞).
+    """
+    if kind not in KINDS:
+        raise InputError(f"kind={kind!r} is not valid; use one of {KINDS}.")
+    molecule = film._check_molecule(molecule)
+    frame = film._check_frame(frame)
+    radius = math.inf if kind == "periodic" else float(radius_A)
+    remember_film(film)
+    resname = str(film.molecule_resnames[molecule])
+    payload = {
+        "film": film.spec(), "frame": frame, "molecule": molecule,
+        "radius_A": "inf" if math.isinf(radius) else radius, "rule": rule,
+        "qm_shell_A": float(qm_shell_A), "method": method.to_dict(), "kind": kind, "resname": resname,
+    }
+    key = task_key(film_id=film.film_id, frame=frame, molecule=molecule,
+                   radius_A=payload["radius_A"], rule=rule, qm_shell_A=float(qm_shell_A),
+                   method_key=method.key(), kind=kind, version=__version__)
+    return Task(key=key, kind=kind, payload=payload)
+
+
+def _warm_key(payload: dict[str, Any]) -> tuple:
+    return (payload["film"]["film_id"], payload["frame"], payload["molecule"],
+            payload["qm_shell_A"], payload["rule"], Method.from_dict(payload["method"]).key())
+
+
+def run_cluster_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
+    """Worker function: carve and compute one cluster; returns
+    ``(result_json, summary)``. Runs in any process that can read the film
+    files."""
+    from ..qm.engine import excitations
+    from ..qm.periodic import periodic_excitations
+
+    film = film_from_spec(payload["film"])
+    method = Method.from_dict(payload["method"])
+    frame, mol = int(payload["frame"]), int(payload["molecule"])
+    kind = payload.get("kind", "excitations")
+    wkey = _warm_key(payload)
+    with _WARM_LOCK:
+        prev = _WARM.get(wkey)
+    if kind == "periodic":
+        cluster = film.cell_cluster(mol, frame=frame)
+        res = periodic_excitations(cluster, method, vacuum=True, guess=prev)
+    else:
+        cluster = film.carve(mol, float(payload["radius_A"]), frame=frame, rule=payload["rule"],
+                             qm_shell=float(payload["qm_shell_A"]))
+        same_qm = prev is not None and np.array_equal(
+            (prev._work or {}).get("qm_fingerprint"), cluster.fingerprint_qm())
+        if same_qm and prev.scf_converged and (prev._work or {}).get("vacuum") is not None:
+            res = excitations(cluster, method, vacuum=prev, guess=prev)
+        else:
+            res = excitations(cluster, method, vacuum=True)
+        if res._work is not None:
+            res._work["qm_fingerprint"] = cluster.fingerprint_qm()
+        with _WARM_LOCK:
+            _WARM[wkey] = res
+            _WARM.move_to_end(wkey)
+            while len(_WARM) > _WARM_SIZE:
+                _WARM.popitem(last=False)
+    geo = film.frame_geometry(frame)
+    c = geo.centroids_A[mol]
+    summary: dict[str, Any] = {
+        "frame": frame, "molecule": mol, "resname": payload.get("resname", ""),
+        "radius_A": cluster.radius_A, "rule": payload["rule"], "qm_shell_A": float(payload["qm_shell_A"]),
+        "n_env_molecules": cluster.n_env_molecules, "n_charges": cluster.n_charges,
+        "net_env_charge": cluster.net_env_charge, "n_qm_molecules": len(cluster.qm_molecules),
+        "centroid_x_A": float(c[0]), "centroid_y_A": float(c[1]), "centroid_z_A": float(c[2]),
+        "method_key": method.key(), "kind": kind, "wall_s": float(res.meta.get("timings_s", {}).get("total", np.nan)),
+        "pid": os.getpid(),
+    }
+    summary.update(res.summary())
+    return res.to_json(), summary

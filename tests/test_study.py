@@ -1,0 +1,106 @@
+"""Radius scans and site samples through the runner and store.
+
+The scan and sample numbers are checked against the engine called directly
+on clusters carved independently (a second path through the code), and the
+statistics against :func:`clusterlab.disorder_stats` on the same column
+(whose own checks against scipy are in test_stats.py).
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+
+from clusterlab import Method, ResultStore, disorder_stats, excitations, film_from_universe, radius_scan, sample_sites
+from clusterlab.errors import InputError
+from clusterlab.study import choose_molecules
+
+from conftest import build_water_universe, lattice_centres
+
+BOX = np.array([9.3, 9.3, 9.3, 90.0, 90.0, 90.0])
+METHOD = Method.preset("draft", basis="sto-3g", n_singlets=2, n_triplets=1)
+
+
+@pytest.fixture(scope="module")
+def film():
+    u, _ = build_water_universe(lattice_centres(3, 0.1, np.random.default_rng(0)), BOX, n_frames=2)
+    return film_from_universe(u)
+
+
+@pytest.fixture(autouse=True)
+def _quiet():
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        yield
+
+
+def test_radius_scan_table_store_and_resume(film, tmp_path):
+    rows = []
+    path = tmp_path / "scan.sqlite"
+    res = radius_scan(film, 4, [4.5, 3.0], METHOD, store=path, progress=False, on_result=rows.append)
+    t = res.table
+    assert list(t.radius_A) == [0.0, 3.0, 4.5]  # vacuum first, radii sorted
+    assert t.n_charges.iloc[0] == 0 and t.S1_shift_eV.iloc[0] == 0.0
+    assert t.n_charges.iloc[1] < t.n_charges.iloc[2]
+    assert [r["radius_A"] for r in rows] == [3.0, 4.5]
+    # shift = embedded - vacuum, exactly as reported
+    np.testing.assert_allclose(t.S1_eV - t.S1_eV.iloc[0], t.S1_shift_eV, atol=1e-9)
+    # independent path: carve and call the engine directly (cold start)
+    direct = excitations(film.carve(4, 4.5), METHOD)
+    assert abs(direct.s1.shift_eV - t.S1_shift_eV.iloc[2]) < 1e-4  # warm start agrees with cold
+    assert abs(direct.t1.energy_eV - t.T1_eV.iloc[2]) < 1e-4
+    # a re-run finds everything in the store and recomputes nothing
+    again = radius_scan(film, 4, [3.0, 4.5], METHOD, store=path, progress=False)
+    assert again.report.skipped == 2 and again.report.done == 0
+    np.testing.assert_allclose(again.table.S1_eV, t.S1_eV)
+    assert ResultStore(path).counts()["done"] == 2
+    # the verdict is the detector's verdict on the same numbers
+    from clusterlab import converged_radius
+
+    finite = t[t.radius_A > 0]
+    v = converged_radius(finite.radius_A.to_numpy(), finite[res.tracked], tol=0.010)
+    assert (v.converged, v.radius_A) == (res.verdict.converged, res.verdict.radius_A)
+    assert set(res.tracked) >= {"S1_shift_eV", "T1_shift_eV", "dEST_eV"}
+    fig = res.plot()
+    assert fig.axes
+
+
+def test_radius_scan_bad_input(film):
+    with pytest.raises(InputError, match="positive and finite"):
+        radius_scan(film, 0, [-1.0], METHOD, progress=False)
+    with pytest.raises(InputError, match="duplicates"):
+        radius_scan(film, 0, [3.0, 3.0], METHOD, progress=False)
+    with pytest.raises(InputError, match="clusterlab.Method"):
+        radius_scan(film, 0, [3.0], "draft", progress=False)
+
+
+def test_sample_sites_statistics_and_resume(film, tmp_path):
+    path = tmp_path / "sample.sqlite"
+    s = sample_sites(film, "all", None, 3.0, METHOD, store=path, n=4, seed=3, runner="serial", progress=False)
+    ids = choose_molecules(film, "all", n=4, seed=3)
+    assert len(s.table) == 4 * 2
+    assert sorted(set(s.table.molecule)) == sorted(ids.tolist())
+    st = s.stats("S1_eV", n_boot=300, seed=1)
+    ref = disorder_stats(s.table.S1_eV.to_numpy(), n_boot=300, seed=1)
+    assert st["sigma"] == pytest.approx(ref["sigma"]) and st["n"] == 8
+    # each row equals a direct engine call on the same carve
+    row = s.table.iloc[3]
+    direct = excitations(film.carve(int(row.molecule), 3.0, frame=int(row.frame)), METHOD)
+    assert abs(direct.s1.energy_eV - row.S1_eV) < 1e-4
+    sd = s.static_dynamic("S1_eV")
+    assert sd["n_molecules"] == 4 and sd["n_frames"] == 2
+    again = sample_sites(film, "all", None, 3.0, METHOD, store=path, n=4, seed=3, runner="serial", progress=False)
+    assert again.report.skipped == 8 and again.report.done == 0
+
+
+def test_choose_molecules_selection_and_errors(film):
+    assert len(choose_molecules(film, "resname WAT")) == 27
+    a = choose_molecules(film, "all", n=5, seed=7)
+    b = choose_molecules(film, "all", n=5, seed=7)
+    assert np.array_equal(a, b)
+    with pytest.raises(InputError, match="exceeds"):
+        choose_molecules(film, [1, 2], n=3)
+    with pytest.raises(InputError, match="use n="):
+        choose_molecules(film, 5)
