@@ -1,0 +1,179 @@
+"""The ``clusterlab`` command: a thin layer over the library.
+
+Subcommands
+-----------
+``inspect``  describe a film (molecules, box, charges)
+``presets``  list the method presets
+``run``      run a study from a TOML study file (every key overridable by a flag)
+``report``   statistics and plots of an existing result store
+``export``   site and pair tables for transport models from a store
+``demo``     the demo study on the bundled film, end to end
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import warnings
+from typing import Any, Sequence
+
+from .errors import ClusterlabError
+
+EPILOG = ("Results are model estimates (point-charge embedded DFT/TDA): see the report's notes on what "
+          "each model leaves out.")
+
+
+def _add_study_flags(p: argparse.ArgumentParser) -> None:
+    from .studyfile import SCHEMA
+
+    for section, keys in SCHEMA.items():
+        g = p.add_argument_group(f"[{section}] settings (override the study file)")
+        for key, s in keys.items():
+            choices = f" {{{', '.join(map(str, s.choices))}}}" if s.choices else ""
+            default = "" if s.default is None else f" (default {s.default!r})"
+            g.add_argument(f"--{section}-{key.replace('_', '-')}", dest=f"set__{section}__{key}", metavar="VALUE",
+                           help=f"{s.help}{choices}{default}")
+
+
+def _overrides(args: argparse.Namespace) -> dict[tuple[str, str], Any]:
+    from .studyfile import parse_override
+
+    out = {}
+    for name, value in vars(args).items():
+        if name.startswith("set__") and value is not None:
+            _, section, key = name.split("__", 2)
+            out[(section, key)] = parse_override(section, key, value)
+    return out
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="clusterlab", description=__doc__.split("\n\n")[0], epilog=EPILOG,
+                                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--version", action="store_true", help="print the version and exit")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    q = sub.add_parser("inspect", help="describe a film", description="Describe a film: molecules, box, charges.")
+    q.add_argument("topology")
+    q.add_argument("trajectory", nargs="*")
+    q.add_argument("--charges", help="CSV charge table (resname,name,charge)")
+
+    sub.add_parser("presets", help="list the method presets")
+
+    r = sub.add_parser("run", help="run a study from a TOML study file", epilog=EPILOG,
+                       description="Run a study described by a TOML file (see clusterlab.studyfile). "
+                                   "Sections present in the file run in the order scan, sample, model, "
+                                   "export; every key can be overridden by the flags below.")
+    r.add_argument("study", help="TOML study file")
+    r.add_argument("--quiet", action="store_true", help="no progress bars")
+    _add_study_flags(r)
+
+    rp = sub.add_parser("report", help="statistics and plots of a result store")
+    rp.add_argument("store", help="SQLite result store of a study")
+    rp.add_argument("--out", default="report", help="report folder (default: report)")
+    rp.add_argument("--quantity", action="append", help="column to report (repeatable; default S1_eV, T1_eV, "
+                    "S1_shift_eV)")
+
+    ex = sub.add_parser("export", help="site and pair tables for transport models from a store")
+    ex.add_argument("store")
+    ex.add_argument("--topology", required=True, help="film topology (the pair table needs the geometry)")
+    ex.add_argument("--trajectory", nargs="*", default=[])
+    ex.add_argument("--charges")
+    ex.add_argument("--out", default="export")
+    ex.add_argument("--cutoff", type=float, default=8.0, help="pair cutoff in Å (default 8)")
+    ex.add_argument("--criterion", choices=("centroid", "atom"), default="centroid")
+
+    d = sub.add_parser("demo", help="run the demo study on the bundled film", epilog=EPILOG,
+                       description="Radius scan, site-energy sample with disorder statistics, film-wide "
+                                   "electrostatic model and export on demo_traj/, with a report folder.")
+    d.add_argument("--out", default="demo_report", help="report folder (default: demo_report)")
+    d.add_argument("--quick", action="store_true", help="a smaller demo (for tests)")
+    d.add_argument("--workers", type=int, default=None, help="worker processes (default: one per core)")
+    d.add_argument("--quiet", action="store_true")
+    return p
+
+
+def _sample_from_store(store_path: str):
+    from .store import ResultStore
+    from .study.sample import SiteSample
+
+    st = ResultStore(store_path, readonly=True)
+    df = st.to_frame(kind="excitations")
+    if not len(df):
+        raise ClusterlabError(f"The store {store_path!r} holds no finished site energies.")
+    return SiteSample(table=df)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    p = _parser()
+    args = p.parse_args(argv)
+    if args.version:
+        from . import __version__
+
+        print(__version__)
+        return 0
+    if not args.command:
+        p.print_help()
+        return 2
+    try:
+        with warnings.catch_warnings():
+            if args.command != "run":
+                warnings.simplefilter("ignore")
+            return _dispatch(args)
+    except ClusterlabError as exc:
+        print(f"clusterlab {args.command}: error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("interrupted; finished results are kept in the store, re-run to resume", file=sys.stderr)
+        return 130
+
+
+def _dispatch(args: argparse.Namespace) -> int:
+    if args.command == "inspect":
+        from .film import load_film
+
+        film = load_film(args.topology, args.trajectory or None, charges=args.charges)
+        print(film.describe())
+        return 0
+    if args.command == "presets":
+        from .qm.method import Method
+
+        for name, text in Method.presets().items():
+            print(f"{name:14s} {text}")
+        return 0
+    if args.command == "run":
+        from .pipeline import run_study
+        from .studyfile import load_study
+
+        study = load_study(args.study, _overrides(args))
+        run_study(study, progress=not args.quiet)
+        return 0
+    if args.command == "report":
+        from .report import ReportWriter, sample_section
+
+        sample = _sample_from_store(args.store)
+        rep = ReportWriter(args.out, f"clusterlab report of {os.path.basename(args.store)}")
+        stats = sample_section(rep, sample, args.quantity or ["S1_eV", "T1_eV", "S1_shift_eV"])
+        print(stats.to_string(index=False))
+        print(f"report: {rep.write()}")
+        return 0
+    if args.command == "export":
+        from .film import load_film
+        from .transport.export import export_study
+
+        film = load_film(args.topology, args.trajectory or None, charges=args.charges)
+        sample = _sample_from_store(args.store)
+        paths = export_study(film, args.out, sample=sample, cutoff_A=args.cutoff, criterion=args.criterion)
+        for k, v in paths.items():
+            print(f"{k}: {v}")
+        return 0
+    if args.command == "demo":
+        from .demo import run_demo
+
+        run_demo(args.out, quick=args.quick, workers=args.workers, progress=not args.quiet)
+        return 0
+    raise ClusterlabError(f"unknown command {args.command!r}")  # pragma: no cover
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

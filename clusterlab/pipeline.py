@@ -1,0 +1,135 @@
+"""A whole study from a validated study description (see
+:mod:`clusterlab.studyfile`): scan, sample, film-wide model, export, report.
+
+The command line (``clusterlab run`` / ``clusterlab demo``) and notebooks
+call :func:`run_study`; it only strings library calls together.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+import warnings
+from dataclasses import dataclass, field
+from typing import Any, Callable
+
+from .film import Film, load_film
+from .report import ReportWriter, model_section, sample_section, scan_section
+from .store import ResultStore
+from .studyfile import method_from_study
+
+
+@dataclass
+class StudyOutcome:
+    """What a study produced (objects stay in memory; paths are on disk)."""
+
+    film: Film
+    report_dir: str
+    summary_path: str = ""
+    store_path: str = ""
+    scan: Any = None
+    sample: Any = None
+    model: Any = None
+    export: dict[str, str] = field(default_factory=dict)
+    timings_s: dict[str, float] = field(default_factory=dict)
+
+
+def _runner_kwargs(study: dict[str, Any]) -> dict[str, Any]:
+    r = study["runner"]
+    kw: dict[str, Any] = {"runner": r["kind"]}
+    if r["workers"] is not None:
+        kw["n_workers"] = r["workers"]
+    if r["threads_per_worker"] is not None:
+        kw["threads_per_worker"] = r["threads_per_worker"]
+    if r["scheduler"]:
+        kw["scheduler_address"] = r["scheduler"]
+    return kw
+
+
+def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[str], Any] = print,
+              title: str = "clusterlab study") -> StudyOutcome:
+    """Run every section present in ``study`` and write the report folder."""
+    t_all = time.perf_counter()
+    present = set(study.get("_present", []))
+    f = study["film"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        film = load_film(f["topology"], f["trajectory"], charges=f["charges"] or None)
+    method = method_from_study(study)
+    out_dir = study["output"]["report"]
+    rep = ReportWriter(out_dir, title)
+    store_path = study["output"]["store"]
+    store = ResultStore(store_path)
+    outcome = StudyOutcome(film=film, report_dir=rep.folder, store_path=os.path.abspath(store_path))
+    rep.section("Film", "```\n" + film.describe() + "\n```")
+    rep.text(f"Method: {method.describe()} (key {method.key()[:12]}).")
+    echo(film.describe())
+    echo(f"method: {method.describe()}")
+    rkw = _runner_kwargs(study)
+
+    if "scan" in present and study["scan"]["molecule"] is not None:
+        from .study.scan import radius_scan
+
+        s = study["scan"]
+        t0 = time.perf_counter()
+        echo(f"radius scan of molecule {s['molecule']} at radii {s['radii']} Å ...")
+        outcome.scan = radius_scan(film, s["molecule"], s["radii"], method, frame=s["frame"], rule=s["rule"],
+                                   qm_shell=s["qm_shell"], periodic_limit=s["periodic_limit"], tol_eV=s["tol_eV"],
+                                   store=store, runner="serial", progress=progress)
+        outcome.timings_s["scan"] = time.perf_counter() - t0
+        echo("  " + outcome.scan.verdict.message)
+        scan_section(rep, outcome.scan)
+
+    if "sample" in present:
+        from .study.sample import sample_sites
+
+        s = study["sample"]
+        t0 = time.perf_counter()
+        echo(f"site-energy sample (molecules {s['molecules']!r}, n={s['n']}, frames {s['frames']}, "
+             f"radius {s['radius']} Å) ...")
+        outcome.sample = sample_sites(film, s["molecules"], s["frames"], s["radius"], method, store=store,
+                                      n=s["n"], seed=s["seed"], rule=s["rule"], progress=progress, **rkw)
+        outcome.timings_s["sample"] = time.perf_counter() - t0
+        echo(f"  {outcome.sample.report}")
+        if outcome.sample.failures:
+            rep.text("Failed sites: " + "; ".join(outcome.sample.failures[:10]))
+        if len(outcome.sample.table):
+            stats = sample_section(rep, outcome.sample, list(s["quantities"]))
+            for r in stats.itertuples(index=False):
+                echo(f"  {r.quantity}: mean {r.mean_eV:.3f} eV, σ {r.sigma_eV * 1e3:.0f} meV "
+                     f"[{r.sigma_lo_eV * 1e3:.0f}, {r.sigma_hi_eV * 1e3:.0f}] (95 % CI), n={r.n}")
+
+    if "model" in present:
+        from .electrostatics.sitemodel import run_film_model
+
+        t0 = time.perf_counter()
+        m = study["model"]
+        echo(f"film-wide electrostatic model (radius {m['radius']} Å, polarization {m['polarization']}) ...")
+        outcome.model = run_film_model(film, method, radius_A=m["radius"], frames=m["frames"],
+                                       polarization=m["polarization"], reference_molecule=m["reference_molecule"],
+                                       progress=progress)
+        outcome.timings_s["model"] = time.perf_counter() - t0
+        model_section(rep, outcome.model)
+
+    if "export" in present:
+        from .transport.export import export_study
+
+        e = study["export"]
+        folder = e["folder"] if os.path.isabs(e["folder"]) else os.path.join(rep.folder, e["folder"])
+        t0 = time.perf_counter()
+        outcome.export = export_study(film, folder, sample=outcome.sample, model=outcome.model,
+                                      cutoff_A=e["cutoff_A"], criterion=e["criterion"], method=method)
+        outcome.timings_s["export"] = time.perf_counter() - t0
+        rep.section("Export for transport models",
+                    f"Site and pair tables (Parquet + CSV) with a JSON sidecar in `{os.path.relpath(folder, rep.folder)}/`; "
+                    "format described in the README.")
+        echo(f"export written to {folder}")
+
+    outcome.timings_s["total"] = time.perf_counter() - t_all
+    rep.section("Timings", ", ".join(f"{k} {v:.1f} s" for k, v in outcome.timings_s.items()))
+    outcome.summary_path = rep.write()
+    with open(os.path.join(rep.folder, "study.json"), "w", encoding="utf-8") as fh:
+        json.dump({k: v for k, v in study.items()}, fh, indent=2, default=str)
+    echo(f"report: {outcome.summary_path}")
+    return outcome

@@ -1,0 +1,157 @@
+"""Report folder of a study: plots as PNG and a short Markdown summary.
+
+Everything here formats results computed elsewhere; it holds no science.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from typing import Any
+
+import pandas as pd
+
+MODEL_NOTE = (
+    "All numbers are model estimates. The QM values use electrostatic point-charge embedding of a "
+    "fixed ground-state charge distribution: no polarisation of the environment by the QM region, "
+    "no exchange repulsion or dispersion with the environment, no vibronic or thermal broadening "
+    "beyond the sampled geometries, and the accuracy of the chosen functional and basis set."
+)
+
+
+def _fmt(x: Any, nd: int = 3) -> str:
+    try:
+        xf = float(x)
+    except (TypeError, ValueError):
+        return str(x)
+    if math.isnan(xf):
+        return "n/a"
+    return f"{xf:.{nd}f}"
+
+
+def _table_md(df: pd.DataFrame, cols: list[str], nd: int = 3) -> str:
+    cols = [c for c in cols if c in df.columns]
+    head = "| " + " | ".join(cols) + " |\n|" + "---|" * len(cols) + "\n"
+    rows = "".join("| " + " | ".join(_fmt(v, nd) if not isinstance(v, str) else v for v in r) + " |\n"
+                   for r in df[cols].itertuples(index=False))
+    return head + rows
+
+
+class ReportWriter:
+    """Collects sections and figures, then writes ``summary.md`` and PNGs."""
+
+    def __init__(self, folder: str, title: str):
+        self.folder = os.path.abspath(folder)
+        os.makedirs(self.folder, exist_ok=True)
+        self.lines: list[str] = [f"# {title}", "", MODEL_NOTE, ""]
+        self.figures: list[str] = []
+
+    def section(self, title: str, text: str = "") -> None:
+        self.lines += [f"## {title}", ""]
+        if text:
+            self.lines += [text, ""]
+
+    def text(self, text: str) -> None:
+        self.lines += [text, ""]
+
+    def table(self, df: pd.DataFrame, cols: list[str], nd: int = 3) -> None:
+        self.lines += [_table_md(df, cols, nd), ""]
+
+    def figure(self, fig, name: str, caption: str) -> str:
+        path = os.path.join(self.folder, name)
+        fig.savefig(path, dpi=110, bbox_inches="tight")
+        self.figures.append(path)
+        self.lines += [f"![{caption}]({name})", "", f"*{caption}*", ""]
+        return path
+
+    def write(self) -> str:
+        path = os.path.join(self.folder, "summary.md")
+        with open(path, "w", encoding="utf-8") as fh:
+            fh.write("\n".join(self.lines).rstrip() + "\n")
+        return path
+
+
+def scan_section(rep: ReportWriter, scan) -> None:
+    """Radius-scan table, verdict and convergence plot."""
+    rep.section(f"Radius scan of molecule {scan.molecule} (frame {scan.frame})",
+                f"Method: {scan.method.describe()}. **Verdict:** {scan.verdict.message}.")
+    rep.table(scan.table, ["radius_A", "n_env_molecules", "n_charges", "S1_eV", "S1_shift_eV", "T1_eV",
+                           "T1_shift_eV", "dEST_eV", "IP_shift_eV", "EA_shift_eV"])
+    rep.figure(scan.plot(), "convergence.png", "Environment shift vs cut radius, with the tolerance band")
+
+
+def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: int = 2000) -> pd.DataFrame:
+    """Disorder statistics, histogram, growth, decompositions, correlation."""
+    from .study.plots import plot_correlation, plot_growth, plot_histogram
+
+    t = sample.at()
+    radius = float(t.radius_A.max()) if len(t) else float("nan")
+    rep.section(f"Site-energy sample ({t.molecule.nunique()} molecules x {t.frame.nunique()} frames, "
+                f"radius {radius:g} Å)")
+    rows = []
+    for q in quantities:
+        if q not in t.columns or t[q].notna().sum() < 3:
+            continue
+        s = sample.stats(q, n_boot=n_boot, seed=0)
+        rows.append({"quantity": q, "n": s["n"], "mean_eV": s["mean"], "sigma_eV": s["sigma"],
+                     "sigma_lo_eV": s["sigma_lo"], "sigma_hi_eV": s["sigma_hi"], "skewness": s["skewness"],
+                     "excess_kurtosis": s["excess_kurtosis"], "normality_p": s["normality_p"]})
+    stats = pd.DataFrame(rows)
+    if len(stats):
+        rep.text(f"σ intervals: {int(100 * 0.95)} % bootstrap (BCa) confidence intervals.")
+        rep.table(stats, list(stats.columns))
+        q0 = stats.quantity.iloc[0]
+        rep.figure(plot_histogram(t[q0].to_numpy(dtype=float), label=q0.replace("_eV", "")),
+                   f"histogram_{q0}.png", f"Distribution of {q0} with the Gaussian fit")
+    if t.frame.nunique() > 1 and "S1_eV" in t.columns:
+        sd = sample.static_dynamic("S1_eV")
+        rep.text(f"Static vs dynamic (S1): σ_static = {_fmt(sd['sigma_static'])} eV, "
+                 f"σ_dynamic = {_fmt(sd['sigma_dynamic'])} eV, σ_total = {_fmt(sd['sigma_total'])} eV.")
+    if {"S1_vacuum_eV", "S1_shift_eV"} <= set(t.columns) and len(t) >= 3:
+        ce = sample.conformational_environmental("S1")
+        rep.text(f"Conformational vs environmental (S1): σ_conf = {_fmt(ce['sigma_conf'])} eV, "
+                 f"σ_env = {_fmt(ce['sigma_env'])} eV, correlation {_fmt(ce['correlation'], 2)}.")
+    if sample.table.radius_A.nunique() > 1:
+        g = sample.growth("S1_shift_eV", n_boot=n_boot, seed=0)
+        if len(g) > 1:
+            rep.figure(plot_growth(g), "growth.png", "Mean S1 shift and σ vs cut radius (95 % CI)")
+    if len(t) >= 6 and "S1_eV" in t.columns:
+        try:
+            corr = sample.correlation("S1_eV", n_bins=8)
+            rep.figure(plot_correlation(corr), "correlation.png", "Spatial correlation of S1 site energies")
+        except Exception as exc:  # noqa: BLE001 - a plot must not sink the report
+            rep.text(f"(spatial correlation not shown: {exc})")
+    return stats
+
+
+def model_section(rep: ReportWriter, model_df: pd.DataFrame, parity: dict[str, Any] | None = None) -> None:
+    """Film-wide electrostatic model: distribution of every state's shift."""
+    from .stats import disorder_stats
+    from .study.plots import plot_histogram
+
+    cols = [c for c in model_df.columns if c.endswith("_eV") and model_df[c].notna().sum() > 3]
+    rep.section(f"Film-wide electrostatic model ({model_df.molecule.nunique()} molecules x "
+                f"{model_df.frame.nunique()} frames)",
+                "Shift of each state = Σ (q_state − q_ground) × potential of the environment's ground-state "
+                "charges (state charges fitted to the QM electrostatic potential of one reference copy). "
+                "Leaves out: polarisation unless requested, conformational changes of the charges, "
+                "quantum effects of the environment.")
+    rows = []
+    for c in cols:
+        s = disorder_stats(model_df[c].to_numpy(dtype=float), n_boot=500, seed=0)
+        rows.append({"quantity": c, "n": s["n"], "mean_eV": s["mean"], "sigma_eV": s["sigma"],
+                     "sigma_lo_eV": s["sigma_lo"], "sigma_hi_eV": s["sigma_hi"]})
+    if rows:
+        st = pd.DataFrame(rows)
+        rep.table(st, list(st.columns))
+        c0 = cols[0]
+        rep.figure(plot_histogram(model_df[c0].to_numpy(dtype=float), label=c0.replace("_eV", "")),
+                   "model_histogram.png", f"Film-wide model: distribution of {c0}")
+    if parity:
+        rep.text("Parity of the model against full embedded QM on the sampled sites: " +
+                 ", ".join(f"{k} {_fmt(v)}" for k, v in parity.items()))
+
+
+def write_lines(rep: ReportWriter, title: str, lines: list[str]) -> None:
+    rep.section(title)
+    rep.text("\n".join(f"- {x}" for x in lines))

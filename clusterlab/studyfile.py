@@ -1,0 +1,239 @@
+"""Study files: a TOML description of a whole study, validated key by key.
+
+Example (every key optional except ``film.topology``)::
+
+    [film]
+    topology = "demo_traj/bithiophene_film.psf"
+    trajectory = "demo_traj/bithiophene_film.xtc"
+
+    [method]
+    preset = "draft"          # then any Method field, e.g. basis = "6-31g"
+
+    [scan]
+    molecule = 0
+    radii = [6.0, 9.0, 12.0]
+
+    [sample]
+    molecules = "all"
+    n = 12
+    frames = [0, 10]
+    radius = 12.0
+
+    [runner]
+    kind = "processes"
+
+    [output]
+    store = "study.sqlite"
+    report = "report"
+
+Every setting can be overridden on the command line by ``--section-key value``
+(e.g. ``--sample-n 20``); see ``clusterlab run --help``.
+"""
+
+from __future__ import annotations
+
+import copy
+import os
+import sys
+from dataclasses import dataclass
+from typing import Any
+
+from .errors import StudyFileError
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+
+@dataclass(frozen=True)
+class Setting:
+    """One study-file key: its type(s), default and meaning."""
+
+    types: tuple[type, ...]
+    default: Any
+    help: str
+    choices: tuple[Any, ...] | None = None
+
+
+def _num(*extra: type) -> tuple[type, ...]:
+    return (int, float, *extra)
+
+
+#: the schema: section -> key -> Setting
+SCHEMA: dict[str, dict[str, Setting]] = {
+    "film": {
+        "topology": Setting((str,), None, "topology file (any format MDAnalysis reads); required"),
+        "trajectory": Setting((str, list), None, "trajectory file or list of files (optional)"),
+        "charges": Setting((str,), None, "CSV charge table (resname,name,charge) instead of topology charges"),
+    },
+    "method": {
+        "preset": Setting((str,), "draft", "method preset to start from (see `clusterlab presets`)"),
+        "xc": Setting((str,), None, "exchange-correlation functional (overrides the preset)"),
+        "basis": Setting((str,), None, "basis set (overrides the preset)"),
+        "excited": Setting((str,), None, "excited-state model", ("tda", "tddft", "stda")),
+        "n_singlets": Setting((int,), None, "number of singlet states"),
+        "n_triplets": Setting((int,), None, "number of triplet states"),
+        "charged_states": Setting((bool,), None, "also compute IP/EA by ΔSCF"),
+        "density_fit": Setting((bool,), None, "density fitting on/off"),
+        "charge_smearing_A": Setting(_num(), None, "Gaussian width of the environment charges (Å; 0 = point charges)"),
+        "threads": Setting((int,), None, "OpenMP threads per calculation"),
+    },
+    "scan": {
+        "molecule": Setting((int,), None, "molecule id of a radius scan (omit the section to skip the scan)"),
+        "radii": Setting((list,), [6.0, 9.0, 12.0, 15.0], "cut radii of the scan (Å)"),
+        "frame": Setting((int,), 0, "frame of the scan"),
+        "rule": Setting((str,), "atom", "carving rule", ("atom", "centroid")),
+        "qm_shell": Setting(_num(), 0.0, "QM shell (Å): whole neighbours this close join the QM region"),
+        "periodic_limit": Setting((bool,), False, "end the scan with the periodic (Ewald) embedding"),
+        "tol_eV": Setting(_num(), 0.010, "convergence tolerance (eV)"),
+    },
+    "sample": {
+        "molecules": Setting((str, list), "all", "'all', an MDAnalysis selection string, or a list of ids"),
+        "n": Setting((int,), None, "random sub-sample size (omit for all selected)"),
+        "seed": Setting((int,), 0, "random seed of the sub-sample"),
+        "frames": Setting((int, list), None, "frame or list of frames (omit for all)"),
+        "radius": Setting(_num(list), 12.0, "cut radius (Å), or a list for the growth of the statistics"),
+        "rule": Setting((str,), "atom", "carving rule", ("atom", "centroid")),
+        "quantities": Setting((list,), ["S1_eV", "T1_eV", "S1_shift_eV"], "columns to report statistics for"),
+    },
+    "model": {
+        "radius": Setting(_num(), 15.0, "cut radius of the film-wide electrostatic model (Å)"),
+        "frames": Setting((int, list), None, "frames of the film-wide model (omit for all)"),
+        "polarization": Setting((bool,), False, "add Thole induced-dipole polarization"),
+        "reference_molecule": Setting((int,), 0, "molecule whose geometry the state charges are fitted on"),
+    },
+    "export": {
+        "cutoff_A": Setting(_num(), 8.0, "neighbour-pair cutoff (Å)"),
+        "criterion": Setting((str,), "centroid", "pair distance criterion", ("centroid", "atom")),
+        "folder": Setting((str,), "export", "export folder (inside the report folder when relative)"),
+    },
+    "runner": {
+        "kind": Setting((str,), "processes", "runner", ("serial", "processes", "dask")),
+        "workers": Setting((int,), None, "worker processes (default: one per core)"),
+        "threads_per_worker": Setting((int,), None, "OpenMP threads per worker (default 1)"),
+        "scheduler": Setting((str,), None, "Dask scheduler address (runner kind 'dask')"),
+    },
+    "output": {
+        "store": Setting((str,), "study.sqlite", "result store (SQLite file, one per study)"),
+        "report": Setting((str,), "report", "report folder (plots as PNG, summary.md)"),
+    },
+}
+
+
+def defaults() -> dict[str, dict[str, Any]]:
+    return {sec: {k: copy.deepcopy(s.default) for k, s in keys.items()} for sec, keys in SCHEMA.items()}
+
+
+def _check_value(section: str, key: str, value: Any, where: str) -> Any:
+    s = SCHEMA[section][key]
+    if value is None:
+        return None
+    ok = isinstance(value, s.types) and not (isinstance(value, bool) and bool not in s.types)
+    if not ok and float in s.types and isinstance(value, int) and not isinstance(value, bool):
+        ok = True
+    if not ok:
+        names = " or ".join(t.__name__ for t in s.types)
+        raise StudyFileError(f"{where}: [{section}] {key} = {value!r} has the wrong type; expected {names} "
+                             f"({s.help}).")
+    if s.choices is not None and value not in s.choices:
+        raise StudyFileError(f"{where}: [{section}] {key} = {value!r} is not valid; use one of "
+                             f"{', '.join(map(repr, s.choices))}.")
+    if key in ("radii",) and (not value or not all(isinstance(r, (int, float)) and r > 0 for r in value)):
+        raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must be a non-empty list of positive radii (Å).")
+    if key == "radius" and isinstance(value, list) and not all(isinstance(r, (int, float)) and r > 0 for r in value):
+        raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must hold positive radii (Å).")
+    return value
+
+
+def validate(data: dict[str, Any], where: str = "study") -> dict[str, dict[str, Any]]:
+    """Check a parsed study against :data:`SCHEMA`; return it with defaults filled in.
+
+    Raises
+    ------
+    StudyFileError
+        Unknown section or key, wrong type or value, missing film topology.
+    """
+    out = defaults()
+    present: set[str] = set()
+    for section, body in data.items():
+        if section not in SCHEMA:
+            raise StudyFileError(f"{where}: unknown section [{section}]; valid sections are "
+                                 f"{', '.join('[' + s + ']' for s in SCHEMA)}.")
+        if not isinstance(body, dict):
+            raise StudyFileError(f"{where}: [{section}] must be a table of keys, got {body!r}.")
+        present.add(section)
+        for key, value in body.items():
+            if key not in SCHEMA[section]:
+                raise StudyFileError(f"{where}: unknown key {key!r} in [{section}]; valid keys are "
+                                     f"{', '.join(SCHEMA[section])}.")
+            out[section][key] = _check_value(section, key, value, where)
+    if not out["film"]["topology"]:
+        raise StudyFileError(f"{where}: [film] topology is required (the film's topology file).")
+    out["_present"] = sorted(present)  # type: ignore[assignment]
+    return out
+
+
+def load_study(path: str | os.PathLike[str],
+               overrides: dict[tuple[str, str], Any] | None = None) -> dict[str, dict[str, Any]]:
+    """Read and validate a TOML study file, after applying ``overrides``
+    (``{(section, key): value}``, e.g. from command-line flags). Relative
+    film paths are taken relative to the study file's folder.
+
+    Raises
+    ------
+    StudyFileError
+        Missing or invalid file, or any key that :func:`validate` rejects.
+    """
+    p = os.fspath(path)
+    try:
+        with open(p, "rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError as exc:
+        raise StudyFileError(f"Study file {p!r} not found.") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise StudyFileError(f"Study file {p!r} is not valid TOML: {exc}") from exc
+    for (section, key), value in (overrides or {}).items():
+        data.setdefault(section, {})[key] = value
+    study = validate(data, where=p)
+    base = os.path.dirname(os.path.abspath(p))
+
+    def rel(x: str) -> str:
+        return x if os.path.isabs(x) else os.path.normpath(os.path.join(base, x))
+
+    f = study["film"]
+    f["topology"] = rel(f["topology"])
+    if isinstance(f["trajectory"], str):
+        f["trajectory"] = rel(f["trajectory"])
+    elif isinstance(f["trajectory"], list):
+        f["trajectory"] = [rel(t) for t in f["trajectory"]]
+    if f["charges"]:
+        f["charges"] = rel(f["charges"])
+    return study
+
+
+def parse_override(section: str, key: str, text: str) -> Any:
+    """Turn a command-line string into the type the schema wants (TOML syntax
+    for lists and booleans: ``--scan-radii "[6, 9, 12]"``, ``--scan-periodic_limit true``)."""
+    s = SCHEMA[section][key]
+    if str in s.types and not text.strip().startswith("["):
+        return text
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        if str in s.types:
+            return text
+        raise StudyFileError(f"--{section}-{key} {text!r}: cannot read it as {'/'.join(t.__name__ for t in s.types)}.")
+
+
+def method_from_study(study: dict[str, dict[str, Any]]):
+    """The :class:`~clusterlab.Method` a study asks for."""
+    from .qm.method import Method
+
+    m = dict(study["method"])
+    preset = m.pop("preset") or "draft"
+    over = {k: v for k, v in m.items() if v is not None}
+    try:
+        return Method.preset(preset, **over)
+    except Exception as exc:  # noqa: BLE001 - re-raised with the key named
+        raise StudyFileError(f"[method]: {exc}") from exc

@@ -1,0 +1,125 @@
+"""Command line and study files: every bad key named, overrides, a real run."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import warnings
+
+import numpy as np
+import pytest
+
+from clusterlab.cli import main
+from clusterlab.errors import StudyFileError
+from clusterlab.studyfile import load_study, parse_override, validate
+
+from conftest import build_water_universe, lattice_centres
+
+
+@pytest.fixture
+def gro(tmp_path):
+    """A periodic film as GRO (box, no charges) plus a CSV charge table."""
+    u, _ = build_water_universe(lattice_centres(3, 0.1, np.random.default_rng(0)),
+                                np.array([9.3, 9.3, 9.3, 90, 90, 90.0]))
+    path = tmp_path / "water.gro"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        u.atoms.write(str(path))
+    csv = tmp_path / "q.csv"
+    csv.write_text("resname,name,charge\nWAT,OW,-0.834\nWAT,HW1,0.417\nWAT,HW2,0.417\n")
+    return str(path), str(csv)
+
+
+@pytest.fixture
+def pqr(tmp_path):
+    u, _ = build_water_universe(lattice_centres(3, 0.1, np.random.default_rng(0)),
+                                np.array([9.3, 9.3, 9.3, 90, 90, 90.0]))
+    u.add_TopologyAttr("radii", [1.5, 1.0, 1.0] * 27)
+    path = tmp_path / "water.pqr"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        u.atoms.write(str(path))
+    return str(path)
+
+
+@pytest.mark.parametrize("body, match", [
+    ("[film]\ntopology='x.pqr'\n[scna]\nmolecule=1\n", r"unknown section \[scna\]"),
+    ("[film]\ntopology='x.pqr'\n[scan]\nmolecul=1\n", r"unknown key 'molecul' in \[scan\]; valid keys are molecule"),
+    ("[film]\ntopology='x.pqr'\n[scan]\nradii='big'\n", r"\[scan\] radii = 'big' has the wrong type; expected list"),
+    ("[film]\ntopology='x.pqr'\n[scan]\nradii=[3, -1]\n", r"\[scan\] radii .* positive radii"),
+    ("[film]\ntopology='x.pqr'\n[runner]\nkind='mpi'\n", r"\[runner\] kind = 'mpi' is not valid; use one of 'serial'"),
+    ("[scan]\nmolecule=1\n", r"\[film\] topology is required"),
+    ("[film]\ntopology='x.pqr'\n[scan]\nperiodic_limit=1\n", r"periodic_limit = 1 has the wrong type; expected bool"),
+    ("[film\ntopology='x.pqr'\n", "not valid TOML"),
+])
+def test_bad_study_files_name_the_key(tmp_path, body, match):
+    p = tmp_path / "study.toml"
+    p.write_text(body)
+    with pytest.raises(StudyFileError, match=match):
+        load_study(p)
+
+
+def test_overrides_and_relative_paths(tmp_path):
+    p = tmp_path / "study.toml"
+    p.write_text("[film]\ntopology='films/x.pqr'\n[sample]\nn=3\n")
+    st = load_study(p, {("sample", "n"): parse_override("sample", "n", "7"),
+                        ("scan", "radii"): parse_override("scan", "radii", "[3, 4.5]")})
+    assert st["sample"]["n"] == 7 and st["scan"]["radii"] == [3, 4.5]
+    assert st["film"]["topology"] == os.path.join(str(tmp_path), "films", "x.pqr")
+    assert parse_override("sample", "molecules", "resname WAT") == "resname WAT"
+    assert parse_override("scan", "periodic_limit", "true") is True
+    with pytest.raises(StudyFileError, match="cannot read it as int"):
+        parse_override("sample", "n", "many")
+    assert validate({"film": {"topology": "a"}})["runner"]["kind"] == "processes"
+
+
+def test_inspect_and_presets(pqr, capsys):
+    assert main(["inspect", pqr]) == 0
+    out = capsys.readouterr().out
+    assert "27 molecules" in out and "27 x WAT (H2O)" in out
+    assert main(["presets"]) == 0
+    assert "draft" in capsys.readouterr().out
+    assert main(["inspect", "missing.pqr"]) == 1
+    assert "File not found" in capsys.readouterr().err
+
+
+def test_run_study_end_to_end_and_report(gro, tmp_path, capsys):
+    study = tmp_path / "study.toml"
+    study.write_text(f"""
+[film]
+topology = "{gro[0]}"
+charges = "{gro[1]}"
+[method]
+preset = "draft"
+basis = "sto-3g"
+n_singlets = 2
+n_triplets = 1
+[scan]
+molecule = 4
+radii = [3.0, 4.5]
+[sample]
+molecules = "all"
+n = 3
+radius = 3.0
+[runner]
+kind = "serial"
+[output]
+store = "{tmp_path / 'st.sqlite'}"
+report = "{tmp_path / 'rep'}"
+""")
+    assert main(["run", str(study), "--quiet", "--sample-n", "4"]) == 0
+    out = capsys.readouterr().out
+    assert "radius scan of molecule 4" in out and "n=4" in out
+    summary = (tmp_path / "rep" / "summary.md").read_text()
+    assert "Radius scan of molecule 4" in summary and "model estimates" in summary
+    assert (tmp_path / "rep" / "convergence.png").stat().st_size > 1000
+    assert (tmp_path / "rep" / "histogram_S1_eV.png").exists()
+    assert main(["report", str(tmp_path / "st.sqlite"), "--out", str(tmp_path / "rep2")]) == 0
+    assert (tmp_path / "rep2" / "summary.md").exists()
+
+
+def test_console_script_help():
+    r = subprocess.run([sys.executable, "-m", "clusterlab.cli", "run", "--help"], capture_output=True, text=True)
+    assert r.returncode == 0
+    assert "--sample-n" in r.stdout and "--scan-periodic-limit" in r.stdout and "--runner-scheduler" in r.stdout
