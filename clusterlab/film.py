@@ -290,7 +290,9 @@ class Film:
         for i in range(n_mol):
             els, cnt = np.unique(self.symbols[self.index.of(i)], return_counts=True)
             d = dict(zip(els, cnt))
-            order = (["C", "H"] if "C" in d else []) + sorted(k for k in d if k not in (("C", "H") if "C" in d else ()))
+            # Hill order: C, then H, then the rest alphabetically (all alphabetical without C)
+            first = [k for k in ("C", "H") if k in d] if "C" in d else []
+            order = first + sorted(k for k in d if k not in first)
             formulas.append("".join(f"{k}{d[k] if d[k] > 1 else ''}" for k in order))
         try:  # raw source charges, so non-integer molecules show up in the table
             q = np.asarray(self.charge_source.atom_charges(self), dtype=np.float64)

@@ -157,3 +157,18 @@ def test_selection_and_describe(water_files):
         film.select("resname XYZ")
     text = film.describe()
     assert "27 x WAT (H2O)" in text
+
+
+def test_hill_formula():
+    """Hill order (Hill, J. Am. Chem. Soc. 22, 478 (1900)): C, H, then alphabetical; no C: alphabetical."""
+    from clusterlab import film_from_universe
+
+    els = ["S", "C", "H", "C", "O", "C", "O", "Cl", "H", "O", "N"]
+    res = [0, 0, 0, 0, 1, 1, 1, 2, 2, 2, 2]
+    u = mda.Universe.empty(len(els), n_residues=3, atom_resindex=res, trajectory=True)
+    u.add_TopologyAttr("elements", els)
+    u.add_TopologyAttr("names", els)
+    u.add_TopologyAttr("resnames", ["A", "B", "C"])
+    u.add_TopologyAttr("charges", [0.0] * len(els))
+    film = film_from_universe(u)
+    assert list(film.molecules.formula) == ["C2HS", "CO2", "ClHNO"]
