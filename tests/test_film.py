@@ -169,6 +169,7 @@ def test_hill_formula():
     u.add_TopologyAttr("elements", els)
     u.add_TopologyAttr("names", els)
     u.add_TopologyAttr("resnames", ["A", "B", "C"])
+    u.add_TopologyAttr("resids", [1, 2, 3])
     u.add_TopologyAttr("charges", [0.0] * len(els))
     film = film_from_universe(u)
     assert list(film.molecules.formula) == ["C2HS", "CO2", "ClHNO"]
