@@ -285,7 +285,7 @@ class Film:
         n_mol = self.n_molecules
         first = self.index.atoms[self.index.offsets[:-1]]
         resnames = self.molecule_resnames
-        resids = np.asarray(atoms.resids)[first]
+        resids = (np.asarray(atoms.resids) if hasattr(atoms, "resids") else np.asarray(atoms.resindices) + 1)[first]
         formulas = []
         for i in range(n_mol):
             els, cnt = np.unique(self.symbols[self.index.of(i)], return_counts=True)
