@@ -50,3 +50,7 @@ __all__ = [
     "THOLE_EXP_A", "Polarization", "atomic_polarizabilities", "molecular_polarizability",
     "permanent_field", "polarization_energy", "solve_induced_dipoles",
 ]
+
+from .sitemodel import StateChargeSet, conformer_spread, environment_pairs, film_site_energies  # noqa: E402
+
+__all__ += ["StateChargeSet", "film_site_energies", "conformer_spread", "environment_pairs"]
