@@ -107,7 +107,8 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         m = study["model"]
         echo(f"film-wide electrostatic model (radius {m['radius']} Å, polarization {m['polarization']}) ...")
         outcome.model = run_film_model(film, method, radius_A=m["radius"], frames=m["frames"],
-                                       polarization=m["polarization"], reference_molecule=m["reference_molecule"],
+                                       polarization=m["polarization"], polarize_molecules=m["polarize_molecules"],
+                                       reference_molecule=m["reference_molecule"],
                                        progress=progress)
         outcome.timings_s["model"] = time.perf_counter() - t0
         model_section(rep, outcome.model)

@@ -100,7 +100,8 @@ SCHEMA: dict[str, dict[str, Setting]] = {
     "model": {
         "radius": Setting(_num(), 15.0, "cut radius of the film-wide electrostatic model (Å)"),
         "frames": Setting((int, list), None, "frames of the film-wide model (omit for all)"),
-        "polarization": Setting((bool,), False, "add Thole induced-dipole polarization"),
+        "polarization": Setting((bool,), False, "add Thole induced-dipole polarization (charged states)"),
+        "polarize_molecules": Setting((list,), None, "molecule ids to polarize (default all; seconds each)"),
         "reference_molecule": Setting((int,), 0, "molecule whose geometry the state charges are fitted on"),
     },
     "export": {

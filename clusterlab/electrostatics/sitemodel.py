@@ -835,3 +835,35 @@ def _shift_with_override(film: "Film", cset: StateChargeSet, tag: str, mol: int,
     pot, _ = _pair_blocks(pos_pad, mask, q_pad, ext, geo.centroids_A, geo.box, radius, rule, want)
     n = film.index.sizes()[mol]
     return {s: float(np.dot(cset.difference(tag, s), pot[mol, :n])) for s in states}
+
+
+def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequence[int] | None = None,
+                   polarization: bool = False, polarize_molecules: Sequence[int] | None = None,
+                   reference_molecule: int = 0, charges: StateChargeSet | None = None,
+                   progress: bool = True) -> pd.DataFrame:
+    """Fit state charges on one reference copy (unless given) and evaluate the
+    film-wide model for S1, T1, cation and anion of every molecule and frame.
+
+    Polarization (Thole, charged states only) costs seconds per molecule, so
+    it is computed for ``polarize_molecules`` (default: all) in the first
+    frame of ``frames``; other rows have NaN polarization columns.
+
+    The fitted :class:`StateChargeSet` is kept in ``table.attrs["charges"]``
+    (transition charges included, for excitonic couplings).
+    """
+    if charges is None:
+        res = str(film.molecule_resnames[film._check_molecule(reference_molecule)])
+        charges = StateChargeSet.from_film(film, method, resnames=[res], molecules={res: reference_molecule})
+    states = ("S1", "T1", "cation", "anion")
+    table = film_site_energies(film, states, radius=radius_A, frames=frames, model="charges", charges=charges,
+                               progress=progress)
+    if polarization:
+        f0 = [int(table.frame.min())]
+        pol = film_site_energies(film, ("cation", "anion"), radius=radius_A, frames=f0,
+                                 model="charges+polarization", charges=charges, progress=progress,
+                                 molecules=polarize_molecules)
+        cols = [c for c in pol.columns if c.startswith("P_") or c.endswith("_total_eV")]
+        table = table.merge(pol[["frame", "molecule", *cols]], on=["frame", "molecule"], how="left")
+    table.attrs["charges"] = charges
+    table.attrs["radius_A"] = float(radius_A)
+    return table

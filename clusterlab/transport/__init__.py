@@ -49,3 +49,28 @@ __all__ = [
     "effective_coupling",
     "neighbour_pairs",
 ]
+
+from .export import (  # noqa: E402 - appended: the transport-model export
+    ExportTables,
+    export_study,
+    graph_from_export,
+    hopping_rates,
+    pair_table,
+    read_export,
+    site_table,
+    write_export,
+)
+from .transfer_tasks import compute_transfer_integrals, transfer_task  # noqa: E402
+
+__all__ += [
+    "ExportTables",
+    "site_table",
+    "pair_table",
+    "hopping_rates",
+    "write_export",
+    "read_export",
+    "export_study",
+    "graph_from_export",
+    "transfer_task",
+    "compute_transfer_integrals",
+]
