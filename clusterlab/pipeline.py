@@ -106,7 +106,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         t0 = time.perf_counter()
         m = study["model"]
         echo(f"film-wide electrostatic model (radius {m['radius']} Å, polarization {m['polarization']}) ...")
-        outcome.model = run_film_model(film, method, radius_A=m["radius"], frames=m["frames"],
+        outcome.model = run_film_model(film, m["charges_method"] or method, radius_A=m["radius"], frames=m["frames"],
                                        polarization=m["polarization"], polarize_molecules=m["polarize_molecules"],
                                        reference_molecule=m["reference_molecule"],
                                        progress=progress)

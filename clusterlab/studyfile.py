@@ -76,6 +76,7 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "n_triplets": Setting((int,), None, "number of triplet states"),
         "charged_states": Setting((bool,), None, "also compute IP/EA by ΔSCF"),
         "density_fit": Setting((bool,), None, "density fitting on/off"),
+        "grid_level": Setting((int,), None, "DFT integration grid level of the SCF (0-9)"),
         "charge_smearing_A": Setting(_num(), None, "Gaussian width of the environment charges (Å; 0 = point charges)"),
         "threads": Setting((int,), None, "OpenMP threads per calculation"),
     },
@@ -103,6 +104,7 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "polarization": Setting((bool,), False, "add Thole induced-dipole polarization (charged states)"),
         "polarize_molecules": Setting((list,), None, "molecule ids to polarize (default all; seconds each)"),
         "reference_molecule": Setting((int,), 0, "molecule whose geometry the state charges are fitted on"),
+        "charges_method": Setting((str,), None, "'xc/basis' of the state-charge fit (default: the study method)"),
     },
     "export": {
         "cutoff_A": Setting(_num(), 8.0, "neighbour-pair cutoff (Å)"),

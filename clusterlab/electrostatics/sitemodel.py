@@ -844,6 +844,10 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
     """Fit state charges on one reference copy (unless given) and evaluate the
     film-wide model for S1, T1, cation and anion of every molecule and frame.
 
+    ``method`` is a :class:`~clusterlab.Method` (its grid level and density
+    fitting are used) or an ``"xc/basis"`` string (then grid level 1 with
+    density fitting) for the state-charge fit (TDA for S1/T1, ΔSCF for the ions).
+
     Polarization (Thole, charged states only) costs seconds per molecule, so
     it is computed for ``polarize_molecules`` (default: all) in the first
     frame of ``frames``; other rows have NaN polarization columns.
@@ -853,7 +857,11 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
     """
     if charges is None:
         res = str(film.molecule_resnames[film._check_molecule(reference_molecule)])
-        charges = StateChargeSet.from_film(film, method, resnames=[res], molecules={res: reference_molecule})
+        fit_kw: dict[str, Any] = {"grid_level": 1, "density_fit": True}
+        if hasattr(method, "grid_level"):
+            fit_kw = {"grid_level": method.grid_level, "density_fit": method.density_fit}
+        charges = StateChargeSet.from_film(film, method, resnames=[res], molecules={res: reference_molecule},
+                                           **fit_kw)
     states = ("S1", "T1", "cation", "anion")
     table = film_site_energies(film, states, radius=radius_A, frames=frames, model="charges", charges=charges,
                                progress=progress)

@@ -207,6 +207,8 @@ def state_charges(
     equivalent: Any = None,
     conv_tol: float = 1e-9,
     max_cycle: int = 100,
+    grid_level: int = 3,
+    density_fit: bool = False,
     raise_on_fail: bool = False,
     verbose: int = 0,
     **grid_kw: Any,
@@ -226,6 +228,10 @@ def state_charges(
     grid, points_A, restraint, equivalent, **grid_kw
         Fit options (see :mod:`clusterlab.electrostatics.espfit`).
     conv_tol, max_cycle : SCF settings.
+    grid_level : int
+        DFT integration grid level (PySCF ``grids.level``) of every SCF and TDA.
+    density_fit : bool
+        Density fitting (PySCF default auxiliary basis) for every SCF and TDA.
     raise_on_fail : bool
         Raise :class:`~clusterlab.errors.ConvergenceError` when an SCF or TDA
         step does not converge (default: flag it in ``converged``).
@@ -258,15 +264,17 @@ def state_charges(
         raise InputError(f"the ground state with charge {charge} has an odd electron count; "
                          "state_charges needs a closed-shell ground state.")
 
-    def rks(m: Any):
-        mf = scf.RHF(m) if _is_hf(xc) else dft.RKS(m, xc=xc)
+    def setup(mf: Any) -> Any:
         mf.conv_tol, mf.max_cycle = conv_tol, max_cycle
-        return mf
+        if hasattr(mf, "grids"):
+            mf.grids.level = grid_level
+        return mf.density_fit() if density_fit else mf
+
+    def rks(m: Any):
+        return setup(scf.RHF(m) if _is_hf(xc) else dft.RKS(m, xc=xc))
 
     def uks(m: Any):
-        mf = scf.UHF(m) if _is_hf(xc) else dft.UKS(m, xc=xc)
-        mf.conv_tol, mf.max_cycle = conv_tol, max_cycle
-        return mf
+        return setup(scf.UHF(m) if _is_hf(xc) else dft.UKS(m, xc=xc))
 
     def check(ok: bool, what: str) -> bool:
         if not ok and raise_on_fail:
