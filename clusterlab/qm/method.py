@@ -44,6 +44,12 @@ _PRESETS: dict[str, tuple[str, dict[str, Any]]] = {
         dict(xc="camb3lyp", basis="def2-svp", density_fit=True, grid_level=3, response_grid_level=1,
              n_singlets=5, n_triplets=5, excited="tda"),
     ),
+    "fast-stda": (
+        "B3LYP/6-31G, density fitting, grid 1, sTDA 3+3 states: large samples and notebooks "
+        "(S1 within ~0.2 eV of full TDA; sTDA triplets are not reliable)",
+        dict(xc="b3lyp", basis="6-31g", density_fit=True, grid_level=1, response_grid_level=1,
+             n_singlets=3, n_triplets=3, excited="stda"),
+    ),
     "site-energy": (
         "B3LYP/def2-SVP ground state plus cation/anion by ΔSCF, no excited states: IP/EA site energies",
         dict(xc="b3lyp", basis="def2-svp", density_fit=True, grid_level=3, response_grid_level=None,

@@ -1,0 +1,61 @@
+"""Background-job plumbing shared by the panels: one worker thread, a
+cancel event, wait/cancel/running. The panels supply ``_work`` and the
+status line; no science here."""
+
+from __future__ import annotations
+
+import threading
+from typing import Any
+
+
+class BackgroundJob:
+    """Mixin: ``_start(target, args, name)`` runs ``target(*args)`` in a daemon
+    thread; ``wait``, ``cancel``, ``running`` and ``cancel_event`` follow it.
+
+    The class using it sets ``self.exception`` (the job's error, or None) in
+    its ``_work`` and provides ``_set_status(text, kind)`` and
+    ``_cancel_message``.
+    """
+
+    _cancel_message = "cancelling…"
+    exception: BaseException | None
+    _thread: threading.Thread | None
+    _cancel: threading.Event
+
+    def _init_job(self) -> None:
+        self.exception = None
+        self._thread = None
+        self._cancel = threading.Event()
+
+    def _start(self, target: Any, args: tuple, name: str) -> None:
+        self.exception = None
+        self._cancel = threading.Event()
+        self._thread = threading.Thread(target=target, args=args, daemon=True, name=name)
+        self._thread.start()
+
+    @property
+    def running(self) -> bool:
+        return self._thread is not None and self._thread.is_alive()
+
+    @property
+    def cancel_event(self) -> threading.Event:
+        return self._cancel
+
+    def wait(self, timeout: float | None = None, *, raise_error: bool = False) -> bool:
+        """Block until the job ends (or ``timeout`` seconds pass).
+
+        Returns True when it has ended. With ``raise_error`` the job's
+        exception (also shown in the error box) is raised here, for scripts
+        and notebooks that must stop on a failure.
+        """
+        if self._thread is not None:
+            self._thread.join(timeout)
+        if raise_error and self.exception is not None:
+            raise self.exception
+        return not self.running
+
+    def cancel(self) -> None:
+        """Ask the running job to stop (finished results stay in the store)."""
+        self._cancel.set()
+        if self.running:
+            self._set_status(self._cancel_message, "warn")  # type: ignore[attr-defined]

@@ -1,0 +1,678 @@
+"""The static-disorder panel: sample site energies, look at their spread.
+
+A thin layer over :func:`clusterlab.sample_sites`,
+:class:`clusterlab.store.ResultStore`, :mod:`clusterlab.stats` and
+:mod:`clusterlab.study.plots`: it gathers settings, runs the sample in a
+worker thread, and draws what the library computes (histogram with the
+Gaussian fit and confidence intervals, mean and σ against radius, site
+energies on the 3D film, the spatial correlation). Export writes the
+table as CSV.
+"""
+
+from __future__ import annotations
+
+import html
+import os
+import threading
+import time
+import traceback
+from collections.abc import Callable, Sequence
+from typing import Any
+
+import ipywidgets as widgets
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+
+from ._jobs import BackgroundJob
+from . import _style
+from .calc import _TABLE_CSS, MethodControls, frame_html, parse_radii
+
+__all__ = ["DisorderPanel", "library_sample", "store_table", "parse_frames"]
+
+_CENTROID = ("centroid_x_A", "centroid_y_A", "centroid_z_A")
+
+
+def library_sample() -> Callable[..., Any]:
+    """The library's :func:`sample_sites` (imported on first use)."""
+    try:
+        from clusterlab import sample_sites  # type: ignore[attr-defined]
+    except ImportError:
+        from clusterlab.study.sample import sample_sites  # type: ignore[no-redef]
+    return sample_sites
+
+
+def parse_frames(text: str, n_frames: int) -> list[int]:
+    """Frame numbers from ``"0"``, ``"0, 5, 10"``, ``"0:20:5"`` (stop
+    excluded, as Python slices) or ``"all"``.
+
+    Raises
+    ------
+    clusterlab.errors.InputError
+        On anything else or frames out of range.
+    """
+    from clusterlab.errors import InputError
+
+    t = str(text).strip().lower()
+    try:
+        if t in ("all", ""):
+            frames = list(range(n_frames))
+        elif ":" in t:
+            parts = [int(p) if p.strip() else None for p in t.split(":")]
+            frames = list(range(n_frames))[slice(*parts)]
+        else:
+            frames = [int(p) for p in t.replace(",", " ").split()]
+    except (ValueError, TypeError) as exc:
+        raise InputError(f"frames {text!r} are not valid; use '0', '0, 5, 10', a slice '0:20:5' or 'all'.") from exc
+    bad = [f for f in frames if not 0 <= f < n_frames]
+    if bad or not frames:
+        raise InputError(f"frames {text!r} give {frames}; the film has frames 0..{n_frames - 1}.")
+    return sorted(set(frames))
+
+
+def store_table(film: Any, path: str | os.PathLike[str]) -> pd.DataFrame:
+    """Site-energy rows of a result store as a tidy table.
+
+    Reads the finished records (:meth:`ResultStore.to_frame`); adds
+    ``resname`` and molecule centroids (from :meth:`Film.frame_geometry`)
+    when the store does not hold them.
+
+    Raises
+    ------
+    clusterlab.errors.StudyFileError
+        If the file is not a result store.
+    clusterlab.errors.InputError
+        If the store holds no site-energy records.
+    """
+    from clusterlab.errors import InputError
+    from clusterlab.store import ResultStore
+
+    with ResultStore(path, readonly=True) as st:
+        df = st.to_frame(status="done")
+    energy_cols = [c for c in df.columns if str(c).endswith("_eV")]
+    if len(df):
+        df = df.dropna(subset=["molecule", "frame"])
+        if "kind" in df.columns:  # vacuum references of radius scans are not sites
+            df = df[df["kind"].astype(str) != "vacuum"]
+        if "radius_A" in df.columns:
+            r = pd.to_numeric(df["radius_A"], errors="coerce")
+            df = df[~(r <= 0)]
+    if not len(df) or not energy_cols:
+        raise InputError(f"result store {os.fspath(path)!r} holds no finished site-energy records "
+                         f"(columns: {list(df.columns)}).")
+    df = df.copy()
+    df["molecule"] = df["molecule"].astype(int)
+    df["frame"] = df["frame"].astype(int)
+    if "resname" not in df.columns:
+        df["resname"] = film.molecules["resname"].to_numpy()[df["molecule"].to_numpy()]
+    if not all(c in df.columns for c in _CENTROID):
+        cent = np.full((len(df), 3), np.nan)
+        for f, idx in df.groupby("frame").indices.items():
+            geo = film.frame_geometry(int(f), periodic=film.has_box)
+            cent[idx] = geo.centroids_A[df["molecule"].to_numpy()[idx]]
+        for k, c in enumerate(_CENTROID):
+            df[c] = cent[:, k]
+    return df.reset_index(drop=True)
+
+
+class DisorderPanel(BackgroundJob, widgets.VBox):
+    """Sample site energies over molecules and frames and look at the disorder.
+
+    Parameters
+    ----------
+    film : clusterlab.Film
+    molecules : str, default "all"
+        Which molecules: an MDAnalysis selection, ids (``"0-9, 20"``) or "all".
+    n_molecules : int, default 0
+        Random subset of that many molecules (0: all selected).
+    frames : str, default "0"
+        Frames (``"0"``, ``"0, 10"``, ``"0:20:5"``, ``"all"``).
+    radii_A : sequence of float, default (10.0,)
+        One sample per radius (several radii give σ and mean vs radius).
+    preset, basis, n_singlets, n_triplets : method settings at start
+    store : str, default "clusterlab_sites.sqlite"
+        Result store the sample writes into (and a re-run resumes from).
+    runner : str, default "serial"
+    seed : int, default 0
+        Seed of the molecule subset and the bootstrap intervals.
+    show_view : bool, default True
+        Build the 3D site-energy view.
+
+    Attributes
+    ----------
+    sample_fn : callable
+        Default: the library's ``sample_sites`` (imported on first use).
+    load_fn : callable
+        ``load_fn(film, path) -> DataFrame``; default :func:`store_table`.
+    stats_fn : callable
+        Default :func:`clusterlab.stats.disorder_stats`.
+    corr_fn : callable
+        Default :func:`clusterlab.stats.spatial_correlation`.
+    data : pandas.DataFrame
+        The site-energy table shown (sample result, loaded store or rows so far).
+    result : SampleResult or None
+    error : str
+    errors : ipywidgets.Output
+    hist_plot, growth_plot, corr_plot : ipywidgets.Image
+    view : nglview.NGLWidget or None
+    """
+
+    def __init__(self, film: Any, *, molecules: str = "all", n_molecules: int = 0, frames: str = "0",
+                 radii_A: Sequence[float] = (10.0,), preset: str = "draft", basis: str = "",
+                 n_singlets: int | None = None, n_triplets: int | None = None,
+                 store: str = "clusterlab_sites.sqlite", runner: str = "serial", seed: int = 0,
+                 show_view: bool = True, **kwargs: Any) -> None:
+        self.film = film
+        self._sample_fn: Callable[..., Any] | None = None
+        self._load_fn: Callable[..., Any] | None = None
+        self._stats_fn: Callable[..., Any] | None = None
+        self._corr_fn: Callable[..., Any] | None = None
+        self.data = pd.DataFrame()
+        self.rows: list[dict] = []
+        self.result: Any = None
+        self.error = ""
+        self.stats: pd.Series | None = None
+        self.growth: pd.DataFrame | None = None
+        self.correlation: pd.DataFrame | None = None
+        self.site_values: dict[int, float] = {}
+        self.scene_pdb = ""
+        self._lock = threading.Lock()
+        self._init_job()
+        self._cancel_message = 'cancelling… (finished sites are kept in the store)'
+        self._site_comp: Any = None
+        #: least time between two redraws while a sample runs (s)
+        self.redraw_interval_s = 3.0
+        self._radius_chosen = False
+        #: correlation bins with fewer pairs are not drawn
+        self.min_pairs = 3
+        self._last_draw = -np.inf
+
+        self.errors = widgets.Output(layout=widgets.Layout(max_height="220px", overflow="auto"))
+        w = widgets.Layout
+        self.molecules = widgets.Text(value=molecules, description="molecules",
+                                      placeholder="all, ids 0-9, or a selection")
+        self.n_molecules = widgets.BoundedIntText(value=n_molecules, min=0, max=max(film.n_molecules, 1),
+                                                  description="random n", layout=w(width="170px"))
+        self.frames = widgets.Text(value=frames, description="frames", placeholder="0 | 0, 10 | 0:20:5 | all",
+                                   layout=w(width="260px"))
+        self.radii = widgets.Text(value=", ".join(f"{r:g}" for r in radii_A), description="radii (Å)",
+                                  layout=w(width="260px"))
+        self.method_controls = MethodControls(preset, basis=basis, n_singlets=n_singlets,
+                                              n_triplets=n_triplets, errors=self.errors)
+        self.preset = self.method_controls.preset
+        self.basis = self.method_controls.basis
+        self.singlets = self.method_controls.singlets
+        self.triplets = self.method_controls.triplets
+        self.store = widgets.Text(value=str(store), description="store", layout=w(width="420px"))
+        self.runner = widgets.Dropdown(options=["serial", "processes", "dask"], value=runner,
+                                       description="runner", layout=w(width="200px"))
+        self.seed = widgets.IntText(value=seed, description="seed", layout=w(width="170px"))
+        self.run_button = widgets.Button(description="run sample", button_style="success", icon="play")
+        self.cancel_button = widgets.Button(description="cancel", button_style="warning", icon="stop",
+                                            disabled=True)
+        self.load_button = widgets.Button(description="load store", icon="folder-open")
+        self.progress = widgets.IntProgress(value=0, min=0, max=1, description="sites", layout=w(width="320px"))
+        self.status = widgets.HTML(value='<span style="color:#555">ready</span>')
+
+        self.quantity = widgets.Dropdown(options=[], description="quantity", layout=w(width="260px"))
+        self.radius_pick = widgets.Dropdown(options=[], description="radius (Å)", layout=w(width="200px"))
+        self.frame_pick = widgets.Dropdown(options=[], description="3D frame", layout=w(width="200px"))
+        self.export_path = widgets.Text(value="site_energies.csv", description="CSV", layout=w(width="420px"))
+        self.export_button = widgets.Button(description="export CSV", icon="download")
+
+        self.hist_plot = widgets.Image(format="png", layout=w(max_width="560px"))
+        self.stats_html = widgets.HTML()
+        self.growth_plot = widgets.Image(format="png", layout=w(max_width="560px"))
+        self.growth_note = widgets.HTML()
+        self.corr_plot = widgets.Image(format="png", layout=w(max_width="560px"))
+        self.corr_note = widgets.HTML()
+        self.colourbar = widgets.HTML()
+        self.table_html = widgets.HTML()
+        self.view: Any = None
+        scene: list[widgets.Widget] = [widgets.HBox([self.frame_pick, self.colourbar])]
+        if show_view:
+            import nglview
+
+            self.view = nglview.NGLWidget()
+            self.view.background = _style.BACKGROUND
+            self.view._set_size("100%", "420px")
+            scene.append(self.view)
+
+        self.tabs = widgets.Tab(children=[
+            widgets.HBox([self.hist_plot, self.stats_html]),
+            widgets.VBox([self.growth_note, self.growth_plot]),
+            widgets.VBox(scene),
+            widgets.VBox([self.corr_note, self.corr_plot]),
+            self.table_html,
+        ])
+        for i, t in enumerate(["histogram", "σ and mean vs radius", "on the film", "spatial correlation", "table"]):
+            self.tabs.set_title(i, t)
+
+        self.run_button.on_click(self._on_run_click)
+        self.cancel_button.on_click(lambda _b: self.cancel())
+        self.load_button.on_click(self._on_load_click)
+        self.export_button.on_click(self._on_export_click)
+        for dd in (self.quantity, self.radius_pick, self.frame_pick):
+            dd.observe(self._on_pick, names="value")
+        self.tabs.observe(self._on_tab, names="selected_index")
+
+        settings = widgets.VBox([
+            widgets.HBox([self.molecules, self.n_molecules, self.seed]),
+            widgets.HBox([self.frames, self.radii]),
+            self.method_controls,
+            self.runner,
+            widgets.HBox([self.store, self.load_button]),
+            widgets.HBox([self.run_button, self.cancel_button, self.progress]),
+            self.status,
+            widgets.HBox([self.quantity, self.radius_pick]),
+        ])
+        export = widgets.HBox([self.export_path, self.export_button])
+        super().__init__([settings, self.tabs, export, self.errors], **kwargs)
+        self.add_class("clusterlab-disorder-panel")
+        self._draw_film_scene()
+
+    # ------------------------------------------------------------ links
+    def _get(self, name: str, default: Callable[[], Callable[..., Any]]) -> Callable[..., Any]:
+        fn = getattr(self, name)
+        return fn if fn is not None else default()
+
+    @property
+    def sample_fn(self) -> Callable[..., Any]:
+        return self._get("_sample_fn", library_sample)
+
+    @sample_fn.setter
+    def sample_fn(self, fn: Callable[..., Any] | None) -> None:
+        self._sample_fn = fn
+
+    @property
+    def load_fn(self) -> Callable[..., Any]:
+        return self._get("_load_fn", lambda: store_table)
+
+    @load_fn.setter
+    def load_fn(self, fn: Callable[..., Any] | None) -> None:
+        self._load_fn = fn
+
+    @property
+    def stats_fn(self) -> Callable[..., Any]:
+        def default() -> Callable[..., Any]:
+            from clusterlab.stats import disorder_stats
+
+            return disorder_stats
+        return self._get("_stats_fn", default)
+
+    @stats_fn.setter
+    def stats_fn(self, fn: Callable[..., Any] | None) -> None:
+        self._stats_fn = fn
+
+    @property
+    def corr_fn(self) -> Callable[..., Any]:
+        def default() -> Callable[..., Any]:
+            from clusterlab.stats import spatial_correlation
+
+            return spatial_correlation
+        return self._get("_corr_fn", default)
+
+    @corr_fn.setter
+    def corr_fn(self, fn: Callable[..., Any] | None) -> None:
+        self._corr_fn = fn
+
+    # ---------------------------------------------------------- settings
+    def selected_molecules(self) -> npt.NDArray[np.int64]:
+        """Molecule ids of the current selection (random subset when asked)."""
+        import re
+
+        text = self.molecules.value.strip()
+        if re.fullmatch(r"[\d\s,\-]+", text or "x"):
+            ids: list[int] = []
+            for part in filter(None, (p.strip() for p in text.split(","))):
+                if "-" in part:
+                    a, b = (int(x) for x in part.split("-", 1))
+                    ids.extend(range(a, b + 1))
+                else:
+                    ids.append(int(part))
+            sel = np.asarray(self.film.select(ids), dtype=np.int64)
+        else:
+            sel = np.asarray(self.film.select(text or None), dtype=np.int64)
+        n = int(self.n_molecules.value)
+        if 0 < n < len(sel):
+            rng = np.random.default_rng(int(self.seed.value))
+            sel = np.sort(rng.choice(sel, size=n, replace=False))
+        return sel
+
+    def build_method(self) -> Any:
+        return self.method_controls.build()
+
+    def settings(self) -> dict[str, Any]:
+        """What the sample will be run with (ids, frames, radii, store path, runner, seed)."""
+        return {
+            "molecules": self.selected_molecules(),
+            "frames": parse_frames(self.frames.value, self.film.n_frames),
+            "radii": parse_radii(self.radii.value),
+            "store": self.store.value.strip(),
+            "runner": str(self.runner.value),
+            "seed": int(self.seed.value),
+        }
+
+    # --------------------------------------------------------------- run
+    def run(self) -> "DisorderPanel":
+        """Start the sample in a background thread (returns at once)."""
+        if self.running:
+            self._set_status("a sample is already running; cancel it first", "warn")
+            return self
+        self.errors.clear_output()
+        self.error = ""
+        self.exception = None
+        self.rows = []
+        self.result = None
+        try:
+            s = self.settings()
+            if not s["store"]:
+                from clusterlab.errors import InputError
+
+                raise InputError("a store path is needed: the sample writes every site into it as it finishes.")
+            method = self.build_method()
+            fn = self.sample_fn
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc)
+            return self
+        self._last_draw = -np.inf
+        self.progress.max = len(s["molecules"]) * len(s["frames"]) * len(s["radii"])
+        self.progress.value = 0
+        self.progress.bar_style = "info"
+        self.run_button.disabled = True
+        self.cancel_button.disabled = False
+        self._set_status(f"sampling {len(s['molecules'])} molecule(s) × {len(s['frames'])} frame(s) × "
+                         f"{len(s['radii'])} radius/radii", "info")
+        self._radius_chosen = False
+        self._start(self._work, (fn, method, s), "clusterlab-sample")
+        return self
+
+    def _work(self, fn: Callable[..., Any], method: Any, s: dict[str, Any]) -> None:
+        from clusterlab.store import ResultStore
+
+        try:
+            with ResultStore(s["store"]) as store:
+                radius: float | list[float] = s["radii"][0] if len(s["radii"]) == 1 else list(s["radii"])
+                res = fn(self.film, s["molecules"], s["frames"], radius, method, store=store,
+                         runner=s["runner"], seed=s["seed"], progress=False, on_result=self._on_result,
+                         cancel=self._cancel)
+                self.result = res
+        except Exception as exc:  # noqa: BLE001
+            if self._cancel.is_set() and "cancel" in type(exc).__name__.lower():
+                self._set_status(f"cancelled after {len(self.rows)} site(s)", "warn")
+            else:
+                self._fail(exc)
+        else:
+            table = getattr(res, "table", None)
+            if isinstance(table, pd.DataFrame) and len(table):
+                self.set_data(table)
+            elif self.rows:
+                self.set_data(pd.DataFrame(self.rows))
+            failures = list(getattr(res, "failures", []) or [])
+            if failures:
+                self.errors.append_stderr("failed sites:\n" + "\n".join(map(str, failures)) + "\n")
+            if self._cancel.is_set():
+                self._set_status(f"cancelled after {len(self.rows)} site(s); they are in the store", "warn")
+                self.progress.bar_style = "warning"
+            else:
+                self.progress.value = self.progress.max
+                self.progress.bar_style = "success" if not failures else "warning"
+                self._set_status(f"finished: {len(self.data)} site energies"
+                                 + (f", {len(failures)} failed (see below)" if failures else ""),
+                                 "ok" if not failures else "warn")
+        finally:
+            self.run_button.disabled = False
+            self.cancel_button.disabled = True
+
+    def _on_result(self, row: dict) -> None:
+        """Called by the sample (worker thread) after each site; redraws at
+        most every :attr:`redraw_interval_s` seconds (always at the end)."""
+        try:
+            with self._lock:
+                self.rows.append(dict(row))
+                df = pd.DataFrame(self.rows)
+            self.progress.value = min(len(self.rows), self.progress.max)
+            now = time.monotonic()
+            if now - self._last_draw >= self.redraw_interval_s:
+                self.set_data(df)
+                self._last_draw = time.monotonic()
+            else:
+                self.data = df
+        except Exception:  # noqa: BLE001
+            self.errors.append_stderr(traceback.format_exc())
+
+    # -------------------------------------------------------------- data
+    def load(self, source: str | os.PathLike[str] | pd.DataFrame | None = None) -> pd.DataFrame:
+        """Show a site-energy table: a DataFrame, or a result store path
+        (default: the store box)."""
+        try:
+            if isinstance(source, pd.DataFrame):
+                df = source
+            else:
+                path = os.fspath(source) if source is not None else self.store.value.strip()
+                df = self.load_fn(self.film, path)
+            self.set_data(df)
+            self._set_status(f"loaded {len(df)} site energies", "ok")
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc)
+        return self.data
+
+    def set_data(self, df: pd.DataFrame) -> None:
+        """Replace the shown table and redraw everything."""
+        self.data = df.reset_index(drop=True)
+        qs = [c for c in self.data.columns if str(c).endswith("_eV")
+              and pd.api.types.is_numeric_dtype(self.data[c])]
+        keep_q = self.quantity.value if self.quantity.value in qs else (qs[0] if qs else None)
+        self._refreshing = True
+        try:
+            self.quantity.options = qs
+            self.quantity.value = keep_q
+            radii = sorted(pd.to_numeric(self.data.get("radius_A", pd.Series(dtype=float)),
+                                         errors="coerce").dropna().unique().tolist())
+            # the largest radius unless the user picked one
+            keep_r = self.radius_pick.value if (self._radius_chosen and self.radius_pick.value in radii) \
+                else (radii[-1] if radii else None)
+            self.radius_pick.options = [(f"{r:g}", r) for r in radii]
+            self.radius_pick.value = keep_r
+            frames = sorted(int(f) for f in self.data["frame"].dropna().unique()) if "frame" in self.data else []
+            keep_f = self.frame_pick.value if self.frame_pick.value in frames else (frames[0] if frames else None)
+            self.frame_pick.options = frames
+            self.frame_pick.value = keep_f
+        finally:
+            self._refreshing = False
+        self.refresh()
+
+    def _on_pick(self, change: dict) -> None:
+        if getattr(self, "_refreshing", False):
+            return
+        if change.get("owner") is self.radius_pick:
+            self._radius_chosen = True
+        with self.errors:
+            self.refresh()
+
+    def _subset(self) -> pd.DataFrame:
+        d = self.data
+        if self.radius_pick.value is not None and "radius_A" in d:
+            d = d[np.isclose(pd.to_numeric(d["radius_A"], errors="coerce"), float(self.radius_pick.value))]
+        return d
+
+    def _shift_column(self, q: str) -> str:
+        if q.endswith("_shift_eV"):
+            return q
+        cand = q[: -len("_eV")] + "_shift_eV"
+        return cand if cand in self.data.columns else q
+
+    def refresh(self) -> None:
+        """Redraw histogram, growth, film scene, correlation and table."""
+        self.table_html.value = _TABLE_CSS + frame_html(self.data)
+        q = self.quantity.value
+        if q is None or not len(self.data):
+            return
+        sub = self._subset()
+        vals = pd.to_numeric(sub[q], errors="coerce").to_numpy(dtype=float)
+        for step in (self._draw_histogram, self._draw_growth, self._draw_correlation):
+            try:
+                step(q, sub, vals)
+            except Exception as exc:  # noqa: BLE001 - one failed plot must not hide the others
+                self.errors.append_stderr(f"{step.__name__[6:]}: {type(exc).__name__}: {exc}\n")
+        try:
+            self._draw_film_scene()
+        except Exception:  # noqa: BLE001
+            self.errors.append_stderr(traceback.format_exc())
+
+    def _draw_histogram(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
+        from clusterlab.study.plots import plot_histogram
+
+        finite = vals[np.isfinite(vals)]
+        if finite.size < 3:
+            self.stats = None
+            self.stats_html.value = f"<i>{finite.size} site(s) so far; the statistics need at least 3.</i>"
+            return
+        self.stats = self.stats_fn(finite, seed=int(self.seed.value))
+        self.hist_plot.value = _style.figure_png(plot_histogram(finite, self.stats, label=q.replace("_eV", "")))
+        keys = ["n", "mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi", "sigma_chi2_lo",
+                "sigma_chi2_hi", "skewness", "excess_kurtosis", "normality_p", "normality_test", "confidence"]
+        st = self.stats
+        rows = "".join(f"<tr><td>{k}</td><td>{st[k]:.4f}</td></tr>" if isinstance(st[k], float)
+                       else f"<tr><td>{k}</td><td>{html.escape(str(st[k]))}</td></tr>" for k in keys if k in st)
+        self.stats_html.value = f'<table class="clusterlab-table clusterlab-stats">{rows}</table>'
+
+    def _draw_growth(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
+        from clusterlab.study.plots import plot_growth
+
+        col = self._shift_column(q)
+        if "radius_A" not in self.data:
+            return
+        rows = []
+        for r, g in self.data.groupby("radius_A"):
+            v = pd.to_numeric(g[col], errors="coerce").dropna().to_numpy(dtype=float)
+            if v.size >= 3:
+                s = self.stats_fn(v, seed=int(self.seed.value))
+                rows.append({"radius_A": float(r), **{k: float(s[k]) for k in
+                             ("mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi")}})
+        self.growth = pd.DataFrame(rows)
+        if len(rows) < 2:
+            self.growth_note.value = ("<i>σ and mean against radius need at least 2 radii with 3 or more "
+                                      "sites each (give several radii).</i>")
+            self.growth_plot.value = b""
+            return
+        self.growth_note.value = f"<span>{html.escape(col)} per radius</span>"
+        self.growth_plot.value = _style.figure_png(plot_growth(self.growth, label=col.replace("_eV", "")))
+
+    def _draw_correlation(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
+        from clusterlab.study.plots import plot_correlation
+
+        if not all(c in sub.columns for c in _CENTROID):
+            self.corr_note.value = "<i>the table has no molecule centroids.</i>"
+            return
+        ok = np.isfinite(vals)
+        if ok.sum() < 3:
+            self.corr_note.value = "<i>the spatial correlation needs at least 3 sites.</i>"
+            return
+        pos = sub.loc[ok, list(_CENTROID)].to_numpy(dtype=float)
+        frames = sub.loc[ok, "frame"].to_numpy(dtype=int) if "frame" in sub else None
+        box = None
+        if self.film.has_box:
+            box = {int(f): self.film.box(int(f)) for f in np.unique(frames)} if frames is not None \
+                else self.film.box(0)
+        self.correlation = self.corr_fn(pos, vals[ok], box, frames=frames, n_bins=10)
+        self.corr_note.value = (f"<span>{html.escape(q)}, {int(ok.sum())} sites; bins with at least "
+                                f"{self.min_pairs} pairs drawn</span>")
+        self.corr_plot.value = _style.figure_png(plot_correlation(self.correlation, min_pairs=self.min_pairs))
+
+    # ------------------------------------------------------------- scene
+    def _draw_film_scene(self) -> None:
+        film = self.film
+        frame = self.frame_pick.value if self.frame_pick.value is not None else 0
+        q = self.quantity.value
+        self.site_values = {}
+        if q is not None and len(self.data) and "frame" in self.data:
+            sub = self._subset()
+            sub = sub[sub["frame"] == frame]
+            vals = pd.to_numeric(sub[q], errors="coerce")
+            self.site_values = {int(m): float(v) for m, v in zip(sub["molecule"], vals) if np.isfinite(v)}
+        lo = min(self.site_values.values()) if self.site_values else 0.0
+        hi = max(self.site_values.values()) if self.site_values else 1.0
+        span = hi - lo if hi > lo else 1.0
+        mol_of_atom = film.molecule_of_atom
+        b = np.zeros(film.n_atoms)
+        chains = np.full(film.n_atoms, _style.CHAIN_FILM, dtype=object)
+        for m, v in self.site_values.items():
+            idx = film.molecule_atoms(m)
+            b[idx] = _style.BFACTOR_SCALE * (v - lo) / span
+            chains[idx] = _style.CHAIN_SITE
+        geo = film.frame_geometry(int(frame), periodic=film.has_box)
+        self.scene_pdb = _style.film_scene_pdb(film.symbols, geo.positions_A, mol_of_atom, film.molecule_resnames,
+                                               bfactors=b, chain=list(chains), title=f"site energies, frame {frame}")
+        self.colourbar.value = _style.colourbar_html(lo, hi, f"{q or 'site energy'} (eV), frame {frame}") \
+            if self.site_values else '<i style="color:#777">no site energies yet</i>'
+        if self.view is None:
+            return
+        import nglview
+
+        if self._site_comp is not None:
+            self.view.remove_component(self._site_comp)
+        comp = self.view.add_component(nglview.TextStructure(self.scene_pdb, ext="pdb"),
+                                       default_representation=False, name="sites")
+        comp.add_representation("line", selection=f":{_style.CHAIN_FILM}", color=_style.FILM_REST, opacity=0.5)
+        if self.site_values:
+            comp.add_representation("ball+stick", selection=f":{_style.CHAIN_SITE}", color="bfactor",
+                                    color_scale=list(_style.ENERGY_SCALE),
+                                    color_domain=[0.0, _style.BFACTOR_SCALE])
+        self._site_comp = comp
+
+    def _on_tab(self, change: dict) -> None:
+        # a view created in a hidden tab has no size: fit it when its tab shows
+        if change["new"] == 2 and self.view is not None:
+            with self.errors:
+                self.view.handle_resize()
+                if self._site_comp is not None:
+                    self._site_comp.center()
+
+    # ------------------------------------------------------------ export
+    def export(self, path: str | os.PathLike[str] | None = None) -> str:
+        """Write the shown table as CSV (one row per site) and return the path.
+
+        Raises
+        ------
+        clusterlab.errors.InputError
+            If there is nothing to export.
+        """
+        from clusterlab.errors import InputError
+
+        if not len(self.data):
+            raise InputError("nothing to export yet: run a sample or load a store first.")
+        p = os.fspath(path) if path is not None else self.export_path.value.strip()
+        if not p:
+            raise InputError("no export path given; type a file name such as 'site_energies.csv'.")
+        parent = os.path.dirname(os.path.abspath(p))
+        os.makedirs(parent, exist_ok=True)
+        self.data.to_csv(p, index=False)
+        self._set_status(f"wrote {len(self.data)} rows to {html.escape(os.path.abspath(p))}", "ok")
+        return p
+
+    # ---------------------------------------------------------- handlers
+    def _on_run_click(self, _b: Any) -> None:
+        with self.errors:
+            self.run()
+
+    def _on_load_click(self, _b: Any) -> None:
+        with self.errors:
+            self.load()
+
+    def _on_export_click(self, _b: Any) -> None:
+        try:
+            self.export()
+        except Exception as exc:  # noqa: BLE001
+            self._fail(exc)
+
+    def _fail(self, exc: BaseException) -> None:
+        self.exception = exc
+        self.error = f"{type(exc).__name__}: {exc}"
+        self.errors.append_stderr("".join(traceback.format_exception(type(exc), exc, exc.__traceback__)))
+        self.progress.bar_style = "danger"
+        self._set_status(f"failed: {html.escape(self.error)}", "error")
+
+    def _set_status(self, text: str, kind: str) -> None:
+        colour = {"ok": _style.OK, "warn": _style.WARN, "error": "#a00", "info": "#335"}.get(kind, "#555")
+        self.status.value = f'<span class="clusterlab-status" style="color:{colour}">{text}</span>'

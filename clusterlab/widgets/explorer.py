@@ -1,0 +1,440 @@
+"""The film explorer: pick a molecule, carve a cluster, see it in 3D.
+
+A thin layer over :meth:`clusterlab.Film.carve` and
+:meth:`clusterlab.Film.radius_warnings`: every control change calls the
+library and redraws; nothing here computes physics. The 3D view gets a copy
+of the coordinates as PDB text (never the analysis Universe).
+"""
+
+from __future__ import annotations
+
+import re
+import traceback
+from collections.abc import Callable
+from typing import Any
+
+import ipywidgets as widgets
+import numpy as np
+import numpy.typing as npt
+
+from . import _style
+
+__all__ = ["FilmExplorer"]
+
+#: most molecules listed in the molecule dropdown at once
+MAX_LISTED = 2000
+
+
+def _make_view() -> Any:
+    import nglview
+
+    view = nglview.NGLWidget()
+    view.background = _style.BACKGROUND
+    view._set_size("100%", "460px")  # the stage's own size (a Layout height leaves the canvas at 300 px)
+    return view
+
+
+class FilmExplorer(widgets.VBox):
+    """Interactive carving of one film: 3D view, controls and live readout.
+
+    Parameters
+    ----------
+    film : clusterlab.Film
+        Any film :func:`clusterlab.load_film` reads.
+    molecule : int, default 0
+        Central molecule id at start.
+    radius_A : float, default 10.0
+        Cut radius at start (Å).
+    qm_shell_A : float, default 0.0
+        QM-shell distance at start (Å): whole neighbours within it join
+        the QM region.
+    rule : {"atom", "centroid"}
+        Cut rule at start (see :meth:`clusterlab.Film.carve`).
+    frame : int, default 0
+    max_radius_A : float, default 40.0
+        Upper end of the radius slider (Å).
+    show_view : bool, default True
+        False builds the controls and readout without a 3D view (for
+        scripts; the view can still be made later with :meth:`make_view`).
+
+    Attributes
+    ----------
+    film : clusterlab.Film
+    cluster : clusterlab.Cluster or None
+        The cluster of the current settings (None after a carve error).
+    error : str
+        Message of the last carve error ("" when the last carve worked).
+    view : nglview.NGLWidget or None
+    carve_fn : callable or None
+        ``carve_fn(molecule, radius, frame=, qm_shell=, rule=, periodic=)``;
+        None (default) uses ``film.carve``. Tests replace it.
+    scene_pdb : str
+        The cluster PDB text last sent to the view.
+    errors : ipywidgets.Output
+        Unexpected exceptions from callbacks.
+
+    Examples
+    --------
+    >>> ex = FilmExplorer(film, molecule=3, radius_A=12.0)  # doctest: +SKIP
+    >>> ex                                                   # doctest: +SKIP
+    >>> ex.radius_A = 15.0; ex.cluster.n_env_molecules       # doctest: +SKIP
+    """
+
+    def __init__(self, film: Any, *, molecule: int = 0, radius_A: float = 10.0, qm_shell_A: float = 0.0,
+                 rule: str = "atom", frame: int = 0, max_radius_A: float = 40.0, show_view: bool = True,
+                 **kwargs: Any) -> None:
+        self.film = film
+        self.carve_fn: Callable[..., Any] | None = None
+        self.cluster: Any = None
+        self.error = ""
+        self.scene_pdb = ""
+        self._scene_atom_molecule: npt.NDArray[np.int64] = np.zeros(0, dtype=np.int64)
+        self._callbacks: list[Callable[[Any], None]] = []
+        self._film_comp: Any = None
+        self._cluster_comp: Any = None
+        self._film_comp_frame: int | None = None
+        self._busy = False
+        self._centred: int | None = None
+        self.n_carves = 0
+
+        mols = film.molecules
+        self.search = widgets.Text(
+            value="", placeholder="id, residue name or selection", description="find",
+            continuous_update=False, layout=widgets.Layout(width="260px"))
+        self.molecule_picker = widgets.Dropdown(
+            options=self._options(np.arange(min(len(mols), MAX_LISTED))), description="molecule",
+            layout=widgets.Layout(width="260px"))
+        self.radius_slider = widgets.FloatSlider(
+            value=float(radius_A), min=0.0, max=float(max(max_radius_A, radius_A)), step=0.5,
+            description="radius (Å)", continuous_update=False, readout_format=".1f",
+            layout=widgets.Layout(width="380px"))
+        self.radius_slider.add_class("clusterlab-radius")
+        self.shell_slider = widgets.FloatSlider(
+            value=float(qm_shell_A), min=0.0, max=8.0, step=0.25, description="QM shell (Å)",
+            continuous_update=False, readout_format=".2f", layout=widgets.Layout(width="380px"))
+        self.rule_toggle = widgets.ToggleButtons(
+            options=[("atom within radius", "atom"), ("centroid within radius", "centroid")],
+            value=rule, description="cut rule", style={"button_width": "150px"})
+        self.frame_slider = widgets.IntSlider(
+            value=int(frame), min=0, max=max(film.n_frames - 1, 0), description="frame",
+            continuous_update=False, disabled=film.n_frames <= 1, layout=widgets.Layout(width="380px"))
+        self.periodic_box = widgets.Checkbox(
+            value=bool(film.has_box), description="periodic images", disabled=not film.has_box, indent=False)
+        self.click_box = widgets.Checkbox(value=True, description="click in view picks the centre", indent=False)
+        self.readout = widgets.HTML()
+        self.legend = widgets.HTML()
+        self.errors = widgets.Output(layout=widgets.Layout(max_height="160px", overflow="auto"))
+        self.view: Any = None
+
+        controls = widgets.VBox([
+            widgets.HBox([self.search, self.molecule_picker]),
+            self.radius_slider, self.shell_slider, self.rule_toggle, self.frame_slider,
+            widgets.HBox([self.periodic_box, self.click_box]),
+        ])
+        side = widgets.VBox([self.readout, self.legend], layout=widgets.Layout(width="330px"))
+        self._top = widgets.HBox([controls, side])
+        children: list[widgets.Widget] = [self._top]
+        if show_view:
+            self.view = _make_view()
+            self.view.observe(self._on_picked, names="picked")
+            self.view.observe(self._on_view_loaded, names=["loaded", "n_components"])
+            children.insert(0, self.view)
+        children.append(self.errors)
+        super().__init__(children, **kwargs)
+        self.add_class("clusterlab-explorer")
+
+        self.select_molecule(int(molecule))
+        for w in (self.molecule_picker, self.radius_slider, self.shell_slider, self.rule_toggle,
+                  self.frame_slider, self.periodic_box):
+            w.observe(self._on_control, names="value")
+        self.search.observe(self._on_search, names="value")
+        self.refresh()
+
+    # ------------------------------------------------------------- settings
+    @property
+    def molecule(self) -> int:
+        """Central molecule id."""
+        return int(self.molecule_picker.value)
+
+    @molecule.setter
+    def molecule(self, value: int) -> None:
+        self.select_molecule(value)
+
+    @property
+    def radius_A(self) -> float:
+        """Cut radius (Å)."""
+        return float(self.radius_slider.value)
+
+    @radius_A.setter
+    def radius_A(self, value: float) -> None:
+        if value > self.radius_slider.max:
+            self.radius_slider.max = float(value)
+        self.radius_slider.value = float(value)
+
+    @property
+    def qm_shell_A(self) -> float:
+        """QM-shell distance (Å)."""
+        return float(self.shell_slider.value)
+
+    @qm_shell_A.setter
+    def qm_shell_A(self, value: float) -> None:
+        self.shell_slider.value = float(value)
+
+    @property
+    def rule(self) -> str:
+        return str(self.rule_toggle.value)
+
+    @rule.setter
+    def rule(self, value: str) -> None:
+        self.rule_toggle.value = value
+
+    @property
+    def frame(self) -> int:
+        return int(self.frame_slider.value)
+
+    @frame.setter
+    def frame(self, value: int) -> None:
+        self.frame_slider.value = int(value)
+
+    @property
+    def periodic(self) -> bool:
+        return bool(self.periodic_box.value)
+
+    def settings(self) -> dict[str, Any]:
+        """Current carve settings as keyword arguments of the library calls."""
+        return {"molecule": self.molecule, "radius": self.radius_A, "frame": self.frame,
+                "qm_shell": self.qm_shell_A, "rule": self.rule, "periodic": self.periodic}
+
+    def on_change(self, callback: Callable[[Any], None]) -> None:
+        """Call ``callback(cluster)`` after every successful re-carve."""
+        self._callbacks.append(callback)
+
+    # ------------------------------------------------------------ molecules
+    def _options(self, ids: npt.ArrayLike) -> list[tuple[str, int]]:
+        mols = self.film.molecules
+        out = []
+        for i in np.asarray(ids, dtype=np.int64)[:MAX_LISTED]:
+            row = mols.iloc[int(i)]
+            out.append((f"{int(i)} · {row['resname']} {row['formula']}", int(i)))
+        return out
+
+    def select_molecule(self, molecule: int) -> None:
+        """Make ``molecule`` the centre (adds it to the dropdown if needed)."""
+        mol = self.film._check_molecule(int(molecule))
+        values = [v for _, v in self.molecule_picker.options]
+        if mol not in values:
+            self.molecule_picker.options = self._options([mol]) + list(self.molecule_picker.options)
+        self.molecule_picker.value = mol
+
+    def find_molecules(self, text: str) -> npt.NDArray[np.int64]:
+        """Molecule ids matching ``text``: ids (``"7"``, ``"3-9, 12"``), a
+        residue name (case-insensitive) or an MDAnalysis selection string."""
+        text = text.strip()
+        if not text:
+            return np.arange(self.film.n_molecules)
+        if re.fullmatch(r"[\d\s,\-]+", text):
+            ids: list[int] = []
+            for part in filter(None, (p.strip() for p in text.split(","))):
+                if "-" in part:
+                    a, b = (int(x) for x in part.split("-", 1))
+                    ids.extend(range(a, b + 1))
+                else:
+                    ids.append(int(part))
+            return np.asarray(self.film.select(ids), dtype=np.int64)
+        names = self.film.molecules["resname"].astype(str).str.upper()
+        hit = np.flatnonzero(names.to_numpy() == text.upper())
+        if hit.size:
+            return hit.astype(np.int64)
+        return np.asarray(self.film.select(text), dtype=np.int64)
+
+    def _on_search(self, change: dict) -> None:
+        with self.errors:
+            try:
+                ids = self.find_molecules(str(change["new"]))
+            except Exception as exc:  # noqa: BLE001 - shown to the user
+                self.error = str(exc)
+                self._show_readout()
+                return
+            self.molecule_picker.options = self._options(ids)
+            # the options change already selected the first match and re-carved
+
+    def _on_picked(self, change: dict) -> None:
+        with self.errors:
+            if not self.click_box.value:
+                return
+            mol = self.molecule_from_pick(change["new"])
+            if mol is not None and mol != self.molecule:
+                self.select_molecule(mol)
+
+    def molecule_from_pick(self, picked: dict) -> int | None:
+        """Film molecule id of an atom picked in the view (nglview's
+        ``picked`` dict: ``{"atom1": {"index": i, ...}, "component": c}``)."""
+        atom = (picked or {}).get("atom1")
+        if not isinstance(atom, dict):
+            return None
+        comp = picked.get("component")
+        idx = atom.get("index")
+        if idx is not None and self.view is not None:
+            ids = self.view._ngl_component_ids
+            if self._cluster_comp is not None and comp is not None and comp < len(ids) \
+                    and ids[comp] == self._cluster_comp.id and 0 <= idx < len(self._scene_atom_molecule):
+                return int(self._scene_atom_molecule[idx])
+            if self._film_comp is not None and comp is not None and comp < len(ids) \
+                    and ids[comp] == self._film_comp.id and 0 <= idx < len(self.film.molecule_of_atom):
+                return int(self.film.molecule_of_atom[idx])
+        resno = atom.get("resno")  # residue number = molecule id + 1 in both scenes
+        if resno is not None and 1 <= int(resno) <= self.film.n_molecules:
+            return int(resno) - 1
+        return None
+
+    # ------------------------------------------------------------- updates
+    def _on_control(self, change: dict) -> None:
+        with self.errors:
+            self.refresh()
+
+    def carve(self) -> Any:
+        """Carve with the current settings (library call) and return the cluster."""
+        fn = self.carve_fn if self.carve_fn is not None else self.film.carve
+        s = self.settings()
+        return fn(s.pop("molecule"), s.pop("radius"), **s)
+
+    def refresh(self) -> None:
+        """Re-carve, update the readout, legend and 3D view."""
+        if self._busy or self.molecule_picker.value is None:
+            return
+        self._busy = True
+        try:
+            try:
+                self.cluster = self.carve()
+                self.error = ""
+                self.n_carves += 1
+            except Exception as exc:  # noqa: BLE001 - carve errors are shown, not raised
+                self.cluster = None
+                self.error = f"{type(exc).__name__}: {exc}"
+            self._show_readout()
+            self._draw()
+            if self.cluster is not None:
+                for cb in self._callbacks:
+                    try:
+                        cb(self.cluster)
+                    except Exception:  # noqa: BLE001
+                        self.errors.append_stderr(traceback.format_exc())
+        finally:
+            self._busy = False
+
+    def warnings(self) -> list[str]:
+        """Plain-language warnings about the current cluster."""
+        out: list[str] = []
+        if not self.periodic:
+            out.append("no periodic images: molecules are taken as they are in the file"
+                       + ("" if self.film.has_box else " (the film has no box)") + ".")
+        else:
+            out.extend(self.film.radius_warnings(self.radius_A, self.frame))
+        c = self.cluster
+        if c is not None:
+            if abs(float(c.net_env_charge)) > 1e-3:
+                out.append(f"the point-charge environment is not neutral: net {float(c.net_env_charge):+.3f} e.")
+            if int(c.qm_charge) != 0:
+                out.append(f"the QM region carries a net charge of {int(c.qm_charge):+d} e.")
+            if c.n_charges == 0:
+                out.append("no point charges inside this radius: the calculation is a vacuum one.")
+        return out
+
+    def _show_readout(self) -> None:
+        mol = self.molecule
+        row = self.film.molecules.iloc[mol]
+        rows = [("central molecule", f"{mol} ({row['resname']}, {row['formula']})"),
+                ("frame", f"{self.frame} of {self.film.n_frames}")]
+        c = self.cluster
+        if c is not None:
+            rows += [
+                ("QM molecules", str(len(c.qm_molecules))),
+                ("QM atoms", str(len(c.qm_symbols))),
+                ("environment molecules", str(int(c.n_env_molecules))),
+                ("point charges", str(int(c.n_charges))),
+                ("net environment charge", f"{float(c.net_env_charge):+.3f} e"),
+            ]
+        self.readout.value = _style.readout_html(rows, self.warnings(), [self.error] if self.error else [])
+        q_max = float(np.max(np.abs(c.env_charges))) if c is not None and c.n_charges else 1.0
+        n_shell = len(c.qm_molecules) - 1 if c is not None else 0
+        self.legend.value = _style.cluster_legend_html(
+            q_max, n_qm_atoms=int(np.sum(np.asarray(c.qm_atom_molecules) == mol)) if c is not None else 0,
+            n_shell_molecules=n_shell)
+        self._q_max = q_max
+
+    # ---------------------------------------------------------------- view
+    def make_view(self) -> Any:
+        """Create (if needed) and return the 3D view."""
+        if self.view is None:
+            self.view = _make_view()
+            self.view.observe(self._on_picked, names="picked")
+            self.view.observe(self._on_view_loaded, names=["loaded", "n_components"])
+            self.children = (self.view, *self.children)
+            self._draw()
+        return self.view
+
+    def _draw(self) -> None:
+        if self.view is None:
+            if self.cluster is not None:
+                self.scene_pdb, self._scene_atom_molecule = _style.cluster_scene_pdb(self.cluster, self.molecule)
+            return
+        view = self.view
+        if self._film_comp is None or self._film_comp_frame != self.frame:
+            if self._cluster_comp is not None:
+                view.remove_component(self._cluster_comp)
+                self._cluster_comp = None
+            if self._film_comp is not None:
+                view.remove_component(self._film_comp)
+            geo = self.film.frame_geometry(self.frame, periodic=self.periodic and self.film.has_box)
+            text = _style.film_scene_pdb(self.film.symbols, geo.positions_A, self.film.molecule_of_atom,
+                                         self.film.molecule_resnames, title=f"frame {self.frame}")
+            self._film_comp = self._add_text(text, "film")
+            self._film_comp.add_representation("line", color=_style.FILM_REST, opacity=0.55)
+            self._film_comp_frame = self.frame
+        if self._cluster_comp is not None:
+            view.remove_component(self._cluster_comp)
+            self._cluster_comp = None
+        if self.cluster is None:
+            self.scene_pdb, self._scene_atom_molecule = "", np.zeros(0, dtype=np.int64)
+            return
+        self.scene_pdb, self._scene_atom_molecule = _style.cluster_scene_pdb(self.cluster, self.molecule)
+        comp = self._add_text(self.scene_pdb, "cluster")
+        q = _style.BFACTOR_SCALE * self._q_max
+        comp.add_representation("ball+stick", selection=f":{_style.CHAIN_QM}", color=_style.QM_CENTRAL,
+                                radius_scale=1.5)
+        if len(self.cluster.qm_molecules) > 1:
+            comp.add_representation("ball+stick", selection=f":{_style.CHAIN_SHELL}", color=_style.QM_SHELL,
+                                    radius_scale=1.3)
+        if self.cluster.n_charges:
+            comp.add_representation("ball+stick", selection=f":{_style.CHAIN_ENV}", color="bfactor",
+                                    color_scale=list(_style.CHARGE_SCALE), color_domain=[-q, q],
+                                    radius_scale=0.6)
+        self._cluster_comp = comp
+        if self._centred != self.molecule and view.loaded:
+            self._centre_view()
+
+    def _centre_view(self, duration_ms: int = 0) -> None:
+        """Point the camera at the central molecule."""
+        if self.view is None or self._cluster_comp is None:
+            return
+        # fit the whole cluster: it is a sphere around the central molecule
+        self._cluster_comp.center(selection="*", duration=duration_ms)
+        self._centred = self.molecule
+
+    def _on_view_loaded(self, change: dict) -> None:
+        # calls made before the front end loaded are replayed without camera
+        # moves: centre once the replayed components are all there
+        with self.errors:
+            view = self.view
+            if view is None or not view.loaded:
+                return
+            if change["name"] == "loaded":
+                view.handle_resize()
+            if view.n_components >= len(view._ngl_component_ids) and self._centred != self.molecule:
+                self._centre_view()
+
+    def _add_text(self, text: str, name: str) -> Any:
+        import nglview
+
+        return self.view.add_component(nglview.TextStructure(text, ext="pdb"), default_representation=False,
+                                       name=name)

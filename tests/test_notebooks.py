@@ -1,0 +1,99 @@
+"""Every notebook in notebooks/ runs top to bottom without an error (nbclient).
+
+They run the real library (demo film, radius scan, site sample) with tiny
+settings, so they take minutes: marked slow. Files they write go to a
+scratch folder (``CLUSTERLAB_WORKDIR``).
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import pytest
+
+nbformat = pytest.importorskip("nbformat")
+nbclient = pytest.importorskip("nbclient")
+
+ROOT = Path(__file__).resolve().parents[1]
+NOTEBOOKS = sorted((ROOT / "notebooks").glob("*.ipynb"))
+
+
+def test_notebooks_are_there():
+    names = {p.name for p in NOTEBOOKS}
+    assert {"01_demo_walkthrough.ipynb", "02_your_film.ipynb"} <= names
+
+
+def _errors(nb) -> list[str]:
+    out = []
+    for cell in nb.cells:
+        for o in cell.get("outputs", []):
+            if o.get("output_type") == "error":
+                out.append(f"{o.get('ename')}: {o.get('evalue')}")
+    return out
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("path", NOTEBOOKS, ids=[p.stem for p in NOTEBOOKS])
+def test_notebook_runs(path, tmp_path, monkeypatch):
+    monkeypatch.setenv("CLUSTERLAB_WORKDIR", str(tmp_path / "out"))
+    monkeypatch.setenv("OMP_NUM_THREADS", os.environ.get("OMP_NUM_THREADS", "2"))
+    # the kernel must import this checkout's clusterlab even when it is not installed
+    monkeypatch.setenv("PYTHONPATH", os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")])))
+    nb = nbformat.read(path, as_version=4)
+    client = nbclient.NotebookClient(nb, timeout=1800, kernel_name="python3",
+                                     resources={"metadata": {"path": str(tmp_path)}})
+    client.execute()
+    assert _errors(nb) == []
+    # the widgets were displayed (a widget view in the outputs of the explorer cell)
+    views = [o for c in nb.cells for o in c.get("outputs", [])
+             if "application/vnd.jupyter.widget-view+json" in o.get("data", {})]
+    assert len(views) >= 3
+    # the export really wrote the site energies
+    csvs = list((tmp_path / "out").glob("*site_energies.csv"))
+    assert csvs and csvs[0].stat().st_size > 0
+
+
+def _set_parameters(source: str, **values: str) -> str:
+    """Replace ``NAME = ...`` lines of the parameter cell."""
+    lines = source.splitlines()
+    for name, value in values.items():
+        hits = [i for i, ln in enumerate(lines) if ln.split("=")[0].strip() == name]
+        assert hits, f"parameter {name} not found in the first code cell"
+        lines[hits[0]] = f"{name} = {value}"
+    return "\n".join(lines)
+
+
+@pytest.mark.slow
+def test_your_film_notebook_on_another_film(tmp_path, monkeypatch):
+    """02_your_film on a film that is not the demo: GRO + XTC of water, charges
+    from a residue table (the user-facing path of a film without topology charges)."""
+    import numpy as np
+    from conftest import build_water_universe, lattice_centres
+
+    rng = np.random.default_rng(5)
+    u, _ = build_water_universe(lattice_centres(4, 0.15, rng), np.array([16.0, 16, 16, 90, 90, 90]),
+                                seed=1, n_frames=2)
+    gro, xtc = tmp_path / "water.gro", tmp_path / "water.xtc"
+    u.atoms.write(str(gro))
+    with __import__("MDAnalysis").Writer(str(xtc), u.atoms.n_atoms) as w:
+        for _ in u.trajectory:
+            w.write(u.atoms)
+    monkeypatch.setenv("CLUSTERLAB_WORKDIR", str(tmp_path / "out"))
+    monkeypatch.setenv("PYTHONPATH", os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")])))
+    nb = nbformat.read(ROOT / "notebooks" / "02_your_film.ipynb", as_version=4)
+    cell = next(c for c in nb.cells if c.cell_type == "code")
+    cell.source = _set_parameters(
+        cell.source, **{"TOPOLOGY, TRAJECTORY": f"{str(gro)!r}, {str(xtc)!r}",
+                        "CHARGES": "{'WAT': [-0.834, 0.417, 0.417]}", "RADII_A": "'4, 6'",
+                        "SAMPLE_RADII_A": "(4.0,)", "N_SITES": "3", "FRAMES": "'all'", "BASIS": "'sto-3g'",
+                        "N_SINGLETS, N_TRIPLETS": "1, 1"})
+    nbclient.NotebookClient(nb, timeout=600, kernel_name="python3",
+                            resources={"metadata": {"path": str(tmp_path)}}).execute()
+    assert _errors(nb) == []
+    import pandas as pd
+
+    sites = pd.read_csv(tmp_path / "out" / "site_energies.csv")
+    assert len(sites) == 3 * 2 and set(sites.frame) == {0, 1}
+    conv = pd.read_csv(tmp_path / "out" / "convergence.csv")
+    assert sorted(conv.radius_A[conv.radius_A > 0]) == [4.0, 6.0]

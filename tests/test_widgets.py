@@ -1,0 +1,433 @@
+"""Widget behaviour at the Python level (no browser, dummy comms).
+
+The widgets hold no science, so the references here are the library calls
+themselves (``Film.carve``, ``disorder_stats``) and numpy: each test checks
+that a state change drives the right library call with the right settings
+and that its output reaches the right widget.
+"""
+
+from __future__ import annotations
+
+import html
+import re
+import threading
+import time
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from clusterlab import film_from_universe
+from clusterlab.store import ResultStore, task_key
+from clusterlab.widgets import DisorderPanel, FilmExplorer, ShiftScanPanel
+from clusterlab.widgets._style import cluster_scene_pdb
+from clusterlab.widgets.calc import parse_radii
+from clusterlab.widgets.disorder import parse_frames
+
+from conftest import build_water_universe, lattice_centres
+
+BOX = np.array([16.0, 16.0, 16.0, 90.0, 90.0, 90.0])
+
+
+@pytest.fixture
+def film():
+    rng = np.random.default_rng(7)
+    u, _ = build_water_universe(lattice_centres(4, 0.15, rng), BOX, seed=3, n_frames=2)
+    return film_from_universe(u)
+
+
+def _cell(html: str, key: str) -> str:
+    m = re.search(rf'class="clusterlab-{key}">([^<]*)<', html)
+    assert m is not None, f"readout has no {key!r} cell: {html[:400]}"
+    return m.group(1)
+
+
+# ------------------------------------------------------------------ explorer
+def test_radius_slider_recarves_and_updates_readout(film):
+    ex = FilmExplorer(film, molecule=5, radius_A=4.0)
+    small = film.carve(5, 4.0)
+    assert int(_cell(ex.readout.value, "environment-molecules")) == small.n_env_molecules
+    ex.radius_slider.value = 7.5
+    ref = film.carve(5, 7.5)
+    assert ref.n_env_molecules > small.n_env_molecules  # the check below can fail
+    assert ex.cluster.n_env_molecules == ref.n_env_molecules
+    assert int(_cell(ex.readout.value, "environment-molecules")) == ref.n_env_molecules
+    assert int(_cell(ex.readout.value, "point-charges")) == ref.n_charges
+    assert _cell(ex.readout.value, "net-environment-charge") == f"{ref.net_env_charge:+.3f} e"
+    # the 3D scene (a PDB copy) holds exactly the QM atoms and the charges
+    n_atoms = sum(1 for line in ex.scene_pdb.splitlines() if line.startswith("HETATM"))
+    assert n_atoms == len(ref.qm_symbols) + ref.n_charges
+
+
+def test_other_controls_drive_carve_settings(film):
+    calls = []
+    ex = FilmExplorer(film, molecule=2, radius_A=5.0, show_view=False)
+    real = film.carve
+
+    def recording(molecule, radius, **kw):
+        calls.append((molecule, radius, kw))
+        return real(molecule, radius, **kw)
+
+    ex.carve_fn = recording
+    ex.shell_slider.value = 3.0
+    ex.rule_toggle.value = "centroid"
+    ex.frame_slider.value = 1
+    assert calls[-1] == (2, 5.0, {"frame": 1, "qm_shell": 3.0, "rule": "centroid", "periodic": True})
+    ref = film.carve(2, 5.0, frame=1, qm_shell=3.0, rule="centroid")
+    assert ex.cluster.qm_molecules == ref.qm_molecules
+    assert len(ref.qm_molecules) > 1  # the QM shell really took neighbours in
+
+
+def test_picking_in_the_view_changes_the_centre(film):
+    ex = FilmExplorer(film, molecule=0, radius_A=6.0)
+    film_comp = ex.view._ngl_component_ids.index(ex._film_comp.id)
+    atom = int(film.molecule_atoms(9)[1])
+    ex.view.picked = {"atom1": {"index": atom, "resno": 10, "name": "[WAT]10:F.HW1"}, "component": film_comp}
+    assert ex.molecule == 9
+    assert ex.cluster.center == 9
+    # an atom of the cluster scene: a point charge of some environment molecule
+    clus_comp = ex.view._ngl_component_ids.index(ex._cluster_comp.id)
+    n_qm = len(ex.cluster.qm_symbols)
+    target = int(ex.cluster.env_molecules[4])
+    ex.view.picked = {"atom1": {"index": n_qm + 4}, "component": clus_comp}
+    assert ex.molecule == target
+    assert ex.cluster.center == target
+    # clicking is ignored when switched off
+    ex.click_box.value = False
+    ex.view.picked = {"atom1": {"index": int(film.molecule_atoms(3)[0])}, "component": film_comp}
+    assert ex.molecule == target
+
+
+def test_warning_for_radius_beyond_half_box(film):
+    ex = FilmExplorer(film, molecule=1, radius_A=5.0, show_view=False)
+    assert "clusterlab-warning" not in ex.readout.value
+    ex.radius_A = 9.0  # half of the 16 Å box is 8 Å
+    assert "exceeds half the smallest box width" in ex.readout.value
+    assert film.radius_warnings(9.0, 0)[0].split(":")[0] in ex.readout.value
+
+
+def test_non_neutral_environment_is_flagged(film):
+    u = film.universe
+    q = np.asarray(u.atoms.charges).copy()
+    q[film.molecule_atoms(6)] += 1.0 / 3.0  # molecule 6 becomes a +1 ion
+    u.atoms.charges = q
+    charged = film_from_universe(u)
+    ex = FilmExplorer(charged, molecule=5, radius_A=7.0, show_view=False)
+    ref = charged.carve(5, 7.0)
+    assert 6 in set(ref.env_molecules.tolist())
+    assert ref.net_env_charge == pytest.approx(1.0, abs=1e-9)
+    assert "not neutral: net +1.000 e" in ex.readout.value
+
+
+def test_search_by_ids_residue_name_and_bad_selection(film):
+    ex = FilmExplorer(film, molecule=0, radius_A=4.0, show_view=False)
+    ex.search.value = "7-9"
+    assert [v for _, v in ex.molecule_picker.options] == [7, 8, 9]
+    assert ex.molecule == 7 and ex.cluster.center == 7
+    ex.search.value = "wat"
+    assert len(ex.molecule_picker.options) == film.n_molecules
+    ex.search.value = "resname NOPE"
+    assert "clusterlab-error" in ex.readout.value and "matches no atoms" in ex.readout.value
+
+
+def test_cluster_scene_marks_qm_and_charges(film):
+    c = film.carve(4, 6.0, qm_shell=3.0)
+    text, atom_mol = cluster_scene_pdb(c, 4)
+    lines = [ln for ln in text.splitlines() if ln.startswith("HETATM")]
+    chains = np.array([ln[21] for ln in lines])
+    b = np.array([float(ln[60:66]) for ln in lines])
+    assert (chains[: len(c.qm_symbols)] != "E").all()
+    assert (chains == "Q").sum() == np.sum(c.qm_atom_molecules == 4)
+    assert (chains == "E").sum() == c.n_charges
+    # B-factor = 100 x charge (2 decimals in PDB)
+    np.testing.assert_allclose(b[chains == "E"], 100 * c.env_charges, atol=0.006)
+    np.testing.assert_array_equal(atom_mol, np.r_[c.qm_atom_molecules, c.env_molecules])
+
+
+# -------------------------------------------------------------- scan panel
+class FakeScan:
+    """Records its arguments; reports rows one by one when told to."""
+
+    def __init__(self, rows, *, fail=None, wait_for_cancel=False):
+        self.rows = rows
+        self.fail = fail
+        self.wait_for_cancel = wait_for_cancel
+        self.calls = []
+        self.step = threading.Semaphore(0)
+        self.reported = threading.Semaphore(0)
+        self.saw_cancel = False
+
+    def __call__(self, film, molecule, radii, method, **kw):
+        self.calls.append({"film": film, "molecule": molecule, "radii": radii, "method": method, **kw})
+        if self.fail is not None:
+            raise self.fail
+        if self.wait_for_cancel:
+            self.saw_cancel = kw["cancel"].wait(10.0)
+            return None
+        for row in self.rows:
+            assert self.step.acquire(timeout=10.0)
+            kw["on_result"](row)
+            self.reported.release()
+
+        class Result:
+            table = pd.DataFrame(self.rows)
+
+            class verdict:  # noqa: N801
+                message = "S1 converged at 9 Å (fake)"
+                converged = True
+                radius_A = 9.0
+
+        return Result()
+
+
+SCAN_ROWS = [
+    {"radius_A": 6.0, "n_env_molecules": 10, "n_charges": 30, "S1_shift_eV": -0.080, "T1_shift_eV": -0.050},
+    {"radius_A": 9.0, "n_env_molecules": 30, "n_charges": 90, "S1_shift_eV": -0.101, "T1_shift_eV": -0.062},
+    {"radius_A": 12.0, "n_env_molecules": 60, "n_charges": 180, "S1_shift_eV": -0.104, "T1_shift_eV": -0.064},
+]
+
+
+def test_run_button_calls_scan_with_settings_and_fills_outputs(film):
+    ex = FilmExplorer(film, molecule=3, radius_A=6.0, show_view=False)
+    panel = ShiftScanPanel(film, explorer=ex, radii_A=(6, 9, 12), basis="sto-3g", n_singlets=2, n_triplets=1)
+    fake = FakeScan(SCAN_ROWS)
+    panel.scan_fn = fake
+    ex.shell_slider.value = 1.0
+    ex.frame_slider.value = 1
+    panel.tol.value = 5.0
+    panel.run_button.click()
+    assert panel.running
+    call = fake.calls[0]
+    assert call["film"] is film and call["molecule"] == 3 and call["radii"] == [6.0, 9.0, 12.0]
+    assert call["frame"] == 1 and call["qm_shell"] == 1.0 and call["rule"] == "atom"
+    assert call["tol_eV"] == pytest.approx(0.005)
+    assert call["runner"] == "serial" and call["progress"] is False
+    assert call["cancel"] is panel.cancel_event and callable(call["on_result"])
+    m = call["method"]
+    assert (m.basis, m.n_singlets, m.n_triplets) == ("sto-3g", 2, 1)
+    assert panel.plot.value == b"" and "no results yet" in panel.table_html.value
+    for k, row in enumerate(SCAN_ROWS, start=1):
+        fake.step.release()
+        assert fake.reported.acquire(timeout=10.0)
+        assert panel.progress.value == k
+        assert f"{row['S1_shift_eV']:.4f}" in panel.table_html.value
+        assert panel.plot.value[:8] == b"\x89PNG\r\n\x1a\n"
+        assert panel.n_plots == k
+    assert panel.wait(10.0)
+    assert "S1 converged at 9 Å (fake)" in panel.status.value
+    assert panel.progress.value == panel.progress.max == 3
+    assert not panel.run_button.disabled and panel.cancel_button.disabled
+    pd.testing.assert_frame_equal(panel.table, pd.DataFrame(SCAN_ROWS))
+
+
+def test_cancel_sets_the_event(film):
+    panel = ShiftScanPanel(film, radii_A=(6, 9))
+    fake = FakeScan([], wait_for_cancel=True)
+    panel.scan_fn = fake
+    panel.run()
+    time.sleep(0.05)
+    assert panel.running and not panel.cancel_event.is_set()
+    panel.cancel_button.click()
+    assert panel.cancel_event.is_set()
+    assert panel.wait(10.0)
+    assert fake.saw_cancel
+    assert "cancelled" in panel.status.value
+
+
+def test_scan_exception_reaches_the_error_output(film):
+    from clusterlab.errors import ConvergenceError
+
+    panel = ShiftScanPanel(film, radii_A=(6,))
+    panel.scan_fn = FakeScan([], fail=ConvergenceError("SCF did not converge at radius 6 Å"))
+    panel.run_button.click()
+    assert panel.wait(10.0)
+    text = "".join(o.get("text", "") for o in panel.errors.outputs)
+    assert "ConvergenceError: SCF did not converge at radius 6 Å" in text
+    assert "Traceback" in text
+    assert "failed" in panel.status.value and not panel.run_button.disabled
+
+
+def test_bad_radii_are_reported_and_scan_not_called(film):
+    panel = ShiftScanPanel(film)
+    fake = FakeScan(SCAN_ROWS)
+    panel.scan_fn = fake
+    panel.radii.value = "6, nine"
+    panel.run_button.click()
+    assert fake.calls == []
+    assert "radii '6, nine' are not valid" in html.unescape(panel.status.value)
+    assert "radii '6, nine' are not valid" in panel.error
+
+
+def test_defaults_are_the_library_functions(film):
+    from clusterlab.qm.method import Method
+    from clusterlab.stats import disorder_stats, spatial_correlation
+    from clusterlab.study.plots import plot_convergence
+
+    panel = ShiftScanPanel(film, preset="draft")
+    assert panel.plot_fn is plot_convergence
+    assert list(panel.preset.options) == list(Method.presets())
+    assert panel.build_method() == Method.preset("draft")
+    dp = DisorderPanel(film, show_view=False)
+    assert dp.stats_fn is disorder_stats and dp.corr_fn is spatial_correlation
+
+
+def test_parse_radii_and_frames():
+    assert parse_radii("12, 6 9") == [6.0, 9.0, 12.0]
+    assert parse_radii("6:15:3") == [6.0, 9.0, 12.0, 15.0]
+    with pytest.raises(ValueError, match="positive numbers"):
+        parse_radii("-3, 6")
+    assert parse_frames("0:20:5", 20) == [0, 5, 10, 15]
+    assert parse_frames("all", 3) == [0, 1, 2]
+    with pytest.raises(ValueError, match=r"frames 0..2"):
+        parse_frames("7", 3)
+
+
+# ------------------------------------------------------------ disorder panel
+def _fake_sample_factory(film, seed=11):
+    rng = np.random.default_rng(seed)
+    calls = []
+
+    def fake(film_, molecules, frames, radius, method, *, store, runner, seed, progress, on_result, cancel):
+        calls.append({"molecules": list(molecules), "frames": list(frames), "radius": radius,
+                      "method": method, "store": store, "runner": runner, "seed": seed})
+        rows = []
+        radii = [float(r) for r in np.atleast_1d(radius)]
+        for f, r in ((f, r) for f in frames for r in radii):
+            cent = film.frame_geometry(f).centroids_A
+            for m in molecules:
+                shift = rng.normal(-0.1 * r / 10, 0.03)
+                row = {"frame": f, "molecule": int(m), "resname": "WAT", "radius_A": r,
+                       "centroid_x_A": cent[m, 0], "centroid_y_A": cent[m, 1], "centroid_z_A": cent[m, 2],
+                       "S1_eV": 7.0 + shift, "S1_shift_eV": shift, "converged": True}
+                on_result(row)
+                rows.append(row)
+
+        class Result:
+            table = pd.DataFrame(rows)
+
+        return Result()
+
+    return fake, calls
+
+
+def test_disorder_run_histogram_growth_scene_and_export(film, tmp_path):
+    dp = DisorderPanel(film, molecules="0-39", n_molecules=12, frames="0, 1", radii_A=(6, 9), seed=4,
+                       store=str(tmp_path / "sites.sqlite"), basis="sto-3g")
+    fake, calls = _fake_sample_factory(film)
+    dp.sample_fn = fake
+    dp.run_button.click()
+    assert dp.wait(20.0), dp.status.value
+    assert dp.error == ""
+    expected_ids = np.sort(np.random.default_rng(4).choice(np.arange(40), size=12, replace=False)).tolist()
+    assert [c["molecules"] for c in calls] == [expected_ids]
+    assert calls[0]["radius"] == [6.0, 9.0] and calls[0]["frames"] == [0, 1]
+    assert isinstance(calls[0]["store"], ResultStore) and calls[0]["method"].basis == "sto-3g"
+    assert len(dp.data) == 48 and dp.progress.value == 48
+    # histogram of the chosen radius (largest by default), stats from the library, checked with numpy
+    assert dp.radius_pick.value == 9.0 and dp.quantity.value == "S1_eV"
+    vals = dp.data.loc[dp.data.radius_A == 9.0, "S1_eV"].to_numpy()
+    assert dp.stats["n"] == 24
+    assert dp.stats["mean"] == pytest.approx(np.mean(vals), rel=1e-12)
+    assert dp.stats["sigma"] == pytest.approx(np.std(vals, ddof=1), rel=1e-12)
+    assert dp.hist_plot.value[:4] == b"\x89PNG"
+    # σ and mean shift vs radius: one row per radius, σ = numpy's ddof=1 std of the shifts
+    g = dp.growth.set_index("radius_A")
+    for r in (6.0, 9.0):
+        s = dp.data.loc[dp.data.radius_A == r, "S1_shift_eV"].to_numpy()
+        assert g.loc[r, "sigma"] == pytest.approx(np.std(s, ddof=1), rel=1e-12)
+    assert dp.growth_plot.value[:4] == b"\x89PNG" and dp.corr_plot.value[:4] == b"\x89PNG"
+    # site energies on the film: sampled molecules in chain M, B-factor normalised 0..100
+    sub = dp.data[(dp.data.radius_A == 9.0) & (dp.data.frame == 0)].set_index("molecule")["S1_eV"]
+    lines = [ln for ln in dp.scene_pdb.splitlines() if ln.startswith("HETATM")]
+    lo, hi = sub.min(), sub.max()
+    for m in (expected_ids[0], expected_ids[-1]):
+        ln = lines[int(film.molecule_atoms(m)[0])]
+        assert ln[21] == "M"
+        assert float(ln[60:66]) == pytest.approx(100 * (sub[m] - lo) / (hi - lo), abs=0.006)
+    assert sum(ln[21] == "M" for ln in lines) == 3 * 12
+    assert f"{lo:.3f}" in dp.colourbar.value and f"{hi:.3f}" in dp.colourbar.value
+    # switching quantity redraws from the other column
+    dp.quantity.value = "S1_shift_eV"
+    assert dp.stats["mean"] == pytest.approx(dp.data.loc[dp.data.radius_A == 9.0, "S1_shift_eV"].mean())
+    # export: CSV read back equals the table
+    dp.export_path.value = str(tmp_path / "out" / "sites.csv")
+    dp.export_button.click()
+    back = pd.read_csv(tmp_path / "out" / "sites.csv")
+    pd.testing.assert_frame_equal(back, dp.data, check_dtype=False)
+    assert "wrote 48 rows" in dp.status.value
+
+
+def test_disorder_load_from_store(film, tmp_path):
+    path = tmp_path / "s.sqlite"
+    rng = np.random.default_rng(2)
+    energies = {}
+    with ResultStore(path) as st:
+        for m in range(8):
+            e = float(3.0 + rng.normal(0, 0.05))
+            energies[m] = e
+            k = task_key(film_id=film.film_id, frame=1, molecule=m, radius_A=8.0, kind="site")
+            st.put(k, {"kind": "site"}, "{}", {"frame": 1, "molecule": m, "radius_A": 8.0, "S1_eV": e})
+    dp = DisorderPanel(film, show_view=False)
+    df = dp.load(path)
+    assert dp.error == "" and len(df) == 8
+    np.testing.assert_allclose(df.set_index("molecule")["S1_eV"].sort_index(), [energies[m] for m in range(8)])
+    cent = film.frame_geometry(1).centroids_A
+    row = df[df.molecule == 5].iloc[0]
+    np.testing.assert_allclose([row.centroid_x_A, row.centroid_y_A, row.centroid_z_A], cent[5])
+    assert dp.stats["n"] == 8
+    assert dp.frame_pick.value == 1 and set(dp.site_values) == set(range(8))
+
+
+def test_disorder_errors_reach_the_output(film, tmp_path):
+    dp = DisorderPanel(film, show_view=False, store=str(tmp_path / "x.sqlite"))
+
+    def broken(*a, **k):
+        raise RuntimeError("worker pool died")
+
+    dp.sample_fn = broken
+    dp.run()
+    assert dp.wait(10.0)
+    text = "".join(o.get("text", "") for o in dp.errors.outputs)
+    assert "RuntimeError: worker pool died" in text and "failed" in dp.status.value
+    dp.load(tmp_path / "missing.sqlite")
+    assert "does not exist" in dp.status.value
+    with pytest.raises(ValueError, match="nothing to export"):
+        DisorderPanel(film, show_view=False).export(tmp_path / "e.csv")
+
+
+# ------------------------------------------------------- the real library
+def test_panels_run_the_real_library(film, tmp_path):
+    """Default scan/sample functions on a tiny water film (B3LYP/STO-3G, 1+1 states)."""
+    from clusterlab.qm.method import Method
+
+    ex = FilmExplorer(film, molecule=0, radius_A=4.0, show_view=False)
+    scan = ShiftScanPanel(film, explorer=ex, radii_A=(4.0, 6.0), basis="sto-3g", n_singlets=1, n_triplets=1)
+    assert scan.build_method() == Method.preset("draft", basis="sto-3g", n_singlets=1, n_triplets=1)
+    scan.run().wait(120.0, raise_error=True)
+    t = scan.table
+    assert scan.error == "" and scan.n_plots >= 2 and scan.plot.value[:4] == b"\x89PNG"
+    # the scan's environment counts are those of the explorer's carve (same library call)
+    for r in (4.0, 6.0):
+        row = t[t.radius_A == r].iloc[0]
+        assert row.n_env_molecules == film.carve(0, r).n_env_molecules
+    assert "finished" in scan.status.value and scan.result.verdict.message in html.unescape(scan.status.value)
+    dp = DisorderPanel(film, molecules="0-2", frames="1", radii_A=(4.0,), basis="sto-3g", n_singlets=1,
+                       n_triplets=1, store=str(tmp_path / "s.sqlite"), show_view=False)
+    dp.run().wait(120.0, raise_error=True)
+    assert sorted(dp.data.molecule) == [0, 1, 2] and set(dp.data.frame) == {1}
+    assert dp.stats["n"] == 3
+    back = DisorderPanel(film, show_view=False)
+    back.load(tmp_path / "s.sqlite")
+    np.testing.assert_allclose(back.data.sort_values("molecule").S1_eV, dp.data.sort_values("molecule").S1_eV)
+
+
+def test_preset_choice_fills_method_boxes(film):
+    from clusterlab.qm.method import Method
+
+    panel = ShiftScanPanel(film, preset="draft")
+    panel.preset.value = "balanced"
+    ref = Method.preset("balanced")
+    assert (panel.basis.value, panel.singlets.value, panel.triplets.value) == (ref.basis, ref.n_singlets,
+                                                                              ref.n_triplets)
+    panel.basis.value = "sto-3g"
+    assert panel.build_method() == Method.preset("balanced", basis="sto-3g")
