@@ -42,8 +42,9 @@ log = logging.getLogger("clusterlab.qm")
 
 #: Level shift (Hartree) of the second SCF attempt.
 FALLBACK_LEVEL_SHIFT_EH = 0.3
-#: |net environment charge| (e) above which the embedding is called non-neutral.
-NEUTRAL_TOL_E = 1e-6
+#: |net environment charge| (e) above which the embedding is called non-neutral: topology
+#: charges printed to 6 decimals leave ~1e-6 e per molecule of rounding (common practice).
+NEUTRAL_TOL_E = 1e-4
 #: Extra Davidson roots solved for (and discarded) beyond the states asked.
 EXTRA_ROOTS = 2
 

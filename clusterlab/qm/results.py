@@ -167,7 +167,7 @@ class ExcitationResult:
         the QM centre of nuclear charge).
     net_env_charge_e : float
         Sum of the environment charges; ``neutral_embedding`` is False when
-        its magnitude exceeds 1e-6 e (a warning is also issued).
+        its magnitude exceeds 1e-4 e (``NEUTRAL_TOL_E``) (a warning is also issued).
     followed_index : int
         Index into the singlets of the state best matching vacuum S1 (-1 if
         no following was done).
