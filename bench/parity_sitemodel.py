@@ -51,6 +51,7 @@ def main() -> None:
     ap.add_argument("--basis", default="6-31g")
     ap.add_argument("--xc", default="b3lyp")
     ap.add_argument("--charged", action="store_true", help="also IP/EA (ΔSCF; doubles the cost)")
+    ap.add_argument("--preset", default="draft", help="method preset of the QM side (e.g. fast-stda)")
     args = ap.parse_args()
 
     from clusterlab.demo import demo_paths
@@ -63,7 +64,7 @@ def main() -> None:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         film = load_film(top, traj)
-    method = Method.preset("draft", xc=args.xc, basis=args.basis, n_singlets=2, n_triplets=2,
+    method = Method.preset(args.preset, xc=args.xc, basis=args.basis, n_singlets=3, n_triplets=3,
                            charged_states=bool(args.charged))
     cache = os.path.join(OUT, "sitemodel_charges.json")
     t0 = time.perf_counter()
@@ -74,7 +75,8 @@ def main() -> None:
     else:
         cset = None
     if cset is None:
-        cset = StateChargeSet.from_film(film, method, frame=0)
+        cset = StateChargeSet.from_film(film, method, frame=0, grid_level=method.grid_level,
+                                        density_fit=method.density_fit)
         cset.save(cache)
     t_fit = time.perf_counter() - t0
     print(f"state charges ({cset.method}): {t_fit:.1f} s")
