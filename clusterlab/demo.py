@@ -43,8 +43,7 @@ def demo_study(out_dir: str, *, quick: bool = False, workers: int | None = None)
     top, traj = demo_paths()
     study = {
         "film": {"topology": top, "trajectory": traj},
-        "method": {"preset": "draft", "excited": "stda", "grid_level": 1,
-                   "charged_states": False},
+        "method": {"preset": "fast-stda"},
         "scan": {"molecule": 0, "radii": [4.0, 8.0] if quick else [4.0, 7.0, 10.0, 13.0, 16.0],
                  "periodic_limit": not quick},
         "sample": {"molecules": "all", "n": 2 if quick else 8, "seed": 7,
