@@ -20,7 +20,6 @@ Run:  OMP_NUM_THREADS=1 python bench/bench_radius_series.py [--basis 6-31g] [--r
 from __future__ import annotations
 
 import argparse
-import glob
 import os
 import sys
 import time
@@ -65,20 +64,17 @@ def synthetic_series(radii, seed=0):
 
 
 def demo_series(radii):
+    """Clusters of demo-film molecule 0 (frame 0) at the given radii, or None."""
     try:
-        import clusterlab
+        from clusterlab import load_film
+        from clusterlab.demo import demo_paths
 
-        load = getattr(clusterlab, "load_film")
-    except (ImportError, AttributeError):
-        return None
-    here = os.path.join(os.path.dirname(__file__), "..", "demo_traj")
-    tops = sorted(glob.glob(os.path.join(here, "*.pdb")) + glob.glob(os.path.join(here, "*.psf"))
-                  + glob.glob(os.path.join(here, "*.gro")))
-    if not tops:
+        top, traj = demo_paths()
+    except Exception:  # noqa: BLE001 - no demo film: use the synthetic case
         return None
     try:
-        film = load(tops[0])
-        return [film.carve(0, r, frame=0) for r in radii], f"demo film {tops[0]} molecule 0 frame 0"
+        film = load_film(top, traj)
+        return [film.carve(0, r, frame=0) for r in radii], f"demo film {os.path.basename(top)} molecule 0 frame 0"
     except Exception as exc:  # noqa: BLE001 - fall back to the synthetic case
         print(f"(demo film present but not usable: {exc}; using the synthetic cluster)")
         return None
