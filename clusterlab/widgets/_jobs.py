@@ -13,8 +13,8 @@ class BackgroundJob:
     thread; ``wait``, ``cancel``, ``running`` and ``cancel_event`` follow it.
 
     The class using it sets ``self.exception`` (the job's error, or None) in
-    its ``_work`` and provides ``_set_status(text, kind)`` and
-    ``_cancel_message``.
+    its ``_work`` and provides ``run()``, an ``errors`` Output widget,
+    ``_set_status(text, kind)`` and ``_cancel_message``.
     """
 
     _cancel_message = "cancelling…"
@@ -53,6 +53,14 @@ class BackgroundJob:
         if raise_error and self.exception is not None:
             raise self.exception
         return not self.running
+
+    def _on_run_click(self, _b: Any) -> None:
+        with self.errors:  # type: ignore[attr-defined]
+            self.run()  # type: ignore[attr-defined]
+
+    def _on_cancel_click(self, _b: Any) -> None:
+        with self.errors:  # type: ignore[attr-defined]
+            self.cancel()
 
     def cancel(self) -> None:
         """Ask the running job to stop (finished results stay in the store)."""

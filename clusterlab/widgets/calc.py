@@ -372,14 +372,6 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         self._start(self._work, (fn, settings), "clusterlab-scan")
         return self
 
-    def _on_run_click(self, _b: Any) -> None:
-        with self.errors:
-            self.run()
-
-    def _on_cancel_click(self, _b: Any) -> None:
-        with self.errors:
-            self.cancel()
-
     def _work(self, fn: Callable[..., Any], settings: dict[str, Any]) -> None:
         s = dict(settings)
         molecule, radii = s.pop("molecule"), s.pop("radii")

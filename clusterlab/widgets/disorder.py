@@ -249,7 +249,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self.tabs.set_title(i, t)
 
         self.run_button.on_click(self._on_run_click)
-        self.cancel_button.on_click(lambda _b: self.cancel())
+        self.cancel_button.on_click(self._on_cancel_click)
         self.load_button.on_click(self._on_load_click)
         self.export_button.on_click(self._on_export_click)
         for dd in (self.quantity, self.radius_pick, self.frame_pick):
@@ -652,10 +652,6 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         return p
 
     # ---------------------------------------------------------- handlers
-    def _on_run_click(self, _b: Any) -> None:
-        with self.errors:
-            self.run()
-
     def _on_load_click(self, _b: Any) -> None:
         with self.errors:
             self.load()
