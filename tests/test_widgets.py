@@ -355,6 +355,16 @@ def test_disorder_run_histogram_growth_scene_and_export(film, tmp_path):
     back = pd.read_csv(tmp_path / "out" / "sites.csv")
     pd.testing.assert_frame_equal(back, dp.data, check_dtype=False)
     assert "wrote 48 rows" in dp.status.value
+    # transport export: site table read back with pandas has every frame x molecule, S1 from QM
+    dp.transport_path.value = str(tmp_path / "transport")
+    dp.transport_button.click()
+    assert dp.error == "", dp.errors.outputs
+    sites = pd.read_parquet(tmp_path / "transport" / "sites.parquet")
+    assert len(sites) == 2 * film.n_molecules
+    qm = sites.dropna(subset=["S1_qm_eV"])
+    assert len(qm) == 24  # 12 molecules x 2 frames at the largest radius
+    assert set(qm.source_S1.str.startswith("qm:R=9A")) == {True}
+    assert (tmp_path / "transport" / "export.json").exists()
 
 
 def test_disorder_load_from_store(film, tmp_path):

@@ -219,6 +219,10 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.frame_pick = widgets.Dropdown(options=[], description="3D frame", layout=w(width="200px"))
         self.export_path = widgets.Text(value="site_energies.csv", description="CSV", layout=w(width="420px"))
         self.export_button = widgets.Button(description="export CSV", icon="download")
+        self.transport_path = widgets.Text(value="transport_export", description="folder", layout=w(width="420px"))
+        self.transport_cutoff = widgets.BoundedFloatText(value=8.0, min=1.0, max=50.0, description="pairs Å",
+                                                         layout=w(width="170px"))
+        self.transport_button = widgets.Button(description="export for transport", icon="share")
 
         self.hist_plot = widgets.Image(format="png", layout=w(max_width="560px"))
         self.stats_html = widgets.HTML()
@@ -252,6 +256,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.cancel_button.on_click(self._on_cancel_click)
         self.load_button.on_click(self._on_load_click)
         self.export_button.on_click(self._on_export_click)
+        self.transport_button.on_click(self._on_transport_click)
         for dd in (self.quantity, self.radius_pick, self.frame_pick):
             dd.observe(self._on_pick, names="value")
         self.tabs.observe(self._on_tab, names="selected_index")
@@ -266,7 +271,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self.status,
             widgets.HBox([self.quantity, self.radius_pick]),
         ])
-        export = widgets.HBox([self.export_path, self.export_button])
+        export = widgets.VBox([widgets.HBox([self.export_path, self.export_button]),
+                               widgets.HBox([self.transport_path, self.transport_cutoff, self.transport_button])])
         super().__init__([settings, self.tabs, export, self.errors], **kwargs)
         self.add_class("clusterlab-disorder-panel")
         self._draw_film_scene()
@@ -651,7 +657,27 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self._set_status(f"wrote {len(self.data)} rows to {html.escape(os.path.abspath(p))}", "ok")
         return p
 
+    def export_transport(self, folder: str | os.PathLike[str] | None = None, *, cutoff_A: float | None = None) -> dict:
+        """Write the transport-model export (site and pair tables as Parquet and
+        CSV with a JSON sidecar; see the README) of the shown sites; returns the paths."""
+        from clusterlab.errors import InputError
+        from clusterlab.transport.export import export_study
+
+        if not len(self.data):
+            raise InputError("nothing to export yet: run a sample or load a store first.")
+        f = os.fspath(folder) if folder is not None else self.transport_path.value.strip()
+        if not f:
+            raise InputError("no export folder given.")
+        cut = float(self.transport_cutoff.value if cutoff_A is None else cutoff_A)
+        paths = export_study(self.film, f, sample=self.data, cutoff_A=cut)
+        self._set_status(f"transport export written to {html.escape(os.path.abspath(f))}", "ok")
+        return paths
+
     # ---------------------------------------------------------- handlers
+    def _on_transport_click(self, _b: Any) -> None:
+        with self.errors:
+            self.export_transport()
+
     def _on_load_click(self, _b: Any) -> None:
         with self.errors:
             self.load()
