@@ -25,11 +25,11 @@ import pandas as pd
 from ..errors import InputError
 from ..film import Film
 from ..qm.method import Method
-from ..runner import RunReport, run_tasks
+from ..runner import RunReport
 from ..stats import conformational_environmental, disorder_stats, spatial_correlation, static_dynamic
 from ..store import ResultStore
 from .scan import open_store
-from .tasks import TASK_FN, cluster_task
+from .tasks import cluster_task, run_cluster_tasks
 
 
 def choose_molecules(film: Film, molecules: Any = "all", *, n: int | None = None,
@@ -180,22 +180,8 @@ def sample_sites(
     tasks = [cluster_task(film, int(m), r, method, frame=f, rule=rule, qm_shell_A=qm_shell)
              for f in fr for m in ids for r in radii]
 
-    def _cb(task, summary):
-        if on_result is not None:
-            on_result(dict(summary))
-
-    report = run_tasks(tasks, TASK_FN, store=st, runner=runner, progress=progress, desc="site energies",
-                       on_result=_cb, cancel=cancel, **runner_kw)
-    rows, failures = [], []
-    for t in tasks:
-        rec = st.get(t.key)
-        if rec is None:
-            continue
-        if rec.done:
-            rows.append(dict(rec.summary))
-        else:
-            failures.append(f"frame {t.payload['frame']} molecule {t.payload['molecule']} "
-                            f"radius {t.payload['radius_A']}: {rec.error}")
+    report, rows, failures = run_cluster_tasks(tasks, st, desc="site energies", on_result=on_result,
+                                               runner=runner, progress=progress, cancel=cancel, **runner_kw)
     table = pd.DataFrame(rows)
     if len(table):
         table = table.sort_values(["radius_A", "frame", "molecule"], kind="stable").reset_index(drop=True)

@@ -26,10 +26,10 @@ import pandas as pd
 from ..errors import InputError
 from ..film import Film
 from ..qm.method import Method
-from ..runner import RunReport, run_tasks
+from ..runner import RunReport
 from ..stats import ConvergenceVerdict, converged_radius
 from ..store import ResultStore
-from .tasks import TASK_FN, cluster_task
+from .tasks import cluster_task, run_cluster_tasks
 
 #: the columns a scan tracks for convergence, when present
 TRACKED = ("S1_shift_eV", "T1_shift_eV", "dEST_eV", "S1_followed_shift_eV", "IP_shift_eV", "EA_shift_eV")
@@ -172,21 +172,8 @@ def radius_scan(
     tasks = scan_tasks(film, molecule, radii, method, frame=frame, rule=rule, qm_shell=qm_shell,
                        periodic_limit=periodic_limit)
 
-    def _cb(task, summary):
-        if on_result is not None:
-            on_result(dict(summary))
-
-    report = run_tasks(tasks, TASK_FN, store=st, runner=runner, progress=progress, desc=f"radius scan m{molecule}",
-                       on_result=_cb, cancel=cancel, **runner_kw)
-    rows, failures = [], []
-    for t in tasks:
-        rec = st.get(t.key)
-        if rec is None:
-            continue
-        if not rec.done:
-            failures.append(f"radius {t.payload['radius_A']}: {rec.error}")
-            continue
-        rows.append(dict(rec.summary))
+    report, rows, failures = run_cluster_tasks(tasks, st, desc=f"radius scan m{molecule}", on_result=on_result,
+                                               runner=runner, progress=progress, cancel=cancel, **runner_kw)
     if not rows:
         raise InputError("The scan produced no results" + (f": {failures}" if failures else
                          " (cancelled before the first radius finished)."))

@@ -23,8 +23,8 @@ from .. import __version__
 from ..errors import InputError
 from ..film import Film, film_from_spec, remember_film
 from ..qm.method import Method
-from ..runner import Task
-from ..store import task_key
+from ..runner import RunReport, Task, run_tasks
+from ..store import ResultStore, task_key
 
 #: import path of the worker function, for the runner
 TASK_FN = "clusterlab.study.tasks:run_cluster_task"
@@ -69,6 +69,31 @@ def cluster_task(
                    radius_A=payload["radius_A"], rule=rule, qm_shell_A=float(qm_shell_A),
                    method_key=method.key(), kind=kind, version=__version__)
     return Task(key=key, kind=kind, payload=payload)
+
+
+def run_cluster_tasks(tasks: list[Task], store: ResultStore, *, desc: str, on_result: Any = None,
+                      **run_kw: Any) -> tuple[RunReport, list[dict[str, Any]], list[str]]:
+    """Run cluster tasks through :func:`~clusterlab.runner.run_tasks` and read
+    their records back from the store, in task order.
+
+    ``on_result(row)`` gets each new summary as it is stored. Returns
+    ``(report, rows, failures)``: the summaries of finished tasks (new or
+    already stored) and one line per failed task naming frame, molecule and
+    radius with the error.
+    """
+    cb = None if on_result is None else (lambda task, summary: on_result(dict(summary)))
+    report = run_tasks(tasks, TASK_FN, store=store, desc=desc, on_result=cb, **run_kw)
+    rows, failures = [], []
+    for t in tasks:
+        rec = store.get(t.key)
+        if rec is None:
+            continue
+        if rec.done:
+            rows.append(dict(rec.summary))
+        else:
+            failures.append(f"frame {t.payload['frame']} molecule {t.payload['molecule']} "
+                            f"radius {t.payload['radius_A']}: {rec.error}")
+    return report, rows, failures
 
 
 def _warm_key(payload: dict[str, Any]) -> tuple:
