@@ -285,6 +285,20 @@ def build_hopping_graph(
     return HoppingGraph.from_edges(E.size, src, dst, k, dvec)
 
 
+def _drift_inputs(field_V_per_A: npt.ArrayLike, carrier: str, *, zero_hint: str = "",
+                  exciton_hint: str = "") -> tuple[FloatArray, float, int]:
+    """Field vector, its squared norm and the carrier charge of a drift
+    mobility, with the errors for a zero field and for excitons."""
+    F = np.asarray(field_V_per_A, dtype=np.float64).reshape(3)
+    F2 = float(F @ F)
+    if F2 == 0:
+        raise InputError(f"field_V_per_A is zero{zero_hint}.")
+    q = carrier_charge(carrier)
+    if q == 0:
+        raise InputError(f"an exciton has no drift mobility{exciton_hint}.")
+    return F, F2, q
+
+
 @dataclass(frozen=True, eq=False)
 class KMCResult:
     """Walker displacements at common sample times.
@@ -365,13 +379,8 @@ class KMCResult:
 
         ``field_V_per_A`` must be the field the graph's rates were built with.
         """
-        F = np.asarray(field_V_per_A, dtype=np.float64).reshape(3)
-        F2 = float(F @ F)
-        if F2 == 0:
-            raise InputError("field_V_per_A is zero; use einstein_mobility() for zero field.")
-        q = carrier_charge(carrier)
-        if q == 0:
-            raise InputError("an exciton has no drift mobility; use diffusion_coefficient().")
+        F, F2, q = _drift_inputs(field_V_per_A, carrier, zero_hint="; use einstein_mobility() for zero field",
+                                 exciton_hint="; use diffusion_coefficient()")
         dr, dt = self._window(skip_fraction)
         proj = q * (dr @ F) / F2 / dt  # Å^2/(V s)
         n = proj.size
@@ -554,13 +563,7 @@ def master_equation_mobility(
     InputError
         For a zero field or an exciton carrier.
     """
-    F = np.asarray(field_V_per_A, dtype=np.float64).reshape(3)
-    F2 = float(F @ F)
-    if F2 == 0:
-        raise InputError("field_V_per_A is zero; a drift mobility needs a field.")
-    q = carrier_charge(carrier)
-    if q == 0:
-        raise InputError("an exciton has no drift mobility.")
+    F, F2, q = _drift_inputs(field_V_per_A, carrier, zero_hint="; a drift mobility needs a field")
     p = steady_state_occupation(graph)
     flux = p[graph.src] * graph.rate_per_s
     v = flux @ graph.dr_A  # Å/s
