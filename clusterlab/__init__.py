@@ -9,6 +9,11 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
+# Before anything loads PySCF: pick its bundled OpenBLAS kernel (see clusterlab/blas.py).
+from .blas import blas_status, choose_pyscf_kernel as _choose_pyscf_kernel
+
+_choose_pyscf_kernel()
+
 from .charges import ChargeSource, MoleculeTypeCharges, TableCharges, TopologyCharges
 from .cluster import Cluster
 from .film import Film, film_from_universe, load_film
@@ -46,6 +51,7 @@ from .errors import (
 )
 
 __all__ = [
+    "blas_status",
     "Cluster",
     "Film",
     "load_film",

@@ -74,8 +74,11 @@ def _versions() -> dict[str, str]:
         from .. import __version__ as cl_version
     except ImportError:  # pragma: no cover
         cl_version = "unknown"
+    from ..blas import blas_status
+
     return {"clusterlab": str(cl_version), "pyscf": str(pyscf.__version__), "numpy": str(np.__version__),
-            "python": ".".join(map(str, __import__("sys").version_info[:3]))}
+            "python": ".".join(map(str, __import__("sys").version_info[:3])),
+            "pyscf_openblas_coretype": blas_status()["coretype"] or "default"}
 
 
 def _prov_columns(meta: dict[str, Any]) -> dict[str, Any]:
