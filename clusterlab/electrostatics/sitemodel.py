@@ -84,12 +84,12 @@ from typing import TYPE_CHECKING, Any, Iterable, Mapping, Sequence
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
-from scipy.spatial import cKDTree
 
 from ..errors import ChargeError, InputError
-from ..geometry import box_vectors, perpendicular_widths, to_fractional
-from ..units import COULOMB_EV_A
+from ..units import COULOMB_EV_A, DEBYE_E_A
+from .pairsum import EnvironmentPairs, environment_potential
 from .statecharges import KNOWN_STATES, StateCharges, state_charges
+from .stark import stark_energy_eV
 from .thole import atomic_polarizabilities, solve_induced_dipoles
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -100,10 +100,10 @@ IntArray = npt.NDArray[np.int64]
 
 SHIFT_STATES = ("S1", "T1", "cation", "anion")
 CHARGED_STATES = ("cation", "anion")
-MODELS = ("charges", "charges+polarization")
+MODELS = ("charges", "charges+stark", "field", "charges+polarization", "charges+stark+polarization",
+          "field+polarization")
+NEUTRAL_STATES = ("S1", "T1")
 RULES = ("atom", "centroid")
-#: array elements (float64) per chunk of atom-pair blocks (~48 MB per array)
-_CHUNK_ELEMS = 2_000_000
 #: largest 3n of a dense induced-dipole system (larger ones use the pair-list solver)
 _DENSE_MAX = 5400
 
@@ -120,6 +120,52 @@ __all__ = [
 # state charges per molecule type
 # ----------------------------------------------------------------------------
 @dataclass
+class ConformerCharges:
+    """State charges (and, optionally, polarizability changes) fitted on one reference copy.
+
+    Attributes
+    ----------
+    positions_A : ndarray (n, 3)
+        Geometry of the reference copy (the frame ``dalpha_A3`` refers to).
+    charges_e : dict state -> ndarray (n,)
+    transition_e : ndarray (n,) or None
+        S0->S1 transition charges.
+    dalpha_A3 : dict state -> ndarray (3, 3)
+        ``alpha_X - alpha_S0`` (Å³) of the neutral excitations, from
+        :func:`clusterlab.electrostatics.stark.differential_polarizability`
+        (empty when not fitted).
+    dmu_D : dict state -> ndarray (3,)
+        ``mu_X - mu_S0`` (D) of the same finite-field fit.
+    frame, molecule : int
+        Where the reference copy came from (-1: given by hand).
+    """
+
+    positions_A: FloatArray
+    charges_e: dict[str, FloatArray]
+    transition_e: FloatArray | None = None
+    dalpha_A3: dict[str, FloatArray] = field(default_factory=dict)
+    dmu_D: dict[str, FloatArray] = field(default_factory=dict)
+    frame: int = -1
+    molecule: int = -1
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"positions_A": np.asarray(self.positions_A).tolist(),
+                "charges_e": {k: np.asarray(v).tolist() for k, v in self.charges_e.items()},
+                "transition_e": None if self.transition_e is None else np.asarray(self.transition_e).tolist(),
+                "dalpha_A3": {k: np.asarray(v).tolist() for k, v in self.dalpha_A3.items()},
+                "dmu_D": {k: np.asarray(v).tolist() for k, v in self.dmu_D.items()},
+                "frame": int(self.frame), "molecule": int(self.molecule)}
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> "ConformerCharges":
+        arr = (lambda x: {k: np.asarray(v, float) for k, v in (x or {}).items()})
+        t = d.get("transition_e")
+        return cls(positions_A=np.asarray(d["positions_A"], float), charges_e=arr(d["charges_e"]),
+                   transition_e=None if t is None else np.asarray(t, float), dalpha_A3=arr(d.get("dalpha_A3")),
+                   dmu_D=arr(d.get("dmu_D")), frame=int(d.get("frame", -1)), molecule=int(d.get("molecule", -1)))
+
+
+@dataclass
 class StateChargeSet:
     """Charges of S0, S1, T1, cation and anion per residue name.
 
@@ -133,9 +179,18 @@ class StateChargeSet:
         The full fits (geometry, method, dipoles, misfit, convergence), when
         the set was made by :meth:`from_film`; empty for :meth:`from_arrays`.
     reference : dict resname -> dict
-        Where the reference copy came from: ``{"frame", "molecule"}``.
+        Where the (first) reference copy came from: ``{"frame", "molecule"}``.
     method : str
         ``"xc/basis"`` of the fits, or a label.
+    conformers : dict resname -> list of ConformerCharges
+        Reference copies of the molecule type's conformer families (see
+        :mod:`clusterlab.electrostatics.conformers`); every copy in the film
+        takes the charges (and polarizability changes) of the reference it
+        superposes best onto. Empty for a resname: its ``charges_e`` serve
+        every copy. ``charges_e`` and ``transition_e`` always hold the first
+        reference's numbers.
+    stark_method : dict
+        The engine method of the finite-field fits (``Method.to_dict()``), if any.
 
     Examples
     --------
@@ -152,8 +207,36 @@ class StateChargeSet:
     fits: dict[str, StateCharges] = field(default_factory=dict)
     reference: dict[str, dict[str, int]] = field(default_factory=dict)
     method: str = "given"
+    conformers: dict[str, list[ConformerCharges]] = field(default_factory=dict)
+    stark_method: dict[str, Any] = field(default_factory=dict)
 
     # -------------------------------------------------------------- building
+    @classmethod
+    def from_conformers(cls, conformers: Mapping[str, Sequence[ConformerCharges]], *,
+                        method: str = "given") -> "StateChargeSet":
+        """A set from reference copies ``{resname: [ConformerCharges, ...]}``.
+
+        Raises
+        ------
+        InputError
+            As :meth:`from_arrays`; references of one resname with different
+            atom counts or state lists.
+        """
+        first = {r: dict(c[0].charges_e) for r, c in conformers.items() if len(c)}
+        out = cls.from_arrays(first, transition={r: c[0].transition_e for r, c in conformers.items() if len(c)},
+                              method=method)
+        for res, refs in conformers.items():
+            refs = list(refs)
+            n = {len(c.positions_A) for c in refs} | {len(q) for c in refs for q in c.charges_e.values()}
+            if len(n) != 1:
+                raise InputError(f"conformer references of {res!r} have different atom counts {sorted(n)}.")
+            st = {tuple(sorted(c.charges_e)) for c in refs}
+            if len(st) != 1:
+                raise InputError(f"conformer references of {res!r} have different states {sorted(st)}.")
+            out.conformers[str(res)] = refs
+            out.reference[str(res)] = {"frame": refs[0].frame, "molecule": refs[0].molecule}
+        return out
+
     @classmethod
     def from_arrays(cls, charges: Mapping[str, Mapping[str, npt.ArrayLike]], *,
                     transition: Mapping[str, npt.ArrayLike] | None = None,
@@ -184,8 +267,10 @@ class StateChargeSet:
     def from_film(cls, film: "Film", method_like: Any, *, resnames: Sequence[str] | None = None,
                   frame: int = 0, molecules: Mapping[str, int] | None = None,
                   states: Sequence[str] = KNOWN_STATES, transition: bool = True,
-                  **fit_kw: Any) -> "StateChargeSet":
-        """Fit state charges on one reference copy of each molecule type.
+                  n_conformers: int = 1, conformer_frames: Sequence[int] | None = None,
+                  min_conformer_rmsd_A: float = 0.25, stark_method: Any = None,
+                  symmetrize: bool = False, **fit_kw: Any) -> "StateChargeSet":
+        """Fit state charges on reference copies of each molecule type.
 
         Parameters
         ----------
@@ -194,40 +279,173 @@ class StateChargeSet:
         resnames : sequence of str, optional
             Molecule types to fit (default: all residue names of the film).
         frame : int
-            Frame the reference copies are taken from (whole, own geometry).
+            Frame the (first) reference copies are taken from (whole, own geometry).
         molecules : mapping resname -> molecule id, optional
-            Which copy to take (default: the first molecule of each type).
+            Which copy is the first reference (default: the first molecule of each type).
         states, transition, **fit_kw
             Passed to :func:`~clusterlab.electrostatics.statecharges.state_charges`
             (the molecule's net charge from the film's charges, when known).
+        n_conformers : int
+            Conformer families per molecule type. Beyond the first reference,
+            the copies (of ``conformer_frames``) farthest in superposed RMSD from
+            the references chosen so far are fitted too (farthest-point
+            sampling, :func:`~clusterlab.electrostatics.conformers.pick_references`),
+            until ``n_conformers`` or until no copy is farther than
+            ``min_conformer_rmsd_A``. Each costs one more QM fit.
+        conformer_frames : sequence of int, optional
+            Frames whose copies are candidates (default: ``[frame]``).
+        stark_method : clusterlab.Method, optional
+            Also fit the polarizability changes of S1/T1 of every reference by
+            finite fields (13 engine calculations each, see
+            :func:`~clusterlab.electrostatics.stark.differential_polarizability`);
+            needed by ``model="charges+stark"``.
+        symmetrize : bool
+            Average the fitted charges over topologically equivalent atoms
+            (:meth:`symmetrized`).
 
         Raises
         ------
         InputError
-            A resname the film does not have.
+            A resname the film does not have, or ``n_conformers < 1``.
         """
+        from .conformers import pick_references
+
         names = np.asarray(film.molecule_resnames)
         wanted = list(dict.fromkeys(names.tolist())) if resnames is None else [str(r) for r in resnames]
+        if int(n_conformers) < 1:
+            raise InputError(f"n_conformers must be at least 1; got {n_conformers!r}.")
         if "S0" not in states:
             states = ("S0", *states)
-        geo = film.frame_geometry(frame, periodic=film.has_box)
-        charges, trans, fits, ref = {}, {}, {}, {}
+        frames = [int(frame)] if conformer_frames is None else [int(f) for f in conformer_frames]
+        if int(frame) not in frames:
+            frames = [int(frame), *frames]
+        geos = {f: film.frame_geometry(f, periodic=film.has_box) for f in frames}
+        fits: dict[str, StateCharges] = {}
+        confs: dict[str, list[ConformerCharges]] = {}
         for res in wanted:
             ids = np.flatnonzero(names == res)
             if ids.size == 0:
                 raise InputError(f"the film has no molecules named {res!r}; it has {sorted(set(names))}.")
-            mol = int(molecules[res]) if molecules and res in molecules else int(ids[0])
-            atoms = film.molecule_atoms(mol)
-            net = film.molecules["charge"].iloc[mol]
+            mol0 = int(molecules[res]) if molecules and res in molecules else int(ids[0])
+            picks = [(int(frame), mol0)]
+            if int(n_conformers) > 1:
+                cand = [(f, int(m)) for f in frames for m in ids]
+                copies = np.stack([geos[f].positions_A[film.molecule_atoms(m)] for f, m in cand])
+                first = cand.index((int(frame), mol0))
+                chosen = pick_references(copies, int(n_conformers), first=first, min_rmsd_A=min_conformer_rmsd_A)
+                picks = [cand[k] for k in chosen]
+            net = film.molecules["charge"].iloc[mol0]
             charge = int(round(float(net))) if np.isfinite(net) else 0
-            sc = state_charges(list(film.symbols[atoms]), geo.positions_A[atoms], method_like,
-                               states=tuple(states), transition=transition, charge=charge, **fit_kw)
-            charges[res] = {s: np.asarray(q, float) for s, q in sc.charges_e.items()}
-            trans[res] = sc.transition_charges_e
-            fits[res] = sc
-            ref[res] = {"frame": int(geo.frame), "molecule": mol}
+            confs[res] = []
+            for f, mol in picks:
+                atoms = film.molecule_atoms(mol)
+                pos = geos[f].positions_A[atoms]
+                sc = state_charges(list(film.symbols[atoms]), pos, method_like, states=tuple(states),
+                                   transition=transition, charge=charge, **fit_kw)
+                confs[res].append(ConformerCharges(
+                    positions_A=pos, charges_e={k: np.asarray(v, float) for k, v in sc.charges_e.items()},
+                    transition_e=sc.transition_charges_e, frame=int(geos[f].frame), molecule=int(mol)))
+                fits.setdefault(res, sc)
         method = next(iter(fits.values())).method if fits else str(method_like)
-        return cls(charges_e=charges, transition_e=trans, fits=fits, reference=ref, method=method)
+        out = cls.from_conformers(confs, method=method)
+        out.fits = fits
+        if symmetrize:
+            out = out.symmetrized(film=film)
+        if stark_method is not None:
+            out = out.with_stark(stark_method, states=[s for s in ("S1", "T1") if s in states], charge=None,
+                                 film=film)
+        return out
+
+    def with_stark(self, method: Any, *, states: Sequence[str] = ("S1", "T1"), charge: int | None = 0,
+                   film: "Film | None" = None, step_V_A: float = 0.05) -> "StateChargeSet":
+        """A copy of the set with the polarizability changes of ``states`` fitted
+        on every conformer reference by finite fields with the engine ``method``
+        (:func:`~clusterlab.electrostatics.stark.differential_polarizability`).
+
+        ``charge`` is the molecules' net charge (None: from ``film``'s charges).
+
+        Raises
+        ------
+        InputError
+            A resname without reference geometries (sets made by :meth:`from_arrays`).
+        """
+        import copy
+
+        from .stark import differential_polarizability
+
+        out = copy.deepcopy(self)
+        for res in out.resnames:
+            refs = out.conformers.get(res)
+            if not refs:
+                raise InputError(f"residue {res!r} has no reference geometry; build the set with from_film "
+                                 "or from_conformers to fit polarizability changes.")
+            q = charge
+            if q is None:
+                if film is None or refs[0].molecule < 0:
+                    q = 0
+                else:
+                    net = film.molecules["charge"].iloc[refs[0].molecule]
+                    q = int(round(float(net))) if np.isfinite(net) else 0
+            syms = None
+            if film is not None and refs[0].molecule >= 0:
+                syms = list(film.symbols[film.molecule_atoms(refs[0].molecule)])
+            elif res in out.fits:
+                syms = list(out.fits[res].symbols)
+            if syms is None:
+                raise InputError(f"element symbols of {res!r} are unknown; pass film=.")
+            for ref in refs:
+                fit = differential_polarizability(syms, ref.positions_A, method, states=states, charge=int(q),
+                                                  step_V_A=step_V_A)
+                ref.dalpha_A3.update(fit.dalpha_A3)
+                ref.dmu_D.update(fit.dmu_D)
+        out.stark_method = method.to_dict() if hasattr(method, "to_dict") else {"method": str(method)}
+        return out
+
+    def symmetrized(self, classes: Mapping[str, npt.ArrayLike] | None = None, *,
+                    film: "Film | None" = None) -> "StateChargeSet":
+        """A copy with every state's charges averaged over equivalent atoms.
+
+        One reference copy of a symmetric molecule in a thermally distorted
+        geometry breaks the symmetry, and an excited-state difference density
+        can follow that breaking far more than the ground state does (for the
+        demo film's 2,2'-bithiophene the S1 difference charges of molecule 0
+        carry 3.5 D, all from its own distortion); averaging over equivalent
+        atoms keeps what every copy shares. Transition charges are left as
+        they are (a transition density need not be symmetric).
+
+        Parameters
+        ----------
+        classes : mapping resname -> array (n,) int, optional
+            Equivalence labels per atom; default: topological classes
+            (:func:`~clusterlab.electrostatics.conformers.equivalence_classes`)
+            from ``film``'s bonds (or from interatomic distances when it has none).
+        film : Film, optional
+            Needed when ``classes`` is not given.
+
+        Raises
+        ------
+        InputError
+            Neither ``classes`` nor ``film`` for a resname, or labels of the wrong length.
+        """
+        import copy
+
+        out = copy.deepcopy(self)
+        for res in out.resnames:
+            if classes is not None and res in classes:
+                lab = np.asarray(classes[res], dtype=np.int64)
+            elif film is not None:
+                lab = _topology_classes(film, res)
+            else:
+                raise InputError(f"no equivalence classes for {res!r}; pass classes= or film=.")
+            n = len(next(iter(out.charges_e[res].values())))
+            if len(lab) != n:
+                raise InputError(f"{len(lab)} equivalence labels for {res!r}, which has {n} atoms.")
+            avg = (lambda q: (np.bincount(lab, weights=q) / np.bincount(lab))[lab])
+            out.charges_e[res] = {k: avg(v) for k, v in out.charges_e[res].items()}
+            for c in out.conformers.get(res, []):
+                c.charges_e = {k: avg(v) for k, v in c.charges_e.items()}
+        out.method = self.method
+        return out
 
     # --------------------------------------------------------------- access
     @property
@@ -280,6 +498,8 @@ class StateChargeSet:
             "transition_e": {r: (None if t is None else np.asarray(t).tolist()) for r, t in self.transition_e.items()},
             "reference": self.reference,
             "fits": {r: json.loads(f.to_json()) for r, f in self.fits.items()},
+            "conformers": {r: [c.to_dict() for c in refs] for r, refs in self.conformers.items()},
+            "stark_method": self.stark_method,
         })
 
     @classmethod
@@ -300,6 +520,9 @@ class StateChargeSet:
         out = cls.from_arrays(d["charges_e"], transition=d.get("transition_e") or {}, method=d.get("method", "given"))
         out.reference = {r: {k: int(v) for k, v in ref.items()} for r, ref in d.get("reference", {}).items()}
         out.fits = {r: StateCharges.from_json(json.dumps(f)) for r, f in d.get("fits", {}).items()}
+        out.conformers = {r: [ConformerCharges.from_dict(c) for c in refs]
+                          for r, refs in (d.get("conformers") or {}).items()}
+        out.stark_method = dict(d.get("stark_method") or {})
         return out
 
     def save(self, path: str) -> None:
@@ -315,143 +538,33 @@ class StateChargeSet:
 # ----------------------------------------------------------------------------
 # environment pairs of one frame
 # ----------------------------------------------------------------------------
-@dataclass(frozen=True)
-class EnvironmentPairs:
-    """Directed molecule-image pairs of one frame: image ``shift_A[k]`` of
-    molecule ``env[k]`` belongs to the environment of molecule ``center[k]``
-    (``image[k]``: integer lattice translation)."""
+def _topology_classes(film: "Film", res: str) -> IntArray:
+    """Topological equivalence classes of the first molecule named ``res``."""
+    from .conformers import bonds_by_distance, equivalence_classes
 
-    center: IntArray
-    env: IntArray
-    image: IntArray
-    shift_A: FloatArray
-
-
-def _padded(positions_A: FloatArray, index: Any, values: Sequence[FloatArray]) -> tuple[FloatArray, list[FloatArray], npt.NDArray[np.bool_]]:
-    """Molecule-major padded arrays: positions (n_mol, m, 3), values (n_mol, m), mask."""
-    sizes = index.sizes()
-    n_mol, m = len(sizes), int(sizes.max())
-    within = np.arange(len(index.atoms)) - np.repeat(index.offsets[:-1], sizes)
-    rows = np.repeat(np.arange(n_mol), sizes)
-    mask = np.zeros((n_mol, m), bool)
-    mask[rows, within] = True
-    pos = np.zeros((n_mol, m, 3))
-    pos[rows, within] = positions_A[index.atoms]
-    vals = []
-    for v in values:
-        out = np.zeros((n_mol, m))
-        out[rows, within] = np.asarray(v)[index.atoms]
-        vals.append(out)
-    return pos, vals, mask
-
-
-def _candidate_pairs(centroids_A: FloatArray, box: FloatArray | None, cutoff_A: float
-                     ) -> tuple[IntArray, IntArray, IntArray, FloatArray]:
-    """Unordered molecule-image pairs with centroid distance <= cutoff.
-
-    Returns ``(i, j, image, distance)`` with one entry per unordered pair:
-    either ``i < j``, or ``i == j`` and a lattice translation that is
-    lexicographically positive; ``image`` is the translation of j.
-    """
-    n = len(centroids_A)
-    if box is None:
-        pairs = cKDTree(centroids_A).query_pairs(cutoff_A, output_type="ndarray").astype(np.int64)
-        i, j = pairs[:, 0], pairs[:, 1]
-        d = np.linalg.norm(centroids_A[i] - centroids_A[j], axis=1)
-        return i, j, np.zeros((len(i), 3), np.int64), d
-    h = box_vectors(box)
-    w = perpendicular_widths(h)
-    n_max = np.ceil(cutoff_A / w).astype(int) + 1
-    grid = np.stack(np.meshgrid(*[np.arange(-k, k + 1) for k in n_max], indexing="ij"), -1).reshape(-1, 3)
-    frac = to_fractional(centroids_A, h)
-    margin = cutoff_A / w + 1e-9
-    rep_f = frac[None, :, :] + grid[:, None, :]           # (n_t, n, 3)
-    keep = np.all((rep_f >= -margin) & (rep_f < 1 + margin), axis=2)
-    t_idx, j_idx = np.nonzero(keep)
-    rep = rep_f[t_idx, j_idx] @ h
-    tree_rep = cKDTree(rep)
-    sdm = cKDTree(centroids_A).sparse_distance_matrix(tree_rep, cutoff_A, output_type="ndarray")
-    i = sdm["i"].astype(np.int64)
-    k = sdm["j"].astype(np.int64)
-    j = j_idx[k].astype(np.int64)
-    img = grid[t_idx[k]].astype(np.int64)
-    d = np.asarray(sdm["v"], float)
-    lexpos = (img[:, 0] > 0) | ((img[:, 0] == 0) & ((img[:, 1] > 0) | ((img[:, 1] == 0) & (img[:, 2] > 0))))
-    canon = (i < j) | ((i == j) & lexpos)
-    # sparse_distance_matrix drops exact zero distances; images never coincide with
-    # another molecule's centroid in a physical film, so nothing is lost there
-    del n
-    return i[canon], j[canon], img[canon], d[canon]
-
-
-def _pair_blocks(
-    pos_pad: FloatArray, mask: npt.NDArray[np.bool_], q_pad: FloatArray, ext: FloatArray,
-    centroids_A: FloatArray, box: FloatArray | None, radius_A: float, rule: str,
-    want: npt.NDArray[np.bool_] | None,
-) -> tuple[FloatArray, EnvironmentPairs]:
-    """Environment potential (V) at every atom (padded, (n_mol, m)) and the
-    directed member pairs, for all molecules flagged in ``want`` (None: all)."""
-    n_mol, m, _ = pos_pad.shape
-    if rule == "atom":
-        cut = radius_A + 2.0 * float(ext.max()) + 1e-9
+    ids = np.flatnonzero(np.asarray(film.molecule_resnames) == res)
+    if ids.size == 0:
+        raise InputError(f"the film has no molecules named {res!r}.")
+    atoms = film.molecule_atoms(int(ids[0]))
+    syms = list(film.symbols[atoms])
+    b = getattr(film, "_bond_index", None)
+    if b is not None and len(b):
+        local = -np.ones(film.n_atoms, np.int64)
+        local[atoms] = np.arange(len(atoms))
+        bb = local[b]
+        bonds = bb[(bb >= 0).all(axis=1)]
     else:
-        cut = radius_A * (1 + 1e-12) + 1e-9
-    i, j, img, dcen = _candidate_pairs(centroids_A, box, cut)
-    if rule == "atom":
-        ok = dcen <= radius_A + ext[i] + ext[j] + 1e-9
-    else:
-        ok = dcen <= radius_A * (1 + 1e-12) + 1e-9
-    if want is not None:
-        ok &= want[i] | want[j]
-    i, j, img = i[ok], j[ok], img[ok]
-    h = box_vectors(box) if box is not None else np.zeros((3, 3))
-    shift = img @ h
-    pot = np.zeros(n_mol * m)
-    full = bool(mask.all())
-    keep_all = np.zeros(len(i), bool)
-    step = max(1, _CHUNK_ELEMS // (m * m * 3))
-    for s in range(0, len(i), step):
-        ii, jj, sh = i[s:s + step], j[s:s + step], shift[s:s + step]
-        pj = pos_pad[jj] + sh[:, None, :]
-        diff = pos_pad[ii][:, :, None, :] - pj[:, None, :, :]          # (c, m, m, 3)
-        r2 = np.einsum("cabx,cabx->cab", diff, diff)
-        if not full:
-            r2 = np.where(mask[ii][:, :, None] & mask[jj][:, None, :], r2, np.inf)
-        if rule == "atom":
-            member = np.sqrt(r2.reshape(len(ii), -1).min(axis=1)) <= radius_A
-        else:
-            member = np.ones(len(ii), bool)
-        keep_all[s:s + step] = member
-        if not member.any():
-            continue
-        if not member.all():
-            ii, jj, r2 = ii[member], jj[member], r2[member]
-        inv = 1.0 / np.sqrt(r2)
-        v_i = np.einsum("cab,cb->ca", inv, q_pad[jj])                  # potential at i's atoms from j
-        v_j = np.einsum("cab,ca->cb", inv, q_pad[ii])                  # potential at j's atoms from i
-        pot += np.bincount((ii[:, None] * m + np.arange(m)).ravel(), weights=v_i.ravel(), minlength=n_mol * m)
-        pot += np.bincount((jj[:, None] * m + np.arange(m)).ravel(), weights=v_j.ravel(), minlength=n_mol * m)
-    i, j, img, shift = i[keep_all], j[keep_all], img[keep_all], shift[keep_all]
-    pairs = EnvironmentPairs(center=np.r_[i, j], env=np.r_[j, i], image=np.r_[img, -img],
-                             shift_A=np.r_[shift, -shift])
-    return pot.reshape(n_mol, m) * COULOMB_EV_A, pairs
+        bonds = bonds_by_distance(syms, film.frame_geometry(0).positions_A[atoms])
+    return equivalence_classes(syms, bonds)
 
 
 def environment_pairs(film: "Film", radius: float, *, frame: int = 0, rule: str = "atom") -> EnvironmentPairs:
     """Which molecule images form each molecule's environment in one frame
     (the same choice as :meth:`~clusterlab.Film.carve`), for all molecules at once."""
     geo = film.frame_geometry(frame, periodic=film.has_box)
-    pos_pad, (q_pad,), mask = _padded(geo.positions_A, film.index, [np.zeros(film.n_atoms)])
-    ext = _extents(geo.positions_A, geo.centroids_A, film.index)
-    _, pairs = _pair_blocks(pos_pad, mask, q_pad, ext, geo.centroids_A, geo.box, _check_radius(radius),
-                            _check_rule(rule), None)
-    return pairs
-
-
-def _extents(positions_A: FloatArray, centroids_A: FloatArray, index: Any) -> FloatArray:
-    sizes = index.sizes()
-    d = np.linalg.norm(positions_A[index.atoms] - np.repeat(centroids_A, sizes, axis=0), axis=1)
-    return np.maximum.reduceat(d, index.offsets[:-1])
+    res = environment_potential(geo.positions_A, np.zeros(film.n_atoms), film.index.atoms, film.index.offsets,
+                                geo.centroids_A, geo.box, _check_radius(radius), rule=_check_rule(rule))
+    return res.pairs
 
 
 def _check_radius(radius: Any) -> float:
@@ -493,6 +606,99 @@ def _difference_arrays(film: "Film", charges: StateChargeSet, states: Sequence[s
             atoms = film.index.atoms[(film.index.offsets[ids][:, None] + np.arange(len(dq))).ravel()]
             out[s][atoms] = np.tile(dq, len(ids))
     return out, covered
+
+
+@dataclass(frozen=True)
+class _FrameFamilies:
+    """Conformer-family assignment of one frame."""
+
+    family: IntArray          # (n_mol,) index of the reference, -1 for types without references
+    rotation: FloatArray      # (n_mol, 3, 3) reference frame -> copy
+    rmsd_A: FloatArray        # (n_mol,)
+
+
+def _assign_families(film: "Film", charges: StateChargeSet, positions_A: FloatArray) -> _FrameFamilies:
+    from .conformers import assign_conformers
+
+    names = np.asarray(film.molecule_resnames)
+    fam = np.full(film.n_molecules, -1, np.int64)
+    rot = np.tile(np.eye(3), (film.n_molecules, 1, 1))
+    rms = np.full(film.n_molecules, np.nan)
+    for res, refs in charges.conformers.items():
+        ids = np.flatnonzero(names == res)
+        if ids.size == 0 or not refs:
+            continue
+        n = len(refs[0].positions_A)
+        if np.any(film.index.sizes()[ids] != n):
+            raise ChargeError(f"conformer references of {res!r} have {n} atoms, but some molecules of that "
+                              "name do not; the set does not fit this film.")
+        atoms = film.index.atoms[(film.index.offsets[ids][:, None] + np.arange(n)).ravel()]
+        copies = positions_A[atoms].reshape(len(ids), n, 3)
+        f, r, d = assign_conformers(np.stack([c.positions_A for c in refs]), copies)
+        fam[ids], rot[ids], rms[ids] = f, r, d
+    return _FrameFamilies(fam, rot, rms)
+
+
+def _family_overrides(film: "Film", charges: StateChargeSet, fams: _FrameFamilies, states: Sequence[str],
+                      dq: dict[str, FloatArray], q_env: FloatArray | None) -> None:
+    """Put each copy's family charges into the per-atom arrays (in place)."""
+    names = np.asarray(film.molecule_resnames)
+    for res, refs in charges.conformers.items():
+        ids = np.flatnonzero(names == res)
+        if ids.size == 0 or len(refs) < 2:
+            continue                                  # one reference: the static arrays hold it already
+        n = len(refs[0].positions_A)
+        atoms = film.index.atoms[(film.index.offsets[ids][:, None] + np.arange(n)).ravel()]
+        f = fams.family[ids]
+        for s in states:
+            table = np.stack([c.charges_e[s] - c.charges_e["S0"] for c in refs])
+            dq[s][atoms] = table[f].ravel()
+        if q_env is not None:
+            q_env[atoms] = np.stack([c.charges_e["S0"] for c in refs])[f].ravel()
+
+
+def _uniform_field(positions_A: FloatArray, potential_V: FloatArray, index: Any,
+                   min_spread_A: float = 0.1) -> FloatArray:
+    """Uniform field (V/Å) that best reproduces the potential over each molecule's atoms.
+
+    Least squares ``V_a ≈ V_0 - F·(r_a - r_mean)``; directions in which the
+    molecule's atoms spread less than ``min_spread_A`` (rms) get no field
+    component (a planar molecule gives no out-of-plane gradient).
+    """
+    sizes = index.sizes()
+    n_mol, m = len(sizes), int(sizes.max(initial=1))
+    rows = np.repeat(np.arange(n_mol), sizes)
+    slot = np.arange(len(index.atoms)) - index.offsets[:-1][rows]
+    x = np.zeros((n_mol, m, 3))
+    v = np.zeros((n_mol, m))
+    x[rows, slot] = positions_A[index.atoms]
+    v[rows, slot] = potential_V[index.atoms]
+    mask = np.zeros((n_mol, m))
+    mask[rows, slot] = 1.0
+    cnt = sizes[:, None].astype(float)
+    x = (x - (x.sum(axis=1) / cnt)[:, None, :]) * mask[..., None]
+    v = (v - (v.sum(axis=1, keepdims=True) / cnt)) * mask
+    u, sv, vt = np.linalg.svd(x, full_matrices=False)             # x = u diag(sv) vt
+    keep = sv > min_spread_A * np.sqrt(cnt)
+    inv = np.where(keep, 1.0 / np.where(keep, sv, 1.0), 0.0)
+    grad = np.einsum("nji,nj,nkj,nk->ni", vt, inv, u, v)           # pinv(x) @ v
+    return -grad
+
+
+def _dipole_term(film: "Film", charges: StateChargeSet, fams: "_FrameFamilies | None", state: str,
+                 fld: FloatArray) -> FloatArray:
+    """``-Δμ·F`` (eV) of every molecule, Δμ of its conformer reference turned into its orientation."""
+    names = np.asarray(film.molecule_resnames)
+    out = np.full(film.n_molecules, np.nan)
+    for res, refs in charges.conformers.items():
+        ids = np.flatnonzero(names == res)
+        if ids.size == 0:
+            continue
+        fam = np.maximum(fams.family[ids], 0) if fams is not None else np.zeros(ids.size, int)
+        mu = np.stack([c.dmu_D[state] for c in refs])[fam] * DEBYE_E_A
+        r = fams.rotation[ids] if fams is not None else np.tile(np.eye(3), (ids.size, 1, 1))
+        out[ids] = -np.einsum("ni,nij,nj->n", fld[ids], r, mu)
+    return out
 
 
 def _env_charges(film: "Film", charges: StateChargeSet, environment: str) -> FloatArray:
@@ -594,6 +800,7 @@ def film_site_energies(
     polarization_cutoff_A: float | None = None,
     polarization_tol_eA: float = 1e-6,
     ewald_accuracy: float = 1e-6,
+    threads: int = 1,
 ) -> pd.DataFrame:
     """Electrostatic environment shifts of every molecule of every frame.
 
@@ -606,10 +813,23 @@ def film_site_energies(
         beyond half the box include every qualifying periodic image once.
     frames : iterable of int, optional
         Default: all frames.
-    model : {"charges", "charges+polarization"}
-        With polarization, the charged states also get Thole polarization
-        energies ``P_cation_eV``, ``P_anion_eV`` (negative) and totals
-        (see the module docstring; about a second per molecule).
+    model : {"charges", "charges+stark", "charges+polarization", "charges+stark+polarization"}
+        ``"stark"`` adds the second-order (quadratic Stark) term of the
+        neutral excitations, ``-1/2 F·Δα_X·F``, with F the uniform field
+        that best reproduces the environment potential over the molecule's
+        atoms and Δα_X the polarizability change of the molecule's conformer
+        reference, turned into the copy's orientation (the set must carry
+        Δα: :meth:`StateChargeSet.with_stark`). ``S1_shift_eV`` /
+        ``T1_shift_eV`` are then first plus second order, with the parts in
+        ``<state>_first_order_eV`` and ``<state>_stark_eV`` and ``|F|`` in
+        ``field_V_A``. ``"field"``: the neutral excitations from their
+        finite-field response alone, ``-Δμ_X·F - 1/2 F·Δα_X·F`` (Δμ from the
+        same fit: an energy derivative, i.e. the *relaxed* dipole change,
+        where difference charges carry the unrelaxed one; the ions keep
+        their charges); ``<state>_first_order_eV`` then holds ``-Δμ·F``.
+        ``"polarization"``: the charged states also get Thole
+        polarization energies ``P_cation_eV``, ``P_anion_eV`` (negative) and
+        totals (see the module docstring; about a second per molecule).
     charges : StateChargeSet
         State charges per residue name; molecules of other residue names get NaN.
     periodic_limit : bool
@@ -632,6 +852,9 @@ def film_site_energies(
         Convergence threshold of the induced dipoles (e·Å).
     ewald_accuracy : float
         Relative accuracy of the periodic limit.
+    threads : int
+        Threads for the pair sums of each frame (numpy/BLAS release the GIL);
+        1 runs everything in the calling thread.
 
     Returns
     -------
@@ -640,9 +863,12 @@ def film_site_energies(
         z_A`` (centroid, primary cell), ``n_env_molecules`` (environment
         molecule images), ``<state>_shift_eV`` per state, ``IP_shift_eV``
         / ``EA_shift_eV`` when the ions are asked for (engine sign
-        convention: EA = E(neutral) - E(anion)), and with polarization
-        ``P_cation_eV, P_anion_eV, cation_total_eV, anion_total_eV,
-        P_converged`` (IP/EA then include polarization).
+        convention: EA = E(neutral) - E(anion)), with conformer references
+        ``conformer`` (index of the reference each copy took) and
+        ``conformer_rmsd_A``, with the Stark term the columns named under
+        ``model``, and with polarization ``P_cation_eV, P_anion_eV,
+        cation_total_eV, anion_total_eV, P_converged`` (IP/EA then include
+        polarization).
 
     Raises
     ------
@@ -663,7 +889,7 @@ def film_site_energies(
     if bad or not states:
         raise InputError(f"states {list(states)!r} are invalid; choose from {list(SHIFT_STATES)}.")
     if model not in MODELS:
-        raise InputError(f"{model!r} is an invalid model. Use 'charges' or 'charges+polarization'.")
+        raise InputError(f"{model!r} is an invalid model. Use one of {', '.join(map(repr, MODELS))}.")
     if not isinstance(charges, StateChargeSet):
         raise InputError(f"charges= must be a StateChargeSet; got {type(charges).__name__}.")
     radius = _check_radius(radius)
@@ -679,8 +905,20 @@ def film_site_energies(
     if periodic_limit and not film.has_box:
         raise InputError("periodic_limit=True needs a film with a periodic box.")
     dq, covered = _difference_arrays(film, charges, states)
-    q_env = _env_charges(film, charges, environment)
-    polar = model == "charges+polarization"
+    dq0 = {s: np.nan_to_num(v) for s, v in dq.items()}
+    q_env0 = _env_charges(film, charges, environment)
+    polar = "polarization" in model
+    field_model = model.startswith("field")
+    stark_states = [s for s in states if s in NEUTRAL_STATES] if ("stark" in model or field_model) else []
+    for res in charges.resnames:
+        refs = charges.conformers.get(res, [])
+        miss = [s for s in stark_states if not refs or any(s not in c.dalpha_A3 or (field_model and s not in c.dmu_D)
+                                                              for c in refs)]
+        if miss:
+            raise InputError(f"model={model!r} needs polarizability (and, for 'field', dipole) changes of {miss} for "
+                             f"{res!r}; fit them with StateChargeSet.with_stark(method) or "
+                             "from_film(..., stark_method=method).")
+    families = bool(charges.conformers)
     pol_states = [s for s in states if s in CHARGED_STATES] if polar else []
     alpha_all = atomic_polarizabilities(list(film.symbols)) if pol_states else None
     names = np.asarray(film.molecule_resnames)
@@ -690,20 +928,51 @@ def film_site_energies(
     try:
         for f in frame_list:
             geo = film.frame_geometry(f, periodic=film.has_box)
-            ext = _extents(geo.positions_A, geo.centroids_A, film.index)
-            pos_pad, (q_pad, *dq_pad), mask = _padded(geo.positions_A, film.index,
-                                                      [q_env, *[np.nan_to_num(dq[s]) for s in states]])
-            pot, pairs = _pair_blocks(pos_pad, mask, q_pad, ext, geo.centroids_A, geo.box, radius, rule,
-                                      None if molecules is None else want)
+            q_env, dq_f = q_env0, dq0
+            fams = None
+            if families:
+                fams = _assign_families(film, charges, geo.positions_A)
+                dq_f = {s: v.copy() for s, v in dq0.items()}
+                q_env = q_env0.copy() if environment == "fitted" else None
+                _family_overrides(film, charges, fams, states, dq_f, q_env)
+                q_env = q_env0 if q_env is None else q_env
+            env = environment_potential(geo.positions_A, q_env, film.index.atoms, film.index.offsets,
+                                        geo.centroids_A, geo.box, radius, rule=rule,
+                                        want=None if molecules is None else want, threads=threads)
+            pot = env.potential_V
+            pairs = env.pairs
             row: dict[str, Any] = {
                 "frame": np.full(len(mol_sel), geo.frame), "molecule": mol_sel, "resname": names[mol_sel],
                 "x_A": geo.centroids_A[mol_sel, 0], "y_A": geo.centroids_A[mol_sel, 1],
                 "z_A": geo.centroids_A[mol_sel, 2],
                 "n_env_molecules": np.bincount(pairs.center, minlength=film.n_molecules)[mol_sel],
             }
-            for s, d in zip(states, dq_pad):
-                val = np.einsum("ma,ma->m", d, pot)[mol_sel]
+            if fams is not None:
+                row["conformer"] = fams.family[mol_sel]
+                row["conformer_rmsd_A"] = fams.rmsd_A[mol_sel]
+            for s in states:
+                val = np.bincount(film.molecule_of_atom, weights=dq_f[s] * pot, minlength=film.n_molecules)[mol_sel]
                 row[f"{s}_shift_eV"] = np.where(covered[mol_sel], val, np.nan)
+            if stark_states:
+                fld = _uniform_field(geo.positions_A, pot, film.index)
+                row["field_V_A"] = np.linalg.norm(fld, axis=1)[mol_sel]
+                for s in stark_states:
+                    e2 = np.full(film.n_molecules, np.nan)
+                    for res, refs in charges.conformers.items():
+                        ids = np.flatnonzero(names == res)
+                        if ids.size == 0:
+                            continue
+                        fam = np.maximum(fams.family[ids], 0) if fams is not None else np.zeros(ids.size, int)
+                        da = np.stack([c.dalpha_A3[s] for c in refs])[fam]
+                        r = fams.rotation[ids] if fams is not None else np.tile(np.eye(3), (ids.size, 1, 1))
+                        da = np.einsum("nij,njk,nlk->nil", r, da, r)
+                        e2[ids] = stark_energy_eV(da, fld[ids])
+                    first = row[f"{s}_shift_eV"]
+                    if field_model:
+                        first = np.where(covered[mol_sel], _dipole_term(film, charges, fams, s, fld)[mol_sel], np.nan)
+                    row[f"{s}_first_order_eV"] = first
+                    row[f"{s}_stark_eV"] = e2[mol_sel]
+                    row[f"{s}_shift_eV"] = first + e2[mol_sel]
             if periodic_limit:
                 from .ewald import ewald_potential
 
@@ -711,7 +980,7 @@ def film_site_energies(
                                       point_groups=film.molecule_of_atom, charge_groups=film.molecule_of_atom,
                                       accuracy=ewald_accuracy)
                 for s in states:
-                    v = np.bincount(film.molecule_of_atom, weights=np.nan_to_num(dq[s]) * phi,
+                    v = np.bincount(film.molecule_of_atom, weights=dq_f[s] * phi,
                                     minlength=film.n_molecules)[mol_sel]
                     row[f"{s}_shift_periodic_eV"] = np.where(covered[mol_sel], v, np.nan)
             if pol_states:
@@ -723,7 +992,7 @@ def film_site_energies(
                     if not covered[mol]:
                         continue
                     sel = order[bounds[mol]:bounds[mol + 1]]
-                    res = _polarize(geo, film, int(mol), pairs, sel, {s: dq[s] for s in pol_states}, alpha_all,
+                    res = _polarize(geo, film, int(mol), pairs, sel, {s: dq_f[s] for s in pol_states}, alpha_all,
                                     polarization_cutoff_A, polarization_tol_eA)
                     for s, (e, ok) in res.items():
                         p_vals[s][k] = e
@@ -770,20 +1039,38 @@ def conformer_spread(
     molecules: Sequence[int] | None = None,
     **fit_kw: Any,
 ) -> pd.DataFrame:
-    """Error of reusing one copy's charges for every conformation.
+    """Error of reusing reference charges for every conformation, by refitting copies.
 
-    Refits the state charges of ``n_copies`` molecules of ``resname`` at their
-    own geometries (same method and fit options) and recomputes their
-    environment shifts in the same environment, with the refitted difference
-    charges in place of the reference ones.
+    The model gives each copy the charges of its conformer reference (or of
+    the one reference). This refits the state charges of ``n_copies`` copies
+    of ``resname`` at their own geometries (same method and fit options as
+    passed here) and evaluates the first-order shift of each copy with its own
+    difference charges in the same environment potential; the difference is
+    what the transfer costs.
+
+    Parameters
+    ----------
+    film, charges : Film, StateChargeSet
+    method_like : method description for
+        :func:`~clusterlab.electrostatics.statecharges.state_charges`
+    radius, rule : carving semantics of the environment
+    resname : str, optional
+        Molecule type (default: the set's first).
+    n_copies, seed : random copies to refit (``numpy.random.default_rng(seed)``)
+    frame : int
+    states : sequence of states
+    molecules : sequence of int, optional
+        Copies to refit instead of a random choice.
+    **fit_kw
+        Passed to ``state_charges`` (grid, grid_level, density_fit, ...).
 
     Returns
     -------
     pandas.DataFrame
-        One row per (molecule, state): ``frame, molecule, state,
-        shift_reference_eV, shift_refit_eV, error_eV`` (reference - refit).
-        ``df.groupby("state")["error_eV"].agg(["mean", "std"])`` is the
-        estimate to quote; ``df.attrs["rms_error_eV"]`` holds the RMS per state.
+        One row per (molecule, state): ``frame, molecule, state, conformer,
+        conformer_rmsd_A, shift_model_eV, shift_refit_eV, error_eV`` (model -
+        refit). ``df.attrs["rms_error_eV"]`` holds the RMS per state, the
+        estimate to quote next to the model's shifts.
 
     Raises
     ------
@@ -795,15 +1082,23 @@ def conformer_spread(
     ids = np.flatnonzero(names == res)
     if ids.size == 0 or res not in charges.charges_e:
         raise InputError(f"residue {res!r} is not in both the film and the charge set.")
+    states = tuple(states)
+    bad = [s for s in states if s not in SHIFT_STATES or s not in charges.charges_e[res]]
+    if bad:
+        raise InputError(f"states {bad} are not shift states of the set for {res!r}; it has {charges.states_of(res)}.")
     if molecules is None:
         rng = np.random.default_rng(seed)
         picks = np.sort(rng.choice(ids, size=min(n_copies, ids.size), replace=False))
     else:
         picks = np.asarray(molecules, dtype=np.int64)
-    ref = film_site_energies(film, states, radius=radius, frames=[frame], charges=charges, rule=rule,
-                             progress=False, molecules=picks.tolist()).set_index("molecule")
+    radius = _check_radius(radius)
     geo = film.frame_geometry(frame, periodic=film.has_box)
-    base = {s: charges.charges_e[res][s] for s in ("S0", *states)}
+    want = np.zeros(film.n_molecules, bool)
+    want[picks] = True
+    q_env = np.asarray(film.charges, dtype=np.float64)
+    pot = environment_potential(geo.positions_A, q_env, film.index.atoms, film.index.offsets, geo.centroids_A,
+                                geo.box, radius, rule=_check_rule(rule), want=want).potential_V
+    fams = _assign_families(film, charges, geo.positions_A) if charges.conformers else None
     rows = []
     for mol in picks:
         atoms = film.molecule_atoms(int(mol))
@@ -811,30 +1106,18 @@ def conformer_spread(
         sc = state_charges(list(film.symbols[atoms]), geo.positions_A[atoms], method_like,
                            states=("S0", *states), transition=False,
                            charge=int(round(float(net))) if np.isfinite(net) else 0, **fit_kw)
-        own = StateChargeSet.from_arrays({res: {**base}})
-        # only this copy gets its own charges: give it a private residue name
-        tag = f"{res}\x1f{int(mol)}"
-        own.charges_e[tag] = {s: np.asarray(sc.charges_e[s], float) for s in ("S0", *states)}
-        new = _shift_with_override(film, own, tag, int(mol), states, radius, frame, rule)
+        fam = int(fams.family[mol]) if fams is not None else 0
+        ref = charges.conformers[res][fam].charges_e if fams is not None and fam >= 0 else charges.charges_e[res]
+        rms = float(fams.rmsd_A[mol]) if fams is not None else float("nan")
+        v = pot[atoms]
         for s in states:
-            r0 = float(ref.loc[int(mol), f"{s}_shift_eV"])
-            rows.append((geo.frame, int(mol), s, r0, new[s], r0 - new[s]))
-    out = pd.DataFrame(rows, columns=["frame", "molecule", "state", "shift_reference_eV", "shift_refit_eV", "error_eV"])
+            model = float((ref[s] - ref["S0"]) @ v)
+            refit = float(sc.difference(s) @ v)
+            rows.append((geo.frame, int(mol), s, fam, rms, model, refit, model - refit))
+    out = pd.DataFrame(rows, columns=["frame", "molecule", "state", "conformer", "conformer_rmsd_A",
+                                      "shift_model_eV", "shift_refit_eV", "error_eV"])
     out.attrs["rms_error_eV"] = out.groupby("state")["error_eV"].apply(lambda e: float(np.sqrt(np.mean(e**2)))).to_dict()
     return out
-
-
-def _shift_with_override(film: "Film", cset: StateChargeSet, tag: str, mol: int, states: Sequence[str],
-                         radius: float, frame: int, rule: str) -> dict[str, float]:
-    """Shifts of one molecule with its own difference charges (environment: film charges)."""
-    geo = film.frame_geometry(frame, periodic=film.has_box)
-    want = np.zeros(film.n_molecules, bool)
-    want[mol] = True
-    pos_pad, (q_pad,), mask = _padded(geo.positions_A, film.index, [film.charges])
-    ext = _extents(geo.positions_A, geo.centroids_A, film.index)
-    pot, _ = _pair_blocks(pos_pad, mask, q_pad, ext, geo.centroids_A, geo.box, radius, rule, want)
-    n = film.index.sizes()[mol]
-    return {s: float(np.dot(cset.difference(tag, s), pot[mol, :n])) for s in states}
 
 
 def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequence[int] | None = None,
