@@ -380,3 +380,23 @@ def test_conformer_families_and_spread():
     back = StateChargeSet.from_json(two.to_json())
     assert len(back.conformers["WAT"]) == 2 and np.allclose(back.conformers["WAT"][1].positions_A,
                                                             two.conformers["WAT"][1].positions_A)
+
+
+def test_run_film_model_with_response(small_film):
+    """The study-level driver with response=True fits charges and finite-field
+    Δμ/Δα on the reference copy (HF/STO-3G CIS water) and reports S1/T1 as
+    -Δμ·F - 1/2 F·Δα·F; the parts add up and the ions keep their charges."""
+    from clusterlab.electrostatics.sitemodel import run_film_model
+    from clusterlab.qm.method import Method
+
+    m = Method(xc="hf", basis="sto-3g", density_fit=False, grid_level=1, n_singlets=2, n_triplets=2,
+               excited="tda")
+    table = run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True, progress=False)
+    cset = table.attrs["charges"]
+    ref = cset.conformers["WAT"][0]
+    assert set(ref.dalpha_A3) == {"S1", "T1"} and set(ref.dmu_D) == {"S1", "T1"}
+    assert np.allclose(table["S1_shift_eV"], table["S1_first_order_eV"] + table["S1_stark_eV"])
+    plain = film_site_energies(small_film, ("cation",), radius=5.0, frames=[0], charges=cset, progress=False)
+    assert np.allclose(table["cation_shift_eV"], plain["cation_shift_eV"])
+    with pytest.raises(InputError, match="needs a clusterlab.Method"):
+        run_film_model(small_film, "hf/sto-3g", radius_A=5.0, frames=[0], response=True, progress=False)

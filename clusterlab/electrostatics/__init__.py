@@ -5,6 +5,10 @@
 * :mod:`.espfit` - charges fitted to a QM electrostatic potential; transition charges.
 * :mod:`.statecharges` - ESP charges of S0, S1, T1, cation, anion (PySCF).
 * :mod:`.lattice` - dipolar-disorder check on a cubic lattice.
+* :mod:`.pairsum` - exact potentials of every molecule's carved environment, all molecules at once.
+* :mod:`.conformers` - superposition, conformer references, topological equivalence.
+* :mod:`.stark` - finite-field dipole and polarizability changes of excited states (engine).
+* :mod:`.sitemodel` - the film-wide site-energy model.
 
 Units: Å, e, V (= eV/e), V/Å, e·Å, Å³, eV; boxes ``[lx, ly, lz, alpha, beta, gamma]``.
 """
@@ -51,6 +55,17 @@ __all__ = [
     "permanent_field", "polarization_energy", "solve_induced_dipoles",
 ]
 
-from .sitemodel import StateChargeSet, conformer_spread, environment_pairs, film_site_energies  # noqa: E402
+from .conformers import assign_conformers, equivalence_classes, pick_references, superpose  # noqa: E402
+from .pairsum import environment_potential  # noqa: E402
+from .sitemodel import (  # noqa: E402
+    ConformerCharges,
+    StateChargeSet,
+    conformer_spread,
+    environment_pairs,
+    film_site_energies,
+)
+from .stark import StarkFit, differential_polarizability, stark_energy_eV  # noqa: E402
 
-__all__ += ["StateChargeSet", "film_site_energies", "conformer_spread", "environment_pairs"]
+__all__ += ["StateChargeSet", "ConformerCharges", "film_site_energies", "conformer_spread", "environment_pairs",
+            "environment_potential", "superpose", "pick_references", "assign_conformers", "equivalence_classes",
+            "StarkFit", "differential_polarizability", "stark_energy_eV"]

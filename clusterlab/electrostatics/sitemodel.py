@@ -30,19 +30,49 @@ Charges
 -------
 State charges come from a :class:`StateChargeSet`: per residue name, ESP
 charges of S0, S1, T1, cation and anion (and S0->S1 transition charges),
-fitted by :func:`clusterlab.electrostatics.statecharges.state_charges` on one
-reference copy of the molecule taken whole from the film. The environment's
+fitted by :func:`clusterlab.electrostatics.statecharges.state_charges` on
+reference copies of the molecule taken whole from the film. The environment's
 ground-state charges are the film's charge source (``environment="film"``,
 e.g. topology charges; what carving puts into clusters) or the fitted S0
 charges (``environment="fitted"``).
 
 Conformations
 -------------
-The fitted charges are reused for every copy of a molecule type by atom
-correspondence (atom order within the molecule), with no refit per geometry.
-:func:`conformer_spread` measures the error this makes: it refits a few copies
-at their own geometries and reports how far the predicted shifts move.
-Charges (scalars) need no rotation; only their assignment to atoms matters.
+Charges are mapped onto every copy of a molecule type by atom correspondence
+(atom order within the molecule); charges are scalars and need no rotation.
+Conformational change is handled in three ways, none of them a refit per
+geometry:
+
+* **conformer families** (``StateChargeSet.from_film(..., n_conformers=k)``):
+  reference copies chosen by farthest-point sampling in superposed RMSD; each
+  copy in each frame takes the numbers of the reference it superposes best
+  onto (:mod:`clusterlab.electrostatics.conformers`; columns ``conformer``,
+  ``conformer_rmsd_A``). For the demo film's bithiophene: a syn-like and an
+  anti-like reference.
+* **symmetrized charges** (:meth:`StateChargeSet.symmetrized`): averaged over
+  topologically equivalent atoms, which removes the part of a difference
+  density that follows one copy's own thermal distortion.
+* **an error estimate** (:func:`conformer_spread`): refits a few copies at
+  their own geometries and reports how far their shifts move.
+
+Second order (``model="charges+stark"`` and ``model="field"``)
+----------------------------------------------------------------
+A fixed set of difference charges gives only the first-order energy. In a
+field F an excitation energy also changes by ``-1/2 F·Δα·F`` (Δα = alpha_X -
+alpha_S0), which for a bright pi->pi* state of a conjugated molecule can
+dominate: measured on the demo film (``bench/diagnose_s1.py``) the part of the
+embedded-QM S1 shift that is even in the environment charges has three times
+the spread of the odd part. The polarizability changes come from finite fields
+with the QM engine itself (:mod:`clusterlab.electrostatics.stark`), per
+conformer reference, turned into each copy's orientation by the superposition;
+F is the uniform field that best reproduces the environment potential over the
+molecule's atoms (least squares). ``"field"`` replaces the charges of the
+neutral excitations by their whole finite-field response, ``-Δμ·F - 1/2
+F·Δα·F``: its Δμ is an energy derivative (a relaxed dipole change), where
+difference charges from unrelaxed TDA densities overstate it (2-4x on the demo
+film). Both leave out the field's variation across the molecule beyond its
+uniform part (and, for ``"field"``, every multipole above the dipole) and any
+change of Δα with the copy's own distortion beyond its family.
 
 Polarization (``model="charges+polarization"``)
 -----------------------------------------------
@@ -64,12 +94,14 @@ molecule, so this model costs about a second per molecule; use
 
 Vectorisation
 -------------
-Per frame: one KD-tree search over molecule centroids and their periodic
-images (scipy ``cKDTree``) gives the candidate molecule-image pairs; each
-unordered pair is evaluated once, as a dense block of atom-atom distances
-(numpy, in chunks), which decides membership (closest atom pair) and gives
-both directions' potentials; potentials are accumulated with ``np.bincount``.
-There is no Python loop over atoms or pairs (only over frames and chunks).
+Per frame, :func:`clusterlab.electrostatics.pairsum.environment_potential`:
+one KD-tree search over centroids and their periodic replicas gives the
+unordered candidate pairs; for each molecule, one BLAS matrix product of
+augmented coordinates gives the squared distances to all its partners' atoms,
+block minima decide membership, and ``1/r`` with two matrix-vector products
+gives the potential in both directions. The sum is exact (agreement with a
+direct per-molecule sum to about 1e-13 relative). One Python iteration per
+molecule and frame, none per pair or atom; ``threads=`` splits the molecules.
 
 Units: Å, e, V (= eV/e), eV.
 """
@@ -1123,8 +1155,9 @@ def conformer_spread(
 def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequence[int] | None = None,
                    polarization: bool = False, polarize_molecules: Sequence[int] | None = None,
                    reference_molecule: int = 0, charges: StateChargeSet | None = None,
-                   progress: bool = True) -> pd.DataFrame:
-    """Fit state charges on one reference copy (unless given) and evaluate the
+                   progress: bool = True, n_conformers: int = 1, response: bool = False,
+                   symmetrize: bool = False) -> pd.DataFrame:
+    """Fit state charges on reference copies (unless given) and evaluate the
     film-wide model for S1, T1, cation and anion of every molecule and frame.
 
     ``method`` is a :class:`~clusterlab.Method` (its grid level and density
@@ -1135,19 +1168,42 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
     it is computed for ``polarize_molecules`` (default: all) in the first
     frame of ``frames``; other rows have NaN polarization columns.
 
+    ``n_conformers`` and ``symmetrize`` are passed to
+    :meth:`StateChargeSet.from_film`. ``response=True`` also fits the S1/T1
+    dipole and polarizability changes of every reference by finite fields with
+    ``method`` (a :class:`~clusterlab.Method`; 13 engine calculations per
+    reference) and evaluates S1/T1 with ``model="field"`` (see
+    :func:`film_site_energies`): on the demo film this is what makes the S1
+    shifts follow embedded QM (README).
+
     The fitted :class:`StateChargeSet` is kept in ``table.attrs["charges"]``
     (transition charges included, for excitonic couplings).
+
+    Raises
+    ------
+    InputError
+        ``response=True`` with a method that is not a :class:`~clusterlab.Method`.
     """
+    from ..qm.method import Method
+
+    if response and not isinstance(method, Method) and (charges is None or not charges.stark_method):
+        raise InputError("response=True needs a clusterlab.Method (the finite fields run the QM engine); "
+                         f"got {method!r}.")
     if charges is None:
         res = str(film.molecule_resnames[film._check_molecule(reference_molecule)])
         fit_kw: dict[str, Any] = {"grid_level": 1, "density_fit": True}
         if hasattr(method, "grid_level"):
             fit_kw = {"grid_level": method.grid_level, "density_fit": method.density_fit}
         charges = StateChargeSet.from_film(film, method, resnames=[res], molecules={res: reference_molecule},
-                                           **fit_kw)
+                                           n_conformers=n_conformers, symmetrize=symmetrize,
+                                           stark_method=method.replace(n_singlets=max(method.n_singlets, 1),
+                                                                       n_triplets=max(method.n_triplets, 1))
+                                           if response else None, **fit_kw)
+    elif response and not all(c.dalpha_A3 for refs in charges.conformers.values() for c in refs):
+        charges = charges.with_stark(method, film=film, charge=None)
     states = ("S1", "T1", "cation", "anion")
-    table = film_site_energies(film, states, radius=radius_A, frames=frames, model="charges", charges=charges,
-                               progress=progress)
+    table = film_site_energies(film, states, radius=radius_A, frames=frames,
+                               model="field" if response else "charges", charges=charges, progress=progress)
     if polarization:
         f0 = [int(table.frame.min())]
         pol = film_site_energies(film, ("cation", "anion"), radius=radius_A, frames=f0,
