@@ -70,7 +70,7 @@ def ethylene_fit():
 
 
 def test_tensor_predicts_exact_uniform_field_pyscf(ethylene_fit):
-    """Δα from the engine's far-charge fields (six directions, 0.05 V/Å)
+    """Δα from the engine's far-charge fields (six directions, 0.1 and 0.2 V/Å)
     predicts the even part of the CIS energy change in an *exact* uniform field
     of another direction and strength (0.15 V/Å along (3, 1, 1)/√11), computed
     with plain PySCF: within 2 % for T1 and S1 (fourth-order terms and the

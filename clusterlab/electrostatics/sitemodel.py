@@ -222,7 +222,8 @@ class StateChargeSet:
         every copy. ``charges_e`` and ``transition_e`` always hold the first
         reference's numbers.
     stark_method : dict
-        The engine method of the finite-field fits (``Method.to_dict()``), if any.
+        The engine method of the finite-field fits (``Method.to_dict()`` plus
+        the field strengths ``steps_V_A``), if any.
 
     Examples
     --------
@@ -328,7 +329,7 @@ class StateChargeSet:
             Frames whose copies are candidates (default: ``[frame]``).
         stark_method : clusterlab.Method, optional
             Also fit the polarizability changes of S1/T1 of every reference by
-            finite fields (13 engine calculations each, see
+            finite fields (25 engine calculations each, see
             :func:`~clusterlab.electrostatics.stark.differential_polarizability`);
             needed by ``model="charges+stark"``.
         symmetrize : bool
@@ -389,7 +390,7 @@ class StateChargeSet:
         return out
 
     def with_stark(self, method: Any, *, states: Sequence[str] = ("S1", "T1"), charge: int | None = 0,
-                   film: "Film | None" = None, step_V_A: float = 0.05) -> "StateChargeSet":
+                   film: "Film | None" = None, steps_V_A: Sequence[float] = (0.1, 0.2)) -> "StateChargeSet":
         """A copy of the set with the polarizability changes of ``states`` fitted
         on every conformer reference by finite fields with the engine ``method``
         (:func:`~clusterlab.electrostatics.stark.differential_polarizability`).
@@ -427,10 +428,11 @@ class StateChargeSet:
                 raise InputError(f"element symbols of {res!r} are unknown; pass film=.")
             for ref in refs:
                 fit = differential_polarizability(syms, ref.positions_A, method, states=states, charge=int(q),
-                                                  step_V_A=step_V_A)
+                                                  steps_V_A=steps_V_A)
                 ref.dalpha_A3.update(fit.dalpha_A3)
                 ref.dmu_D.update(fit.dmu_D)
-        out.stark_method = method.to_dict() if hasattr(method, "to_dict") else {"method": str(method)}
+        out.stark_method = {**(method.to_dict() if hasattr(method, "to_dict") else {"method": str(method)}),
+                            "steps_V_A": [float(x) for x in steps_V_A]}
         return out
 
     def symmetrized(self, classes: Mapping[str, npt.ArrayLike] | None = None, *,
@@ -1171,7 +1173,7 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
     ``n_conformers`` and ``symmetrize`` are passed to
     :meth:`StateChargeSet.from_film`. ``response=True`` also fits the S1/T1
     dipole and polarizability changes of every reference by finite fields with
-    ``method`` (a :class:`~clusterlab.Method`; 13 engine calculations per
+    ``method`` (a :class:`~clusterlab.Method`; 25 engine calculations per
     reference) and evaluates S1/T1 with ``model="field"`` (see
     :func:`film_site_energies`): on the demo film this is what makes the S1
     shifts follow embedded QM (README).
