@@ -62,3 +62,17 @@ def test_two_families_are_found_and_assigned():
         pick_references(copies, 0)
     with pytest.raises(InputError, match="do not match"):
         superpose(shapes[0], copies[:, :3])
+
+
+def test_medoid_references_are_typical_copies():
+    """Farthest-point sampling picks a family's extreme; the medoid step moves each
+    reference to the member with the smallest summed RMSD to its family, checked
+    here by brute force over all members."""
+    rng = np.random.default_rng(9)
+    base = np.array([[0.0, 0, 0], [1.5, 0, 0], [2.2, 1.2, 0], [3.6, 1.3, 0.4]])
+    copies = np.stack([base + rng.normal(scale=0.1 * (1 + k % 5), size=base.shape) for k in range(30)])
+    far = pick_references(copies, 1, first=int(np.argmax([np.abs(c - base).sum() for c in copies])))
+    med = pick_references(copies, 1, first=int(far[0]), medoids=True)
+    sums = [superpose(copies[a], copies)[1].sum() for a in range(len(copies))]
+    assert int(med[0]) == int(np.argmin(sums))
+    assert sums[int(med[0])] < sums[int(far[0])]

@@ -85,12 +85,16 @@ def superpose(reference_A: npt.ArrayLike, copies_A: npt.ArrayLike, *, reflection
 
 
 def pick_references(copies_A: npt.ArrayLike, n_references: int, *, first: int = 0,
-                    min_rmsd_A: float = 0.0) -> IntArray:
+                    min_rmsd_A: float = 0.0, medoids: bool = False, max_rounds: int = 5) -> IntArray:
     """Choose reference copies by farthest-point sampling in superposed RMSD.
 
     The first reference is copy ``first``; each next one is the copy farthest
     (in RMSD to its nearest reference) from those chosen so far. Sampling stops
     early when no copy is farther than ``min_rmsd_A`` from every reference.
+    Farthest points are the family's extremes; with ``medoids=True`` every
+    reference then moves to the medoid of its family (the member with the
+    smallest summed RMSD to the others; k-medoids rounds, at most
+    ``max_rounds``), a copy typical of the family.
 
     Parameters
     ----------
@@ -98,6 +102,8 @@ def pick_references(copies_A: npt.ArrayLike, n_references: int, *, first: int = 
     n_references : int
     first : int
     min_rmsd_A : float
+    medoids : bool
+    max_rounds : int
 
     Returns
     -------
@@ -122,6 +128,21 @@ def pick_references(copies_A: npt.ArrayLike, n_references: int, *, first: int = 
             break
         chosen.append(nxt)
         dist = np.minimum(dist, superpose(cop[nxt], cop)[1])
+    if not medoids:
+        return np.asarray(chosen, dtype=np.int64)
+    for _ in range(int(max_rounds)):
+        fam = assign_conformers(cop[chosen], cop)[0]
+        new = []
+        for k in range(len(chosen)):
+            members = np.flatnonzero(fam == k)
+            if members.size == 0:
+                new.append(chosen[k])
+                continue
+            pair = np.stack([superpose(cop[a], cop[members])[1] for a in members])
+            new.append(int(members[np.argmin(pair.sum(axis=1))]))
+        if new == chosen:
+            break
+        chosen = new
     return np.asarray(chosen, dtype=np.int64)
 
 

@@ -16,21 +16,23 @@ How it is made fast
    centroids and their periodic replicas (:func:`candidate_pairs`), each
    unordered pair once: a pair's atom-atom terms serve both molecules
    (Newton's third law for potentials: ``1/r_ab`` is symmetric).
-2. Atoms are stored molecule-major and in coordinates relative to their own
-   centroid, augmented so that one matrix product gives squared distances:
+2. Atoms are stored molecule-major (padded to the largest molecule),
+   augmented so that one matrix product gives squared distances:
    ``[x, |x|^2, 1] · [-2y, 1, |y|^2] = |x - y|^2``. For each molecule, one
    BLAS matrix product gives the squared distances from its atoms to the atoms
-   of all its candidate partners (``y`` = partner atoms relative to the
-   molecule's centroid; |x| is at most the molecule's extent, so rounding stays
-   near 1e-14 relative).
-3. Membership (``rule="atom"``) is the minimum of each partner's column block
-   (``np.minimum.reduceat``); pairs whose closest distance lies within 1e-9
-   relative of the radius are decided again from plain coordinate differences,
-   so boundary cases follow carving's arithmetic.
-4. Member columns get ``1/r`` (``sqrt`` and ``divide`` in place), and two BLAS
+   of all its candidate partners (coordinates relative to the cell centre, so
+   rounding stays near 1e-13 relative for boxes of 100 Å).
+3. Membership (``rule="atom"``): a cheap lower bound (the molecule's atoms
+   to the partner's centroid, minus the partner's extent) drops partners that
+   are certainly outside and orders the rest closest first; the minimum of
+   each partner's block of squared distances decides; pairs whose closest
+   distance lies within 1e-9 relative of the radius are decided again from
+   plain coordinate differences, so boundary cases follow carving's arithmetic.
+4. The leading rows up to the last member get ``1/r`` (``sqrt`` and
+   ``divide`` in place; non-members among them get zero weight), and two BLAS
    matrix-vector products give the potential at the molecule's atoms and at
-   the partners' atoms. Partner contributions are added with one
-   ``np.bincount`` per frame.
+   the partners' atoms. Partner contributions are summed per periodic copy and
+   added with one ``np.bincount`` per frame.
 
 There is one Python-level iteration per molecule (not per pair or atom).
 
@@ -257,7 +259,6 @@ def environment_potential(
     local = np.where(mask[..., None], pos - cent[:, None, :], 0.0)
     dist0 = np.sqrt(np.einsum("nak,nak->na", local, local))
     ext = np.where(mask, dist0, 0.0).max(axis=1)
-    near = np.where(mask, dist0, np.inf).min(axis=1)
     atom_rule = rule == "atom"
 
     cut = radius_A + 2.0 * float(ext.max(initial=0.0)) + 1e-9 if atom_rule else radius_A * (1 + 1e-12) + 1e-9
@@ -270,15 +271,11 @@ def environment_potential(
     if want is not None:
         ok &= want[cp.i] | want[cp.j]
     sel = np.flatnonzero(ok)
-    # by centre molecule, then by how close the partner can come (members first)
-    sel = sel[np.lexsort(((dcen - ext[cp.j])[sel], cp.i[sel]))]
+    sel = sel[np.argsort(cp.i[sel], kind="stable")]                        # by centre molecule
     cp = cp.take(sel)
     dcen = dcen[sel]
     i, j = cp.i, cp.j
     n_pairs = len(i)
-    # certainly inside: the two atoms nearest the centroids are within the radius
-    sure = (dcen + near[i] + near[j] <= radius_A * (1 - 1e-9)) if atom_rule else np.ones(n_pairs, bool)
-
     # augmented coordinates, |x - y|^2 = [x, |x|^2, 1] . [-2y, 1, |y|^2]; relative to the cell
     # centre (|x|, |y| stay below a box diagonal plus the radius); padding atoms sit 10^6 Å away
     origin = cent.mean(axis=0) if n_mol else np.zeros(3)
@@ -300,11 +297,13 @@ def environment_potential(
     member = np.ones(n_pairs, bool)
     bounds = np.searchsorted(i, np.arange(n_mol + 1))
     centres = np.flatnonzero(np.diff(bounds))
-    idx = np.where(sure, n_pairs, np.arange(n_pairs))
-    first_amb = np.minimum.reduceat(idx, bounds[centres]) if len(centres) else np.zeros(0, np.int64)
-    work = list(zip(centres.tolist(), bounds[centres].tolist(), bounds[centres + 1].tolist(), first_amb.tolist()))
+    work = list(zip(centres.tolist(), bounds[centres].tolist(), bounds[centres + 1].tolist(),
+                    [0] * len(centres)))
+    rc = cent[rep_mol] + cp.replica_shift_A - origin
+    cen_aug = np.c_[-2.0 * rc, np.ones(len(rc)), np.einsum("rk,rk->r", rc, rc)]
     ctx = _Blocks(x_aug=x_aug, y_aug=y_aug, q=q, q_rep=q_rep, replica=cp.replica, m=m, r2cut=radius_A * radius_A,
-                  pos=pos, mask=mask, cp=cp, pot=pot, member=member)
+                  pos=pos, mask=mask, cp=cp, pot=pot, member=member, cen_aug=cen_aug, ext_rep=ext[rep_mol],
+                  radius_A=float(radius_A), atom_rule=atom_rule)
     n_threads = max(1, min(int(threads), len(work)))
     if n_threads == 1:
         back = _centre_blocks(ctx, work)
@@ -347,6 +346,10 @@ class _Blocks:
     cp: CandidatePairs
     pot: FloatArray
     member: BoolArray
+    cen_aug: FloatArray       # (n_rep, 5) replica centroids, [-2c, 1, |c|^2]
+    ext_rep: FloatArray       # (n_rep,) replica extents
+    radius_A: float
+    atom_rule: bool
 
 
 def _centre_blocks(ctx: _Blocks, work: list[tuple[int, int, int, int]]) -> FloatArray:
@@ -356,32 +359,46 @@ def _centre_blocks(ctx: _Blocks, work: list[tuple[int, int, int, int]]) -> Float
     x_aug, y_aug, q, q_rep, m, r2cut = ctx.x_aug, ctx.y_aug, ctx.q, ctx.q_rep, ctx.m, ctx.r2cut
     pot, member, rep_of_pair = ctx.pot, ctx.member, ctx.replica
     back = np.zeros(q_rep.shape)
-    for c, s, e, a0 in work:
+    mm = m * m
+    for c, s, e, _ in work:
         kk = rep_of_pair[s:e]
-        g = x_aug[c] @ y_aug[kk].reshape(-1, 5).T                        # (m, K m) squared distances
-        n_keep = e - s
-        w = q_rep[kk]
         mf = None
-        if a0 < e:                                                        # some need the atom test
-            pmin = g[:, (a0 - s) * m:].min(axis=0).reshape(-1, m).min(axis=1)
+        if ctx.atom_rule:
+            # lower bound of each partner's closest approach: the centre's atoms to the
+            # partner's centroid, minus its extent; drop the certainly-outside, closest first
+            lb2 = (ctx.cen_aug[kk] @ x_aug[c].T).min(axis=1)
+            lb = np.sqrt(np.maximum(lb2, 0.0)) - ctx.ext_rep[kk]
+            order = np.argsort(lb)[: np.count_nonzero(lb <= ctx.radius_A * (1 + 1e-9) + 1e-9)]
+            member[s:e] = False
+            if len(order) == 0:
+                continue
+            kk = kk[order]
+            g = y_aug[kk].reshape(-1, 5) @ x_aug[c].T                    # (K m, m) squared distances
+            pmin = g.reshape(-1, mm).min(axis=1)
             edge = np.abs(pmin - r2cut) <= _EDGE_REL * r2cut
             if edge.any():
                 pmin[edge] = _exact_min_d2(ctx.pos[c][ctx.mask[c]], ctx.pos, ctx.mask, ctx.cp,
-                                           a0 + np.flatnonzero(edge))
+                                           s + order[np.flatnonzero(edge)])
             mem = pmin <= r2cut
-            if not mem.all():
-                member[a0:e] = mem
-                last = np.flatnonzero(mem)
-                n_keep = (a0 - s) + (int(last[-1]) + 1 if len(last) else 0)
-                if n_keep == 0:
-                    continue
-                mf = member[s:s + n_keep, None]
-                w = w[:n_keep] * mf
-        gv = g[:, : n_keep * m]
+            member[s + order] = mem
+            last = np.flatnonzero(mem)
+            if len(last) == 0:
+                continue
+            n_keep = int(last[-1]) + 1
+            if not mem[:n_keep].all():
+                mf = mem[:n_keep, None]
+            w = q_rep[kk[:n_keep]]
+            if mf is not None:
+                w = w * mf
+        else:
+            g = y_aug[kk].reshape(-1, 5) @ x_aug[c].T
+            n_keep = e - s
+            w = q_rep[kk]
+        gv = g[: n_keep * m]                                              # contiguous rows
         np.sqrt(gv, out=gv)
         np.divide(1.0, gv, out=gv)                                        # 1/r
-        pot[c] += gv @ w[:n_keep].ravel()
-        b = (q[c] @ gv).reshape(n_keep, m)
+        pot[c] += w.ravel() @ gv
+        b = (gv @ q[c]).reshape(n_keep, m)
         if mf is not None:
             b *= mf
         back[kk[:n_keep]] += b

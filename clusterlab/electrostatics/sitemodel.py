@@ -301,8 +301,8 @@ class StateChargeSet:
                   frame: int = 0, molecules: Mapping[str, int] | None = None,
                   states: Sequence[str] = KNOWN_STATES, transition: bool = True,
                   n_conformers: int = 1, conformer_frames: Sequence[int] | None = None,
-                  min_conformer_rmsd_A: float = 0.25, stark_method: Any = None,
-                  symmetrize: bool = False, **fit_kw: Any) -> "StateChargeSet":
+                  min_conformer_rmsd_A: float = 0.25, conformer_medoids: bool = True,
+                  stark_method: Any = None, symmetrize: bool = False, **fit_kw: Any) -> "StateChargeSet":
         """Fit state charges on reference copies of each molecule type.
 
         Parameters
@@ -324,7 +324,10 @@ class StateChargeSet:
             the references chosen so far are fitted too (farthest-point
             sampling, :func:`~clusterlab.electrostatics.conformers.pick_references`),
             until ``n_conformers`` or until no copy is farther than
-            ``min_conformer_rmsd_A``. Each costs one more QM fit.
+            ``min_conformer_rmsd_A``; with ``conformer_medoids`` every reference
+            then moves to the medoid of its family (a typical copy rather than
+            an extreme one; the first reference may move too). Each costs one
+            more QM fit.
         conformer_frames : sequence of int, optional
             Frames whose copies are candidates (default: ``[frame]``).
         stark_method : clusterlab.Method, optional
@@ -365,7 +368,8 @@ class StateChargeSet:
                 cand = [(f, int(m)) for f in frames for m in ids]
                 copies = np.stack([geos[f].positions_A[film.molecule_atoms(m)] for f, m in cand])
                 first = cand.index((int(frame), mol0))
-                chosen = pick_references(copies, int(n_conformers), first=first, min_rmsd_A=min_conformer_rmsd_A)
+                chosen = pick_references(copies, int(n_conformers), first=first, min_rmsd_A=min_conformer_rmsd_A,
+                                         medoids=conformer_medoids)
                 picks = [cand[k] for k in chosen]
             net = film.molecules["charge"].iloc[mol0]
             charge = int(round(float(net))) if np.isfinite(net) else 0
@@ -390,12 +394,14 @@ class StateChargeSet:
         return out
 
     def with_stark(self, method: Any, *, states: Sequence[str] = ("S1", "T1"), charge: int | None = 0,
-                   film: "Film | None" = None, steps_V_A: Sequence[float] = (0.1, 0.2)) -> "StateChargeSet":
+                   film: "Film | None" = None, steps_V_A: Sequence[float] = (0.1, 0.2),
+                   refit: bool = True) -> "StateChargeSet":
         """A copy of the set with the polarizability changes of ``states`` fitted
         on every conformer reference by finite fields with the engine ``method``
         (:func:`~clusterlab.electrostatics.stark.differential_polarizability`).
 
         ``charge`` is the molecules' net charge (None: from ``film``'s charges).
+        ``refit=False`` keeps references that already carry every state.
 
         Raises
         ------
@@ -427,6 +433,8 @@ class StateChargeSet:
             if syms is None:
                 raise InputError(f"element symbols of {res!r} are unknown; pass film=.")
             for ref in refs:
+                if not refit and all(st in ref.dalpha_A3 and st in ref.dmu_D for st in states):
+                    continue
                 fit = differential_polarizability(syms, ref.positions_A, method, states=states, charge=int(q),
                                                   steps_V_A=steps_V_A)
                 ref.dalpha_A3.update(fit.dalpha_A3)
