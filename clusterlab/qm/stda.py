@@ -47,46 +47,29 @@ from ..errors import CalculationError, ConvergenceError, InputError
 from ..units import HARTREE_TO_EV
 from .response import ResponseStates
 
-__all__ = ["stda_response", "CHEMICAL_HARDNESS_EV", "exchange_fraction", "stda_gamma"]
+__all__ = ["stda_response", "STDA_HARDNESS_EH", "exchange_fraction", "stda_gamma"]
 
 logger = logging.getLogger(__name__)
 
 FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.intp]
 
-#: Chemical hardness eta (eV) per element, as used by the sTDA paper
-#: (Grimme, J. Chem. Phys. 138, 244104 (2013)), which takes them from
-#: Ghosh & Islam, Int. J. Quantum Chem. 110, 1206 (2010).
-#: Status: "from memory" -- recalled, not checked against the printed table.
-#: The numbers below are the recalled absolute hardness (I - A)/2; the sTDA
-#: integrals use the Pariser-type hardness I - A, i.e. twice these values
-#: (``_HARDNESS_FACTOR``; also from memory). Checked here only indirectly:
-#: with (I - A)/2 the S1 of 11 small molecules deviated from full TDA by
-#: 0.69 eV on average, with I - A by about 0.2 eV, in line with the paper's
-#: reported accuracy. Elements beyond Ar are not supported.
-CHEMICAL_HARDNESS_EV: dict[str, float] = {
-    "H": 6.4299996,
-    "He": 12.5449999,
-    "Li": 2.3745999,
-    "Be": 3.4971000,
-    "B": 4.6198000,
-    "C": 5.7423999,
-    "N": 6.8650999,
-    "O": 7.9878001,
-    "F": 9.1104002,
-    "Ne": 10.2330999,
-    "Na": 2.4438999,
-    "Mg": 3.0738000,
-    "Al": 3.6037001,
-    "Si": 4.1335998,
-    "P": 4.6634998,
-    "S": 5.1933999,
-    "Cl": 5.7233000,
-    "Ar": 6.2531999,
+#: Atomic hardness eta = I - A (Hartree) of the sTDA integrals, Z = 1-18.
+#: Grimme, J. Chem. Phys. 138, 244104 (2013) takes the global hardness of
+#: Ghosh & Islam, Int. J. Quantum Chem. 110, 1206 (2010), defined there as
+#: (I - A)/2, and doubles it, because the one-centre repulsion (AA|AA) is
+#: I - A = d^2E/dN^2. Confirmed: these are the numbers of the method
+#: author's published reference program (stda, S. Grimme, LGPL-3), and an
+#: independent PySCF implementation of the sTDA lists the undoubled
+#: Ghosh-Islam values in eV, exactly half of these (e.g. H 6.429954,
+#: C 5.740979, S 5.295979 eV; checked in tests/test_stda.py).
+STDA_HARDNESS_EH: dict[str, float] = {
+    "H": 0.472592880, "He": 0.922033910, "Li": 0.174528880, "Be": 0.257007330,
+    "B": 0.339490860, "C": 0.421954120, "N": 0.504381930, "O": 0.586918630,
+    "F": 0.669313510, "Ne": 0.751916070, "Na": 0.179641050, "Mg": 0.221572760,
+    "Al": 0.263485780, "Si": 0.305396450, "P": 0.347340140, "S": 0.389247250,
+    "Cl": 0.431156700, "Ar": 0.473082690,
 }
-
-#: the sTDA uses eta = I - A, twice the tabulated (I - A)/2 above
-_HARDNESS_FACTOR = 2.0
 
 #: alpha = ALPHA1 + ALPHA2 a_x, beta = BETA1 + BETA2 a_x
 #: (Grimme, J. Chem. Phys. 138, 244104 (2013); confirmed, see
@@ -364,12 +347,12 @@ def _hardness_Eh(mol: Any) -> FloatArray:
     eta = np.empty(mol.natm)
     for a in range(mol.natm):
         sym = mol.atom_pure_symbol(a)
-        if sym not in CHEMICAL_HARDNESS_EV:
+        if sym not in STDA_HARDNESS_EH:
             raise InputError(
                 f"element {sym!r} (atom {a}) has no sTDA chemical hardness; "
-                f"supported: {', '.join(CHEMICAL_HARDNESS_EV)}"
+                f"supported: {', '.join(STDA_HARDNESS_EH)}"
             )
-        eta[a] = _HARDNESS_FACTOR * CHEMICAL_HARDNESS_EV[sym] / HARTREE_TO_EV
+        eta[a] = STDA_HARDNESS_EH[sym]
     return eta
 
 
