@@ -71,7 +71,7 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "preset": Setting((str,), "draft", "method preset to start from (see `clusterlab presets`)"),
         "xc": Setting((str,), None, "exchange-correlation functional (overrides the preset)"),
         "basis": Setting((str,), None, "basis set (overrides the preset)"),
-        "excited": Setting((str,), None, "excited-state model", ("tda", "tddft", "stda")),
+        "excited": Setting((str,), None, "excited-state model", ("tda", "tddft", "stda", "stda-refined")),
         "n_singlets": Setting((int,), None, "number of singlet states"),
         "n_triplets": Setting((int,), None, "number of triplet states"),
         "charged_states": Setting((bool,), None, "also compute IP/EA by ΔSCF"),

@@ -19,6 +19,7 @@ from clusterlab.qm import (
     periodic_excitations,
 )
 from clusterlab.qm.following import assign_states, transition_overlaps
+from clusterlab.units import HARTREE_TO_EV
 
 HF_MIN = Method(xc="hf", basis="sto-3g", n_singlets=2, n_triplets=1, density_fit=False)
 DFT_SMALL = Method(xc="b3lyp", basis="6-31g", n_singlets=2, n_triplets=1, grid_level=1, response_grid_level=0)
@@ -214,3 +215,25 @@ def test_periodic_embedding_matches_large_cluster_direction_and_radius_inf():
     tri = Cluster.from_arrays(["O", "H", "H"], water(), env, q, box=[12, 12, 12, 90, 80, 90])
     with pytest.raises(InputError, match="orthorhombic"):
         periodic_excitations(tri, m)
+
+
+def test_davidson_finds_the_lowest_states_of_ethylene():
+    """Regression for a missed state: at B3LYP/6-31G the lowest singlets of
+    ethylene include states whose leading orbital pair is not among the
+    three lowest gaps. The engine's Davidson (n + 2 roots from Koopmans
+    guesses) must give the same three lowest energies as PySCF's own TDA
+    solver asked for eight roots (independent solver, same matrix)."""
+    sym = ["C", "C", "H", "H", "H", "H"]
+    pos = np.array([[0, 0, 0], [1.34, 0, 0], [-0.564, 0.921, 0], [-0.564, -0.921, 0],
+                    [1.904, 0.921, 0], [1.904, -0.921, 0]])
+    m = Method(xc="b3lyp", basis="6-31g", density_fit=False, grid_level=1, response_grid_level=None,
+               n_singlets=3, n_triplets=3, response_conv_tol=1e-6)
+    r = excitations(Cluster.from_arrays(sym, pos), m, vacuum=False)
+    mf = r._work["calc"].mf
+    for kind, states in (("singlet", r.singlets), ("triplet", r.triplets)):
+        td = mf.TDA()
+        td.singlet, td.nstates, td.conv_tol, td.verbose = kind == "singlet", 8, 1e-7, 0
+        td.kernel()
+        ref = td.e[:3] * HARTREE_TO_EV
+        np.testing.assert_allclose([s.energy_eV for s in states], ref, atol=2e-4)
+        assert all(s.converged for s in states)

@@ -34,7 +34,7 @@ from ..units import AU_DIPOLE_TO_DEBYE, HARTREE_TO_EV
 from . import ct as _ct
 from .following import assign_states, rotate_amplitudes, transition_overlaps
 from .method import Method
-from .response import ResponseStates
+from .response import ResponseStates, subspace_refine
 from .results import NAN, ChargedResult, ExcitationResult, ExcitedState, _versions
 
 FloatArray = npt.NDArray[np.float64]
@@ -45,7 +45,11 @@ FALLBACK_LEVEL_SHIFT_EH = 0.3
 #: |net environment charge| (e) above which the embedding is called non-neutral: topology
 #: charges printed to 6 decimals leave ~1e-6 e per molecule of rounding (common practice).
 NEUTRAL_TOL_E = 1e-4
-#: Extra Davidson roots solved for (and discarded) beyond the states asked.
+#: Extra Davidson roots solved for (and discarded) beyond the states asked: with
+#: only n roots the solver can converge onto higher states and miss a low one
+#: whose leading orbital pair is not among the n lowest gaps (seen: the 3B1
+#: state of formaldehyde at B3LYP/def2-SVP with n=2; the S1 of ethylene at
+#: B3LYP/6-31G with n=3 from Koopmans or sTDA starting vectors).
 EXTRA_ROOTS = 2
 
 
@@ -189,76 +193,122 @@ def _response_scf(mf, method: Method):
     return mfr
 
 
-def _tdscf_states(mf_resp, method: Method, kind: str, n: int, x0: FloatArray | None) -> ResponseStates:
+def _stda_guess(mf, method: Method, kind: str, n: int) -> FloatArray | None:
+    """The ``n`` lowest sTDA vectors of this SCF, shape (n, nocc*nvir), or
+    None where the sTDA cannot run (an element without sTDA parameters)."""
+    from .stda import stda_response
+
+    try:
+        st = stda_response(mf, kind, n, method)
+    except (InputError, CalculationError) as exc:
+        log.info("no sTDA vectors for the refined model (%s); Koopmans guesses only", exc)
+        return None
+    return st.amplitudes.reshape(st.n_states, -1)
+
+
+def _tda_davidson(vind, hdiag: FloatArray, guess: FloatArray, nroots: int, method: Method, max_cycle: int):
+    """Lowest ``nroots`` eigenpairs of the TDA matrix by the classic Davidson
+    method (PySCF's ``lib.davidson1``: each iteration adds one vector per
+    unconverged root). Returns (converged flags, energies, vectors)."""
+    from pyscf import lib
+
+    def aop(xs):
+        return list(vind(np.asarray(xs)))
+
+    def precond(dx, e, *args):
+        d = hdiag - (e - 1e-4)
+        d[np.abs(d) < 1e-8] = 1e-8
+        return dx / d
+
+    conv, e, xs = lib.davidson1(aop, list(guess), precond, tol=1e-12, tol_residual=method.response_conv_tol,
+                                nroots=nroots, max_cycle=max_cycle, max_space=max(12, 4 * nroots), verbose=0)
+    return (np.atleast_1d(np.asarray(conv, dtype=bool)), np.atleast_1d(np.asarray(e, dtype=float)),
+            np.atleast_2d(np.asarray(xs, dtype=float)))
+
+
+def _tdscf_states(mf, mf_resp, method: Method, kind: str, n: int, x0: FloatArray | None) -> ResponseStates:
+    """Full TDA/TDDFT states, or the "stda-refined" model.
+
+    ``mf`` holds the orbitals (the sTDA vectors of the refined model come
+    from it); ``mf_resp`` is the same SCF on the response grid. ``x0``
+    (shape (m, nocc, nvir)) are the previous result's vectors rotated into
+    these orbitals (warm start); the refined model ignores them, so that its
+    numbers do not depend on what was computed before.
+    """
     singlet = kind == "singlet"
-    td = mf_resp.TDA() if method.excited == "tda" else mf_resp.TDDFT()
+    refined = method.excited == "stda-refined"
+    full_rpa = method.excited == "tddft"
+    td = mf_resp.TDDFT() if full_rpa else mf_resp.TDA()
     td.singlet = singlet
-    td.nstates = n
     td.conv_tol = method.response_conv_tol
     td.verbose = 0
     nocc = int((mf_resp.mo_occ > 0).sum())
     nvir = len(mf_resp.mo_occ) - nocc
-    n = min(n, nocc * nvir)
-    # Solve for a few roots more than asked and keep the lowest n: with only
-    # n Koopmans guesses the Davidson solver can miss a low state whose
-    # leading pair is not among the n lowest orbital-energy gaps (seen for
-    # the 3B1 state of formaldehyde at B3LYP/def2-SVP with n=2).
-    n_solve = min(n + EXTRA_ROOTS, nocc * nvir)
-    td.nstates = n_solve
-    guess = None
-    if x0 is not None and len(x0) and x0.shape[1:] == (nocc, nvir):
-        guess = x0.reshape(len(x0), -1)
-        if len(guess) < n_solve:  # pad with Koopmans guesses
-            extra = td.get_init_guess(mf_resp, n_solve)
-            guess = np.vstack([guess, extra[: n_solve - len(guess)]])
-        guess = guess[:n_solve]
-        if method.excited == "tddft":
-            guess = np.hstack([guess, np.zeros_like(guess)])
-    try:
-        td.kernel(x0=guess)
-    except Exception:  # noqa: BLE001 - a bad warm guess must not kill the run
-        if guess is None:
-            raise
-        td.kernel()
-    conv = np.atleast_1d(np.asarray(td.converged, dtype=bool))
-    if conv.size == 1 and n_solve > 1:
-        conv = np.repeat(conv, n_solve)
-    if not conv[:n].all():  # one retry with more iterations from the current vectors
-        log.warning("%s response not converged; retrying with %d iterations", kind, 2 * td.max_cycle)
-        td.max_cycle *= 2
-        xs = np.array([x.ravel() for x, _ in td.xy])
-        if method.excited == "tddft":
-            xs = np.array([np.hstack([x.ravel(), y.ravel()]) for x, y in td.xy])
-        td.kernel(x0=xs)
+    nov = nocc * nvir
+    n = min(n, nov)
+    n_solve = min(n + EXTRA_ROOTS, nov)
+    warm = not refined and x0 is not None and len(x0) > 0 and x0.shape[1:] == (nocc, nvir)
+    guess = td.get_init_guess(mf_resp, n_solve)  # Koopmans: lowest orbital-energy gaps
+    if full_rpa:
+        guess = guess[:, :nov]
+    if warm:
+        guess = np.vstack([x0.reshape(len(x0), -1), guess])[: max(n_solve, len(x0))]
+    extra: dict[str, Any] = {"warm_start": bool(warm)}
+    if full_rpa:
+        # PySCF's non-Hermitian solver; Y starts at zero
+        td.nstates = n_solve
+        try:
+            td.kernel(x0=np.hstack([guess, np.zeros_like(guess)]))
+        except Exception:  # noqa: BLE001 - a bad warm guess must not kill the run
+            td.kernel()
         conv = np.atleast_1d(np.asarray(td.converged, dtype=bool))
-        if conv.size == 1 and n_solve > 1:
-            conv = np.repeat(conv, n_solve)
+        conv = np.repeat(conv, n_solve) if conv.size == 1 else conv
+        if not conv[:n].all():  # one retry with more iterations from the current vectors
+            log.warning("%s response not converged; retrying with %d iterations", kind, 2 * td.max_cycle)
+            td.max_cycle *= 2
+            td.kernel(x0=np.array([np.hstack([x.ravel(), y.ravel()]) for x, y in td.xy]))
+            conv = np.atleast_1d(np.asarray(td.converged, dtype=bool))
+            conv = np.repeat(conv, n_solve) if conv.size == 1 else conv
+        energies = np.asarray(td.e, float).reshape(-1)
+        vecs = np.array([(np.asarray(x, float) + np.asarray(y, float)).ravel() for x, y in td.xy])
+    else:
+        vind, hdiag = td.gen_vind(mf_resp)
+        if refined:
+            sg = _stda_guess(mf, method, kind, n_solve)
+            start = guess if sg is None else np.vstack([sg, guess])
+            energies, vecs, res = subspace_refine(vind, hdiag, start, n_solve)
+            conv = np.ones(len(energies), dtype=bool)
+            extra.update(subspace_iterations=2, start_vectors="stda+koopmans" if sg is not None else "koopmans",
+                         first_step_residual_Eh=[float(r) for r in res[:n]])
+        else:
+            conv, energies, vecs = _tda_davidson(vind, hdiag, guess, n_solve, method, td.max_cycle)
+            if not conv[:n].all():  # one retry with more iterations from the current vectors
+                log.warning("%s response not converged; retrying with %d iterations", kind, 2 * td.max_cycle)
+                conv, energies, vecs = _tda_davidson(vind, hdiag, vecs, n_solve, method, 2 * td.max_cycle)
+        # PySCF's convention: X of a closed-shell state normalised to 1/2
+        td.e = energies[:n]
+        td.xy = [(v.reshape(nocc, nvir) / np.linalg.norm(v) * np.sqrt(0.5), 0) for v in vecs[:n]]
     conv = conv[:n]
-    amps = []
-    for x, y in td.xy[:n]:
-        a = np.asarray(x, float) + (np.asarray(y, float) if method.excited == "tddft" else 0.0)
-        a = a.reshape(nocc, nvir)
-        amps.append(a / (np.linalg.norm(a) or 1.0))
-    amps_arr = np.array(amps) if amps else np.zeros((0, nocc, nvir))
+    amps_all = vecs.reshape(len(vecs), nocc, nvir)
+    norms = np.linalg.norm(vecs, axis=1)
+    amps_all = amps_all / np.where(norms > 0, norms, 1.0)[:, None, None]
+    extra["solved_vectors"] = amps_all  # every root solved, for warm starts (not serialised)
     if singlet and n:
         tdip = np.asarray(td.transition_dipole(), float).reshape(-1, 3)[:n]
         osc = np.asarray(td.oscillator_strength(), float).reshape(-1)[:n]
     else:
         tdip, osc = np.zeros((n, 3)), np.zeros(n)
-    return ResponseStates(kind=kind, model=method.excited, energies_Eh=np.asarray(td.e, float).reshape(-1)[:n],
-                          amplitudes=amps_arr, transition_dipoles_au=tdip, osc_strength=osc, converged=conv)
+    return ResponseStates(kind=kind, model=method.excited, energies_Eh=np.asarray(energies, float)[:n],
+                          amplitudes=amps_all[:n], transition_dipoles_au=tdip, osc_strength=osc, converged=conv,
+                          extra=extra)
 
 
 def _response(mf, method: Method, kind: str, n: int, x0: FloatArray | None) -> ResponseStates:
     if method.excited == "stda":
-        try:
-            from .stda import stda_response  # written separately; imported lazily
-        except ImportError as exc:
-            raise CalculationError(f"excited='stda' needs clusterlab.qm.stda, which could not be imported ({exc}); "
-                                   "use excited='tda' or 'tddft'.") from exc
+        from .stda import stda_response
 
         return stda_response(mf, kind, n, method)
-    return _tdscf_states(_response_scf(mf, method), method, kind, n, x0)
+    return _tdscf_states(mf, _response_scf(mf, method), method, kind, n, x0)
 
 
 # ---------------------------------------------------------- one calculation
@@ -276,6 +326,8 @@ class _Calc:
     s_ao: FloatArray
     dipole_D: list[float]
     states: dict[str, ResponseStates] = field(default_factory=dict)
+    #: every response vector solved per kind (more than the states kept), for warm starts
+    vectors: dict[str, FloatArray] = field(default_factory=dict)
     ct: dict[str, tuple[FloatArray, FloatArray, list[str]]] = field(default_factory=dict)
     timings: dict[str, float] = field(default_factory=dict)
     mf: Any = None
@@ -330,10 +382,11 @@ def _calculate(symbols, positions_A, charge: int, env_pos, env_q, method: Method
             progress(f"{tag} {kind}s")
         t = time.perf_counter()
         x0 = None
-        if guess_calc is not None and kind in guess_calc.states and guess_calc.converged:
-            x0 = rotate_amplitudes(guess_calc.states[kind].amplitudes, guess_calc.mo_coeff, calc.mo_coeff, calc.s_ao)
+        if guess_calc is not None and kind in guess_calc.vectors and guess_calc.converged:
+            x0 = rotate_amplitudes(guess_calc.vectors[kind], guess_calc.mo_coeff, calc.mo_coeff, calc.s_ao)
         rs = _response(mf, method, kind, n, x0)
         calc.states[kind] = rs
+        calc.vectors[kind] = rs.extra.pop("solved_vectors", rs.amplitudes)
         calc.timings[f"{kind}s"] = time.perf_counter() - t
         t = time.perf_counter()
         calc.ct[kind] = _ct_measures(mf, mol, calc, rs, method)

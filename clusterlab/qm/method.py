@@ -16,7 +16,7 @@ from typing import Any
 from ..errors import InputError
 
 #: Valid values of :attr:`Method.excited`.
-EXCITED_MODELS = ("tda", "tddft", "stda")
+EXCITED_MODELS = ("tda", "tddft", "stda", "stda-refined")
 
 #: Default Gaussian width (Å) of the environment charges. A Gaussian charge
 #: exp(-r^2/w^2) differs from a point charge in its potential by
@@ -79,9 +79,13 @@ class Method:
         coarser grid costs little accuracy (see ``bench/``).
     n_singlets, n_triplets : int
         Number of excited states of each spin kind (0 allowed).
-    excited : {"tda", "tddft", "stda"}
-        Response model: Tamm-Dancoff, full linear response, or the
-        simplified TDA of :mod:`clusterlab.qm.stda`.
+    excited : {"tda", "tddft", "stda", "stda-refined"}
+        Response model: Tamm-Dancoff, full linear response, the
+        simplified TDA of :mod:`clusterlab.qm.stda` (published sTDA), or
+        "stda-refined": the sTDA states refined by two subspace iterations
+        with the full TDA operator (Rayleigh-Ritz in the span of the sTDA
+        vectors, then one Davidson correction step); close to full TDA for
+        singlets *and* triplets at a fraction of its cost (README).
     charged_states : bool
         Also compute the cation and anion by ΔSCF (IP/EA site energies).
     charge_smearing_A : float
