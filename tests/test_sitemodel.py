@@ -397,7 +397,9 @@ def test_run_film_model_with_response(small_film):
     ref = cset.conformers["WAT"][0]
     assert set(ref.dalpha_A3) == {"S1", "T1"} and set(ref.dmu_D) == {"S1", "T1"}
     assert np.allclose(table["S1_shift_eV"], table["S1_first_order_eV"] + table["S1_stark_eV"])
-    plain = film_site_energies(small_film, ("cation",), radius=5.0, frames=[0], charges=cset, progress=False)
+    plain = film_site_energies(small_film, ("cation", "T1"), radius=5.0, frames=[0], charges=cset, progress=False)
     assert np.allclose(table["cation_shift_eV"], plain["cation_shift_eV"])
+    # T1 keeps its charges by default (response_states=("S1",))
+    assert np.allclose(table["T1_shift_eV"], plain["T1_shift_eV"]) and "T1_stark_eV" not in table
     with pytest.raises(InputError, match="needs a clusterlab.Method"):
         run_film_model(small_film, "hf/sto-3g", radius_A=5.0, frames=[0], response=True, progress=False)

@@ -843,6 +843,7 @@ def film_site_energies(
     polarization_tol_eA: float = 1e-6,
     ewald_accuracy: float = 1e-6,
     threads: int = 1,
+    response_states: Sequence[str] | None = None,
 ) -> pd.DataFrame:
     """Electrostatic environment shifts of every molecule of every frame.
 
@@ -897,6 +898,11 @@ def film_site_energies(
     threads : int
         Threads for the pair sums of each frame (numpy/BLAS release the GIL);
         1 runs everything in the calling thread.
+    response_states : sequence of {"S1", "T1"}, optional
+        With ``model="field"``: the neutral excitations that use the
+        finite-field response (default: all asked for); the others keep
+        their first-order charges. On the demo film the response is what
+        S1 needs while T1 follows QM better with its charges (README).
 
     Returns
     -------
@@ -952,6 +958,11 @@ def film_site_energies(
     polar = "polarization" in model
     field_model = model.startswith("field")
     stark_states = [s for s in states if s in NEUTRAL_STATES] if ("stark" in model or field_model) else []
+    if field_model and response_states is not None:
+        bad = [s for s in response_states if s not in NEUTRAL_STATES]
+        if bad:
+            raise InputError(f"response_states {bad} are invalid; use 'S1' and/or 'T1'.")
+        stark_states = [s for s in stark_states if s in response_states]
     for res in charges.resnames:
         refs = charges.conformers.get(res, [])
         miss = [s for s in stark_states if not refs or any(s not in c.dalpha_A3 or (field_model and s not in c.dmu_D)
@@ -1166,7 +1177,7 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
                    polarization: bool = False, polarize_molecules: Sequence[int] | None = None,
                    reference_molecule: int = 0, charges: StateChargeSet | None = None,
                    progress: bool = True, n_conformers: int = 1, response: bool = False,
-                   symmetrize: bool = False) -> pd.DataFrame:
+                   symmetrize: bool = False, response_states: Sequence[str] = ("S1",)) -> pd.DataFrame:
     """Fit state charges on reference copies (unless given) and evaluate the
     film-wide model for S1, T1, cation and anion of every molecule and frame.
 
@@ -1182,9 +1193,9 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
     :meth:`StateChargeSet.from_film`. ``response=True`` also fits the S1/T1
     dipole and polarizability changes of every reference by finite fields with
     ``method`` (a :class:`~clusterlab.Method`; 25 engine calculations per
-    reference) and evaluates S1/T1 with ``model="field"`` (see
-    :func:`film_site_energies`): on the demo film this is what makes the S1
-    shifts follow embedded QM (README).
+    reference) and evaluates ``response_states`` (default S1; T1 keeps its
+    charges) with ``model="field"`` (see :func:`film_site_energies`): on the
+    demo film this is what makes the S1 shifts follow embedded QM (README).
 
     The fitted :class:`StateChargeSet` is kept in ``table.attrs["charges"]``
     (transition charges included, for excitonic couplings).
@@ -1213,7 +1224,8 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
         charges = charges.with_stark(method, film=film, charge=None)
     states = ("S1", "T1", "cation", "anion")
     table = film_site_energies(film, states, radius=radius_A, frames=frames,
-                               model="field" if response else "charges", charges=charges, progress=progress)
+                               model="field" if response else "charges", charges=charges, progress=progress,
+                               response_states=response_states if response else None)
     if polarization:
         f0 = [int(table.frame.min())]
         pol = film_site_energies(film, ("cation", "anion"), radius=radius_A, frames=f0,
