@@ -1,20 +1,35 @@
 """Parity of the electrostatic site-energy model against embedded QM.
 
-For ``N_MOL`` demo-film molecules (frame 0) this script
-1. fits state charges once on a reference copy (``StateChargeSet.from_film``,
-   the same method as the QM; cached in ``bench/results/sitemodel_charges.json``);
-2. computes the model's shifts (``film_site_energies``, same radius and rule);
+For ``N`` demo-film molecules (frame 0) this script
+1. fits state charges on conformer references (``StateChargeSet``; farthest-point
+   sampling in superposed RMSD from molecule 0, then every reference moved to the
+   medoid of its family; ``--conformers`` of them) with the same xc/basis as the
+   QM, and the dipole and polarizability changes of S1/T1 of each reference by
+   finite fields with the QM method itself; all cached in
+   ``bench/results/sitemodel_charges.json`` (references by molecule id);
+2. computes the model's shifts (``film_site_energies``, same radius and rule)
+   in five variants: one reference (charges of molecule 0 for every copy,
+   first order: the model before conformer families and the Stark term);
+   families (first order, each copy with its family's charges); families plus
+   -1/2 F·Δα·F for S1/T1; the same with charges averaged over the two rings;
+   the field response for S1/T1 (-Δμ·F - 1/2 F·Δα·F, finite-field Δμ and Δα
+   of the family reference, F the least-squares uniform field), family charges
+   for the ions; the field response for S1 only; and, when
+   ``bench/results/sitemodel_charges_before.json`` is there, the model before
+   this work (molecule 0's charges, first order);
 3. runs ``clusterlab.qm.engine.excitations`` on ``film.carve(i, RADIUS)``
-   (and the charged states when the method has ``charged_states``);
-4. prints RMS error, mean error and Pearson r of S1, T1 (IP, EA) shifts,
-   saves a parity plot and ``bench/results/parity_sitemodel.json``.
+   (with the charged states when ``--charged``); results per molecule are
+   cached in ``bench/results/parity_qm_cache.json`` (resumable);
+4. prints RMS error, mean error and Pearson r of S1, T1 (IP, EA) shifts for
+   every variant, saves a parity plot and ``bench/results/parity_sitemodel.json``.
 
 The QM embedding uses Gaussian-smeared point charges (the method's
 ``charge_smearing_A``), the model bare Coulomb sums; the environment charges
 of both are the film's (topology) charges.
 
-Run: ``OMP_NUM_THREADS=2 python bench/parity_sitemodel.py [--n 10] [--radius 10]``
-(about 10 minutes of CPU at the sto-3g-level setting below).
+Run: ``OMP_NUM_THREADS=1 python bench/parity_sitemodel.py --n 16 --charged --preset fast-stda``
+(about an hour of one core: ~4 min per state-charge fit, ~3 min per finite-field
+fit, ~1.5 min per cluster with the charged states).
 """
 
 from __future__ import annotations
@@ -28,10 +43,12 @@ import warnings
 import numpy as np
 
 from clusterlab import load_film
-from clusterlab.electrostatics.sitemodel import StateChargeSet, film_site_energies
+from clusterlab.electrostatics.sitemodel import ConformerCharges, StateChargeSet, film_site_energies
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 OUT = os.path.join(HERE, "results")
+#: molecules of the earlier 8-molecule parity run (rng seed 7), kept first so that numbers stay comparable
+EARLIER = [57, 146, 156, 171, 197, 212, 226, 235]
 
 
 def stats(x: np.ndarray, y: np.ndarray) -> dict[str, float]:
@@ -44,20 +61,101 @@ def stats(x: np.ndarray, y: np.ndarray) -> dict[str, float]:
             "qm_std_eV": float(x.std()) if len(x) else float("nan")}
 
 
+def parity_figure(qm, before, after, mols, keys):
+    """One panel per quantity: QM against the model before (grey crosses) and after (dots)."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from clusterlab.study.plots import plot_parity
+
+    fig, axes = plt.subplots(1, len(keys), figsize=(4.2 * len(keys), 4.2))
+    for ax, k in zip(np.atleast_1d(axes), keys):
+        x = qm[k]
+        yb = before.loc[mols, k].to_numpy(float)
+        ax.scatter(x, yb, marker="x", color="0.6", label="before")
+        plot_parity(x, after.loc[mols, k].to_numpy(float), ax=ax, xlabel=f"embedded QM {k}",
+                    ylabel="model")
+        lim = [min(np.nanmin(x), np.nanmin(yb)) - 0.01, max(np.nanmax(x), np.nanmax(yb)) + 0.01]
+        ax.set_xlim(lim)
+        ax.set_ylim(lim)
+        ax.legend(loc="lower right", fontsize=7)
+    fig.suptitle("demo film, frame 0, R = 10 Å, sTDA on B3LYP/6-31G: dots = 4 conformer references, field "
+                 "response for S1, charges for T1/IP/EA; crosses = before (molecule 0's charges)", fontsize=9)
+    fig.tight_layout()
+    return fig
+
+
+def charge_set(film, method, cache: str, n_conformers: int) -> StateChargeSet:
+    """Conformer references (medoids of the families) with charges and Δα; every
+    reference copy's QM is cached by molecule id, so only new ones are fitted."""
+    from clusterlab.electrostatics.conformers import pick_references
+    from clusterlab.electrostatics.statecharges import state_charges
+
+    want_method = f"{method.xc}/{method.basis}"
+    cset = StateChargeSet.load(cache) if os.path.exists(cache) else None
+    if cset is not None and cset.method != want_method:
+        cset = None
+    if cset is None:
+        cset = StateChargeSet.from_film(film, method, frame=0, grid_level=method.grid_level,
+                                        density_fit=method.density_fit)
+        cset.save(cache)
+    res = cset.resnames[0]
+    if not cset.conformers.get(res):
+        fit = cset.fits[res]
+        cset.conformers[res] = [ConformerCharges(positions_A=fit.positions_A, charges_e=dict(fit.charges_e),
+                                                 transition_e=fit.transition_charges_e,
+                                                 frame=cset.reference[res]["frame"],
+                                                 molecule=cset.reference[res]["molecule"])]
+    known = {c.molecule: c for c in cset.conformers[res]}
+    geo = film.frame_geometry(0)
+    ids = np.flatnonzero(np.asarray(film.molecule_resnames) == res)
+    copies = np.stack([geo.positions_A[film.molecule_atoms(int(m))] for m in ids])
+    picks = [int(ids[k]) for k in pick_references(copies, n_conformers, first=int(np.flatnonzero(ids == 0)[0]),
+                                                  medoids=True)]
+    refs = []
+    for mol in picks:
+        if mol not in known:
+            t0 = time.perf_counter()
+            pos = geo.positions_A[film.molecule_atoms(mol)]
+            sc = state_charges(list(film.symbols[film.molecule_atoms(mol)]), pos, method,
+                               grid_level=method.grid_level, density_fit=method.density_fit)
+            known[mol] = ConformerCharges(positions_A=pos, charges_e=dict(sc.charges_e),
+                                          transition_e=sc.transition_charges_e, frame=0, molecule=mol)
+            print(f"state charges of conformer reference molecule {mol}: {time.perf_counter() - t0:.0f} s", flush=True)
+        refs.append(known[mol])
+    cset.conformers[res] = refs
+    cset.charges_e[res] = dict(refs[0].charges_e)
+    cset.transition_e[res] = refs[0].transition_e
+    cset.reference[res] = {"frame": refs[0].frame, "molecule": refs[0].molecule}
+    cset.save(cache)
+    if cset.stark_method.get("steps_V_A") != [0.1, 0.2]:
+        for c in refs:
+            c.dalpha_A3, c.dmu_D = {}, {}
+    if any("S1" not in c.dalpha_A3 for c in refs):
+        t0 = time.perf_counter()
+        stark = method.replace(n_singlets=3, n_triplets=3)
+        cset = cset.with_stark(stark, film=film, refit=False)
+        cset.save(cache)
+        print(f"finite-field polarizability changes: {time.perf_counter() - t0:.0f} s", flush=True)
+    return cset
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--n", type=int, default=10)
+    ap.add_argument("--n", type=int, default=16)
     ap.add_argument("--radius", type=float, default=10.0)
     ap.add_argument("--basis", default="6-31g")
     ap.add_argument("--xc", default="b3lyp")
     ap.add_argument("--charged", action="store_true", help="also IP/EA (ΔSCF; doubles the cost)")
-    ap.add_argument("--preset", default="draft", help="method preset of the QM side (e.g. fast-stda)")
+    ap.add_argument("--preset", default="fast-stda", help="method preset of the QM side")
+    ap.add_argument("--conformers", type=int, default=4)
     args = ap.parse_args()
 
     from clusterlab.demo import demo_paths
     from clusterlab.qm.engine import excitations
     from clusterlab.qm.method import Method
-    from clusterlab.study.plots import plot_parity
 
     os.makedirs(OUT, exist_ok=True)
     top, traj = demo_paths()
@@ -66,56 +164,87 @@ def main() -> None:
         film = load_film(top, traj)
     method = Method.preset(args.preset, xc=args.xc, basis=args.basis, n_singlets=3, n_triplets=3,
                            charged_states=bool(args.charged))
-    cache = os.path.join(OUT, "sitemodel_charges.json")
     t0 = time.perf_counter()
-    if os.path.exists(cache):
-        cset = StateChargeSet.load(cache)
-        if cset.method != f"{method.xc}/{method.basis}":
-            cset = None
-    else:
-        cset = None
-    if cset is None:
-        cset = StateChargeSet.from_film(film, method, frame=0, grid_level=method.grid_level,
-                                        density_fit=method.density_fit)
-        cset.save(cache)
+    cset = charge_set(film, method, os.path.join(OUT, "sitemodel_charges.json"), args.conformers)
     t_fit = time.perf_counter() - t0
-    print(f"state charges ({cset.method}): {t_fit:.1f} s")
+    res = cset.resnames[0]
+    one = StateChargeSet.from_arrays({res: cset.conformers[res][0].charges_e}, method=cset.method)
 
     rng = np.random.default_rng(7)
-    mols = np.sort(rng.choice(film.n_molecules, args.n, replace=False))
+    rest = [int(m) for m in rng.permutation(film.n_molecules) if int(m) not in EARLIER]
+    mols = np.array((EARLIER + rest)[: args.n])
     states = ("S1", "T1", "cation", "anion")
     t0 = time.perf_counter()
-    model = film_site_energies(film, states, radius=args.radius, frames=[0], charges=cset,
-                               molecules=mols.tolist(), progress=False).set_index("molecule")
+    kw = dict(radius=args.radius, frames=[0], molecules=mols.tolist(), progress=False)
+    sym = cset.symmetrized(film=film)
+    variants = {}
+    before_file = os.path.join(OUT, "sitemodel_charges_before.json")
+    if os.path.exists(before_file):
+        before = StateChargeSet.load(before_file)
+        variants["before: molecule 0's charges, first order"] = film_site_energies(film, states, charges=before,
+                                                                                   **kw)
+    variants.update({
+        "one reference, first order": film_site_energies(film, states, charges=one, **kw),
+        "families, first order": film_site_energies(film, states, charges=cset, **kw),
+        "families, first order + Stark": film_site_energies(film, states, charges=cset, model="charges+stark",
+                                                            **kw),
+        "families symmetrized, first order + Stark": film_site_energies(film, states, charges=sym,
+                                                                        model="charges+stark", **kw),
+        "families, field response": film_site_energies(film, states, charges=cset, model="field", **kw),
+        "families, field response for S1": film_site_energies(film, states, charges=cset, model="field",
+                                                              response_states=("S1",), **kw),
+    })
+    variants = {k: v.set_index("molecule") for k, v in variants.items()}
     t_model = time.perf_counter() - t0
     keys = ["S1_shift_eV", "T1_shift_eV"] + (["IP_shift_eV", "EA_shift_eV"] if args.charged else [])
-    qm = {k: [] for k in keys}
+    qcache = os.path.join(OUT, "parity_qm_cache.json")
+    qm_all = json.load(open(qcache)) if os.path.exists(qcache) else {}
+    tag = f"{method.key()}:R{args.radius}"
+    qm_all.setdefault(tag, {})
     t0 = time.perf_counter()
     for m in mols:
+        if str(m) in qm_all[tag] and all(k in qm_all[tag][str(m)] for k in keys):
+            continue
         c = film.carve(int(m), args.radius, frame=0)
         s = excitations(c, method).summary()
-        for k in keys:
-            qm[k].append(float(s.get(k, np.nan)))
-        print(f"  molecule {m}: " + ", ".join(f"{k} QM {qm[k][-1]:+.4f} model {model.loc[m, k]:+.4f}" for k in keys),
-              flush=True)
+        qm_all[tag][str(m)] = {k: float(v) for k, v in s.items() if isinstance(v, (int, float))}
+        with open(qcache, "w", encoding="utf-8") as fh:
+            json.dump(qm_all, fh, indent=1)
+        v = variants["families, field response"]
+        print(f"  molecule {m}: " + ", ".join(f"{k} QM {qm_all[tag][str(m)].get(k, np.nan):+.4f} "
+                                              f"model {v.loc[m, k]:+.4f}" for k in keys), flush=True)
     t_qm = time.perf_counter() - t0
+    qm = {k: np.array([qm_all[tag][str(m)].get(k, np.nan) for m in mols]) for k in keys}
+    fam = variants["families, first order"]
     result = {"method": method.to_dict(), "radius_A": args.radius, "frame": 0, "molecules": mols.tolist(),
-              "seconds": {"fit": t_fit, "model": t_model, "qm": t_qm}, "states": {}}
-    xs, ys = [], []
-    for k in keys:
-        x, y = np.array(qm[k]), model.loc[mols, k].to_numpy(float)
-        result["states"][k] = {**stats(x, y), "qm_eV": x.tolist(), "model_eV": y.tolist()}
-        xs.append(x)
-        ys.append(y)
-        st = result["states"][k]
-        print(f"{k:12s} RMS {st['rms_error_eV'] * 1e3:7.1f} meV  mean {st['mean_error_eV'] * 1e3:+7.1f} meV  "
-              f"r {st['pearson_r']:.3f}  (QM spread {st['qm_std_eV'] * 1e3:.1f} meV, n={st['n']})")
-    fig = plot_parity(np.concatenate(xs), np.concatenate(ys), xlabel="embedded QM shift",
-                      ylabel="electrostatic model shift")
+              "conformer_references": [{"molecule": c.molecule, "frame": c.frame}
+                                       for c in cset.conformers[res]],
+              "conformer_of_molecule": fam.loc[mols, "conformer"].astype(int).tolist(),
+              "seconds": {"fit_or_cache": t_fit, "model": t_model, "qm_this_run": t_qm},
+              "qm": {k: v.tolist() for k, v in qm.items()}, "variants": {}}
+    result["qm"]["S1_followed_shift_eV"] = [qm_all[tag][str(m)].get("S1_followed_shift_eV", np.nan) for m in mols]
+    for name, table in variants.items():
+        block = {}
+        for k in keys:
+            y = table.loc[mols, k].to_numpy(float)
+            block[k] = {**stats(qm[k], y), "model_eV": y.tolist()}
+        for extra in ("S1_stark_eV", "T1_stark_eV", "S1_first_order_eV", "T1_first_order_eV", "field_V_A"):
+            if extra in table:
+                block[extra] = table.loc[mols, extra].to_numpy(float).tolist()
+        result["variants"][name] = block
+        for k in keys:
+            st = block[k]
+            print(f"{name:42s} {k:12s} RMS {st['rms_error_eV'] * 1e3:6.1f} meV  mean "
+                  f"{st['mean_error_eV'] * 1e3:+6.1f} meV  r {st['pearson_r']:+.3f}  "
+                  f"(QM spread {st['qm_std_eV'] * 1e3:.1f} meV, n={st['n']})")
+    before = variants.get("before: molecule 0's charges, first order", variants["one reference, first order"])
+    after = variants["families, field response for S1"]
+    fig = parity_figure(qm, before, after, mols, keys)
     fig.savefig(os.path.join(OUT, "parity_sitemodel.png"), dpi=120)
     with open(os.path.join(OUT, "parity_sitemodel.json"), "w", encoding="utf-8") as fh:
         json.dump(result, fh, indent=1)
-    print(f"QM {t_qm:.0f} s for {len(mols)} clusters; model {t_model:.2f} s; wrote {OUT}/parity_sitemodel.json")
+    print(f"QM {t_qm:.0f} s this run for {len(mols)} clusters; model {t_model:.2f} s; "
+          f"wrote {OUT}/parity_sitemodel.json")
 
 
 if __name__ == "__main__":
