@@ -76,3 +76,36 @@ def test_medoid_references_are_typical_copies():
     sums = [superpose(copies[a], copies)[1].sum() for a in range(len(copies))]
     assert int(med[0]) == int(np.argmin(sums))
     assert sums[int(med[0])] < sums[int(far[0])]
+
+
+def test_equivalence_classes_and_symmetrized_charges():
+    """Colour refinement on the demo film's 2,2'-bithiophene (bonds from covalent radii): the ring
+    swap A<->B is an automorphism of the bond graph (checked by brute force on the
+    bond list) and its atom pairs are exactly the classes found; the symmetrized
+    charges are invariant under the swap and keep every state's total charge."""
+    from clusterlab.electrostatics.conformers import bonds_by_distance, equivalence_classes
+    from clusterlab.electrostatics.sitemodel import StateChargeSet
+
+    import warnings
+
+    from clusterlab import load_film
+    from clusterlab.demo import demo_paths
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        film = load_film(*demo_paths())
+    atoms = film.molecule_atoms(0)                            # ring A then ring B, same atom order
+    syms = list(film.symbols[atoms])
+    bonds = bonds_by_distance(syms, film.frame_geometry(0).positions_A[atoms])
+    assert len(bonds) == 17                                   # 2 x (5 ring + 3 CH) + the inter-ring bond
+    swap = np.r_[8:16, 0:8]
+    as_set = {tuple(sorted(b)) for b in bonds.tolist()}
+    assert {tuple(sorted((int(swap[a]), int(swap[b])))) for a, b in bonds} == as_set
+    lab = equivalence_classes(syms, bonds)
+    assert np.array_equal(lab, lab[swap]) and len(set(lab.tolist())) == 8
+    rng = np.random.default_rng(1)
+    q = {s: rng.normal(scale=0.2, size=16) for s in ("S0", "S1", "cation")}
+    q["cation"] += (1.0 - q["cation"].sum()) / 16
+    sym = StateChargeSet.from_arrays({"BTH": q}).symmetrized({"BTH": lab})
+    for s, v in sym.charges_e["BTH"].items():
+        assert np.allclose(v, v[swap]) and v.sum() == pytest.approx(q[s].sum(), abs=1e-12)
