@@ -12,29 +12,35 @@ only the order of the floating-point operations differs from a direct sum
 
 How it is made fast
 -------------------
-1. Candidate molecule-image pairs come from one KD-tree search over the
-   centroids and their periodic replicas (:func:`candidate_pairs`), each
-   unordered pair once: a pair's atom-atom terms serve both molecules
-   (Newton's third law for potentials: ``1/r_ab`` is symmetric).
+1. Candidate molecule-image pairs (:func:`candidate_pairs`): the centroids
+   and their periodic replicas (only replicas within the cut-off of the cell
+   are built); small films take all centroid-replica distances from one
+   matrix product, large ones from a KD-tree. Each unordered pair is kept
+   once, a pair's atom-atom terms serve both molecules (Newton's third law
+   for potentials: ``1/r_ab`` is symmetric). Inside the model the pair is
+   owned by one of its two molecules by a parity rule, so that every
+   molecule owns about half of its partners.
 2. Atoms are stored molecule-major (padded to the largest molecule),
    augmented so that one matrix product gives squared distances:
-   ``[x, |x|^2, 1] · [-2y, 1, |y|^2] = |x - y|^2``. For each molecule, one
-   BLAS matrix product gives the squared distances from its atoms to the atoms
-   of all its candidate partners (coordinates relative to the cell centre, so
-   rounding stays near 1e-13 relative for boxes of 100 Å).
-3. Membership (``rule="atom"``): a cheap lower bound (the molecule's atoms
-   to the partner's centroid, minus the partner's extent) drops partners that
-   are certainly outside and orders the rest closest first; the minimum of
-   each partner's block of squared distances decides; pairs whose closest
-   distance lies within 1e-9 relative of the radius are decided again from
-   plain coordinate differences, so boundary cases follow carving's arithmetic.
-4. The leading rows up to the last member get ``1/r`` (``sqrt`` and
-   ``divide`` in place; non-members among them get zero weight), and two BLAS
-   matrix-vector products give the potential at the molecule's atoms and at
-   the partners' atoms. Partner contributions are summed per periodic copy and
-   added with one ``np.bincount`` per frame.
+   ``[x, |x|^2, 1] · [-2y, 1, |y|^2] = |x - y|^2`` (coordinates relative to
+   the centroids' mean, so rounding stays near 1e-13 relative for boxes of
+   100 Å).
+3. Membership (``rule="atom"``): a lower bound (the owner's atoms to the
+   partner's centroid, minus the partner's extent), computed for all pairs in
+   a few batched matrix products, drops the partners that are certainly
+   outside; for the others, the minimum of each pair's block of squared
+   distances decides; pairs whose closest distance lies within 1e-9 relative
+   of the radius are decided again from plain coordinate differences, so
+   boundary cases follow carving's arithmetic.
+4. Owners with similar partner counts are batched (a few hundred thousand
+   atom pairs per step, into reused buffers): one stacked matrix product gives
+   all their squared distances, ``sqrt`` and ``divide`` in place give ``1/r``
+   (non-members get zero weight), and two stacked matrix-vector products give
+   the potential at the owners' atoms and at the partners' atoms. Partner
+   contributions are added with one ``np.bincount`` per frame.
 
-There is one Python-level iteration per molecule (not per pair or atom).
+There is one Python-level iteration per batch of molecules (not per molecule,
+pair or atom).
 
 Units: Å, e, V (= eV/e).
 """
@@ -58,6 +64,12 @@ __all__ = ["candidate_pairs", "environment_potential", "EnvironmentPairs", "Pote
 
 #: relative band around the radius inside which membership is decided from plain differences
 _EDGE_REL = 1e-9
+#: centroid-replica distance matrices up to this many entries are computed densely (else KD-tree)
+_DENSE_MAX = 4_000_000
+#: atom pairs per batch of owner molecules (squared-distance buffer of 8 bytes each)
+_BATCH_ENTRIES = 1 << 18
+#: stand-in squared norm of padding atoms: they sit 10^6 Å from everything
+_FAR = 1e12
 
 
 @dataclass(frozen=True)
@@ -127,11 +139,92 @@ class CandidatePairs:
                               self.replica_molecule, self.replica_shift_A)
 
 
+@dataclass(frozen=True)
+class _Replicas:
+    """Translated copies of the centroids within reach of the primary cell."""
+
+    molecule: IntArray        # (n_rep,) molecule of each copy
+    image: IntArray           # (n_rep, 3) integer translation
+    shift_A: FloatArray       # (n_rep, 3) translation (Å)
+    centroid_A: FloatArray    # (n_rep, 3) translated centroid (Å)
+    positive: BoolArray       # (n_rep,) translation lexicographically positive
+
+
+def _replicas(c: FloatArray, box: npt.ArrayLike | None, cutoff_A: float) -> _Replicas:
+    n = len(c)
+    if box is None:
+        return _Replicas(np.arange(n, dtype=np.int64), np.zeros((n, 3), np.int64), np.zeros((n, 3)), c,
+                         np.zeros(n, bool))
+    h = box_vectors(box)
+    w = perpendicular_widths(h)
+    margin = cutoff_A / w + 1e-9
+    frac = to_fractional(c, h)
+    # translations t for which frac + t can land inside [-margin, 1 + margin)
+    t_lo = np.ceil(-margin - frac.max(axis=0)).astype(int)
+    t_hi = np.ceil(1 + margin - frac.min(axis=0)).astype(int) - 1
+    grid = np.stack(np.meshgrid(*[np.arange(a, b + 1) for a, b in zip(t_lo, t_hi)], indexing="ij"),
+                    -1).reshape(-1, 3).astype(np.int64)
+    rep_f = frac[None, :, :] + grid[:, None, :]
+    keep = np.all((rep_f >= -margin) & (rep_f < 1 + margin), axis=2)
+    t_idx, j_idx = np.nonzero(keep)
+    img = grid[t_idx]
+    positive = (img[:, 0] > 0) | ((img[:, 0] == 0) & ((img[:, 1] > 0) | ((img[:, 1] == 0) & (img[:, 2] > 0))))
+    return _Replicas(j_idx.astype(np.int64), img, img @ h, rep_f[t_idx, j_idx] @ h, positive)
+
+
+def _close_pairs(c: FloatArray, box: npt.ArrayLike | None, cutoff_A: float, *, balanced: bool
+                 ) -> tuple[IntArray, IntArray, FloatArray, _Replicas]:
+    """Unordered centroid-replica pairs within ``cutoff_A``: ``(owner, replica,
+    vector, replicas)``, sorted by owner; ``vector = c[owner] - replica centroid``.
+
+    ``balanced=False``: the owner is the smaller molecule index; ``True``: for
+    ``i != j`` the owner is ``min(i, j)`` when ``i + j`` is even, else ``max(i, j)``
+    (every molecule owns about half of its partners). A molecule and its own
+    image: the owner holds the lexicographically positive translation.
+    """
+    reps = _replicas(c, box, cutoff_A)
+    n, n_rep = len(c), len(reps.molecule)
+    if n * n_rep <= _DENSE_MAX:
+        # all centroid-replica distances from one augmented matrix product; the
+        # threshold is loosened by far more than its rounding, the exact test follows
+        o = c.mean(axis=0) if n else np.zeros(3)
+        ca, ra = c - o, reps.centroid_A - o
+        n2c, n2r = np.einsum("nk,nk->n", ca, ca), np.einsum("nk,nk->n", ra, ra)
+        a = np.c_[ca, n2c, np.ones(n)]
+        b = np.c_[-2.0 * ra, np.ones(n_rep), n2r]
+        scale = float(max(n2c.max(initial=0.0), n2r.max(initial=0.0)))
+        d2 = a @ b.T
+        flat = np.flatnonzero(d2 <= cutoff_A * cutoff_A * (1 + 1e-9) + 1e-12 * scale + 1e-9)
+        i = flat // n_rep
+        k = flat - i * n_rep
+    else:
+        coo = cKDTree(c).sparse_distance_matrix(cKDTree(reps.centroid_A), cutoff_A * (1 + 1e-12),
+                                                output_type="coo_matrix")
+        # sparse_distance_matrix drops exact zero distances: an image never sits on
+        # another molecule's centroid in a physical film
+        i = coo.row.astype(np.int64)
+        k = coo.col.astype(np.int64)
+    j = reps.molecule[k]
+    if balanced:
+        own = np.where(i == j, reps.positive[k], (i < j) == ((i + j) % 2 == 0))
+    else:
+        own = (i < j) | ((i == j) & reps.positive[k])
+    i, k = i[own], k[own]
+    vec = c[i] - reps.centroid_A[k]
+    inside = np.einsum("pk,pk->p", vec, vec) <= cutoff_A * cutoff_A
+    i, k, vec = i[inside], k[inside], vec[inside]
+    if len(i) > 1 and np.any(i[1:] < i[:-1]):
+        order = np.argsort(i, kind="stable")
+        i, k, vec = i[order], k[order], vec[order]
+    return i, k, vec, reps
+
+
 def candidate_pairs(centroids_A: FloatArray, box: npt.ArrayLike | None, cutoff_A: float) -> CandidatePairs:
     """Unordered molecule-image pairs with centroid distance <= ``cutoff_A``.
 
-    One KD-tree search of the centroids against their periodic replicas (only
-    replicas within ``cutoff_A`` of the cell are built).
+    The centroids against their periodic replicas (only replicas within
+    ``cutoff_A`` of the cell are built): one matrix of distances for small
+    films, a KD-tree search for large ones.
 
     Parameters
     ----------
@@ -153,37 +246,8 @@ def candidate_pairs(centroids_A: FloatArray, box: npt.ArrayLike | None, cutoff_A
     ([0], [1], [[0, 0, 0]])
     """
     c = np.asarray(centroids_A, dtype=np.float64)
-    n = len(c)
-    if box is None:
-        pairs = cKDTree(c).query_pairs(cutoff_A, output_type="ndarray").astype(np.int64)
-        i, j = pairs[:, 0], pairs[:, 1]
-        return CandidatePairs(i, j, np.zeros((len(i), 3), np.int64), j.copy(), c[i] - c[j],
-                              np.arange(n, dtype=np.int64), np.zeros((n, 3)))
-    h = box_vectors(box)
-    w = perpendicular_widths(h)
-    margin = cutoff_A / w + 1e-9
-    frac = to_fractional(c, h)
-    # translations t for which frac + t can land inside [-margin, 1 + margin)
-    t_lo = np.ceil(-margin - frac.max(axis=0)).astype(int)
-    t_hi = np.ceil(1 + margin - frac.min(axis=0)).astype(int) - 1
-    grid = np.stack(np.meshgrid(*[np.arange(a, b + 1) for a, b in zip(t_lo, t_hi)], indexing="ij"),
-                    -1).reshape(-1, 3)
-    rep_f = frac[None, :, :] + grid[:, None, :]
-    keep = np.all((rep_f >= -margin) & (rep_f < 1 + margin), axis=2)
-    t_idx, j_idx = np.nonzero(keep)
-    rep = rep_f[t_idx, j_idx] @ h
-    coo = cKDTree(c).sparse_distance_matrix(cKDTree(rep), cutoff_A, output_type="coo_matrix")
-    i = coo.row.astype(np.int64)
-    k = coo.col.astype(np.int64)
-    j = j_idx[k]
-    img = grid[t_idx[k]]
-    lexpos = (img[:, 0] > 0) | ((img[:, 0] == 0) & ((img[:, 1] > 0) | ((img[:, 1] == 0) & (img[:, 2] > 0))))
-    canon = (i < j) | ((i == j) & lexpos)
-    # sparse_distance_matrix drops exact zero distances: an image never sits on
-    # another molecule's centroid in a physical film
-    i, j, img, k = i[canon], j[canon], img[canon], k[canon]
-    return CandidatePairs(i, j, img.astype(np.int64), k, c[i] - rep[k], j_idx.astype(np.int64),
-                          grid[t_idx] @ h)
+    i, k, vec, reps = _close_pairs(c, box, float(cutoff_A), balanced=False)
+    return CandidatePairs(i, reps.molecule[k], reps.image[k], k, vec, reps.molecule, reps.shift_A)
 
 
 def environment_potential(
@@ -217,7 +281,7 @@ def environment_potential(
         Only pairs that touch a flagged molecule are evaluated (default: all).
         Potentials of molecules not flagged are then incomplete.
     threads : int
-        Threads over the per-molecule blocks (numpy and BLAS release the GIL
+        Threads over the batches of molecules (numpy and BLAS release the GIL
         in the heavy steps); 1 runs in the calling thread.
 
     Returns
@@ -256,163 +320,217 @@ def environment_potential(
     pos[rows_mol, rows_slot] = np.asarray(positions_A, dtype=np.float64)[atoms]
     q = np.zeros((n_mol, m))
     q[rows_mol, rows_slot] = np.asarray(charges_e, dtype=np.float64)[atoms]
-    local = np.where(mask[..., None], pos - cent[:, None, :], 0.0)
-    dist0 = np.sqrt(np.einsum("nak,nak->na", local, local))
-    ext = np.where(mask, dist0, 0.0).max(axis=1)
+    local = pos - cent[:, None, :]
+    local[~mask] = 0.0
+    n2loc = np.einsum("nak,nak->na", local, local)
+    ext = np.sqrt(n2loc.max(axis=1)) if m else np.zeros(n_mol)
     atom_rule = rule == "atom"
+    radius_A = float(radius_A)
 
     cut = radius_A + 2.0 * float(ext.max(initial=0.0)) + 1e-9 if atom_rule else radius_A * (1 + 1e-12) + 1e-9
-    cp = candidate_pairs(cent, box, cut)
-    dcen = np.sqrt(np.einsum("pk,pk->p", cp.vector_A, cp.vector_A))
+    pi, pk, vec, reps = _close_pairs(cent, box, cut, balanced=True)
+    pj = reps.molecule[pk]
+    dcen = np.sqrt(np.einsum("pk,pk->p", vec, vec))
     if atom_rule:
-        ok = dcen <= radius_A + ext[cp.i] + ext[cp.j] + 1e-9
+        ok = dcen <= radius_A + ext[pi] + ext[pj] + 1e-9
     else:
         ok = dcen <= radius_A * (1 + 1e-12) + 1e-9
     if want is not None:
-        ok &= want[cp.i] | want[cp.j]
-    sel = np.flatnonzero(ok)
-    sel = sel[np.argsort(cp.i[sel], kind="stable")]                        # by centre molecule
-    cp = cp.take(sel)
-    dcen = dcen[sel]
-    i, j = cp.i, cp.j
-    n_pairs = len(i)
-    # augmented coordinates, |x - y|^2 = [x, |x|^2, 1] . [-2y, 1, |y|^2]; relative to the cell
-    # centre (|x|, |y| stay below a box diagonal plus the radius); padding atoms sit 10^6 Å away
+        ok &= want[pi] | want[pj]
+    n_candidates = int(np.count_nonzero(ok))
+    if atom_rule:
+        # lower bound of each pair's closest approach: the owner's atoms to the partner's
+        # centroid, minus the partner's extent; the certainly-outside pairs are dropped
+        l_aug = np.empty((n_mol, m, 5))
+        l_aug[..., :3] = local
+        l_aug[..., 3] = np.where(mask, n2loc, _FAR)
+        l_aug[..., 4] = 1.0
+        sel = np.flatnonzero(ok)
+        near2 = _owner_atoms_to_point(l_aug, pi[sel], vec[sel], n_mol)
+        lb = np.sqrt(np.maximum(near2, 0.0)) - ext[pj[sel]]
+        ok[sel[lb > radius_A * (1 + 1e-9) + 1e-9]] = False
+    pi, pk, pj = pi[ok], pk[ok], pj[ok]
+    n_pairs = len(pi)
+
+    # augmented coordinates relative to the centroids' mean (|x|, |y| stay below a box
+    # diagonal plus the radius); padding atoms and the stand-in replica sit 10^6 Å away
     origin = cent.mean(axis=0) if n_mol else np.zeros(3)
-    far = 1e12
     xa = pos - origin
     x_aug = np.empty((n_mol, m, 5))
     x_aug[..., :3] = xa
-    x_aug[..., 3] = np.where(mask, np.einsum("nak,nak->na", xa, xa), far)
+    x_aug[..., 3] = np.where(mask, np.einsum("nak,nak->na", xa, xa), _FAR)
     x_aug[..., 4] = 1.0
-    rep_mol = cp.replica_molecule
-    ya = pos[rep_mol] + cp.replica_shift_A[:, None, :] - origin
-    y_aug = np.empty((len(rep_mol), m, 5))
-    y_aug[..., :3] = -2.0 * ya
-    y_aug[..., 3] = 1.0
-    y_aug[..., 4] = np.where(mask[rep_mol], np.einsum("nak,nak->na", ya, ya), far)
-    q_rep = q[rep_mol]
+    rep_mol = reps.molecule
+    n_rep = len(rep_mol)
+    ya = pos[rep_mol]
+    ya += (reps.shift_A - origin)[:, None, :]
+    y_aug = np.empty((n_rep + 1, m, 5))
+    np.multiply(ya, -2.0, out=y_aug[:n_rep, :, :3])
+    y_aug[:n_rep, :, 3] = 1.0
+    y_aug[:n_rep, :, 4] = np.einsum("nak,nak->na", ya, ya)
+    y_aug[:n_rep, :, 4][~mask[rep_mol]] = _FAR
+    y_aug[n_rep] = (0.0, 0.0, 0.0, 0.0, _FAR)
+    q_rep = np.zeros((n_rep + 1, m))
+    q_rep[:n_rep] = q[rep_mol]
+    pair_rep = np.r_[pk, n_rep]                    # pair index n_pairs: stand-in, far and uncharged
+
+    counts = np.bincount(pi, minlength=n_mol)
+    starts = np.r_[0, np.cumsum(counts)[:-1]]
+    owners = np.argsort(-counts, kind="stable")
+    owners = owners[counts[owners] > 0]
+    batches = _batches(counts[owners], m)
 
     pot = np.zeros((n_mol, m))
-    member = np.ones(n_pairs, bool)
-    bounds = np.searchsorted(i, np.arange(n_mol + 1))
-    centres = np.flatnonzero(np.diff(bounds))
-    work = list(zip(centres.tolist(), bounds[centres].tolist(), bounds[centres + 1].tolist(),
-                    [0] * len(centres)))
-    rc = cent[rep_mol] + cp.replica_shift_A - origin
-    cen_aug = np.c_[-2.0 * rc, np.ones(len(rc)), np.einsum("rk,rk->r", rc, rc)]
-    ctx = _Blocks(x_aug=x_aug, y_aug=y_aug, q=q, q_rep=q_rep, replica=cp.replica, m=m, r2cut=radius_A * radius_A,
-                  pos=pos, mask=mask, cp=cp, pot=pot, member=member, cen_aug=cen_aug, ext_rep=ext[rep_mol],
-                  radius_A=float(radius_A), atom_rule=atom_rule)
-    n_threads = max(1, min(int(threads), len(work)))
+    member = np.zeros(n_pairs + 1, bool)
+    back = np.zeros((n_pairs + 1, m))
+    ctx = _Batch(x_aug=x_aug, y_aug=y_aug, q=q, q_rep=q_rep, pair_rep=pair_rep, counts=counts, starts=starts,
+                 owners=owners, m=m, r2cut=radius_A * radius_A, atom_rule=atom_rule, pos=pos, mask=mask,
+                 pj=pj, shift_rep=reps.shift_A, pot=pot, member=member, back=back)
+    n_threads = max(1, min(int(threads), len(batches)))
     if n_threads == 1:
-        back = _centre_blocks(ctx, work)
+        _run_batches(ctx, batches)
     else:
         from concurrent.futures import ThreadPoolExecutor
 
-        # molecule c's rows of pot and its pairs' member flags belong to one thread;
-        # potentials at partner atoms are summed per thread and added afterwards
+        # each owner's rows of pot, member and back belong to one batch, so one thread
+        # (the stand-in row n_pairs takes garbage from all; it is never read)
         with ThreadPoolExecutor(max_workers=n_threads) as pool:
-            backs = list(pool.map(lambda part: _centre_blocks(ctx, part),
-                                  [work[t::n_threads] for t in range(n_threads)]))
-        back = np.sum(backs, axis=0)
-    if len(rep_mol):
-        flat = (rep_mol[:, None] * m + np.arange(m)).ravel()
-        pot += np.bincount(flat, weights=back.ravel(), minlength=n_mol * m).reshape(n_mol, m)
+            list(pool.map(lambda part: _run_batches(ctx, part), [batches[t::n_threads] for t in range(n_threads)]))
+    if n_pairs:
+        flat = (pj[:, None] * m + np.arange(m)).ravel()
+        pot += np.bincount(flat, weights=back[:n_pairs].ravel(), minlength=n_mol * m).reshape(n_mol, m)
     full = np.zeros(len(positions_A))
     full[atoms] = pot[rows_mol, rows_slot] * COULOMB_EV_A
-    i, j, img = i[member], j[member], cp.image[member]
+    mem = member[:n_pairs]
+    i, j, k = pi[mem], pj[mem], pk[mem]
+    img, shift = reps.image[k], reps.shift_A[k]
     n_terms = int(np.dot(sizes[i], sizes[j]))
-    h = box_vectors(box) if box is not None else np.zeros((3, 3))
-    shift = img @ h
     pairs = EnvironmentPairs(center=np.r_[i, j], env=np.r_[j, i], image=np.r_[img, -img],
                              shift_A=np.r_[shift, -shift])
-    return PotentialResult(potential_V=full, pairs=pairs, n_candidates=n_pairs, n_atom_pairs=n_terms)
+    return PotentialResult(potential_V=full, pairs=pairs, n_candidates=n_candidates, n_atom_pairs=n_terms)
+
+
+def _owner_atoms_to_point(l_aug: FloatArray, owner: IntArray, vec: FloatArray, n_mol: int) -> FloatArray:
+    """Smallest squared distance from the atoms of molecule ``owner[p]`` to the
+    point ``c[owner[p]] - vec[p]``, for every pair ``p`` (pairs sorted by owner).
+
+    ``l_aug`` (n_mol, m, 5): ``[x - c, |x - c|^2 (padding: far), 1]``. Pairs are
+    laid out per owner (padded to the largest count of a chunk of owners) for
+    stacked matrix products.
+    """
+    n_p = len(owner)
+    m = l_aug.shape[1]
+    out = np.empty(n_p)
+    if n_p == 0:
+        return out
+    v_aug = np.empty((n_p + 1, 5))
+    v_aug[:n_p, :3] = 2.0 * vec
+    v_aug[:n_p, 3] = 1.0
+    v_aug[:n_p, 4] = np.einsum("pk,pk->p", vec, vec)
+    v_aug[n_p] = (0.0, 0.0, 0.0, 0.0, _FAR)
+    counts = np.bincount(owner, minlength=n_mol)
+    starts = np.r_[0, np.cumsum(counts)[:-1]]
+    a = 0
+    while a < n_mol:
+        # owners a..b-1, at most _BATCH_ENTRIES padded entries (at least one owner)
+        run = np.maximum.accumulate(counts[a:]) * np.arange(1, n_mol - a + 1) * m
+        b = a + max(1, int(np.searchsorted(run, _BATCH_ENTRIES, side="right")))
+        km = int(counts[a:b].max())
+        if km:
+            slot = np.arange(km)
+            pid = starts[a:b, None] + slot
+            valid = slot < counts[a:b, None]
+            pid[~valid] = n_p
+            d2 = np.matmul(l_aug[a:b], v_aug[pid].transpose(0, 2, 1))       # (owners, m, km)
+            out[pid[valid]] = d2.min(axis=1)[valid]
+        a = b
+    return out
+
+
+def _batches(counts: IntArray, m: int) -> list[tuple[int, int, int]]:
+    """Split owners (sorted by decreasing pair count) into batches ``(first, end,
+    padded count)`` of about ``_BATCH_ENTRIES`` atom pairs."""
+    out = []
+    a, n = 0, len(counts)
+    per_pair = m * m
+    while a < n:
+        km = int(counts[a])
+        g = max(1, _BATCH_ENTRIES // (km * per_pair))
+        out.append((a, min(n, a + g), km))
+        a += g
+    return out
 
 
 @dataclass(frozen=True)
-class _Blocks:
-    """Arrays shared by the per-molecule blocks of :func:`environment_potential`."""
+class _Batch:
+    """Arrays shared by the batches of :func:`environment_potential`."""
 
-    x_aug: FloatArray
-    y_aug: FloatArray
-    q: FloatArray
-    q_rep: FloatArray
-    replica: IntArray
+    x_aug: FloatArray         # (n_mol, m, 5) owner atoms, [x, |x|^2, 1]
+    y_aug: FloatArray         # (n_rep + 1, m, 5) replica atoms, [-2y, 1, |y|^2]
+    q: FloatArray             # (n_mol, m)
+    q_rep: FloatArray         # (n_rep + 1, m)
+    pair_rep: IntArray        # (n_pairs + 1,) replica of each pair
+    counts: IntArray          # (n_mol,) pairs per owner
+    starts: IntArray          # (n_mol,) first pair of each owner
+    owners: IntArray          # owners by decreasing count
     m: int
     r2cut: float
-    pos: FloatArray
-    mask: BoolArray
-    cp: CandidatePairs
-    pot: FloatArray
-    member: BoolArray
-    cen_aug: FloatArray       # (n_rep, 5) replica centroids, [-2c, 1, |c|^2]
-    ext_rep: FloatArray       # (n_rep,) replica extents
-    radius_A: float
     atom_rule: bool
+    pos: FloatArray           # (n_mol, m, 3) for boundary cases
+    mask: BoolArray
+    pj: IntArray              # (n_pairs,) partner molecule
+    shift_rep: FloatArray     # (n_rep, 3)
+    pot: FloatArray           # (n_mol, m) out: potential at owner atoms
+    member: BoolArray         # (n_pairs + 1,) out
+    back: FloatArray          # (n_pairs + 1, m) out: potential at partner atoms
 
 
-def _centre_blocks(ctx: _Blocks, work: list[tuple[int, int, int, int]]) -> FloatArray:
-    """Run the blocks of the centre molecules in ``work`` ((c, first pair, end, first
-    pair needing the atom test)); adds into ``ctx.pot[c]`` and ``ctx.member``, returns
-    the potential at the replica atoms (n_replicas, m)."""
-    x_aug, y_aug, q, q_rep, m, r2cut = ctx.x_aug, ctx.y_aug, ctx.q, ctx.q_rep, ctx.m, ctx.r2cut
-    pot, member, rep_of_pair = ctx.pot, ctx.member, ctx.replica
-    back = np.zeros(q_rep.shape)
-    mm = m * m
-    for c, s, e, _ in work:
-        kk = rep_of_pair[s:e]
-        mf = None
+def _run_batches(ctx: _Batch, batches: list[tuple[int, int, int]]) -> None:
+    """Evaluate the pairs of the owners in ``batches``; writes ``ctx.pot`` rows of
+    those owners and ``ctx.member`` / ``ctx.back`` rows of their pairs."""
+    m = ctx.m
+    if not batches:
+        return
+    size = max(_BATCH_ENTRIES, max((b - a) * km * m * m for a, b, km in batches))
+    gbuf = np.empty(size)
+    ybuf = np.empty(size // m * 5)
+    wbuf = np.empty(size // m)
+    for a, b, km in batches:
+        cs = ctx.owners[a:b]
+        g_n = len(cs)
+        slot = np.arange(km)
+        pid = ctx.starts[cs][:, None] + slot
+        valid = slot < ctx.counts[cs][:, None]
+        pid[~valid] = len(ctx.pair_rep) - 1
+        kk = ctx.pair_rep[pid]                                              # (G, km) replicas
+        y = np.take(ctx.y_aug, kk, axis=0, out=ybuf[: g_n * km * m * 5].reshape(g_n, km, m, 5), mode="clip")
+        g = np.matmul(ctx.x_aug[cs], y.reshape(g_n, km * m, 5).transpose(0, 2, 1),
+                      out=gbuf[: g_n * m * km * m].reshape(g_n, m, km * m))  # squared distances
         if ctx.atom_rule:
-            # lower bound of each partner's closest approach: the centre's atoms to the
-            # partner's centroid, minus its extent; drop the certainly-outside, closest first
-            lb2 = (ctx.cen_aug[kk] @ x_aug[c].T).min(axis=1)
-            lb = np.sqrt(np.maximum(lb2, 0.0)) - ctx.ext_rep[kk]
-            order = np.argsort(lb)[: np.count_nonzero(lb <= ctx.radius_A * (1 + 1e-9) + 1e-9)]
-            member[s:e] = False
-            if len(order) == 0:
-                continue
-            kk = kk[order]
-            g = y_aug[kk].reshape(-1, 5) @ x_aug[c].T                    # (K m, m) squared distances
-            pmin = g.reshape(-1, mm).min(axis=1)
-            edge = np.abs(pmin - r2cut) <= _EDGE_REL * r2cut
+            pmin = g.min(axis=1).reshape(g_n, km, m).min(axis=2)
+            edge = valid & (np.abs(pmin - ctx.r2cut) <= _EDGE_REL * ctx.r2cut)
             if edge.any():
-                pmin[edge] = _exact_min_d2(ctx.pos[c][ctx.mask[c]], ctx.pos, ctx.mask, ctx.cp,
-                                           s + order[np.flatnonzero(edge)])
-            mem = pmin <= r2cut
-            member[s + order] = mem
-            last = np.flatnonzero(mem)
-            if len(last) == 0:
-                continue
-            n_keep = int(last[-1]) + 1
-            if not mem[:n_keep].all():
-                mf = mem[:n_keep, None]
-            w = q_rep[kk[:n_keep]]
-            if mf is not None:
-                w = w * mf
+                gi, ki = np.nonzero(edge)
+                pmin[gi, ki] = [_exact_min_d2(ctx, int(cs[x]), int(pid[x, y])) for x, y in zip(gi, ki)]
+            mem = valid & (pmin <= ctx.r2cut)
         else:
-            g = y_aug[kk].reshape(-1, 5) @ x_aug[c].T
-            n_keep = e - s
-            w = q_rep[kk]
-        gv = g[: n_keep * m]                                              # contiguous rows
-        np.sqrt(gv, out=gv)
-        np.divide(1.0, gv, out=gv)                                        # 1/r
-        pot[c] += w.ravel() @ gv
-        b = (gv @ q[c]).reshape(n_keep, m)
-        if mf is not None:
-            b *= mf
-        back[kk[:n_keep]] += b
-    return back
+            mem = valid
+        np.sqrt(g, out=g)
+        np.divide(1.0, g, out=g)                                             # 1/r
+        w = np.take(ctx.q_rep, kk, axis=0, out=wbuf[: g_n * km * m].reshape(g_n, km, m), mode="clip")
+        w *= mem[:, :, None]
+        ctx.pot[cs] += np.matmul(g, w.reshape(g_n, km * m, 1))[:, :, 0]
+        bk = np.matmul(ctx.q[cs][:, None, :], g).reshape(g_n, km, m)
+        bk *= mem[:, :, None]
+        ctx.back[pid] = bk
+        ctx.member[pid] = mem
 
 
-def _exact_min_d2(x_abs: FloatArray, pos: FloatArray, mask: BoolArray, cp: CandidatePairs,
-                  pairs: IntArray) -> FloatArray:
-    """Closest squared distance between a centre molecule's atoms ``x_abs`` and
-    the partner atoms of each pair in ``pairs``, from plain coordinate differences."""
-    out = np.empty(len(pairs))
-    for k, p in enumerate(pairs):
-        jm = int(cp.j[p])
-        y = pos[jm][mask[jm]] + cp.replica_shift_A[cp.replica[p]]
-        d = x_abs[:, None, :] - y[None, :, :]
-        out[k] = np.min(np.einsum("abk,abk->ab", d, d))
-    return out
+def _exact_min_d2(ctx: _Batch, owner: int, pair: int) -> float:
+    """Closest squared distance between the atoms of ``owner`` and of the partner
+    image of ``pair``, from plain coordinate differences."""
+    x = ctx.pos[owner][ctx.mask[owner]]
+    jm = int(ctx.pj[pair])
+    y = ctx.pos[jm][ctx.mask[jm]] + ctx.shift_rep[ctx.pair_rep[pair]]
+    d = x[:, None, :] - y[None, :, :]
+    return float(np.min(np.einsum("abk,abk->ab", d, d)))
