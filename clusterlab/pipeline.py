@@ -105,13 +105,20 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
 
         t0 = time.perf_counter()
         m = study["model"]
-        echo(f"film-wide electrostatic model (radius {m['radius']} Å, polarization {m['polarization']}) ...")
-        outcome.model = run_film_model(film, m["charges_method"] or method, radius_A=m["radius"], frames=m["frames"],
+        echo(f"film-wide electrostatic model (radius {m['radius']} Å, polarization {m['polarization']}, "
+             f"{m['n_conformers']} conformer reference(s), S1 response {m['response']}) ...")
+        fit_method: Any = method
+        if m["charges_method"]:
+            fit_method = m["charges_method"]
+            if m["response"]:  # the finite fields run the engine: the study method at the fit's xc/basis
+                xc, _, basis = m["charges_method"].partition("/")
+                fit_method = method.replace(xc=xc, basis=basis or method.basis)
+        outcome.model = run_film_model(film, fit_method, radius_A=m["radius"], frames=m["frames"],
                                        polarization=m["polarization"], polarize_molecules=m["polarize_molecules"],
-                                       reference_molecule=m["reference_molecule"],
-                                       progress=progress)
+                                       reference_molecule=m["reference_molecule"], n_conformers=m["n_conformers"],
+                                       response=m["response"], progress=progress)
         outcome.timings_s["model"] = time.perf_counter() - t0
-        model_section(rep, outcome.model)
+        model_section(rep, outcome.model, n_conformers=m["n_conformers"], response=m["response"])
 
     if "export" in present:
         from .transport.export import export_study

@@ -124,7 +124,8 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
     return stats
 
 
-def model_section(rep: ReportWriter, model_df: pd.DataFrame, parity: dict[str, Any] | None = None) -> None:
+def model_section(rep: ReportWriter, model_df: pd.DataFrame, parity: dict[str, Any] | None = None, *,
+                  n_conformers: int = 1, response: bool = False) -> None:
     """Film-wide electrostatic model: distribution of every state's shift."""
     from .stats import disorder_stats
     from .study.plots import plot_histogram
@@ -133,9 +134,14 @@ def model_section(rep: ReportWriter, model_df: pd.DataFrame, parity: dict[str, A
     rep.section(f"Film-wide electrostatic model ({model_df.molecule.nunique()} molecules x "
                 f"{model_df.frame.nunique()} frames)",
                 "Shift of each state = Σ (q_state − q_ground) × potential of the environment's ground-state "
-                "charges (state charges fitted to the QM electrostatic potential of one reference copy). "
-                "Leaves out: polarisation unless requested, conformational changes of the charges, "
-                "quantum effects of the environment.")
+                f"charges (state charges fitted to the QM electrostatic potential of {n_conformers} conformer "
+                "reference(s); each copy takes the reference it superposes onto best)"
+                + ("; S1 instead from the finite-field response −Δμ·F − ½F·Δα·F with F the uniform field that "
+                   "best fits the environment potential over the molecule" if response else
+                   "; for a bright S1 the second-order (polarizability) part of the shift is missing, which "
+                   "can dominate (README: set response = true)")
+                + ". Leaves out: each copy's own distortion beyond its conformer family, polarisation unless "
+                "requested, quantum effects of the environment.")
     rows = []
     for c in cols:
         s = disorder_stats(model_df[c].to_numpy(dtype=float), n_boot=500, seed=0)

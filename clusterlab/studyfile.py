@@ -105,6 +105,9 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "polarize_molecules": Setting((list,), None, "molecule ids to polarize (default all; seconds each)"),
         "reference_molecule": Setting((int,), 0, "molecule whose geometry the state charges are fitted on"),
         "charges_method": Setting((str,), None, "'xc/basis' of the state-charge fit (default: the study method)"),
+        "n_conformers": Setting((int,), 1, "conformer references per molecule type (one QM fit each)"),
+        "response": Setting((bool,), False, "S1 from the finite-field response -Δμ·F - ½F·Δα·F (25 QM runs "
+                                            "per reference) instead of first-order charges"),
     },
     "export": {
         "cutoff_A": Setting(_num(), 8.0, "neighbour-pair cutoff (Å)"),

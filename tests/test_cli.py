@@ -123,3 +123,38 @@ def test_console_script_help():
     r = subprocess.run([sys.executable, "-m", "clusterlab.cli", "run", "--help"], capture_output=True, text=True)
     assert r.returncode == 0
     assert "--sample-n" in r.stdout and "--scan-periodic-limit" in r.stdout and "--runner-scheduler" in r.stdout
+
+
+def test_model_section_passes_conformers_and_response(gro, tmp_path, capsys):
+    """[model] n_conformers and response reach the film model and the report."""
+    study = tmp_path / "study.toml"
+    study.write_text(f"""
+[film]
+topology = "{gro[0]}"
+charges = "{gro[1]}"
+[method]
+preset = "draft"
+basis = "sto-3g"
+n_singlets = 1
+n_triplets = 1
+[model]
+radius = 4.0
+charges_method = "hf/sto-3g"
+n_conformers = 2
+response = true
+[runner]
+kind = "serial"
+[output]
+store = "{tmp_path / 'st.sqlite'}"
+report = "{tmp_path / 'rep'}"
+""")
+    assert main(["run", str(study), "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "2 conformer reference(s), S1 response True" in out
+    summary = (tmp_path / "rep" / "summary.md").read_text()
+    assert "2 conformer reference(s)" in summary and "finite-field response" in summary
+    assert "| S1_shift_eV |" in summary
+    bad = tmp_path / "bad.toml"
+    bad.write_text(f"[film]\ntopology = '{gro[0]}'\n[model]\nresponse = 1\n")
+    with pytest.raises(StudyFileError, match=r"\[model\] response = 1 has the wrong type; expected bool"):
+        load_study(bad)
