@@ -9,6 +9,7 @@ import math
 import os
 from typing import Any
 
+import numpy as np
 import pandas as pd
 
 MODEL_NOTE = (
@@ -20,20 +21,33 @@ MODEL_NOTE = (
 
 
 def _fmt(x: Any, nd: int = 3) -> str:
+    if isinstance(x, (bool, np.bool_)):
+        return str(bool(x))
+    if isinstance(x, (int, np.integer)):
+        return str(int(x))
     try:
         xf = float(x)
     except (TypeError, ValueError):
         return str(x)
     if math.isnan(xf):
         return "n/a"
+    if math.isinf(xf):
+        return "inf" if xf > 0 else "-inf"
     return f"{xf:.{nd}f}"
 
 
 def _table_md(df: pd.DataFrame, cols: list[str], nd: int = 3) -> str:
     cols = [c for c in cols if c in df.columns]
     head = "| " + " | ".join(cols) + " |\n|" + "---|" * len(cols) + "\n"
-    rows = "".join("| " + " | ".join(_fmt(v, nd) if not isinstance(v, str) else v for v in r) + " |\n"
-                   for r in df[cols].itertuples(index=False))
+    # counts stored as floats (a column with a missing value) still print as counts
+    digits = []
+    for c in cols:
+        v = pd.to_numeric(df[c], errors="coerce").to_numpy(dtype=float)
+        fin = v[np.isfinite(v)]
+        whole = df[c].dtype.kind == "f" and len(fin) and np.all(fin == np.round(fin)) and np.all(np.abs(fin) < 1e9)
+        digits.append(0 if whole else nd)
+    rows = "".join("| " + " | ".join(_fmt(v, d) if not isinstance(v, str) else v for v, d in zip(r, digits))
+                   + " |\n" for r in df[cols].itertuples(index=False))
     return head + rows
 
 
