@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 
 from clusterlab.carve import MoleculeIndex, select_images
+from clusterlab.electrostatics import pairsum
 from clusterlab.electrostatics.pairsum import candidate_pairs, environment_potential
 from clusterlab.geometry import box_vectors
 from clusterlab.units import COULOMB_EV_A
@@ -45,11 +46,23 @@ def _brute_force(pos, mol, q, box, radius, rule):
     return out, np.array(n_env), index, cent
 
 
+#: code paths of the pair sums: centroid distances dense or from a KD-tree; batches of the
+#: default size or of a few atom pairs (many batches and lower-bound chunks, one owner each)
+PATHS = {"dense": {}, "tree": {"_DENSE_MAX": 0}, "tiny batches": {"_BATCH_ENTRIES": 8}}
+
+
+@pytest.fixture(params=list(PATHS))
+def path(request, monkeypatch):
+    for name, value in PATHS[request.param].items():
+        monkeypatch.setattr(pairsum, name, value)
+    return request.param
+
+
 @pytest.mark.parametrize("box", [np.array([14.0, 15.0, 16.0, 90, 90, 90]),
                                  np.array([15.0, 14.0, 16.0, 70, 80, 105]), None],
                          ids=["orthorhombic", "triclinic", "no box"])
 @pytest.mark.parametrize("rule", ["atom", "centroid"])
-def test_matches_carving_and_coulomb(box, rule):
+def test_matches_carving_and_coulomb(box, rule, path):
     """Independent path: clusterlab.carve.select_images chooses the images of
     each molecule, the potential is Coulomb's law summed atom by atom; radius
     9 Å exceeds half of every box width, so molecules meet their own images."""
@@ -74,7 +87,7 @@ def test_membership_exactly_at_the_radius():
     assert off.potential_V.tolist() == [0.0, 0.0]
 
 
-def test_subset_and_candidates():
+def test_subset_and_candidates(path):
     """``want`` gives the flagged molecules' potentials unchanged; candidate pairs
     are each unordered pair once (brute force over the 27 nearest translations)."""
     rng = np.random.default_rng(8)
@@ -99,3 +112,35 @@ def test_subset_and_candidates():
                 if d <= 5.0 and (i < j or (i == j and tuple(t) > (0, 0, 0))):
                     want_pairs.add((i, j, tuple(int(x) for x in t)))
     assert got == want_pairs
+
+
+def test_film_model_over_frames_and_threads():
+    """film_site_energies with two threads (whole frames per thread, and the
+    molecules of one frame split when only one frame is asked for) against
+    Film.carve and Coulomb's law summed over the carved point charges."""
+    from clusterlab import film_from_universe
+    from clusterlab.electrostatics.sitemodel import StateChargeSet, film_site_energies
+    from clusterlab.errors import InputError
+
+    from conftest import TIP3P_Q, build_water_universe, lattice_centres
+
+    rng = np.random.default_rng(21)
+    box = np.array([3.1 * 4] * 3 + [90.0] * 3)
+    u, _ = build_water_universe(lattice_centres(4, 0.2, rng), box, seed=5, n_frames=3)
+    film = film_from_universe(u)
+    cset = StateChargeSet.from_arrays({"WAT": {"S0": TIP3P_Q, "cation": [0.0, 0.5, 0.5]}})
+    dq = cset.difference("WAT", "cation")
+    radius = 7.0                                  # beyond half the 12.4 Å box: images
+    both = film_site_energies(film, ("cation",), radius=radius, charges=cset, progress=False, threads=2)
+    one = film_site_energies(film, ("cation",), radius=radius, charges=cset, progress=False, threads=2,
+                             frames=[2])
+    assert both.frame.tolist() == np.repeat([0, 1, 2], film.n_molecules).tolist()
+    for frame, table in ((0, both), (1, both), (2, both), (2, one)):
+        sub = table[table.frame == frame].set_index("molecule")
+        for i in range(0, film.n_molecules, 7):
+            c = film.carve(i, radius, frame=frame)
+            d = c.qm_positions[:, None, :] - c.env_positions[None, :, :]
+            ref = float(dq @ (c.env_charges / np.linalg.norm(d, axis=2)).sum(axis=1)) * COULOMB_EV_A
+            assert sub.loc[i, "cation_shift_eV"] == pytest.approx(ref, abs=1e-10)
+    with pytest.raises(InputError, match="no frame"):
+        film_site_energies(film, ("cation",), radius=radius, charges=cset, progress=False, frames=[])

@@ -53,7 +53,7 @@ import numpy as np
 import numpy.typing as npt
 from scipy.spatial import cKDTree
 
-from ..geometry import box_vectors, perpendicular_widths, to_fractional
+from ..geometry import box_vectors
 from ..units import COULOMB_EV_A
 
 FloatArray = npt.NDArray[np.float64]
@@ -156,9 +156,11 @@ def _replicas(c: FloatArray, box: npt.ArrayLike | None, cutoff_A: float) -> _Rep
         return _Replicas(np.arange(n, dtype=np.int64), np.zeros((n, 3), np.int64), np.zeros((n, 3)), c,
                          np.zeros(n, bool))
     h = box_vectors(box)
-    w = perpendicular_widths(h)
+    h_inv = np.linalg.inv(h)
+    # distances between opposite faces: 1 / |reciprocal vector| (columns of h^-1)
+    w = 1.0 / np.sqrt(np.einsum("ki,ki->i", h_inv, h_inv))
     margin = cutoff_A / w + 1e-9
-    frac = to_fractional(c, h)
+    frac = c @ h_inv
     # translations t for which frac + t can land inside [-margin, 1 + margin)
     t_lo = np.ceil(-margin - frac.max(axis=0)).astype(int)
     t_hi = np.ceil(1 + margin - frac.min(axis=0)).astype(int) - 1
@@ -173,9 +175,10 @@ def _replicas(c: FloatArray, box: npt.ArrayLike | None, cutoff_A: float) -> _Rep
 
 
 def _close_pairs(c: FloatArray, box: npt.ArrayLike | None, cutoff_A: float, *, balanced: bool
-                 ) -> tuple[IntArray, IntArray, FloatArray, _Replicas]:
+                 ) -> tuple[IntArray, IntArray, FloatArray, FloatArray, _Replicas]:
     """Unordered centroid-replica pairs within ``cutoff_A``: ``(owner, replica,
-    vector, replicas)``, sorted by owner; ``vector = c[owner] - replica centroid``.
+    vector, squared distance, replicas)``, sorted by owner; ``vector = c[owner] -
+    replica centroid``.
 
     ``balanced=False``: the owner is the smaller molecule index; ``True``: for
     ``i != j`` the owner is ``min(i, j)`` when ``i + j`` is even, else ``max(i, j)``
@@ -188,11 +191,16 @@ def _close_pairs(c: FloatArray, box: npt.ArrayLike | None, cutoff_A: float, *, b
         # all centroid-replica distances from one augmented matrix product; the
         # threshold is loosened by far more than its rounding, the exact test follows
         o = c.mean(axis=0) if n else np.zeros(3)
-        ca, ra = c - o, reps.centroid_A - o
-        n2c, n2r = np.einsum("nk,nk->n", ca, ca), np.einsum("nk,nk->n", ra, ra)
-        a = np.c_[ca, n2c, np.ones(n)]
-        b = np.c_[-2.0 * ra, np.ones(n_rep), n2r]
-        scale = float(max(n2c.max(initial=0.0), n2r.max(initial=0.0)))
+        a = np.empty((n, 5))
+        b = np.empty((n_rep, 5))
+        np.subtract(c, o, out=a[:, :3])
+        a[:, 3] = np.einsum("nk,nk->n", a[:, :3], a[:, :3])
+        a[:, 4] = 1.0
+        np.subtract(reps.centroid_A, o, out=b[:, :3])
+        b[:, 4] = np.einsum("nk,nk->n", b[:, :3], b[:, :3])
+        b[:, :3] *= -2.0
+        b[:, 3] = 1.0
+        scale = float(max(a[:, 3].max(initial=0.0), b[:, 4].max(initial=0.0)))
         d2 = a @ b.T
         flat = np.flatnonzero(d2 <= cutoff_A * cutoff_A * (1 + 1e-9) + 1e-12 * scale + 1e-9)
         i = flat // n_rep
@@ -206,17 +214,23 @@ def _close_pairs(c: FloatArray, box: npt.ArrayLike | None, cutoff_A: float, *, b
         k = coo.col.astype(np.int64)
     j = reps.molecule[k]
     if balanced:
-        own = np.where(i == j, reps.positive[k], (i < j) == ((i + j) % 2 == 0))
+        own = (i < j) == (((i ^ j) & 1) == 0)
     else:
-        own = (i < j) | ((i == j) & reps.positive[k])
-    i, k = i[own], k[own]
-    vec = c[i] - reps.centroid_A[k]
-    inside = np.einsum("pk,pk->p", vec, vec) <= cutoff_A * cutoff_A
-    i, k, vec = i[inside], k[inside], vec[inside]
+        own = i < j
+    same = np.flatnonzero(i == j)
+    own[same] = reps.positive[k[same]]
+    sel = np.flatnonzero(own)
+    i, k = i[sel], k[sel]
+    vec = np.take(c, i, axis=0)
+    vec -= np.take(reps.centroid_A, k, axis=0)
+    d2 = np.einsum("pk,pk->p", vec, vec)
+    sel = np.flatnonzero(d2 <= cutoff_A * cutoff_A)
+    if len(sel) < len(i):
+        i, k, vec, d2 = i[sel], k[sel], vec[sel], d2[sel]
     if len(i) > 1 and np.any(i[1:] < i[:-1]):
         order = np.argsort(i, kind="stable")
-        i, k, vec = i[order], k[order], vec[order]
-    return i, k, vec, reps
+        i, k, vec, d2 = i[order], k[order], vec[order], d2[order]
+    return i, k, vec, d2, reps
 
 
 def candidate_pairs(centroids_A: FloatArray, box: npt.ArrayLike | None, cutoff_A: float) -> CandidatePairs:
@@ -246,7 +260,7 @@ def candidate_pairs(centroids_A: FloatArray, box: npt.ArrayLike | None, cutoff_A
     ([0], [1], [[0, 0, 0]])
     """
     c = np.asarray(centroids_A, dtype=np.float64)
-    i, k, vec, reps = _close_pairs(c, box, float(cutoff_A), balanced=False)
+    i, k, vec, _, reps = _close_pairs(c, box, float(cutoff_A), balanced=False)
     return CandidatePairs(i, reps.molecule[k], reps.image[k], k, vec, reps.molecule, reps.shift_A)
 
 
@@ -328,9 +342,9 @@ def environment_potential(
     radius_A = float(radius_A)
 
     cut = radius_A + 2.0 * float(ext.max(initial=0.0)) + 1e-9 if atom_rule else radius_A * (1 + 1e-12) + 1e-9
-    pi, pk, vec, reps = _close_pairs(cent, box, cut, balanced=True)
+    pi, pk, vec, d2cen, reps = _close_pairs(cent, box, cut, balanced=True)
     pj = reps.molecule[pk]
-    dcen = np.sqrt(np.einsum("pk,pk->p", vec, vec))
+    dcen = np.sqrt(d2cen)
     if atom_rule:
         ok = dcen <= radius_A + ext[pi] + ext[pj] + 1e-9
     else:
@@ -372,17 +386,17 @@ def environment_potential(
     y_aug[n_rep] = (0.0, 0.0, 0.0, 0.0, _FAR)
     q_rep = np.zeros((n_rep + 1, m))
     q_rep[:n_rep] = q[rep_mol]
-    pair_rep = np.r_[pk, n_rep]                    # pair index n_pairs: stand-in, far and uncharged
+    pair_rep = np.append(pk, n_rep)                # pair index n_pairs: stand-in, far and uncharged
 
     counts = np.bincount(pi, minlength=n_mol)
-    starts = np.r_[0, np.cumsum(counts)[:-1]]
+    starts = np.cumsum(counts) - counts
     owners = np.argsort(-counts, kind="stable")
     owners = owners[counts[owners] > 0]
     batches = _batches(counts[owners], m)
 
     pot = np.zeros((n_mol, m))
     member = np.zeros(n_pairs + 1, bool)
-    back = np.zeros((n_pairs + 1, m))
+    back = np.zeros((m, n_pairs + 1))
     ctx = _Batch(x_aug=x_aug, y_aug=y_aug, q=q, q_rep=q_rep, pair_rep=pair_rep, counts=counts, starts=starts,
                  owners=owners, m=m, r2cut=radius_A * radius_A, atom_rule=atom_rule, pos=pos, mask=mask,
                  pj=pj, shift_rep=reps.shift_A, pot=pot, member=member, back=back)
@@ -397,16 +411,27 @@ def environment_potential(
         with ThreadPoolExecutor(max_workers=n_threads) as pool:
             list(pool.map(lambda part: _run_batches(ctx, part), [batches[t::n_threads] for t in range(n_threads)]))
     if n_pairs:
-        flat = (pj[:, None] * m + np.arange(m)).ravel()
-        pot += np.bincount(flat, weights=back[:n_pairs].ravel(), minlength=n_mol * m).reshape(n_mol, m)
+        for a in range(m):                                       # potential at the partners' atoms
+            pot[:, a] += np.bincount(pj, weights=back[a, :n_pairs], minlength=n_mol)
     full = np.zeros(len(positions_A))
     full[atoms] = pot[rows_mol, rows_slot] * COULOMB_EV_A
-    mem = member[:n_pairs]
-    i, j, k = pi[mem], pj[mem], pk[mem]
-    img, shift = reps.image[k], reps.shift_A[k]
-    n_terms = int(np.dot(sizes[i], sizes[j]))
-    pairs = EnvironmentPairs(center=np.r_[i, j], env=np.r_[j, i], image=np.r_[img, -img],
-                             shift_A=np.r_[shift, -shift])
+    sel = np.flatnonzero(member[:n_pairs])
+    n_mem = len(sel)
+    center = np.empty(2 * n_mem, np.int64)
+    env = np.empty(2 * n_mem, np.int64)
+    np.take(pi, sel, out=center[:n_mem])
+    np.take(pj, sel, out=center[n_mem:])
+    env[:n_mem] = center[n_mem:]
+    env[n_mem:] = center[:n_mem]
+    k = pk[sel]
+    image = np.empty((2 * n_mem, 3), np.int64)
+    shift = np.empty((2 * n_mem, 3))
+    np.take(reps.image, k, axis=0, out=image[:n_mem])
+    np.negative(image[:n_mem], out=image[n_mem:])
+    np.take(reps.shift_A, k, axis=0, out=shift[:n_mem])
+    np.negative(shift[:n_mem], out=shift[n_mem:])
+    n_terms = int(np.dot(sizes[center[:n_mem]], sizes[env[:n_mem]]))
+    pairs = EnvironmentPairs(center=center, env=env, image=image, shift_A=shift)
     return PotentialResult(potential_V=full, pairs=pairs, n_candidates=n_candidates, n_atom_pairs=n_terms)
 
 
@@ -429,7 +454,7 @@ def _owner_atoms_to_point(l_aug: FloatArray, owner: IntArray, vec: FloatArray, n
     v_aug[:n_p, 4] = np.einsum("pk,pk->p", vec, vec)
     v_aug[n_p] = (0.0, 0.0, 0.0, 0.0, _FAR)
     counts = np.bincount(owner, minlength=n_mol)
-    starts = np.r_[0, np.cumsum(counts)[:-1]]
+    starts = np.cumsum(counts) - counts
     a = 0
     while a < n_mol:
         # owners a..b-1, at most _BATCH_ENTRIES padded entries (at least one owner)
@@ -482,7 +507,7 @@ class _Batch:
     shift_rep: FloatArray     # (n_rep, 3)
     pot: FloatArray           # (n_mol, m) out: potential at owner atoms
     member: BoolArray         # (n_pairs + 1,) out
-    back: FloatArray          # (n_pairs + 1, m) out: potential at partner atoms
+    back: FloatArray          # (m, n_pairs + 1) out: potential at partner atoms
 
 
 def _run_batches(ctx: _Batch, batches: list[tuple[int, int, int]]) -> None:
@@ -522,7 +547,7 @@ def _run_batches(ctx: _Batch, batches: list[tuple[int, int, int]]) -> None:
         ctx.pot[cs] += np.matmul(g, w.reshape(g_n, km * m, 1))[:, :, 0]
         bk = np.matmul(ctx.q[cs][:, None, :], g).reshape(g_n, km, m)
         bk *= mem[:, :, None]
-        ctx.back[pid] = bk
+        ctx.back[:, pid] = bk.transpose(2, 0, 1)
         ctx.member[pid] = mem
 
 
