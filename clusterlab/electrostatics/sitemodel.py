@@ -110,6 +110,7 @@ from __future__ import annotations
 
 import json
 import warnings
+from collections import deque
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, Iterable, Mapping, Sequence
 
@@ -976,96 +977,130 @@ def film_site_energies(
     alpha_all = atomic_polarizabilities(list(film.symbols)) if pol_states else None
     names = np.asarray(film.molecule_resnames)
 
-    tables = []
+    rows: list[dict[str, Any]] = []
+
+    def frame_inputs(f: int) -> tuple[Any, Any, dict[str, FloatArray], FloatArray]:
+        geo = film.frame_geometry(f, periodic=film.has_box)
+        q_env, dq_f = q_env0, dq0
+        fams = None
+        if families:
+            fams = _assign_families(film, charges, geo.positions_A)
+            dq_f = {s: v.copy() for s, v in dq0.items()}
+            q_env = q_env0.copy() if environment == "fitted" else None
+            _family_overrides(film, charges, fams, states, dq_f, q_env)
+            q_env = q_env0 if q_env is None else q_env
+        return geo, fams, dq_f, q_env
+
+    def potential(geo: Any, q_env: FloatArray, n_threads: int) -> Any:
+        return environment_potential(geo.positions_A, q_env, film.index.atoms, film.index.offsets,
+                                     geo.centroids_A, geo.box, radius, rule=rule,
+                                     want=None if molecules is None else want, threads=n_threads)
+
+    def finish(geo: Any, fams: Any, dq_f: dict[str, FloatArray], q_env: FloatArray, env: Any) -> None:
+        pot = env.potential_V
+        pairs = env.pairs
+        row: dict[str, Any] = {
+            "frame": np.full(len(mol_sel), geo.frame), "molecule": mol_sel, "resname": names[mol_sel],
+            "x_A": geo.centroids_A[mol_sel, 0], "y_A": geo.centroids_A[mol_sel, 1],
+            "z_A": geo.centroids_A[mol_sel, 2],
+            "n_env_molecules": np.bincount(pairs.center, minlength=film.n_molecules)[mol_sel],
+        }
+        if fams is not None:
+            row["conformer"] = fams.family[mol_sel]
+            row["conformer_rmsd_A"] = fams.rmsd_A[mol_sel]
+        for s in states:
+            val = np.bincount(film.molecule_of_atom, weights=dq_f[s] * pot, minlength=film.n_molecules)[mol_sel]
+            row[f"{s}_shift_eV"] = np.where(covered[mol_sel], val, np.nan)
+        if stark_states:
+            fld = _uniform_field(geo.positions_A, pot, film.index)
+            row["field_V_A"] = np.linalg.norm(fld, axis=1)[mol_sel]
+            for s in stark_states:
+                e2 = np.full(film.n_molecules, np.nan)
+                for res, refs in charges.conformers.items():
+                    ids = np.flatnonzero(names == res)
+                    if ids.size == 0:
+                        continue
+                    fam = np.maximum(fams.family[ids], 0) if fams is not None else np.zeros(ids.size, int)
+                    da = np.stack([c.dalpha_A3[s] for c in refs])[fam]
+                    r = fams.rotation[ids] if fams is not None else np.tile(np.eye(3), (ids.size, 1, 1))
+                    da = np.einsum("nij,njk,nlk->nil", r, da, r)
+                    e2[ids] = stark_energy_eV(da, fld[ids])
+                first = row[f"{s}_shift_eV"]
+                if field_model:
+                    first = np.where(covered[mol_sel], _dipole_term(film, charges, fams, s, fld)[mol_sel], np.nan)
+                row[f"{s}_first_order_eV"] = first
+                row[f"{s}_stark_eV"] = e2[mol_sel]
+                row[f"{s}_shift_eV"] = first + e2[mol_sel]
+        if periodic_limit:
+            from .ewald import ewald_potential
+
+            phi = ewald_potential(geo.positions_A, geo.positions_A, q_env, geo.box,
+                                  point_groups=film.molecule_of_atom, charge_groups=film.molecule_of_atom,
+                                  accuracy=ewald_accuracy)
+            for s in states:
+                v = np.bincount(film.molecule_of_atom, weights=dq_f[s] * phi,
+                                minlength=film.n_molecules)[mol_sel]
+                row[f"{s}_shift_periodic_eV"] = np.where(covered[mol_sel], v, np.nan)
+        if pol_states:
+            order = np.argsort(pairs.center, kind="stable")
+            bounds = np.searchsorted(pairs.center[order], np.arange(film.n_molecules + 1))
+            p_vals = {s: np.full(len(mol_sel), np.nan) for s in pol_states}
+            p_ok = np.ones(len(mol_sel), bool)
+            for k, mol in enumerate(mol_sel):
+                if not covered[mol]:
+                    continue
+                sel = order[bounds[mol]:bounds[mol + 1]]
+                res = _polarize(geo, film, int(mol), pairs, sel, {s: dq_f[s] for s in pol_states}, alpha_all,
+                                polarization_cutoff_A, polarization_tol_eA)
+                for s, (e, ok) in res.items():
+                    p_vals[s][k] = e
+                    p_ok[k] &= ok
+            for s in pol_states:
+                row[f"P_{s}_eV"] = p_vals[s]
+                row[f"{s}_total_eV"] = row[f"{s}_shift_eV"] + p_vals[s]
+            row["P_converged"] = p_ok
+        tot = "_total_eV" if pol_states else "_shift_eV"
+        if "cation" in states:
+            row["IP_shift_eV"] = row[f"cation{tot}"]
+        if "anion" in states:
+            row["EA_shift_eV"] = -row[f"anion{tot}"]
+        rows.append(row)
+        if bar is not None:
+            bar.update(1)
+
+    # threads > 1 over several frames: each thread sums whole frames (frames are read and
+    # finished in order in this thread, at most `threads` frames ahead); one frame: the
+    # threads share its molecules
+    n_threads = max(1, int(threads))
+    pool = None
     bar = progress_bar(len(frame_list), desc="site energies", enabled=progress, unit="frame")
     try:
-        for f in frame_list:
-            geo = film.frame_geometry(f, periodic=film.has_box)
-            q_env, dq_f = q_env0, dq0
-            fams = None
-            if families:
-                fams = _assign_families(film, charges, geo.positions_A)
-                dq_f = {s: v.copy() for s, v in dq0.items()}
-                q_env = q_env0.copy() if environment == "fitted" else None
-                _family_overrides(film, charges, fams, states, dq_f, q_env)
-                q_env = q_env0 if q_env is None else q_env
-            env = environment_potential(geo.positions_A, q_env, film.index.atoms, film.index.offsets,
-                                        geo.centroids_A, geo.box, radius, rule=rule,
-                                        want=None if molecules is None else want, threads=threads)
-            pot = env.potential_V
-            pairs = env.pairs
-            row: dict[str, Any] = {
-                "frame": np.full(len(mol_sel), geo.frame), "molecule": mol_sel, "resname": names[mol_sel],
-                "x_A": geo.centroids_A[mol_sel, 0], "y_A": geo.centroids_A[mol_sel, 1],
-                "z_A": geo.centroids_A[mol_sel, 2],
-                "n_env_molecules": np.bincount(pairs.center, minlength=film.n_molecules)[mol_sel],
-            }
-            if fams is not None:
-                row["conformer"] = fams.family[mol_sel]
-                row["conformer_rmsd_A"] = fams.rmsd_A[mol_sel]
-            for s in states:
-                val = np.bincount(film.molecule_of_atom, weights=dq_f[s] * pot, minlength=film.n_molecules)[mol_sel]
-                row[f"{s}_shift_eV"] = np.where(covered[mol_sel], val, np.nan)
-            if stark_states:
-                fld = _uniform_field(geo.positions_A, pot, film.index)
-                row["field_V_A"] = np.linalg.norm(fld, axis=1)[mol_sel]
-                for s in stark_states:
-                    e2 = np.full(film.n_molecules, np.nan)
-                    for res, refs in charges.conformers.items():
-                        ids = np.flatnonzero(names == res)
-                        if ids.size == 0:
-                            continue
-                        fam = np.maximum(fams.family[ids], 0) if fams is not None else np.zeros(ids.size, int)
-                        da = np.stack([c.dalpha_A3[s] for c in refs])[fam]
-                        r = fams.rotation[ids] if fams is not None else np.tile(np.eye(3), (ids.size, 1, 1))
-                        da = np.einsum("nij,njk,nlk->nil", r, da, r)
-                        e2[ids] = stark_energy_eV(da, fld[ids])
-                    first = row[f"{s}_shift_eV"]
-                    if field_model:
-                        first = np.where(covered[mol_sel], _dipole_term(film, charges, fams, s, fld)[mol_sel], np.nan)
-                    row[f"{s}_first_order_eV"] = first
-                    row[f"{s}_stark_eV"] = e2[mol_sel]
-                    row[f"{s}_shift_eV"] = first + e2[mol_sel]
-            if periodic_limit:
-                from .ewald import ewald_potential
+        if n_threads > 1 and len(frame_list) > 1:
+            from concurrent.futures import ThreadPoolExecutor
 
-                phi = ewald_potential(geo.positions_A, geo.positions_A, q_env, geo.box,
-                                      point_groups=film.molecule_of_atom, charge_groups=film.molecule_of_atom,
-                                      accuracy=ewald_accuracy)
-                for s in states:
-                    v = np.bincount(film.molecule_of_atom, weights=dq_f[s] * phi,
-                                    minlength=film.n_molecules)[mol_sel]
-                    row[f"{s}_shift_periodic_eV"] = np.where(covered[mol_sel], v, np.nan)
-            if pol_states:
-                order = np.argsort(pairs.center, kind="stable")
-                bounds = np.searchsorted(pairs.center[order], np.arange(film.n_molecules + 1))
-                p_vals = {s: np.full(len(mol_sel), np.nan) for s in pol_states}
-                p_ok = np.ones(len(mol_sel), bool)
-                for k, mol in enumerate(mol_sel):
-                    if not covered[mol]:
-                        continue
-                    sel = order[bounds[mol]:bounds[mol + 1]]
-                    res = _polarize(geo, film, int(mol), pairs, sel, {s: dq_f[s] for s in pol_states}, alpha_all,
-                                    polarization_cutoff_A, polarization_tol_eA)
-                    for s, (e, ok) in res.items():
-                        p_vals[s][k] = e
-                        p_ok[k] &= ok
-                for s in pol_states:
-                    row[f"P_{s}_eV"] = p_vals[s]
-                    row[f"{s}_total_eV"] = row[f"{s}_shift_eV"] + p_vals[s]
-                row["P_converged"] = p_ok
-            tot = "_total_eV" if pol_states else "_shift_eV"
-            if "cation" in states:
-                row["IP_shift_eV"] = row[f"cation{tot}"]
-            if "anion" in states:
-                row["EA_shift_eV"] = -row[f"anion{tot}"]
-            tables.append(pd.DataFrame(row))
-            if bar is not None:
-                bar.update(1)
+            pool = ThreadPoolExecutor(max_workers=n_threads)
+        pending: deque[tuple[Any, ...]] = deque()
+        for f in frame_list:
+            geo, fams, dq_f, q_env = frame_inputs(f)
+            if pool is None:
+                finish(geo, fams, dq_f, q_env, potential(geo, q_env, n_threads))
+                continue
+            pending.append((geo, fams, dq_f, q_env, pool.submit(potential, geo, q_env, 1)))
+            if len(pending) > n_threads:
+                *args, fut = pending.popleft()
+                finish(*args, fut.result())
+        while pending:
+            *args, fut = pending.popleft()
+            finish(*args, fut.result())
     finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
         if bar is not None:
             bar.close()
-    out = pd.concat(tables, ignore_index=True)
+    if not rows:
+        raise InputError("frames= selects no frame; give at least one frame index.")
+    # one table at the end: per-frame DataFrames cost more than the pair sums of a small film
+    out = pd.DataFrame({k: np.concatenate([r[k] for r in rows]) for k in rows[0]})
     if pol_states and not out["P_converged"].all():
         warnings.warn(f"induced dipoles did not converge for {(~out['P_converged']).sum()} molecule(s); "
                       "see the P_converged column.", stacklevel=2)
