@@ -25,19 +25,21 @@ How it is made fast
    ``[x, |x|^2, 1] · [-2y, 1, |y|^2] = |x - y|^2`` (coordinates relative to
    the centroids' mean, so rounding stays near 1e-13 relative for boxes of
    100 Å).
-3. Membership (``rule="atom"``): a lower bound (the owner's atoms to the
-   partner's centroid, minus the partner's extent), computed for all pairs in
-   a few batched matrix products, drops the partners that are certainly
-   outside; for the others, the minimum of each pair's block of squared
-   distances decides; pairs whose closest distance lies within 1e-9 relative
-   of the radius are decided again from plain coordinate differences, so
-   boundary cases follow carving's arithmetic.
-4. Owners with similar partner counts are batched (a few hundred thousand
-   atom pairs per step, into reused buffers): one stacked matrix product gives
-   all their squared distances, ``sqrt`` and ``divide`` in place give ``1/r``
-   (non-members get zero weight), and two stacked matrix-vector products give
-   the potential at the owners' atoms and at the partners' atoms. Partner
-   contributions are added with one ``np.bincount`` per frame.
+3. Membership (``rule="atom"``), before any potential is summed: from the
+   owner's atoms to the partner's centroid (all pairs in a few batched matrix
+   products), a lower bound (minus the partner's extent) drops the partners
+   that are certainly outside and an upper bound (plus the partner's atom
+   nearest its centroid) keeps those certainly inside. Only the pairs between
+   the bounds get their closest atom pair, from single-precision stacked
+   products with a rounding-error band; a pair whose band contains the radius
+   is decided again from plain float64 coordinate differences, so boundary
+   cases follow carving's arithmetic.
+4. Owners of member pairs with similar partner counts are batched (a few
+   hundred thousand atom pairs per step, into reused buffers): one stacked
+   float64 matrix product gives all their squared distances, ``sqrt`` and
+   ``divide`` in place give ``1/r``, and two stacked matrix-vector products
+   give the potential at the owners' atoms and at the partners' atoms.
+   Partner contributions are added with one ``np.bincount`` per atom slot.
 
 There is one Python-level iteration per batch of molecules (not per molecule,
 pair or atom).
@@ -48,6 +50,7 @@ Units: Å, e, V (= eV/e).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 import numpy.typing as npt
@@ -62,8 +65,6 @@ BoolArray = npt.NDArray[np.bool_]
 
 __all__ = ["candidate_pairs", "environment_potential", "EnvironmentPairs", "PotentialResult"]
 
-#: relative band around the radius inside which membership is decided from plain differences
-_EDGE_REL = 1e-9
 #: centroid-replica distance matrices up to this many entries are computed densely (else KD-tree)
 _DENSE_MAX = 4_000_000
 #: atom pairs per batch of owner molecules (squared-distance buffer of 8 bytes each)
@@ -340,6 +341,8 @@ def environment_potential(
     ext = np.sqrt(n2loc.max(axis=1)) if m else np.zeros(n_mol)
     atom_rule = rule == "atom"
     radius_A = float(radius_A)
+    r2cut = radius_A * radius_A
+    n_threads = max(1, int(threads))
 
     cut = radius_A + 2.0 * float(ext.max(initial=0.0)) + 1e-9 if atom_rule else radius_A * (1 + 1e-12) + 1e-9
     pi, pk, vec, d2cen, reps = _close_pairs(cent, box, cut, balanced=True)
@@ -352,19 +355,6 @@ def environment_potential(
     if want is not None:
         ok &= want[pi] | want[pj]
     n_candidates = int(np.count_nonzero(ok))
-    if atom_rule:
-        # lower bound of each pair's closest approach: the owner's atoms to the partner's
-        # centroid, minus the partner's extent; the certainly-outside pairs are dropped
-        l_aug = np.empty((n_mol, m, 5))
-        l_aug[..., :3] = local
-        l_aug[..., 3] = np.where(mask, n2loc, _FAR)
-        l_aug[..., 4] = 1.0
-        sel = np.flatnonzero(ok)
-        near2 = _owner_atoms_to_point(l_aug, pi[sel], vec[sel], n_mol)
-        lb = np.sqrt(np.maximum(near2, 0.0)) - ext[pj[sel]]
-        ok[sel[lb > radius_A * (1 + 1e-9) + 1e-9]] = False
-    pi, pk, pj = pi[ok], pk[ok], pj[ok]
-    n_pairs = len(pi)
 
     # augmented coordinates relative to the centroids' mean (|x|, |y| stay below a box
     # diagonal plus the radius); padding atoms and the stand-in replica sit 10^6 Å away
@@ -372,7 +362,8 @@ def environment_potential(
     xa = pos - origin
     x_aug = np.empty((n_mol, m, 5))
     x_aug[..., :3] = xa
-    x_aug[..., 3] = np.where(mask, np.einsum("nak,nak->na", xa, xa), _FAR)
+    x_aug[..., 3] = np.einsum("nak,nak->na", xa, xa)
+    x_aug[..., 3][~mask] = _FAR
     x_aug[..., 4] = 1.0
     rep_mol = reps.molecule
     n_rep = len(rep_mol)
@@ -384,53 +375,59 @@ def environment_potential(
     y_aug[:n_rep, :, 4] = np.einsum("nak,nak->na", ya, ya)
     y_aug[:n_rep, :, 4][~mask[rep_mol]] = _FAR
     y_aug[n_rep] = (0.0, 0.0, 0.0, 0.0, _FAR)
+
+    if atom_rule:
+        # owner atoms to the partner's centroid: a lower bound of the closest approach
+        # (minus the partner's extent) and an upper bound (plus the partner's atom nearest
+        # its centroid); pairs between the bounds get their closest atom pair
+        l_aug = np.empty((n_mol, m, 5))
+        l_aug[..., :3] = local
+        l_aug[..., 3] = np.where(mask, n2loc, _FAR)
+        l_aug[..., 4] = 1.0
+        near_atom = np.sqrt(np.where(mask, n2loc, np.inf).min(axis=1)) if m else np.zeros(n_mol)
+        sel = np.flatnonzero(ok)
+        near = np.sqrt(np.maximum(_owner_atoms_to_point(l_aug, pi[sel], vec[sel], n_mol), 0.0))
+        far_out = near - ext[pj[sel]] > radius_A * (1 + 1e-9) + 1e-9
+        sure_in = near + near_atom[pj[sel]] <= radius_A * (1 - 1e-9) - 1e-9
+        ok[sel[far_out]] = False
+        test = sel[~far_out & ~sure_in]
+        if len(test):
+            d2 = _closest_d2(x_aug, y_aug, pi[test], pk[test], n_mol, r2cut, n_threads)
+            edge = np.flatnonzero(np.isnan(d2))
+            for e in edge:                             # within the rounding band: plain differences
+                d2[e] = _exact_min_d2(pos, mask, int(pi[test[e]]), int(pj[test[e]]), reps.shift_A[pk[test[e]]])
+            ok[test[d2 > r2cut]] = False
+    pi, pk, pj = pi[ok], pk[ok], pj[ok]
+    n_pairs = len(pi)
+
+    # every remaining pair is a member: 1/r of all its atom pairs
     q_rep = np.zeros((n_rep + 1, m))
     q_rep[:n_rep] = q[rep_mol]
     pair_rep = np.append(pk, n_rep)                # pair index n_pairs: stand-in, far and uncharged
-
-    counts = np.bincount(pi, minlength=n_mol)
-    starts = np.cumsum(counts) - counts
-    owners = np.argsort(-counts, kind="stable")
-    owners = owners[counts[owners] > 0]
-    batches = _batches(counts[owners], m)
-
+    lay = _OwnerLayout.of(pi, n_mol)
     pot = np.zeros((n_mol, m))
-    member = np.zeros(n_pairs + 1, bool)
     back = np.zeros((m, n_pairs + 1))
-    ctx = _Batch(x_aug=x_aug, y_aug=y_aug, q=q, q_rep=q_rep, pair_rep=pair_rep, counts=counts, starts=starts,
-                 owners=owners, m=m, r2cut=radius_A * radius_A, atom_rule=atom_rule, pos=pos, mask=mask,
-                 pj=pj, shift_rep=reps.shift_A, pot=pot, member=member, back=back)
-    n_threads = max(1, min(int(threads), len(batches)))
-    if n_threads == 1:
-        _run_batches(ctx, batches)
-    else:
-        from concurrent.futures import ThreadPoolExecutor
-
-        # each owner's rows of pot, member and back belong to one batch, so one thread
-        # (the stand-in row n_pairs takes garbage from all; it is never read)
-        with ThreadPoolExecutor(max_workers=n_threads) as pool:
-            list(pool.map(lambda part: _run_batches(ctx, part), [batches[t::n_threads] for t in range(n_threads)]))
+    ctx = _Batch(x_aug=x_aug, y_aug=y_aug, q=q, q_rep=q_rep, pair_rep=pair_rep, lay=lay, m=m, pot=pot, back=back)
+    _in_threads(lambda part: _potential_batches(ctx, part), _batches(lay.counts[lay.owners], m, _BATCH_ENTRIES),
+                n_threads)
     if n_pairs:
         for a in range(m):                                       # potential at the partners' atoms
             pot[:, a] += np.bincount(pj, weights=back[a, :n_pairs], minlength=n_mol)
     full = np.zeros(len(positions_A))
     full[atoms] = pot[rows_mol, rows_slot] * COULOMB_EV_A
-    sel = np.flatnonzero(member[:n_pairs])
-    n_mem = len(sel)
-    center = np.empty(2 * n_mem, np.int64)
-    env = np.empty(2 * n_mem, np.int64)
-    np.take(pi, sel, out=center[:n_mem])
-    np.take(pj, sel, out=center[n_mem:])
-    env[:n_mem] = center[n_mem:]
-    env[n_mem:] = center[:n_mem]
-    k = pk[sel]
-    image = np.empty((2 * n_mem, 3), np.int64)
-    shift = np.empty((2 * n_mem, 3))
-    np.take(reps.image, k, axis=0, out=image[:n_mem])
-    np.negative(image[:n_mem], out=image[n_mem:])
-    np.take(reps.shift_A, k, axis=0, out=shift[:n_mem])
-    np.negative(shift[:n_mem], out=shift[n_mem:])
-    n_terms = int(np.dot(sizes[center[:n_mem]], sizes[env[:n_mem]]))
+    center = np.empty(2 * n_pairs, np.int64)
+    env = np.empty(2 * n_pairs, np.int64)
+    center[:n_pairs] = pi
+    center[n_pairs:] = pj
+    env[:n_pairs] = pj
+    env[n_pairs:] = pi
+    image = np.empty((2 * n_pairs, 3), np.int64)
+    shift = np.empty((2 * n_pairs, 3))
+    np.take(reps.image, pk, axis=0, out=image[:n_pairs])
+    np.negative(image[:n_pairs], out=image[n_pairs:])
+    np.take(reps.shift_A, pk, axis=0, out=shift[:n_pairs])
+    np.negative(shift[:n_pairs], out=shift[n_pairs:])
+    n_terms = int(np.dot(sizes[pi], sizes[pj]))
     pairs = EnvironmentPairs(center=center, env=env, image=image, shift_A=shift)
     return PotentialResult(potential_V=full, pairs=pairs, n_candidates=n_candidates, n_atom_pairs=n_terms)
 
@@ -440,50 +437,118 @@ def _owner_atoms_to_point(l_aug: FloatArray, owner: IntArray, vec: FloatArray, n
     point ``c[owner[p]] - vec[p]``, for every pair ``p`` (pairs sorted by owner).
 
     ``l_aug`` (n_mol, m, 5): ``[x - c, |x - c|^2 (padding: far), 1]``. Pairs are
-    laid out per owner (padded to the largest count of a chunk of owners) for
-    stacked matrix products.
+    laid out per owner (owners of similar counts together) for stacked matrix
+    products.
     """
     n_p = len(owner)
     m = l_aug.shape[1]
-    out = np.empty(n_p)
-    if n_p == 0:
-        return out
+    out = np.empty(n_p + 1)
     v_aug = np.empty((n_p + 1, 5))
-    v_aug[:n_p, :3] = 2.0 * vec
+    np.multiply(vec, 2.0, out=v_aug[:n_p, :3])
     v_aug[:n_p, 3] = 1.0
     v_aug[:n_p, 4] = np.einsum("pk,pk->p", vec, vec)
     v_aug[n_p] = (0.0, 0.0, 0.0, 0.0, _FAR)
-    counts = np.bincount(owner, minlength=n_mol)
-    starts = np.cumsum(counts) - counts
-    a = 0
-    while a < n_mol:
-        # owners a..b-1, at most _BATCH_ENTRIES padded entries (at least one owner)
-        run = np.maximum.accumulate(counts[a:]) * np.arange(1, n_mol - a + 1) * m
-        b = a + max(1, int(np.searchsorted(run, _BATCH_ENTRIES, side="right")))
-        km = int(counts[a:b].max())
-        if km:
-            slot = np.arange(km)
-            pid = starts[a:b, None] + slot
-            valid = slot < counts[a:b, None]
-            pid[~valid] = n_p
-            d2 = np.matmul(l_aug[a:b], v_aug[pid].transpose(0, 2, 1))       # (owners, m, km)
-            out[pid[valid]] = d2.min(axis=1)[valid]
-        a = b
-    return out
+    lay = _OwnerLayout.of(owner, n_mol)
+    for a, b, km in _batches(lay.counts[lay.owners], 1, _BATCH_ENTRIES // m):
+        cs, pid, _ = lay.pairs(a, b, km, n_p)
+        v = np.take(v_aug, pid, axis=0, mode="clip")                        # (owners, km, 5)
+        out[pid] = np.matmul(l_aug[cs], v.transpose(0, 2, 1)).min(axis=1)
+    return out[:n_p]
 
 
-def _batches(counts: IntArray, m: int) -> list[tuple[int, int, int]]:
+@dataclass(frozen=True)
+class _OwnerLayout:
+    """Pairs sorted by owner: ``counts[o]`` pairs of owner ``o`` from ``starts[o]``;
+    ``owners``: the owners with pairs, by decreasing count."""
+
+    counts: IntArray
+    starts: IntArray
+    owners: IntArray
+
+    @classmethod
+    def of(cls, owner: IntArray, n_mol: int) -> "_OwnerLayout":
+        counts = np.bincount(owner, minlength=n_mol)
+        owners = np.argsort(-counts, kind="stable")
+        return cls(counts, np.cumsum(counts) - counts, owners[counts[owners] > 0])
+
+    def pairs(self, a: int, b: int, km: int, stand_in: int) -> tuple[IntArray, IntArray, BoolArray]:
+        """Owners ``a..b-1`` (in ``owners`` order), their pair indices padded to ``km``
+        with ``stand_in``, and which entries are real."""
+        cs = self.owners[a:b]
+        slot = np.arange(km)
+        pid = self.starts[cs][:, None] + slot
+        valid = slot < self.counts[cs][:, None]
+        pid[~valid] = stand_in
+        return cs, pid, valid
+
+
+def _batches(counts: IntArray, m: int, entries: int) -> list[tuple[int, int, int]]:
     """Split owners (sorted by decreasing pair count) into batches ``(first, end,
-    padded count)`` of about ``_BATCH_ENTRIES`` atom pairs."""
+    padded count)`` of about ``entries`` atom pairs."""
     out = []
     a, n = 0, len(counts)
     per_pair = m * m
     while a < n:
         km = int(counts[a])
-        g = max(1, _BATCH_ENTRIES // (km * per_pair))
+        g = max(1, entries // (km * per_pair))
         out.append((a, min(n, a + g), km))
         a += g
     return out
+
+
+def _in_threads(fn: Callable[[list[tuple[int, int, int]]], None], batches: list[tuple[int, int, int]],
+                threads: int) -> None:
+    """Run ``fn`` over the batches, split over ``threads`` threads (round robin;
+    batches come largest first)."""
+    n_threads = max(1, min(threads, len(batches)))
+    if n_threads == 1:
+        fn(batches)
+        return
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=n_threads) as pool:
+        list(pool.map(fn, [batches[t::n_threads] for t in range(n_threads)]))
+
+
+def _closest_d2(x_aug: FloatArray, y_aug: FloatArray, owner: IntArray, rep: IntArray, n_mol: int, r2cut: float,
+                threads: int) -> FloatArray:
+    """Closest squared atom distance of each pair (``owner`` sorted; ``rep``: partner
+    replica), as far as needed to compare with ``r2cut``.
+
+    Single-precision stacked products: each value is exact to within a bound of its
+    rounding error; values whose band contains ``r2cut`` come back as NaN (the caller
+    decides those from plain differences), the others decide membership exactly.
+    """
+    m = x_aug.shape[1]
+    n_p = len(owner)
+    real_x = x_aug[..., 3] < _FAR
+    real_y = y_aug[..., 4] < _FAR
+    big = float(np.sqrt(x_aug[..., 3][real_x].max(initial=0.0)) + np.sqrt(y_aug[..., 4][real_y].max(initial=0.0)))
+    # rounding of inputs (2u per product) and of a 5-term sum (5u), u = 2^-24, on terms
+    # summing to at most (|x| + |y|)^2; twice that, for margin
+    band = 2.0 * 8.0 * 2.0 ** -24 * big * big
+    x32 = x_aug.astype(np.float32)
+    y32 = y_aug.astype(np.float32)
+    rep_ext = np.append(rep, len(y_aug) - 1)
+    lay = _OwnerLayout.of(owner, n_mol)
+    out = np.empty(n_p + 1, np.float32)
+
+    def run(batches: list[tuple[int, int, int]]) -> None:
+        size = max(2 * _BATCH_ENTRIES, max((b - a) * km * m * m for a, b, km in batches))
+        gbuf = np.empty(size, np.float32)
+        ybuf = np.empty(size // m * 5, np.float32)
+        for a, b, km in batches:
+            cs, pid, valid = lay.pairs(a, b, km, n_p)
+            g_n = len(cs)
+            y = np.take(y32, rep_ext[pid], axis=0, out=ybuf[: g_n * km * m * 5].reshape(g_n, km, m, 5), mode="clip")
+            g = np.matmul(x32[cs], y.reshape(g_n, km * m, 5).transpose(0, 2, 1),
+                          out=gbuf[: g_n * m * km * m].reshape(g_n, m, km * m))
+            out[pid] = g.min(axis=1).reshape(g_n, km, m).min(axis=2)
+
+    _in_threads(run, _batches(lay.counts[lay.owners], m, 2 * _BATCH_ENTRIES), threads)
+    d2 = out[:n_p].astype(np.float64)
+    d2[np.abs(d2 - r2cut) <= band + 1e-9 * r2cut] = np.nan
+    return d2
 
 
 @dataclass(frozen=True)
@@ -495,24 +560,17 @@ class _Batch:
     q: FloatArray             # (n_mol, m)
     q_rep: FloatArray         # (n_rep + 1, m)
     pair_rep: IntArray        # (n_pairs + 1,) replica of each pair
-    counts: IntArray          # (n_mol,) pairs per owner
-    starts: IntArray          # (n_mol,) first pair of each owner
-    owners: IntArray          # owners by decreasing count
+    lay: _OwnerLayout
     m: int
-    r2cut: float
-    atom_rule: bool
-    pos: FloatArray           # (n_mol, m, 3) for boundary cases
-    mask: BoolArray
-    pj: IntArray              # (n_pairs,) partner molecule
-    shift_rep: FloatArray     # (n_rep, 3)
     pot: FloatArray           # (n_mol, m) out: potential at owner atoms
-    member: BoolArray         # (n_pairs + 1,) out
     back: FloatArray          # (m, n_pairs + 1) out: potential at partner atoms
 
 
-def _run_batches(ctx: _Batch, batches: list[tuple[int, int, int]]) -> None:
-    """Evaluate the pairs of the owners in ``batches``; writes ``ctx.pot`` rows of
-    those owners and ``ctx.member`` / ``ctx.back`` rows of their pairs."""
+def _potential_batches(ctx: _Batch, batches: list[tuple[int, int, int]]) -> None:
+    """Sum ``1/r`` over all atom pairs of the member pairs of the owners in ``batches``;
+    writes ``ctx.pot`` rows of those owners and ``ctx.back`` columns of their pairs
+    (padding entries point at the stand-in replica: far and uncharged, so they add
+    exact zeros; the stand-in column of ``back`` takes garbage and is never read)."""
     m = ctx.m
     if not batches:
         return
@@ -520,42 +578,26 @@ def _run_batches(ctx: _Batch, batches: list[tuple[int, int, int]]) -> None:
     gbuf = np.empty(size)
     ybuf = np.empty(size // m * 5)
     wbuf = np.empty(size // m)
+    stand_in = len(ctx.pair_rep) - 1
     for a, b, km in batches:
-        cs = ctx.owners[a:b]
+        cs, pid, _ = ctx.lay.pairs(a, b, km, stand_in)
         g_n = len(cs)
-        slot = np.arange(km)
-        pid = ctx.starts[cs][:, None] + slot
-        valid = slot < ctx.counts[cs][:, None]
-        pid[~valid] = len(ctx.pair_rep) - 1
         kk = ctx.pair_rep[pid]                                              # (G, km) replicas
         y = np.take(ctx.y_aug, kk, axis=0, out=ybuf[: g_n * km * m * 5].reshape(g_n, km, m, 5), mode="clip")
         g = np.matmul(ctx.x_aug[cs], y.reshape(g_n, km * m, 5).transpose(0, 2, 1),
                       out=gbuf[: g_n * m * km * m].reshape(g_n, m, km * m))  # squared distances
-        if ctx.atom_rule:
-            pmin = g.min(axis=1).reshape(g_n, km, m).min(axis=2)
-            edge = valid & (np.abs(pmin - ctx.r2cut) <= _EDGE_REL * ctx.r2cut)
-            if edge.any():
-                gi, ki = np.nonzero(edge)
-                pmin[gi, ki] = [_exact_min_d2(ctx, int(cs[x]), int(pid[x, y])) for x, y in zip(gi, ki)]
-            mem = valid & (pmin <= ctx.r2cut)
-        else:
-            mem = valid
         np.sqrt(g, out=g)
         np.divide(1.0, g, out=g)                                             # 1/r
         w = np.take(ctx.q_rep, kk, axis=0, out=wbuf[: g_n * km * m].reshape(g_n, km, m), mode="clip")
-        w *= mem[:, :, None]
         ctx.pot[cs] += np.matmul(g, w.reshape(g_n, km * m, 1))[:, :, 0]
         bk = np.matmul(ctx.q[cs][:, None, :], g).reshape(g_n, km, m)
-        bk *= mem[:, :, None]
         ctx.back[:, pid] = bk.transpose(2, 0, 1)
-        ctx.member[pid] = mem
 
 
-def _exact_min_d2(ctx: _Batch, owner: int, pair: int) -> float:
+def _exact_min_d2(pos: FloatArray, mask: BoolArray, owner: int, partner: int, shift_A: FloatArray) -> float:
     """Closest squared distance between the atoms of ``owner`` and of the partner
-    image of ``pair``, from plain coordinate differences."""
-    x = ctx.pos[owner][ctx.mask[owner]]
-    jm = int(ctx.pj[pair])
-    y = ctx.pos[jm][ctx.mask[jm]] + ctx.shift_rep[ctx.pair_rep[pair]]
+    image (``partner`` moved by ``shift_A``), from plain coordinate differences."""
+    x = pos[owner][mask[owner]]
+    y = pos[partner][mask[partner]] + shift_A
     d = x[:, None, :] - y[None, :, :]
     return float(np.min(np.einsum("abk,abk->ab", d, d)))
