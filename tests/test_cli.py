@@ -84,7 +84,9 @@ def test_inspect_and_presets(pqr, capsys):
     assert "File not found" in capsys.readouterr().err
 
 
-def test_run_study_end_to_end_and_report(gro, tmp_path, capsys):
+def _write_study(gro, tmp_path, *, n_singlets, sections):
+    """A study file on the test film (draft preset, STO-3G, one triplet, serial runner)
+    with the given extra sections; returns its path."""
     study = tmp_path / "study.toml"
     study.write_text(f"""
 [film]
@@ -93,8 +95,20 @@ charges = "{gro[1]}"
 [method]
 preset = "draft"
 basis = "sto-3g"
-n_singlets = 2
+n_singlets = {n_singlets}
 n_triplets = 1
+{sections.strip()}
+[runner]
+kind = "serial"
+[output]
+store = "{tmp_path / 'st.sqlite'}"
+report = "{tmp_path / 'rep'}"
+""")
+    return study
+
+
+def test_run_study_end_to_end_and_report(gro, tmp_path, capsys):
+    study = _write_study(gro, tmp_path, n_singlets=2, sections="""
 [scan]
 molecule = 4
 radii = [3.0, 4.5]
@@ -102,11 +116,6 @@ radii = [3.0, 4.5]
 molecules = "all"
 n = 3
 radius = 3.0
-[runner]
-kind = "serial"
-[output]
-store = "{tmp_path / 'st.sqlite'}"
-report = "{tmp_path / 'rep'}"
 """)
     assert main(["run", str(study), "--quiet", "--sample-n", "4"]) == 0
     out = capsys.readouterr().out
@@ -127,26 +136,12 @@ def test_console_script_help():
 
 def test_model_section_passes_conformers_and_response(gro, tmp_path, capsys):
     """[model] n_conformers and response reach the film model and the report."""
-    study = tmp_path / "study.toml"
-    study.write_text(f"""
-[film]
-topology = "{gro[0]}"
-charges = "{gro[1]}"
-[method]
-preset = "draft"
-basis = "sto-3g"
-n_singlets = 1
-n_triplets = 1
+    study = _write_study(gro, tmp_path, n_singlets=1, sections="""
 [model]
 radius = 4.0
 charges_method = "hf/sto-3g"
 n_conformers = 2
 response = true
-[runner]
-kind = "serial"
-[output]
-store = "{tmp_path / 'st.sqlite'}"
-report = "{tmp_path / 'rep'}"
 """)
     assert main(["run", str(study), "--quiet"]) == 0
     out = capsys.readouterr().out

@@ -395,7 +395,8 @@ def test_run_film_model_with_response(small_film):
     table = run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True, progress=False)
     cset = table.attrs["charges"]
     ref = cset.conformers["WAT"][0]
-    assert set(ref.dalpha_A3) == {"S1", "T1"} and set(ref.dmu_D) == {"S1", "T1"}
+    # only the response states are fitted (default S1)
+    assert set(ref.dalpha_A3) == {"S1"} and set(ref.dmu_D) == {"S1"}
     assert np.allclose(table["S1_shift_eV"], table["S1_first_order_eV"] + table["S1_stark_eV"])
     plain = film_site_energies(small_film, ("cation", "T1"), radius=5.0, frames=[0], charges=cset, progress=False)
     assert np.allclose(table["cation_shift_eV"], plain["cation_shift_eV"])
@@ -403,3 +404,13 @@ def test_run_film_model_with_response(small_film):
     assert np.allclose(table["T1_shift_eV"], plain["T1_shift_eV"]) and "T1_stark_eV" not in table
     with pytest.raises(InputError, match="needs a clusterlab.Method"):
         run_film_model(small_film, "hf/sto-3g", radius_A=5.0, frames=[0], response=True, progress=False)
+    with pytest.raises(InputError, match="response_states"):
+        run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True, response_states=("cation",),
+                       charges=cset, progress=False)
+    # asking for T1 later adds its fit to the given set and keeps the S1 one
+    both = run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True, response_states=("S1", "T1"),
+                          charges=cset, progress=False)
+    ref2 = both.attrs["charges"].conformers["WAT"][0]
+    assert set(ref2.dalpha_A3) == {"S1", "T1"} and np.array_equal(ref2.dalpha_A3["S1"], ref.dalpha_A3["S1"])
+    assert np.allclose(both["S1_shift_eV"], table["S1_shift_eV"])
+    assert np.allclose(both["T1_shift_eV"], both["T1_first_order_eV"] + both["T1_stark_eV"])

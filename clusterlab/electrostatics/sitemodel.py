@@ -112,7 +112,7 @@ import json
 import warnings
 from collections import deque
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any, Iterable, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator, Mapping, Sequence
 
 import numpy as np
 import numpy.typing as npt
@@ -303,7 +303,8 @@ class StateChargeSet:
                   states: Sequence[str] = KNOWN_STATES, transition: bool = True,
                   n_conformers: int = 1, conformer_frames: Sequence[int] | None = None,
                   min_conformer_rmsd_A: float = 0.25, conformer_medoids: bool = True,
-                  stark_method: Any = None, symmetrize: bool = False, **fit_kw: Any) -> "StateChargeSet":
+                  stark_method: Any = None, symmetrize: bool = False, progress: bool = True,
+                  **fit_kw: Any) -> "StateChargeSet":
         """Fit state charges on reference copies of each molecule type.
 
         Parameters
@@ -339,12 +340,15 @@ class StateChargeSet:
         symmetrize : bool
             Average the fitted charges over topologically equivalent atoms
             (:meth:`symmetrized`).
+        progress : bool
+            Progress bars over the reference fits and the finite fields.
 
         Raises
         ------
         InputError
             A resname the film does not have, or ``n_conformers < 1``.
         """
+        from ..progress import progress_bar
         from .conformers import pick_references
 
         names = np.asarray(film.molecule_resnames)
@@ -359,6 +363,7 @@ class StateChargeSet:
         geos = {f: film.frame_geometry(f, periodic=film.has_box) for f in frames}
         fits: dict[str, StateCharges] = {}
         confs: dict[str, list[ConformerCharges]] = {}
+        bar = progress_bar(None, desc="state-charge fits", enabled=progress, unit="reference")
         for res in wanted:
             ids = np.flatnonzero(names == res)
             if ids.size == 0:
@@ -384,6 +389,8 @@ class StateChargeSet:
                     positions_A=pos, charges_e={k: np.asarray(v, float) for k, v in sc.charges_e.items()},
                     transition_e=sc.transition_charges_e, frame=int(geos[f].frame), molecule=int(mol)))
                 fits.setdefault(res, sc)
+                bar.update(1)
+        bar.close()
         method = next(iter(fits.values())).method if fits else str(method_like)
         out = cls.from_conformers(confs, method=method)
         out.fits = fits
@@ -391,18 +398,19 @@ class StateChargeSet:
             out = out.symmetrized(film=film)
         if stark_method is not None:
             out = out.with_stark(stark_method, states=[s for s in ("S1", "T1") if s in states], charge=None,
-                                 film=film)
+                                 film=film, progress=progress)
         return out
 
     def with_stark(self, method: Any, *, states: Sequence[str] = ("S1", "T1"), charge: int | None = 0,
                    film: "Film | None" = None, steps_V_A: Sequence[float] = (0.1, 0.2),
-                   refit: bool = True) -> "StateChargeSet":
+                   refit: bool = True, progress: bool = True) -> "StateChargeSet":
         """A copy of the set with the polarizability changes of ``states`` fitted
         on every conformer reference by finite fields with the engine ``method``
         (:func:`~clusterlab.electrostatics.stark.differential_polarizability`).
 
         ``charge`` is the molecules' net charge (None: from ``film``'s charges).
         ``refit=False`` keeps references that already carry every state.
+        ``progress`` shows a bar over the engine calculations.
 
         Raises
         ------
@@ -411,9 +419,13 @@ class StateChargeSet:
         """
         import copy
 
+        from ..progress import progress_bar
         from .stark import differential_polarizability
 
         out = copy.deepcopy(self)
+        todo = sum(1 for refs in out.conformers.values() for ref in refs
+                   if refit or not all(st in ref.dalpha_A3 and st in ref.dmu_D for st in states))
+        bar = progress_bar(todo * (1 + 12 * len(steps_V_A)), desc="finite fields", enabled=progress, unit="calc")
         for res in out.resnames:
             refs = out.conformers.get(res)
             if not refs:
@@ -437,9 +449,10 @@ class StateChargeSet:
                 if not refit and all(st in ref.dalpha_A3 and st in ref.dmu_D for st in states):
                     continue
                 fit = differential_polarizability(syms, ref.positions_A, method, states=states, charge=int(q),
-                                                  steps_V_A=steps_V_A)
+                                                  steps_V_A=steps_V_A, on_field=lambda: bar.update(1))
                 ref.dalpha_A3.update(fit.dalpha_A3)
                 ref.dmu_D.update(fit.dmu_D)
+        bar.close()
         out.stark_method = {**(method.to_dict() if hasattr(method, "to_dict") else {"method": str(method)}),
                             "steps_V_A": [float(x) for x in steps_V_A]}
         return out
@@ -728,19 +741,27 @@ def _uniform_field(positions_A: FloatArray, potential_V: FloatArray, index: Any,
     return -grad
 
 
-def _dipole_term(film: "Film", charges: StateChargeSet, fams: "_FrameFamilies | None", state: str,
-                 fld: FloatArray) -> FloatArray:
-    """``-Δμ·F`` (eV) of every molecule, Δμ of its conformer reference turned into its orientation."""
+def _reference_tensors(film: "Film", charges: StateChargeSet, fams: "_FrameFamilies | None",
+                       pick: Callable[[Any], FloatArray]) -> Iterator[tuple[IntArray, FloatArray, FloatArray]]:
+    """Per molecule type: the molecules of that type, ``pick(reference)`` of each
+    molecule's conformer reference (stacked) and the rotation of each molecule from
+    its reference's frame into the film."""
     names = np.asarray(film.molecule_resnames)
-    out = np.full(film.n_molecules, np.nan)
     for res, refs in charges.conformers.items():
         ids = np.flatnonzero(names == res)
         if ids.size == 0:
             continue
         fam = np.maximum(fams.family[ids], 0) if fams is not None else np.zeros(ids.size, int)
-        mu = np.stack([c.dmu_D[state] for c in refs])[fam] * DEBYE_E_A
         r = fams.rotation[ids] if fams is not None else np.tile(np.eye(3), (ids.size, 1, 1))
-        out[ids] = -np.einsum("ni,nij,nj->n", fld[ids], r, mu)
+        yield ids, np.stack([pick(c) for c in refs])[fam], r
+
+
+def _dipole_term(film: "Film", charges: StateChargeSet, fams: "_FrameFamilies | None", state: str,
+                 fld: FloatArray) -> FloatArray:
+    """``-Δμ·F`` (eV) of every molecule, Δμ of its conformer reference turned into its orientation."""
+    out = np.full(film.n_molecules, np.nan)
+    for ids, dmu, r in _reference_tensors(film, charges, fams, lambda c: c.dmu_D[state]):
+        out[ids] = -np.einsum("ni,nij,nj->n", fld[ids], r, dmu * DEBYE_E_A)
     return out
 
 
@@ -1016,15 +1037,8 @@ def film_site_energies(
             row["field_V_A"] = np.linalg.norm(fld, axis=1)[mol_sel]
             for s in stark_states:
                 e2 = np.full(film.n_molecules, np.nan)
-                for res, refs in charges.conformers.items():
-                    ids = np.flatnonzero(names == res)
-                    if ids.size == 0:
-                        continue
-                    fam = np.maximum(fams.family[ids], 0) if fams is not None else np.zeros(ids.size, int)
-                    da = np.stack([c.dalpha_A3[s] for c in refs])[fam]
-                    r = fams.rotation[ids] if fams is not None else np.tile(np.eye(3), (ids.size, 1, 1))
-                    da = np.einsum("nij,njk,nlk->nil", r, da, r)
-                    e2[ids] = stark_energy_eV(da, fld[ids])
+                for ids, da, r in _reference_tensors(film, charges, fams, lambda c, s=s: c.dalpha_A3[s]):
+                    e2[ids] = stark_energy_eV(np.einsum("nij,njk,nlk->nil", r, da, r), fld[ids])
                 first = row[f"{s}_shift_eV"]
                 if field_model:
                     first = np.where(covered[mol_sel], _dipole_term(film, charges, fams, s, fld)[mol_sel], np.nan)
@@ -1225,12 +1239,13 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
     frame of ``frames``; other rows have NaN polarization columns.
 
     ``n_conformers`` and ``symmetrize`` are passed to
-    :meth:`StateChargeSet.from_film`. ``response=True`` also fits the S1/T1
-    dipole and polarizability changes of every reference by finite fields with
-    ``method`` (a :class:`~clusterlab.Method`; 25 engine calculations per
-    reference) and evaluates ``response_states`` (default S1; T1 keeps its
-    charges) with ``model="field"`` (see :func:`film_site_energies`): on the
-    demo film this is what makes the S1 shifts follow embedded QM (README).
+    :meth:`StateChargeSet.from_film`. ``response=True`` also fits the dipole
+    and polarizability changes of ``response_states`` (default S1; T1 keeps its
+    charges) on every reference by finite fields with ``method`` (a
+    :class:`~clusterlab.Method`, triplets left out unless T1 is asked for; 25
+    engine calculations per reference) and evaluates them with
+    ``model="field"`` (see :func:`film_site_energies`): on the demo film this
+    is what makes the S1 shifts follow embedded QM (README).
 
     The fitted :class:`StateChargeSet` is kept in ``table.attrs["charges"]``
     (transition charges included, for excitonic couplings).
@@ -1245,18 +1260,24 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
     if response and not isinstance(method, Method) and (charges is None or not charges.stark_method):
         raise InputError("response=True needs a clusterlab.Method (the finite fields run the QM engine); "
                          f"got {method!r}.")
+    response_states = [str(s) for s in response_states]
+    bad = [s for s in response_states if s not in ("S1", "T1")]
+    if response and (bad or not response_states):
+        raise InputError(f"response_states {response_states!r} are invalid; the field response knows 'S1' and 'T1'.")
     if charges is None:
         res = str(film.molecule_resnames[film._check_molecule(reference_molecule)])
         fit_kw: dict[str, Any] = {"grid_level": 1, "density_fit": True}
         if hasattr(method, "grid_level"):
             fit_kw = {"grid_level": method.grid_level, "density_fit": method.density_fit}
         charges = StateChargeSet.from_film(film, method, resnames=[res], molecules={res: reference_molecule},
-                                           n_conformers=n_conformers, symmetrize=symmetrize,
-                                           stark_method=method.replace(n_singlets=max(method.n_singlets, 1),
-                                                                       n_triplets=max(method.n_triplets, 1))
-                                           if response else None, **fit_kw)
-    elif response and not all(c.dalpha_A3 for refs in charges.conformers.values() for c in refs):
-        charges = charges.with_stark(method, film=film, charge=None)
+                                           n_conformers=n_conformers, symmetrize=symmetrize, progress=progress,
+                                           **fit_kw)
+    if response and not all(s in c.dalpha_A3 and s in c.dmu_D for refs in charges.conformers.values()
+                             for c in refs for s in response_states):
+        stark_m = method.replace(n_singlets=max(method.n_singlets, 1) if "S1" in response_states else 0,
+                                 n_triplets=max(method.n_triplets, 1) if "T1" in response_states else 0)
+        charges = charges.with_stark(stark_m, states=response_states, film=film, charge=None, refit=False,
+                                     progress=progress)
     states = ("S1", "T1", "cation", "anion")
     table = film_site_energies(film, states, radius=radius_A, frames=frames,
                                model="field" if response else "charges", charges=charges, progress=progress,

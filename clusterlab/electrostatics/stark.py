@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import json
 from dataclasses import dataclass, field
-from typing import Any, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 import numpy.typing as npt
@@ -166,6 +166,7 @@ def differential_polarizability(
     states: Sequence[str] = ("S1", "T1"),
     steps_V_A: Sequence[float] = (0.1, 0.2),
     charge: int = 0,
+    on_field: Callable[[], Any] | None = None,
 ) -> StarkFit:
     """Δμ and Δα of excited states from the engine's energies in uniform fields.
 
@@ -192,6 +193,8 @@ def differential_polarizability(
         demo molecule a 0.02 V/Å step gave curvatures of the wrong sign).
         Quartic terms enter the fitted curvature in proportion to s^2.
     charge : int
+    on_field : callable, optional
+        Called with no arguments after each engine calculation (progress bars).
 
     The SCF and response thresholds are tightened to at most 1e-11 Eh and 1e-6.
 
@@ -233,7 +236,10 @@ def differential_polarizability(
     def run(fld: FloatArray, vac: Any = None):
         p, q = uniform_field_charges(center, fld)
         c = Cluster.from_arrays(syms, pos, p, q, qm_charge=charge)
-        return excitations(c, m) if vac is None else excitations(c, m, vacuum=vac, guess=vac)
+        res = excitations(c, m) if vac is None else excitations(c, m, vacuum=vac, guess=vac)
+        if on_field is not None:
+            on_field()
+        return res
 
     def energies(res: Any) -> dict[str, float]:
         s = res.summary()
