@@ -50,7 +50,7 @@ Units: Å, e, V (= eV/e).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable
+from typing import Any, Callable
 
 import numpy as np
 import numpy.typing as npt
@@ -510,6 +510,26 @@ def _in_threads(fn: Callable[[list[tuple[int, int, int]]], None], batches: list[
         list(pool.map(fn, [batches[t::n_threads] for t in range(n_threads)]))
 
 
+def _block_buffers(batches: list[tuple[int, int, int]], m: int, floor: int,
+                   dtype: type) -> tuple[npt.NDArray[Any], npt.NDArray[Any]]:
+    """Reusable buffers for :func:`_block_d2` over ``batches``: squared distances
+    (at least ``floor`` entries, enough for the largest batch) and gathered partners."""
+    size = max(floor, max(((b - a) * km * m * m for a, b, km in batches), default=0))
+    return np.empty(size, dtype), np.empty(size // m * 5, dtype)
+
+
+def _block_d2(x_aug: npt.NDArray[Any], y_aug: npt.NDArray[Any], cs: IntArray, reps: IntArray,
+              gbuf: npt.NDArray[Any], ybuf: npt.NDArray[Any]) -> npt.NDArray[Any]:
+    """Squared atom distances of owners ``cs`` (G) to their partner replicas ``reps``
+    (G, km): one stacked product of augmented coordinates, shape (G, m, km * m), in
+    ``gbuf`` (padding entries of ``reps`` name the far stand-in replica)."""
+    g_n, km = reps.shape
+    m = x_aug.shape[1]
+    y = np.take(y_aug, reps, axis=0, out=ybuf[: g_n * km * m * 5].reshape(g_n, km, m, 5), mode="clip")
+    return np.matmul(x_aug[cs], y.reshape(g_n, km * m, 5).transpose(0, 2, 1),
+                     out=gbuf[: g_n * m * km * m].reshape(g_n, m, km * m))
+
+
 def _closest_d2(x_aug: FloatArray, y_aug: FloatArray, owner: IntArray, rep: IntArray, n_mol: int, r2cut: float,
                 threads: int) -> FloatArray:
     """Closest squared atom distance of each pair (``owner`` sorted; ``rep``: partner
@@ -534,16 +554,11 @@ def _closest_d2(x_aug: FloatArray, y_aug: FloatArray, owner: IntArray, rep: IntA
     out = np.empty(n_p + 1, np.float32)
 
     def run(batches: list[tuple[int, int, int]]) -> None:
-        size = max(2 * _BATCH_ENTRIES, max((b - a) * km * m * m for a, b, km in batches))
-        gbuf = np.empty(size, np.float32)
-        ybuf = np.empty(size // m * 5, np.float32)
+        gbuf, ybuf = _block_buffers(batches, m, 2 * _BATCH_ENTRIES, np.float32)
         for a, b, km in batches:
-            cs, pid, valid = lay.pairs(a, b, km, n_p)
-            g_n = len(cs)
-            y = np.take(y32, rep_ext[pid], axis=0, out=ybuf[: g_n * km * m * 5].reshape(g_n, km, m, 5), mode="clip")
-            g = np.matmul(x32[cs], y.reshape(g_n, km * m, 5).transpose(0, 2, 1),
-                          out=gbuf[: g_n * m * km * m].reshape(g_n, m, km * m))
-            out[pid] = g.min(axis=1).reshape(g_n, km, m).min(axis=2)
+            cs, pid, _ = lay.pairs(a, b, km, n_p)
+            g = _block_d2(x32, y32, cs, rep_ext[pid], gbuf, ybuf)
+            out[pid] = g.min(axis=1).reshape(len(cs), km, m).min(axis=2)
 
     _in_threads(run, _batches(lay.counts[lay.owners], m, 2 * _BATCH_ENTRIES), threads)
     d2 = out[:n_p].astype(np.float64)
@@ -574,18 +589,14 @@ def _potential_batches(ctx: _Batch, batches: list[tuple[int, int, int]]) -> None
     m = ctx.m
     if not batches:
         return
-    size = max(_BATCH_ENTRIES, max((b - a) * km * m * m for a, b, km in batches))
-    gbuf = np.empty(size)
-    ybuf = np.empty(size // m * 5)
-    wbuf = np.empty(size // m)
+    gbuf, ybuf = _block_buffers(batches, m, _BATCH_ENTRIES, np.float64)
+    wbuf = np.empty(len(gbuf) // m)
     stand_in = len(ctx.pair_rep) - 1
     for a, b, km in batches:
         cs, pid, _ = ctx.lay.pairs(a, b, km, stand_in)
         g_n = len(cs)
         kk = ctx.pair_rep[pid]                                              # (G, km) replicas
-        y = np.take(ctx.y_aug, kk, axis=0, out=ybuf[: g_n * km * m * 5].reshape(g_n, km, m, 5), mode="clip")
-        g = np.matmul(ctx.x_aug[cs], y.reshape(g_n, km * m, 5).transpose(0, 2, 1),
-                      out=gbuf[: g_n * m * km * m].reshape(g_n, m, km * m))  # squared distances
+        g = _block_d2(ctx.x_aug, ctx.y_aug, cs, kk, gbuf, ybuf)             # squared distances
         np.sqrt(g, out=g)
         np.divide(1.0, g, out=g)                                             # 1/r
         w = np.take(ctx.q_rep, kk, axis=0, out=wbuf[: g_n * km * m].reshape(g_n, km, m), mode="clip")
