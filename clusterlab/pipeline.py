@@ -102,6 +102,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
 
     if "model" in present:
         from .electrostatics.sitemodel import run_film_model
+        from .electrostatics.statecharges import parse_method
 
         t0 = time.perf_counter()
         m = study["model"]
@@ -111,8 +112,8 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         if m["charges_method"]:
             fit_method = m["charges_method"]
             if m["response"]:  # the finite fields run the engine: the study method at the fit's xc/basis
-                xc, _, basis = m["charges_method"].partition("/")
-                fit_method = method.replace(xc=xc, basis=basis or method.basis)
+                xc, basis = parse_method(m["charges_method"])
+                fit_method = method.replace(xc=xc, basis=basis)
         outcome.model = run_film_model(film, fit_method, radius_A=m["radius"], frames=m["frames"],
                                        polarization=m["polarization"], polarize_molecules=m["polarize_molecules"],
                                        reference_molecule=m["reference_molecule"], n_conformers=m["n_conformers"],

@@ -153,3 +153,12 @@ response = true
     bad.write_text(f"[film]\ntopology = '{gro[0]}'\n[model]\nresponse = 1\n")
     with pytest.raises(StudyFileError, match=r"\[model\] response = 1 has the wrong type; expected bool"):
         load_study(bad)
+    # a fit method without its basis is named in the error before any QM runs
+    nobasis = _write_study(gro, tmp_path, n_singlets=1, sections="""
+[model]
+radius = 4.0
+charges_method = "hf"
+response = true
+""")
+    assert main(["run", str(nobasis), "--quiet"]) == 1
+    assert "'hf' is not a method description" in capsys.readouterr().err

@@ -407,6 +407,10 @@ def test_run_film_model_with_response(small_film):
     with pytest.raises(InputError, match="response_states"):
         run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True, response_states=("cation",),
                        charges=cset, progress=False)
+    # fields still to fit (T1) need an engine method, not an "xc/basis" string
+    with pytest.raises(InputError, match="needs a clusterlab.Method"):
+        run_film_model(small_film, "hf/sto-3g", radius_A=5.0, frames=[0], response=True,
+                       response_states=("S1", "T1"), charges=cset, progress=False)
     # asking for T1 later adds its fit to the given set and keeps the S1 one
     both = run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True, response_states=("S1", "T1"),
                           charges=cset, progress=False)

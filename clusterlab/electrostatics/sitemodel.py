@@ -181,6 +181,10 @@ class ConformerCharges:
     frame: int = -1
     molecule: int = -1
 
+    def has_response(self, states: Iterable[str]) -> bool:
+        """Whether Δμ and Δα of every one of ``states`` are fitted."""
+        return all(s in self.dalpha_A3 and s in self.dmu_D for s in states)
+
     def to_dict(self) -> dict[str, Any]:
         return {"positions_A": np.asarray(self.positions_A).tolist(),
                 "charges_e": {k: np.asarray(v).tolist() for k, v in self.charges_e.items()},
@@ -423,8 +427,7 @@ class StateChargeSet:
         from .stark import differential_polarizability
 
         out = copy.deepcopy(self)
-        todo = sum(1 for refs in out.conformers.values() for ref in refs
-                   if refit or not all(st in ref.dalpha_A3 and st in ref.dmu_D for st in states))
+        todo = sum(1 for refs in out.conformers.values() for ref in refs if refit or not ref.has_response(states))
         bar = progress_bar(todo * (1 + 12 * len(steps_V_A)), desc="finite fields", enabled=progress, unit="calc")
         for res in out.resnames:
             refs = out.conformers.get(res)
@@ -446,7 +449,7 @@ class StateChargeSet:
             if syms is None:
                 raise InputError(f"element symbols of {res!r} are unknown; pass film=.")
             for ref in refs:
-                if not refit and all(st in ref.dalpha_A3 and st in ref.dmu_D for st in states):
+                if not refit and ref.has_response(states):
                     continue
                 fit = differential_polarizability(syms, ref.positions_A, method, states=states, charge=int(q),
                                                   steps_V_A=steps_V_A, on_field=lambda: bar.update(1))
@@ -1253,17 +1256,25 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
     Raises
     ------
     InputError
-        ``response=True`` with a method that is not a :class:`~clusterlab.Method`.
+        ``response=True`` with a method that is not a :class:`~clusterlab.Method`
+        while finite fields are still to be fitted (``charges`` without the
+        response of every one of ``response_states``), or response states
+        other than S1 and T1.
     """
     from ..qm.method import Method
 
-    if response and not isinstance(method, Method) and (charges is None or not charges.stark_method):
-        raise InputError("response=True needs a clusterlab.Method (the finite fields run the QM engine); "
-                         f"got {method!r}.")
     response_states = [str(s) for s in response_states]
     bad = [s for s in response_states if s not in ("S1", "T1")]
     if response and (bad or not response_states):
         raise InputError(f"response_states {response_states!r} are invalid; the field response knows 'S1' and 'T1'.")
+
+    def fields_missing() -> bool:
+        return response and (charges is None or not all(c.has_response(response_states)
+                                                          for refs in charges.conformers.values() for c in refs))
+
+    if fields_missing() and not isinstance(method, Method):
+        raise InputError("response=True needs a clusterlab.Method (the finite fields run the QM engine); "
+                         f"got {method!r}.")
     if charges is None:
         res = str(film.molecule_resnames[film._check_molecule(reference_molecule)])
         fit_kw: dict[str, Any] = {"grid_level": 1, "density_fit": True}
@@ -1272,8 +1283,7 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
         charges = StateChargeSet.from_film(film, method, resnames=[res], molecules={res: reference_molecule},
                                            n_conformers=n_conformers, symmetrize=symmetrize, progress=progress,
                                            **fit_kw)
-    if response and not all(s in c.dalpha_A3 and s in c.dmu_D for refs in charges.conformers.values()
-                             for c in refs for s in response_states):
+    if fields_missing():
         stark_m = method.replace(n_singlets=max(method.n_singlets, 1) if "S1" in response_states else 0,
                                  n_triplets=max(method.n_triplets, 1) if "T1" in response_states else 0)
         charges = charges.with_stark(stark_m, states=response_states, film=film, charge=None, refit=False,
