@@ -35,7 +35,6 @@ import numpy as np
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), ".."))
 
 
-
 def thiophene():
     """Planar thiophene (approximate geometry, Å)."""
     sym = ["S", "C", "C", "C", "C", "H", "H", "H", "H"]
