@@ -418,3 +418,49 @@ def test_run_film_model_with_response(small_film):
     assert set(ref2.dalpha_A3) == {"S1", "T1"} and np.array_equal(ref2.dalpha_A3["S1"], ref.dalpha_A3["S1"])
     assert np.allclose(both["S1_shift_eV"], table["S1_shift_eV"])
     assert np.allclose(both["T1_shift_eV"], both["T1_first_order_eV"] + both["T1_stark_eV"])
+
+
+def test_run_film_model_resumes_its_fits_from_the_store(small_film, tmp_path, monkeypatch):
+    """A crash during the finite fields keeps the fitted state charges in the
+    store; the rerun fits no state charges again, only the fields, and gives
+    the table of an uninterrupted run; a third run does no QM at all."""
+    from clusterlab.electrostatics import sitemodel, stark
+    from clusterlab.electrostatics.sitemodel import run_film_model
+    from clusterlab.qm.method import Method
+    from clusterlab.store import ResultStore
+
+    m = Method(xc="hf", basis="sto-3g", density_fit=False, grid_level=1, n_singlets=2, n_triplets=1,
+               excited="tda")
+    kw = dict(radius_A=5.0, frames=[0], response=True, progress=False)
+    fresh = run_film_model(small_film, m, **kw)
+    store = ResultStore(str(tmp_path / "st.sqlite"))
+    real_fields, real_charges = stark.differential_polarizability, sitemodel.state_charges
+    calls = {"charges": 0}
+
+    def crash(*a, **k):
+        raise RuntimeError("power cut")
+
+    def counted(*a, **k):
+        calls["charges"] += 1
+        return real_charges(*a, **k)
+
+    monkeypatch.setattr(stark, "differential_polarizability", crash)
+    monkeypatch.setattr(sitemodel, "state_charges", counted)
+    with pytest.raises(RuntimeError, match="power cut"):
+        run_film_model(small_film, m, store=store, **kw)
+    assert calls["charges"] == 1
+    assert len([k for k in store.meta if k.startswith("film_model_charges:")]) == 1
+    monkeypatch.setattr(stark, "differential_polarizability", real_fields)
+    resumed = run_film_model(small_film, m, store=store, **kw)
+    assert calls["charges"] == 1                      # state charges came from the store
+    monkeypatch.setattr(stark, "differential_polarizability", crash)
+    again = run_film_model(small_film, m, store=store, **kw)   # fields came from the store too
+    assert calls["charges"] == 1
+    for table in (resumed, again):
+        for col in ("S1_shift_eV", "T1_shift_eV", "cation_shift_eV", "anion_shift_eV"):
+            np.testing.assert_allclose(table[col], fresh[col], rtol=1e-9, atol=1e-12)
+    # other settings are another entry, not a reuse
+    monkeypatch.setattr(stark, "differential_polarizability", real_fields)
+    run_film_model(small_film, m.replace(n_triplets=2), store=store, **kw)
+    assert calls["charges"] == 2
+    store.close()

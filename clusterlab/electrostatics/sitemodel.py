@@ -407,7 +407,8 @@ class StateChargeSet:
 
     def with_stark(self, method: Any, *, states: Sequence[str] = ("S1", "T1"), charge: int | None = 0,
                    film: "Film | None" = None, steps_V_A: Sequence[float] = (0.1, 0.2),
-                   refit: bool = True, progress: bool = True) -> "StateChargeSet":
+                   refit: bool = True, progress: bool = True,
+                   on_reference: Callable[["StateChargeSet"], Any] | None = None) -> "StateChargeSet":
         """A copy of the set with the polarizability changes of ``states`` fitted
         on every conformer reference by finite fields with the engine ``method``
         (:func:`~clusterlab.electrostatics.stark.differential_polarizability`).
@@ -415,6 +416,9 @@ class StateChargeSet:
         ``charge`` is the molecules' net charge (None: from ``film``'s charges).
         ``refit=False`` keeps references that already carry every state.
         ``progress`` shows a bar over the engine calculations.
+        ``on_reference`` is called with the partly fitted copy after each
+        reference (checkpoints: with ``refit=False`` a later call skips the
+        references that were done).
 
         Raises
         ------
@@ -455,6 +459,8 @@ class StateChargeSet:
                                                   steps_V_A=steps_V_A, on_field=lambda: bar.update(1))
                 ref.dalpha_A3.update(fit.dalpha_A3)
                 ref.dmu_D.update(fit.dmu_D)
+                if on_reference is not None:
+                    on_reference(out)
         bar.close()
         out.stark_method = {**(method.to_dict() if hasattr(method, "to_dict") else {"method": str(method)}),
                             "steps_V_A": [float(x) for x in steps_V_A]}
@@ -1229,7 +1235,8 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
                    polarization: bool = False, polarize_molecules: Sequence[int] | None = None,
                    reference_molecule: int = 0, charges: StateChargeSet | None = None,
                    progress: bool = True, n_conformers: int = 1, response: bool = False,
-                   symmetrize: bool = False, response_states: Sequence[str] = ("S1",)) -> pd.DataFrame:
+                   symmetrize: bool = False, response_states: Sequence[str] = ("S1",),
+                   store: Any = None) -> pd.DataFrame:
     """Fit state charges on reference copies (unless given) and evaluate the
     film-wide model for S1, T1, cation and anion of every molecule and frame.
 
@@ -1253,6 +1260,13 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
     The fitted :class:`StateChargeSet` is kept in ``table.attrs["charges"]``
     (transition charges included, for excitonic couplings).
 
+    With a :class:`~clusterlab.store.ResultStore` as ``store``, the fitted set
+    is saved in the store's metadata once the state charges are fitted and
+    again after each reference's finite fields, under a key of the film and of
+    every fit setting; a later call with the same settings (a study resumed
+    after a crash) starts from it, so only the reference being fitted when the
+    run stopped is redone (or the state-charge fits, if it stopped in those).
+
     Raises
     ------
     InputError
@@ -1272,6 +1286,21 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
         return response and (charges is None or not all(c.has_response(response_states)
                                                           for refs in charges.conformers.values() for c in refs))
 
+    save: Callable[[StateChargeSet], Any] | None = None
+    if store is not None and charges is None:
+        from ..store import task_key
+
+        slot = "film_model_charges:" + task_key(
+            kind="film-model-charges", film_id=film.film_id, reference_molecule=int(reference_molecule),
+            method=method.to_dict() if isinstance(method, Method) else str(method), n_conformers=int(n_conformers),
+            symmetrize=bool(symmetrize), response_states=response_states if response else [])
+
+        def _save(cset: StateChargeSet) -> None:
+            store.meta[slot] = cset.to_json()
+
+        save = _save
+        if slot in store.meta:
+            charges = StateChargeSet.from_json(store.meta[slot])
     if fields_missing() and not isinstance(method, Method):
         raise InputError("response=True needs a clusterlab.Method (the finite fields run the QM engine); "
                          f"got {method!r}.")
@@ -1283,11 +1312,15 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
         charges = StateChargeSet.from_film(film, method, resnames=[res], molecules={res: reference_molecule},
                                            n_conformers=n_conformers, symmetrize=symmetrize, progress=progress,
                                            **fit_kw)
+        if save is not None:
+            save(charges)
     if fields_missing():
         stark_m = method.replace(n_singlets=max(method.n_singlets, 1) if "S1" in response_states else 0,
                                  n_triplets=max(method.n_triplets, 1) if "T1" in response_states else 0)
         charges = charges.with_stark(stark_m, states=response_states, film=film, charge=None, refit=False,
-                                     progress=progress)
+                                     progress=progress, on_reference=save)
+        if save is not None:
+            save(charges)
     states = ("S1", "T1", "cation", "anion")
     table = film_site_energies(film, states, radius=radius_A, frames=frames,
                                model="field" if response else "charges", charges=charges, progress=progress,
