@@ -7,7 +7,7 @@ leaves out.
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
+from .versions import __version__, software_versions
 
 # Before anything loads PySCF: pick its bundled OpenBLAS kernel (see clusterlab/blas.py).
 from .blas import blas_status, choose_pyscf_kernel as _choose_pyscf_kernel
@@ -94,4 +94,5 @@ __all__ = [
     "ConvergenceError",
     "GeometryError",
     "__version__",
+    "software_versions",
 ]

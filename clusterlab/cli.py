@@ -108,7 +108,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     p = _parser()
     args = p.parse_args(argv)
     if args.version:
-        from . import __version__
+        from .versions import __version__
 
         print(__version__)
         return 0

@@ -145,16 +145,31 @@ class Film:
         return self.index.n_molecules
 
     @property
+    def bonds(self) -> npt.NDArray[np.int64]:
+        """Bonded atom pairs, shape (n_bonds, 2), 0-based atom indices (empty
+        (0, 2) when the topology has no bonds). A read-only view."""
+        view = self._bond_index.view()
+        view.flags.writeable = False
+        return view
+
+    @property
     def has_box(self) -> bool:
         dims = self.universe.dimensions
         return dims is not None and bool(np.all(np.asarray(dims[:3]) > 0))
 
     def molecule_atoms(self, molecule: int) -> npt.NDArray[np.int64]:
         """Atom indices (0-based, ascending) of one molecule."""
-        self._check_molecule(molecule)
+        self.check_molecule(molecule)
         return self.index.of(int(molecule))
 
-    def _check_molecule(self, molecule: Any) -> int:
+    def check_molecule(self, molecule: Any) -> int:
+        """``molecule`` as an int after checking it is a valid molecule id.
+
+        Raises
+        ------
+        CarvingError
+            Not an integer, or outside ``0..n_molecules-1``.
+        """
         if isinstance(molecule, (bool, np.bool_)) or not isinstance(molecule, (int, np.integer)):
             raise CarvingError(f"molecule must be an integer id; got {molecule!r}.")
         if not (0 <= int(molecule) < self.n_molecules):
@@ -164,7 +179,15 @@ class Film:
             )
         return int(molecule)
 
-    def _check_frame(self, frame: Any) -> int:
+    def check_frame(self, frame: Any) -> int:
+        """``frame`` as a non-negative int (negative counts from the end)
+        after checking it exists.
+
+        Raises
+        ------
+        CarvingError
+            Not an integer, or out of range.
+        """
         if isinstance(frame, (bool, np.bool_)) or not isinstance(frame, (int, np.integer)):
             raise CarvingError(f"frame must be an integer; got {frame!r}.")
         f = int(frame)
@@ -319,7 +342,7 @@ class Film:
             if ids.size == 0:
                 raise CarvingError(f"selection {selection!r} matches no atoms in {self.topology_path!r}.")
             return ids
-        ids = np.asarray([self._check_molecule(int(i)) for i in selection], dtype=np.int64)
+        ids = np.asarray([self.check_molecule(int(i)) for i in selection], dtype=np.int64)
         return ids
 
     # --------------------------------------------------------------- charges
@@ -376,12 +399,12 @@ class Film:
     # ---------------------------------------------------------------- frames
     def box(self, frame: int = 0) -> FloatArray | None:
         """Box ``[lx, ly, lz, alpha, beta, gamma]`` of a frame, or None."""
-        self.universe.trajectory[self._check_frame(frame)]
+        self.universe.trajectory[self.check_frame(frame)]
         return None if not self.has_box else np.asarray(self.universe.dimensions, dtype=np.float64).copy()
 
     def frame_geometry(self, frame: int = 0, *, periodic: bool = True) -> FrameGeometry:
         """Whole molecules of one frame with centroids in the primary cell (cached)."""
-        f = self._check_frame(frame)
+        f = self.check_frame(frame)
         key = f if periodic else -1 - f
         if key in self._frame_cache:
             self._frame_cache.move_to_end(key)
@@ -475,7 +498,7 @@ class Film:
         ChargeError
             No charges available or non-integer molecular charges.
         """
-        mol = self._check_molecule(molecule)
+        mol = self.check_molecule(molecule)
         try:
             radius = float(radius)
         except (TypeError, ValueError) as exc:
@@ -529,7 +552,7 @@ class Film:
         box once, whole, at the periodic image whose centroid is nearest the
         central centroid: the input of the periodic (Ewald) embedding, where
         the box itself is then repeated to infinity."""
-        mol = self._check_molecule(molecule)
+        mol = self.check_molecule(molecule)
         geo = self.frame_geometry(frame, periodic=True)
         charges = self.charges
         h = box_vectors(geo.box)

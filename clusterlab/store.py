@@ -40,7 +40,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from . import __version__
+from .versions import __version__
 from .errors import InputError, StudyFileError
 
 __all__ = [

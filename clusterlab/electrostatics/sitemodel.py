@@ -612,7 +612,7 @@ def _topology_classes(film: "Film", res: str) -> IntArray:
         raise InputError(f"the film has no molecules named {res!r}.")
     atoms = film.molecule_atoms(int(ids[0]))
     syms = list(film.symbols[atoms])
-    b = getattr(film, "_bond_index", None)
+    b = film.bonds
     if b is not None and len(b):
         local = -np.ones(film.n_atoms, np.int64)
         local[atoms] = np.arange(len(atoms))
@@ -977,7 +977,7 @@ def film_site_energies(
         miss = [s for s in states if s not in charges.charges_e[res]]
         if miss:
             raise InputError(f"the charge set has no {miss} charges for {res!r}; it has {charges.states_of(res)}.")
-    frame_list = list(range(film.n_frames)) if frames is None else [film._check_frame(f) for f in frames]
+    frame_list = list(range(film.n_frames)) if frames is None else [film.check_frame(f) for f in frames]
     mol_sel = np.arange(film.n_molecules) if molecules is None else np.unique(film.select(list(molecules)))
     want = np.zeros(film.n_molecules, bool)
     want[mol_sel] = True
@@ -1305,7 +1305,7 @@ def run_film_model(film: "Film", method: Any, *, radius_A: float, frames: Sequen
         raise InputError("response=True needs a clusterlab.Method (the finite fields run the QM engine); "
                          f"got {method!r}.")
     if charges is None:
-        res = str(film.molecule_resnames[film._check_molecule(reference_molecule)])
+        res = str(film.molecule_resnames[film.check_molecule(reference_molecule)])
         fit_kw: dict[str, Any] = {"grid_level": 1, "density_fit": True}
         if hasattr(method, "grid_level"):
             fit_kw = {"grid_level": method.grid_level, "density_fit": method.density_fit}

@@ -36,6 +36,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from ..errors import ConvergenceError, InputError
+from ..versions import software_versions
 from ..units import AU_DIPOLE_TO_DEBYE, BOHR_A, DEBYE_E_A, HARTREE_TO_EV
 from .espfit import (
     Restraint,
@@ -247,7 +248,7 @@ def state_charges(
     ConvergenceError
         Only with ``raise_on_fail=True``.
     """
-    import pyscf
+    import pyscf  # noqa: F401
     from pyscf import dft, gto, scf
 
     bad = [s for s in states if s not in KNOWN_STATES]
@@ -369,5 +370,5 @@ def state_charges(
         charges_e=charges, total_charge_e=qtot, dipole_fit_D=dip_fit, dipole_qm_D=dip_qm,
         rrms=rrms, energy_eV=energy, converged=converged, transition_charges_e=tq,
         transition_dipole_fit_D=tfit, transition_dipole_qm_D=tqm, n_points=len(pts),
-        versions={"pyscf": pyscf.__version__, "numpy": np.__version__},
+        versions=software_versions(),
     )

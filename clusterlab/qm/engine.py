@@ -35,7 +35,8 @@ from . import ct as _ct
 from .following import assign_states, rotate_amplitudes, transition_overlaps
 from .method import Method
 from .response import ResponseStates, subspace_refine
-from .results import NAN, ChargedResult, ExcitationResult, ExcitedState, _versions
+from ..versions import software_versions
+from .results import NAN, ChargedResult, ExcitationResult, ExcitedState
 
 FloatArray = npt.NDArray[np.float64]
 log = logging.getLogger("clusterlab.qm")
@@ -579,7 +580,7 @@ def _meta(cluster: Cluster, method: Method, timings, t_start, periodic, n_charge
     prov["n_charges"] = int(n_charges)
     timings = dict(timings)
     timings["total"] = time.perf_counter() - t_start
-    meta = {"method": method.to_dict(), "method_key": method.key(), "versions": _versions(),
+    meta = {"method": method.to_dict(), "method_key": method.key(), "versions": software_versions(),
             "provenance": prov, "timings_s": {k: float(v) for k, v in timings.items()},
             "charge_model": ("gaussian" if method.charge_smearing_A > 0 else "point"),
             "embedding": "periodic-ewald" if periodic is not None else "cluster"}
@@ -688,7 +689,7 @@ def charged_states(cluster: Cluster, method: Method, *, vacuum: bool = True,
                 cluster.qm_symbols, cluster.qm_positions, cluster.qm_charge, np.zeros((0, 3)), np.zeros(0),
                 method, with_states=False)
         res = _charged_result(cluster, method, emb, vac, cluster.env_positions, cluster.env_charges, None)
-    res.meta.update({"method": method.to_dict(), "versions": _versions(),
+    res.meta.update({"method": method.to_dict(), "versions": software_versions(),
                      "timings_s": {"total": time.perf_counter() - t0}})
     if not res.converged:
         msg = f"ΔSCF not converged: {[k for k, v in res.converged_flags.items() if not v]}"

@@ -67,20 +67,6 @@ class ExcitedState:
     followed_shift_eV: float = NAN
 
 
-def _versions() -> dict[str, str]:
-    import pyscf
-
-    try:
-        from .. import __version__ as cl_version
-    except ImportError:  # pragma: no cover
-        cl_version = "unknown"
-    from ..blas import blas_status
-
-    return {"clusterlab": str(cl_version), "pyscf": str(pyscf.__version__), "numpy": str(np.__version__),
-            "python": ".".join(map(str, __import__("sys").version_info[:3])),
-            "pyscf_openblas_coretype": blas_status()["coretype"] or "default"}
-
-
 def _prov_columns(meta: dict[str, Any]) -> dict[str, Any]:
     prov = meta.get("provenance", {})
     return {"frame": prov.get("frame", 0), "molecule": prov.get("molecule", -1),

@@ -66,8 +66,8 @@ def choose_frames(film: Film, frames: Any = None) -> list[int]:
     if isinstance(frames, slice):
         return list(range(film.n_frames))[frames]
     if isinstance(frames, (int, np.integer)):
-        return [film._check_frame(int(frames))]
-    return [film._check_frame(int(f)) for f in frames]
+        return [film.check_frame(int(frames))]
+    return [film.check_frame(int(f)) for f in frames]
 
 
 @dataclass

@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
+from ..versions import __version__
 from ..errors import InputError
 from ..film import Film, film_from_spec, remember_film
 from ..qm.method import Method
@@ -55,8 +55,8 @@ def cluster_task(
     """
     if kind not in KINDS:
         raise InputError(f"kind={kind!r} is not valid; use one of {KINDS}.")
-    molecule = film._check_molecule(molecule)
-    frame = film._check_frame(frame)
+    molecule = film.check_molecule(molecule)
+    frame = film.check_frame(frame)
     radius = math.inf if kind == "periodic" else float(radius_A)
     remember_film(film)
     resname = str(film.molecule_resnames[molecule])

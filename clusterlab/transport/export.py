@@ -40,6 +40,7 @@ import pandas as pd
 from ..errors import InputError
 from ..geometry import minimum_image
 from ..units import COULOMB_EV_A, DEBYE_E_A, HBAR_EV_S, KB_EV
+from ..versions import software_versions
 from .couplings import orientation_factor, point_dipole_coupling
 from .pairs import neighbour_pairs
 from .rates import carrier_charge, field_energy_change, marcus_rate, miller_abrahams_rate
@@ -227,7 +228,7 @@ def unwrapped_centroids(film: "Film", last_frame: int) -> FloatArray:
     -------
     ndarray, shape (last_frame + 1, n_molecules, 3), Å
     """
-    last = film._check_frame(last_frame)
+    last = film.check_frame(last_frame)
     out = np.empty((last + 1, film.n_molecules, 3))
     periodic = film.has_box
     prev = None
@@ -410,7 +411,7 @@ def site_table(
         if miss:
             raise InputError(f"the model table lacks the column(s) {miss}.")
     if frames is not None:
-        frame_list = sorted({film._check_frame(int(f)) for f in frames})
+        frame_list = sorted({film.check_frame(int(f)) for f in frames})
     else:
         fs: set[int] = set()
         if qt is not None:
@@ -677,7 +678,7 @@ def pair_table(
     """
     if not (np.isfinite(refractive_index) and refractive_index > 0):
         raise InputError(f"refractive_index must be > 0; got {refractive_index!r}.")
-    f = film._check_frame(frame)
+    f = film.check_frame(frame)
     geo = film.frame_geometry(f, periodic=film.has_box)
     pos = np.asarray(geo.positions_A, dtype=np.float64)
     cent = np.asarray(geo.centroids_A, dtype=np.float64)
@@ -978,19 +979,6 @@ class ExportTables(NamedTuple):
     metadata: dict[str, Any]
 
 
-def _software() -> dict[str, str]:
-    import MDAnalysis
-    import pyarrow
-    import pyscf
-    import scipy
-
-    from .. import __version__
-
-    return {"clusterlab": __version__, "pyscf": pyscf.__version__, "numpy": np.__version__,
-            "scipy": scipy.__version__, "MDAnalysis": MDAnalysis.__version__, "pandas": pd.__version__,
-            "pyarrow": pyarrow.__version__}
-
-
 def _jsonable(obj: Any) -> Any:
     if isinstance(obj, Mapping):
         return {str(k): _jsonable(v) for k, v in obj.items()}
@@ -1159,7 +1147,7 @@ def write_export(
         },
         "columns": {"sites": _columns_doc(sites), "pairs": _columns_doc(pairs)},
         "sign_conventions": _SIGN_CONVENTIONS,
-        "software": _software(),
+        "software": software_versions(),
         "limitations": _LIMITATIONS,
         **{k: v for k, v in meta.items() if k not in ("format", "format_version", "files", "columns")},
     }

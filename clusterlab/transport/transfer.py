@@ -32,6 +32,7 @@ import numpy as np
 import numpy.typing as npt
 
 from ..errors import ConvergenceError, InputError
+from ..versions import software_versions
 from ..units import HARTREE_TO_EV
 
 FloatArray = npt.NDArray[np.float64]
@@ -255,7 +256,6 @@ def transfer_integrals(
     >>> t.converged and abs(t.j_hole_eV) > 0
     True
     """
-    import pyscf
 
     pa = _check_molecule("pos_A", symbols_A, pos_A)
     pb = _check_molecule("pos_B", symbols_B, pos_B)
@@ -322,5 +322,5 @@ def transfer_integrals(
             float(mfA.mo_energy[hA + 1] * HARTREE_TO_EV),
             float(mfB.mo_energy[hB + 1] * HARTREE_TO_EV),
         ),
-        software={"pyscf": pyscf.__version__, "numpy": np.__version__},
+        software=software_versions(),
     )

@@ -20,7 +20,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
-from .. import __version__
+from ..versions import __version__
 from ..errors import InputError
 from ..geometry import minimum_image
 
@@ -86,11 +86,11 @@ def transfer_task(
     from ..runner import Task
     from ..store import task_key
 
-    a, b = film._check_molecule(int(i)), film._check_molecule(int(j))
+    a, b = film.check_molecule(int(i)), film.check_molecule(int(j))
     if a == b:
         raise InputError(f"a transfer integral needs two different molecules; got i = j = {a}.")
     a, b = min(a, b), max(a, b)
-    f = film._check_frame(frame)
+    f = film.check_frame(frame)
     if embed_radius_A is not None:
         r = float(embed_radius_A)
         if not (np.isfinite(r) and r > 0):
@@ -238,7 +238,7 @@ def compute_transfer_integrals(
 
     if not isinstance(pairs_df, pd.DataFrame) or not {"i", "j"} <= set(pairs_df.columns):
         raise InputError("pairs_df must be a DataFrame with columns 'i' and 'j'.")
-    f = film._check_frame(frame)
+    f = film.check_frame(frame)
     p = pairs_df
     if "frame" in p.columns:
         p = p[p["frame"].astype(int) == f]

@@ -220,7 +220,7 @@ class FilmExplorer(widgets.VBox):
 
     def select_molecule(self, molecule: int) -> None:
         """Make ``molecule`` the centre (adds it to the dropdown if needed)."""
-        mol = self.film._check_molecule(int(molecule))
+        mol = self.film.check_molecule(int(molecule))
         values = [v for _, v in self.molecule_picker.options]
         if mol not in values:
             self.molecule_picker.options = self._options([mol]) + list(self.molecule_picker.options)
