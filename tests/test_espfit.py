@@ -3,23 +3,19 @@
 import numpy as np
 import pytest
 
+from pyscf import gto, scf
+
 from clusterlab.electrostatics.espfit import (
     Restraint,
     charge_dipole_D,
     cubic_points,
-    esp_charges,
-    esp_on_points,
     esp_rrms,
     fit_esp_charges,
     shell_points,
-    transition_charges,
-    transition_density_ao,
 )
 from clusterlab.errors import InputError
-from clusterlab.units import AU_DIPOLE_TO_DEBYE, BOHR_A
-
-pyscf = pytest.importorskip("pyscf")
-from pyscf import gto, scf  # noqa: E402
+from clusterlab.qm.esp import esp_charges, esp_on_points, transition_charges, transition_density_ao
+from clusterlab.units import AU_DIPOLE_TO_DEBYE, BOHR_A, HARTREE_TO_EV
 
 WATER = "O 0 0 0.1173; H 0 0.7572 -0.4692; H 0 -0.7572 -0.4692"
 FORMALDEHYDE = "C 0 0 0; O 0 0 1.205; H 0 0.943 -0.587; H 0 -0.943 -0.587"
@@ -168,27 +164,23 @@ def test_grid_and_input_errors():
 
 
 # ---------------------------------------------------------------------------
-# state charges (clusterlab.electrostatics.statecharges)
+# state charges (clusterlab.qm.statecharges)
 # ---------------------------------------------------------------------------
-from clusterlab.electrostatics.statecharges import (  # noqa: E402
-    StateCharges,
-    parse_method,
-    state_charges,
-)
+from clusterlab.qm.method import Method  # noqa: E402
+from clusterlab.qm.statecharges import StateCharges, state_charges  # noqa: E402
 
 FORM_SYM = ["C", "O", "H", "H"]
 FORM_POS = np.array([[0, 0, 0], [0, 0, 1.205], [0, 0.943, -0.587], [0, -0.943, -0.587]])
 
 
-class _MethodLike:  # any object with .xc and .basis
-    xc = "hf"
-    basis = "6-31g"
+#: HF/6-31G (TDA = CIS) without density fitting
+HF_631G = Method(xc="hf", basis="6-31g", density_fit=False, n_singlets=1, n_triplets=1)
 
 
 @pytest.fixture(scope="module")
 def formaldehyde_states():
     # HF/6-31G (TDA = CIS) keeps the test at about a second
-    return state_charges(FORM_SYM, FORM_POS, _MethodLike(), equivalent=[[2, 3]])
+    return state_charges(FORM_SYM, FORM_POS, HF_631G, equivalent=[[2, 3]])
 
 
 def test_state_charges_totals_and_table(formaldehyde_states):
@@ -242,11 +234,28 @@ def test_s1_transition_charges_forbidden_band(formaldehyde_states):
     assert r.transition_charges_e.sum() == pytest.approx(0.0, abs=1e-12)
 
 
-def test_parse_method_forms():
-    assert parse_method("b3lyp/def2-svp") == ("b3lyp", "def2-svp")
-    assert parse_method(("pbe0", "sto-3g")) == ("pbe0", "sto-3g")
-    assert parse_method({"xc": "hf", "basis": "6-31g"}) == ("hf", "6-31g")
-    with pytest.raises(InputError, match="not a method description"):
-        parse_method("b3lyp")
+def test_state_charges_take_a_method_only():
+    with pytest.raises(InputError, match="must be a clusterlab.Method; got str"):
+        state_charges(FORM_SYM, FORM_POS, "hf/sto-3g")
     with pytest.raises(InputError, match="unknown state"):
-        state_charges(FORM_SYM, FORM_POS, "hf/sto-3g", states=("S2",))
+        state_charges(FORM_SYM, FORM_POS, HF_631G, states=("S2",))
+
+
+def test_state_charges_use_the_engines_solver(formaldehyde_states):
+    """The fit goes through the engine's door: its S1/T1 energies are the
+    engine's own (vacuum) excitation energies for the same method, and
+    match PySCF's own TDA solver on the same SCF (independent solver)."""
+    from clusterlab.cluster import Cluster
+    from clusterlab.qm.engine import excitations
+
+    r = formaldehyde_states
+    res = excitations(Cluster.from_arrays(FORM_SYM, FORM_POS), HF_631G, vacuum=False)
+    assert r.energy_eV["S1"] == pytest.approx(res.s1.energy_eV, abs=1e-6)
+    assert r.energy_eV["T1"] == pytest.approx(res.t1.energy_eV, abs=1e-6)
+    mf = scf.RHF(gto.M(atom=list(zip(FORM_SYM, map(tuple, FORM_POS))), basis="6-31g", unit="Angstrom",
+                       verbose=0)).run(conv_tol=1e-10)
+    td = mf.TDA()
+    td.nstates, td.conv_tol, td.verbose = 4, 1e-8, 0
+    td.kernel()
+    assert r.energy_eV["S1"] == pytest.approx(float(td.e[0]) * HARTREE_TO_EV, abs=1e-4)
+    assert r.method_settings == HF_631G.to_dict()

@@ -229,7 +229,7 @@ def test_davidson_finds_the_lowest_states_of_ethylene():
     m = Method(xc="b3lyp", basis="6-31g", density_fit=False, grid_level=1, response_grid_level=None,
                n_singlets=3, n_triplets=3, response_conv_tol=1e-6)
     r = excitations(Cluster.from_arrays(sym, pos), m, vacuum=False)
-    mf = r._work["calc"].mf
+    mf = r.warm_start.ground.mf
     for kind, states in (("singlet", r.singlets), ("triplet", r.triplets)):
         td = mf.TDA()
         td.singlet, td.nstates, td.conv_tol, td.verbose = kind == "singlet", 8, 1e-7, 0

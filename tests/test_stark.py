@@ -20,13 +20,9 @@ from scipy.spatial.transform import Rotation
 from clusterlab import film_from_universe
 from clusterlab.cluster import Cluster
 from clusterlab.electrostatics.sitemodel import ConformerCharges, StateChargeSet, film_site_energies
-from clusterlab.electrostatics.stark import (
-    StarkFit,
-    differential_polarizability,
-    stark_energy_eV,
-    uniform_field_charges,
-)
+from clusterlab.electrostatics.stark import StarkFit, stark_energy_eV, uniform_field_charges
 from clusterlab.errors import InputError
+from clusterlab.qm.finitefield import differential_polarizability
 from clusterlab.qm.method import Method
 from clusterlab.units import BOHR_A, COULOMB_EV_A, DEBYE_E_A, HARTREE_TO_EV
 
@@ -158,15 +154,15 @@ def test_film_model_second_order_matches_embedded_qm(ethylene_fit):
     Stark term the even part (within 8 %: the field of the nearest ion still
     varies by a few % across the molecule), with Δα from the finite-field fit
     (measured while writing this test: Stark term +6.51 meV, QM even part +6.38 meV)."""
-    from clusterlab.electrostatics.statecharges import state_charges
     from clusterlab.qm.engine import excitations
+    from clusterlab.qm.statecharges import state_charges
 
     ions = np.array([[-10.0, 1.0, 0.5], [11.0, -1.0, 0.0], [0.5, 9.0, 2.0], [-1.0, -12.0, 0.0]])
     film = _ethylene_and_ions_film(ions, np.array([1.0, -1.0, 1.0, -1.0]))
     syms, _ = ETHYLENE
     geo = film.frame_geometry(0)
     pos = geo.positions_A[film.molecule_atoms(0)]
-    sc = state_charges(syms, pos, "hf/6-31g", states=("S0", "T1"), transition=False)
+    sc = state_charges(syms, pos, CIS, states=("S0", "T1"), transition=False)
     fit = differential_polarizability(syms, pos, CIS, states=("T1",))
     ref = ConformerCharges(positions_A=pos, charges_e=dict(sc.charges_e), dalpha_A3=fit.dalpha_A3,
                            dmu_D=fit.dmu_D, frame=0, molecule=0)

@@ -522,7 +522,7 @@ def test_refined_model_against_full_tda():
         m = Method(xc="b3lyp", basis="6-31g", density_fit=False, grid_level=0, response_grid_level=None,
                    n_singlets=2, n_triplets=2, excited="stda-refined")
         r = excitations(Cluster.from_arrays(sym, pos), m, vacuum=False)
-        mf = r._work["calc"].mf
+        mf = r.warm_start.ground.mf
         for kind, states in (("singlet", r.singlets), ("triplet", r.triplets)):
             ref = _tda(mf, kind, 5).e * HARTREE_TO_EV
             got = np.array([s.energy_eV for s in states])

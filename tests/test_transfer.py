@@ -9,9 +9,11 @@ import pytest
 import scipy.constants as sc
 
 from clusterlab.errors import InputError
-from clusterlab.transport.transfer import effective_coupling, transfer_integrals
+from clusterlab.qm.method import Method
+from clusterlab.qm.transfer import effective_coupling, transfer_integrals
 
-pytest.importorskip("pyscf")
+#: the SCF settings of the projective method as first written: no density fitting, bare charges
+HF_631G = Method(xc="hf", basis="6-31g", density_fit=False, charge_smearing_A=0.0)
 
 HARTREE_EV = sc.physical_constants["Hartree energy in eV"][0]
 BOHR_A = sc.physical_constants["Bohr radius"][0] * 1e10
@@ -38,7 +40,7 @@ DISTANCES = (3.5, 4.0, 4.5, 5.0)
 def stack_hf():
     """Cofacial ethylene dimers (B = A translated along z), HF/6-31G."""
     return {
-        d: transfer_integrals(SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, d], xc="hf", basis="6-31g")
+        d: transfer_integrals(SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, d], HF_631G)
         for d in DISTANCES
     }
 
@@ -105,7 +107,7 @@ def test_point_charge_shifts_site_energies():
     # formula sqrt(de^2 + 4 J_eff^2) (within 5%).
     d, zq = 4.0, -15.0
     r = transfer_integrals(
-        SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, d], xc="hf", basis="6-31g",
+        SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, d], HF_631G,
         env_positions=[[0, 0, zq]], env_charges=[1.0],
     )
     assert r.converged and r.n_env_charges == 1
@@ -119,25 +121,27 @@ def test_point_charge_shifts_site_energies():
 @pytest.mark.slow
 def test_default_functional_symmetric_dimer():
     # Same two-state check with the default functional (B3LYP/6-31G). About 15 s.
-    r = transfer_integrals(SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, 4.0])
+    r = transfer_integrals(SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, 4.0], HF_631G.replace(xc="b3lyp"))
     assert r.converged and r.xc == "b3lyp"
     e = r.dimer_mo_energy_eV
     assert abs(r.j_hole_eV) == pytest.approx((e[1] - e[0]) / 2, rel=0.05)
     # more exact exchange -> larger |J| (common practice): HF above B3LYP
-    hf = transfer_integrals(SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, 4.0], xc="hf")
+    hf = transfer_integrals(SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, 4.0], HF_631G)
     assert abs(hf.j_hole_eV) > abs(r.j_hole_eV)
 
 
 def test_errors():
     h = np.array([[0.0, 0, 0]])
     with pytest.raises(InputError, match="closed-shell"):
-        transfer_integrals(["H"], h, ["H"], h + [3.0, 0, 0], xc="hf", basis="sto-3g")
+        transfer_integrals(["H"], h, ["H"], h + [3.0, 0, 0], HF_631G.replace(basis="sto-3g"))
     with pytest.raises(InputError, match="overlap"):
-        transfer_integrals(SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, 0.1], xc="hf")
+        transfer_integrals(SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, 0.1], HF_631G)
     with pytest.raises(InputError, match="one charge per position"):
         transfer_integrals(
-            SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, 4], xc="hf",
+            SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, 4], HF_631G,
             env_positions=[[0, 0, 9.0]], env_charges=[1.0, 2.0],
         )
+    with pytest.raises(InputError, match="must be a clusterlab.Method; got str"):
+        transfer_integrals(SYM, ETHYLENE, SYM, ETHYLENE + [0, 0, 4], "hf/6-31g")
     with pytest.raises(InputError, match=r"\|S\| < 1"):
         effective_coupling(0.0, 0.0, 0.1, 1.0)

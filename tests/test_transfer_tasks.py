@@ -19,7 +19,8 @@ from MDAnalysis.coordinates.memory import MemoryReader
 from clusterlab import ResultStore, film_from_universe
 from clusterlab.errors import InputError
 from clusterlab.transport.export import pair_table
-from clusterlab.transport.transfer import transfer_integrals
+from clusterlab.qm.method import Method
+from clusterlab.qm.transfer import transfer_integrals
 from clusterlab.transport.transfer_tasks import (
     TRANSFER_KIND,
     compute_transfer_integrals,
@@ -27,7 +28,8 @@ from clusterlab.transport.transfer_tasks import (
     transfer_task,
 )
 
-pytest.importorskip("pyscf")
+#: HF/STO-3G with the SCF settings the projective method was written with (no DF, bare charges)
+HF_STO = Method(xc="hf", basis="sto-3g", density_fit=False, charge_smearing_A=0.0)
 
 L = 12.0
 H2 = np.array([[0.0, 0.0, -0.37], [0.0, 0.0, 0.37]])  # r(HH) = 0.74 Å (common practice)
@@ -64,25 +66,25 @@ def test_transfer_tasks_store_and_skip(h2_film, tmp_path):
     pairs = pair_table(h2_film, 0, 5.5)
     assert {(0, 1), (0, 2), (1, 2)} == set(zip(pairs.i, pairs.j))
     store = ResultStore(tmp_path / "t.sqlite")
-    out = compute_transfer_integrals(h2_film, pairs, 0, store=store, xc="hf", basis="sto-3g", max_pairs=2)
+    out = compute_transfer_integrals(h2_film, pairs, 0, HF_STO, store=store, max_pairs=2)
     assert len(out) == 2 and out.converged.all()
     assert list(zip(out.i, out.j))[0] == (0, 1)  # closest pair first
     rep = out.attrs["report"]
     assert (rep.done, rep.skipped, rep.failed) == (2, 0, 0)
     # symmetric (translated) dimer: |J| = half the dimer splitting, two-state model;
     # mixing with other orbitals makes it approximate - 5 % (common practice)
-    rec = store.get(transfer_task(h2_film, 0, 0, 1, xc="hf", basis="sto-3g").key)
+    rec = store.get(transfer_task(h2_film, 0, 0, 1, HF_STO).key)
     res = json.loads(rec.result_json)
     e = res["dimer_mo_energy_eV"]  # HOMO-1, HOMO, LUMO, LUMO+1
     assert abs(out.J_hole_eV.iloc[0]) == pytest.approx((e[1] - e[0]) / 2, rel=0.05)
     assert abs(out.J_electron_eV.iloc[0]) == pytest.approx((e[3] - e[2]) / 2, rel=0.05)
     # same numbers as a direct call on the minimum-image geometry
     _, pi, _, pj = pair_geometry(h2_film, 0, 0, 1)
-    direct = transfer_integrals(["H", "H"], pi, ["H", "H"], pj, xc="hf", basis="sto-3g")
+    direct = transfer_integrals(["H", "H"], pi, ["H", "H"], pj, HF_STO)
     assert out.J_hole_eV.iloc[0] == pytest.approx(direct.j_hole_eV, abs=1e-7)
     # a re-run computes only the pair not yet stored; (1, 0) is the same task as (0, 1)
     swapped = pd.DataFrame({"i": [1, 2, 2], "j": [0, 0, 1]})
-    again = compute_transfer_integrals(h2_film, swapped, 0, store=store, xc="hf", basis="sto-3g")
+    again = compute_transfer_integrals(h2_film, swapped, 0, HF_STO, store=store)
     rep2 = again.attrs["report"]
     assert (rep2.done, rep2.skipped) == (1, 2)
     assert set(zip(again.i, again.j)) == {(0, 1), (0, 2), (1, 2)}
@@ -94,22 +96,22 @@ def test_transfer_tasks_store_and_skip(h2_film, tmp_path):
 def test_embedding_charges_exclude_the_pair(h2_film, tmp_path):
     store = ResultStore(tmp_path / "e.sqlite")
     pairs = pd.DataFrame({"i": [0], "j": [1]})
-    emb = compute_transfer_integrals(h2_film, pairs, 0, store=store, xc="hf", basis="sto-3g",
+    emb = compute_transfer_integrals(h2_film, pairs, 0, HF_STO, store=store,
                                      embed_radius_A=5.5)
-    vac = compute_transfer_integrals(h2_film, pairs, 0, store=store, xc="hf", basis="sto-3g")
+    vac = compute_transfer_integrals(h2_film, pairs, 0, HF_STO, store=store)
     # only molecule 2 (two charges, 5.10 Å away) is within 5.5 Å; the pair's own atoms are not charges
     assert int(emb.n_env_charges.iloc[0]) == 2 and int(vac.n_env_charges.iloc[0]) == 0
     assert emb.J_hole_eV.iloc[0] != pytest.approx(vac.J_hole_eV.iloc[0], abs=1e-9)
-    far = compute_transfer_integrals(h2_film, pairs, 0, store=store, xc="hf", basis="sto-3g",
+    far = compute_transfer_integrals(h2_film, pairs, 0, HF_STO, store=store,
                                      embed_radius_A=1.0)
     assert int(far.n_env_charges.iloc[0]) == 0
 
 
 def test_transfer_task_rejects_bad_input(h2_film):
     with pytest.raises(InputError, match="two different molecules"):
-        transfer_task(h2_film, 0, 1, 1, xc="hf", basis="sto-3g")
+        transfer_task(h2_film, 0, 1, 1, HF_STO)
     with pytest.raises(InputError, match="embed_radius_A"):
-        transfer_task(h2_film, 0, 0, 1, xc="hf", basis="sto-3g", embed_radius_A=-1.0)
-    a = transfer_task(h2_film, 0, 0, 1, xc="hf", basis="sto-3g")
-    assert a.key == transfer_task(h2_film, 0, 1, 0, xc="hf", basis="sto-3g").key
-    assert a.key != transfer_task(h2_film, 0, 0, 1, xc="hf", basis="6-31g").key
+        transfer_task(h2_film, 0, 0, 1, HF_STO, embed_radius_A=-1.0)
+    a = transfer_task(h2_film, 0, 0, 1, HF_STO)
+    assert a.key == transfer_task(h2_film, 0, 1, 0, HF_STO).key
+    assert a.key != transfer_task(h2_film, 0, 0, 1, HF_STO.replace(basis="6-31g")).key

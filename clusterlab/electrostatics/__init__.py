@@ -2,12 +2,11 @@
 
 * :mod:`.ewald` - periodic potentials/fields/energies of point charges (Ewald).
 * :mod:`.thole` - induced dipoles with Thole exponential damping.
-* :mod:`.espfit` - charges fitted to a QM electrostatic potential; transition charges.
-* :mod:`.statecharges` - ESP charges of S0, S1, T1, cation, anion (PySCF).
+* :mod:`.espfit` - fit points and charges fitted to an electrostatic potential.
 * :mod:`.lattice` - dipolar-disorder check on a cubic lattice.
 * :mod:`.pairsum` - exact potentials of every molecule's carved environment, all molecules at once.
 * :mod:`.conformers` - superposition, conformer references, topological equivalence.
-* :mod:`.stark` - finite-field dipole and polarizability changes of excited states (engine).
+* :mod:`.stark` - the Stark energy of a dipole and polarizability change, the finite-field fit record.
 * :mod:`.sitemodel` - the film-wide site-energy model.
 
 Units: Å, e, V (= eV/e), V/Å, e·Å, Å³, eV; boxes ``[lx, ly, lz, alpha, beta, gamma]``.
@@ -18,13 +17,10 @@ from .espfit import (
     Restraint,
     charge_dipole_D,
     cubic_points,
-    esp_charges,
-    esp_on_points,
     esp_rrms,
     fit_esp_charges,
+    fit_points,
     shell_points,
-    transition_charges,
-    transition_density_ao,
 )
 from .ewald import (
     EwaldParameters,
@@ -34,7 +30,6 @@ from .ewald import (
     lattice_vectors,
     minimum_image,
 )
-from .statecharges import StateCharges, parse_method, state_charges
 from .thole import (
     THOLE_EXP_A,
     Polarization,
@@ -46,26 +41,17 @@ from .thole import (
 )
 
 __all__ = [
-    "EspFit", "Restraint", "charge_dipole_D", "cubic_points", "esp_charges", "esp_on_points",
-    "esp_rrms", "fit_esp_charges", "shell_points", "transition_charges", "transition_density_ao",
+    "EspFit", "Restraint", "charge_dipole_D", "cubic_points", "esp_rrms", "fit_esp_charges", "fit_points",
+    "shell_points",
     "EwaldParameters", "choose_ewald_parameters", "ewald_energy", "ewald_potential",
     "lattice_vectors", "minimum_image",
-    "StateCharges", "parse_method", "state_charges",
     "THOLE_EXP_A", "Polarization", "atomic_polarizabilities", "molecular_polarizability",
     "permanent_field", "polarization_energy", "solve_induced_dipoles",
 ]
 
 from .conformers import assign_conformers, equivalence_classes, pick_references, superpose  # noqa: E402
 from .pairsum import environment_potential  # noqa: E402
-from .sitemodel import (  # noqa: E402
-    ConformerCharges,
-    StateChargeSet,
-    conformer_spread,
-    environment_pairs,
-    film_site_energies,
-)
-from .stark import StarkFit, differential_polarizability, stark_energy_eV  # noqa: E402
+from .stark import StarkFit, stark_energy_eV, uniform_field_charges  # noqa: E402
 
-__all__ += ["StateChargeSet", "ConformerCharges", "film_site_energies", "conformer_spread", "environment_pairs",
-            "environment_potential", "superpose", "pick_references", "assign_conformers", "equivalence_classes",
-            "StarkFit", "differential_polarizability", "stark_energy_eV"]
+__all__ += ["environment_potential", "superpose", "pick_references", "assign_conformers", "equivalence_classes",
+            "StarkFit", "stark_energy_eV", "uniform_field_charges"]

@@ -121,7 +121,7 @@ import pandas as pd
 from ..errors import ChargeError, InputError
 from ..units import COULOMB_EV_A, DEBYE_E_A
 from .pairsum import EnvironmentPairs, environment_potential
-from .statecharges import KNOWN_STATES, StateCharges, state_charges
+from ..qm.statecharges import KNOWN_STATES, StateCharges, state_charges  # noqa: layer (temporary)
 from .stark import stark_energy_eV
 from .thole import atomic_polarizabilities, solve_induced_dipoles
 
@@ -428,7 +428,7 @@ class StateChargeSet:
         import copy
 
         from ..progress import progress_bar
-        from .stark import differential_polarizability
+        from ..qm.finitefield import differential_polarizability
 
         out = copy.deepcopy(self)
         todo = sum(1 for refs in out.conformers.values() for ref in refs if refit or not ref.has_response(states))

@@ -28,6 +28,7 @@ import numpy.typing as npt
 
 from ..cluster import Cluster
 from ..errors import InputError
+from .calc import Embedding
 from .engine import _excitations
 from .method import Method
 from .results import ExcitationResult
@@ -137,5 +138,5 @@ def periodic_excitations(cluster: Cluster, method: Method, *, vacuum: bool = Tru
                 "n_charges_in_cell": int(len(q)),
                 "qm_images": "included by PySCF as self-consistent QM atom multipoles (SCF only)"}
     res = _excitations(cluster, method, vacuum=vacuum, guess=guess, raise_on_failure=raise_on_failure,
-                       progress=progress, periodic=periodic, env=(pos, q), radius_A=math.inf)
+                       progress=progress, embedding=Embedding(pos, q, periodic), radius_A=math.inf)
     return res

@@ -171,9 +171,9 @@ class ExcitationResult:
 
     Notes
     -----
-    ``dm`` (ground-state density matrix, AO basis) and ``_work`` (orbitals
-    and amplitudes used for warm starts and following) are kept in memory
-    only; they are not written to JSON.
+    ``dm`` (ground-state density matrix, AO basis) and ``warm_start`` (a
+    :class:`~clusterlab.qm.calc.WarmStart`: orbitals and amplitudes for warm
+    starts and the vacuum calculation) are kept in memory only; they are not written to JSON.
     """
 
     states: list[ExcitedState]
@@ -194,7 +194,8 @@ class ExcitationResult:
     warnings: list[str] = field(default_factory=list)
     meta: dict[str, Any] = field(default_factory=dict)
     dm: Any = field(default=None, repr=False, compare=False)
-    _work: Any = field(default=None, repr=False, compare=False)
+    #: :class:`~clusterlab.qm.calc.WarmStart` built by the engine (in memory only)
+    warm_start: Any = field(default=None, repr=False, compare=False)
 
     # --------------------------------------------------------- accessors
     def _kind(self, kind: str) -> list[ExcitedState]:
@@ -292,7 +293,7 @@ class ExcitationResult:
         return frame
 
     def to_dict(self) -> dict[str, Any]:
-        d = {f.name: getattr(self, f.name) for f in dataclasses.fields(self) if f.name not in ("dm", "_work")}
+        d = {f.name: getattr(self, f.name) for f in dataclasses.fields(self) if f.name not in ("dm", "warm_start")}
         d["states"] = [dataclasses.asdict(s) for s in self.states]
         d["charged"] = None if self.charged is None else self.charged.to_dict()
         return d

@@ -121,14 +121,11 @@ def run_cluster_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
     else:
         cluster = film.carve(mol, float(payload["radius_A"]), frame=frame, rule=payload["rule"],
                              qm_shell=float(payload["qm_shell_A"]))
-        same_qm = prev is not None and np.array_equal(
-            (prev._work or {}).get("qm_fingerprint"), cluster.fingerprint_qm())
-        if same_qm and prev.scf_converged and (prev._work or {}).get("vacuum") is not None:
+        ws = prev.warm_start if prev is not None else None
+        if ws is not None and ws.fits(cluster) and prev.scf_converged and ws.vacuum is not None:
             res = excitations(cluster, method, vacuum=prev, guess=prev)
         else:
             res = excitations(cluster, method, vacuum=True)
-        if res._work is not None:
-            res._work["qm_fingerprint"] = cluster.fingerprint_qm()
         with _WARM_LOCK:
             _WARM[wkey] = res
             _WARM.move_to_end(wkey)

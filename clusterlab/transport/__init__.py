@@ -25,7 +25,6 @@ from .rates import (
     marcus_rate,
     miller_abrahams_rate,
 )
-from .transfer import OrbitalCoupling, TransferIntegrals, effective_coupling, transfer_integrals
 
 __all__ = [
     "marcus_rate",
@@ -43,10 +42,6 @@ __all__ = [
     "point_dipole_coupling",
     "orientation_factor",
     "transition_charge_coupling",
-    "transfer_integrals",
-    "TransferIntegrals",
-    "OrbitalCoupling",
-    "effective_coupling",
     "neighbour_pairs",
 ]
 

@@ -5,7 +5,7 @@ neighbour pair as a :class:`~clusterlab.runner.Task`; :func:`run_transfer_task`
 is the worker function (it rebuilds the film from its spec, takes the two
 molecules whole with ``j`` at the minimum-image position next to ``i``,
 optionally surrounds the pair with the film's point charges, and calls
-:func:`~clusterlab.transport.transfer.transfer_integrals`);
+:func:`~clusterlab.qm.transfer.transfer_integrals`);
 :func:`compute_transfer_integrals` runs many pairs with any runner, storing
 each result as it arrives, so a re-run skips the pairs already stored.
 """
@@ -20,9 +20,10 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
-from ..versions import __version__
 from ..errors import InputError
 from ..geometry import minimum_image
+from ..qm.method import Method
+from ..versions import __version__
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..film import Film
@@ -49,9 +50,8 @@ def transfer_task(
     frame: int,
     i: int,
     j: int,
+    method: Method,
     *,
-    xc: str,
-    basis: str,
     embed_radius_A: float | None = None,
 ) -> "Task":
     """Describe the transfer-integral calculation of one pair as a Task.
@@ -62,10 +62,8 @@ def transfer_task(
     frame : int
     i, j : int
         Molecule ids (any order; the task stores ``i < j``).
-    xc : str
-        PySCF functional name or ``'hf'``.
-    basis : str
-        PySCF basis name.
+    method : clusterlab.Method
+        Functional, basis and SCF settings of the three SCFs.
     embed_radius_A : float, Å, optional
         Surround the pair with the film's point charges of every whole
         molecule image with an atom within this distance of an atom of the
@@ -75,7 +73,7 @@ def transfer_task(
     -------
     Task
         Kind ``"transfer"``; the key hashes the film content, frame, pair,
-        functional, basis, embedding radius and clusterlab version.
+        method key, embedding radius and clusterlab version.
 
     Raises
     ------
@@ -100,12 +98,12 @@ def transfer_task(
         embed: float | None = r
     else:
         embed = None
-    if not isinstance(xc, str) or not isinstance(basis, str) or not xc or not basis:
-        raise InputError(f"xc and basis must be non-empty strings; got xc={xc!r}, basis={basis!r}.")
+    if not isinstance(method, Method):
+        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__} ({method!r}).")
     remember_film(film)
-    payload = {"film": film.spec(), "frame": f, "i": a, "j": b, "xc": xc, "basis": basis,
+    payload = {"film": film.spec(), "frame": f, "i": a, "j": b, "method": method.to_dict(),
                "embed_radius_A": embed, "kind": TRANSFER_KIND}
-    key = task_key(film_id=film.film_id, frame=f, i=a, j=b, xc=xc.lower(), basis=basis.lower(),
+    key = task_key(film_id=film.film_id, frame=f, i=a, j=b, method_key=method.key(),
                    embed_radius_A=embed, kind=TRANSFER_KIND, version=__version__)
     return Task(key=key, kind=TRANSFER_KIND, payload=payload)
 
@@ -162,7 +160,7 @@ def run_transfer_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
     its cache, for in-memory films run serially).
     """
     from ..film import film_from_spec
-    from .transfer import transfer_integrals
+    from ..qm.transfer import transfer_integrals
 
     film = film_from_spec(payload["film"])
     f, i, j = int(payload["frame"]), int(payload["i"]), int(payload["j"])
@@ -171,13 +169,13 @@ def run_transfer_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
     env_p = env_q = None
     if embed is not None:
         env_p, env_q = _pair_environment(film, f, i, j, pi, pj, float(embed))
-    res = transfer_integrals(si, pi, sj, pj, xc=payload["xc"], basis=payload["basis"],
-                             env_positions=env_p, env_charges=env_q)
+    method = Method.from_dict(payload["method"])
+    res = transfer_integrals(si, pi, sj, pj, method, env_positions=env_p, env_charges=env_q)
     summary = {
         "frame": f, "i": i, "j": j, "J_hole_eV": res.j_hole_eV, "J_electron_eV": res.j_electron_eV,
         "S_hole": res.hole.S, "S_electron": res.electron.S, "converged": bool(res.converged),
         "distance_A": float(np.linalg.norm(pj.mean(axis=0) - pi.mean(axis=0))),
-        "n_env_charges": int(res.n_env_charges), "xc": payload["xc"], "basis": payload["basis"],
+        "n_env_charges": int(res.n_env_charges), "xc": method.xc, "basis": method.basis,
         "embed_radius_A": embed, "pid": os.getpid(),
     }
     return json.dumps(res.to_dict(), sort_keys=True), summary
@@ -187,11 +185,10 @@ def compute_transfer_integrals(
     film: "Film",
     pairs_df: pd.DataFrame,
     frame: int,
+    method: Method,
     *,
     store: "ResultStore | str | os.PathLike[str]",
     runner: "str | Runner" = "serial",
-    xc: str,
-    basis: str,
     embed_radius_A: float | None = None,
     max_pairs: int | None = None,
     progress: bool = False,
@@ -209,8 +206,7 @@ def compute_transfer_integrals(
     store : ResultStore or path
         Each result is stored as it arrives; pairs already done are skipped.
     runner : {"serial", "processes", "dask"} or Runner
-    xc, basis : str
-        PySCF functional (or ``'hf'``) and basis.
+    method : clusterlab.Method
     embed_radius_A : float, optional
         Point-charge embedding radius (see :func:`transfer_task`).
     max_pairs : int, optional
@@ -248,7 +244,7 @@ def compute_transfer_integrals(
         if not (isinstance(max_pairs, (int, np.integer)) and max_pairs >= 0):
             raise InputError(f"max_pairs must be a non-negative integer or None; got {max_pairs!r}.")
         p = p.head(int(max_pairs))
-    tasks = [transfer_task(film, f, int(a), int(b), xc=xc, basis=basis, embed_radius_A=embed_radius_A)
+    tasks = [transfer_task(film, f, int(a), int(b), method, embed_radius_A=embed_radius_A)
              for a, b in zip(p["i"], p["j"])]
     st = open_store(store)
     report = run_tasks(tasks, TRANSFER_TASK_FN, store=st, runner=runner, progress=progress,
@@ -260,8 +256,8 @@ def compute_transfer_integrals(
             continue
         seen.add(t.key)
         rec = st.get(t.key)
-        base = {"frame": f, "i": t.payload["i"], "j": t.payload["j"], "xc": xc, "basis": basis,
-                "embed_radius_A": embed_radius_A}
+        base = {"frame": f, "i": t.payload["i"], "j": t.payload["j"], "xc": method.xc,
+                "basis": method.basis, "embed_radius_A": embed_radius_A}
         if rec is not None and rec.done:
             s = rec.summary
             rows.append({**base, **{k: s.get(k) for k in TRANSFER_COLUMNS if k in s}, "error": None})

@@ -4,8 +4,10 @@ Method (fragment-orbital projection; Valeev et al., J. Am. Chem. Soc. 128,
 9882 (2006); Baumeier, Kirkpatrick & Andrienko, Phys. Chem. Chem. Phys. 12,
 11103 (2010)):
 
-1. SCF of monomer A, monomer B and the dimer AB, same functional and basis
-   (and the same point-charge environment when one is given).
+1. SCF of monomer A, monomer B and the dimer AB with one
+   :class:`~clusterlab.Method` (and the same point-charge environment when
+   one is given), through the engine's door (:mod:`clusterlab.qm.calc`:
+   density fitting, grids, charge smearing and SCF fallback as everywhere).
 2. Embed the monomer frontier orbitals in the dimer AO basis (A's AOs come
    first in the dimer, then B's): ``phi_A = [c_A; 0]``, ``phi_B = [0; c_B]``.
 3. Project the dimer Fock matrix ``F`` and AO overlap ``S_AO`` on them:
@@ -32,8 +34,10 @@ import numpy as np
 import numpy.typing as npt
 
 from ..errors import ConvergenceError, InputError
-from ..versions import software_versions
 from ..units import HARTREE_TO_EV
+from ..versions import software_versions
+from .calc import VACUUM, Embedding, build_molecule, make_scf, n_electrons, omp_threads, run_scf
+from .method import Method
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -153,47 +157,16 @@ def _check_molecule(name: str, symbols: Sequence[str], positions: npt.ArrayLike)
     return pos
 
 
-def _run_scf(
-    symbols: Sequence[str],
-    pos_A: FloatArray,
-    charge: int,
-    xc: str,
-    basis: str,
-    env_positions: FloatArray | None,
-    env_charges: FloatArray | None,
-    conv_tol: float,
-    max_cycle: int,
-) -> Any:
-    from pyscf import dft, gto, qmmm, scf
-    from pyscf.data import elements
-
-    try:
-        n_el = sum(int(elements.charge(sym)) for sym in symbols) - int(charge)
-    except Exception as exc:  # unknown element symbol
-        raise InputError(f"unknown element symbol in {list(symbols)!r}: {exc}") from None
-    if n_el % 2:
+def _closed_shell_scf(symbols: Sequence[str], pos_A: FloatArray, charge: int, method: Method,
+                      embedding: Embedding) -> Any:
+    if n_electrons(symbols, charge) % 2:
         raise InputError(
-            f"the fragment {''.join(symbols)} with charge {charge} has {n_el} electrons; "
+            f"the fragment {''.join(symbols)} with charge {charge} has {n_electrons(symbols, charge)} electrons; "
             "transfer_integrals needs closed-shell monomers (an even electron count)."
         )
-    mol = gto.M(
-        atom=[(s, tuple(p)) for s, p in zip(symbols, pos_A)],
-        basis=basis,
-        unit="Angstrom",
-        charge=charge,
-        spin=0,
-        verbose=0,
-    )
-    if xc.lower() in ("hf", "rhf"):
-        mf = scf.RHF(mol)
-    else:
-        mf = dft.RKS(mol)
-        mf.xc = xc
-    if env_positions is not None and env_positions.shape[0]:
-        mf = qmmm.mm_charge(mf, env_positions, env_charges, unit="Angstrom")
-    mf.conv_tol = conv_tol
-    mf.max_cycle = max_cycle
-    mf.kernel()
+    mol = build_molecule(symbols, pos_A, method, charge=charge)
+    mf = make_scf(mol, method, embedding)
+    run_scf(mf, method)
     return mf
 
 
@@ -202,15 +175,12 @@ def transfer_integrals(
     pos_A: npt.ArrayLike,
     symbols_B: Sequence[str],
     pos_B: npt.ArrayLike,
+    method: Method,
     *,
-    xc: str = "b3lyp",
-    basis: str = "6-31g",
     env_positions: npt.ArrayLike | None = None,
     env_charges: npt.ArrayLike | None = None,
     charge_A: int = 0,
     charge_B: int = 0,
-    conv_tol: float = 1e-9,
-    max_cycle: int = 100,
     raise_on_failure: bool = False,
 ) -> TransferIntegrals:
     """Hole and electron transfer integrals of a dimer, projective method.
@@ -221,17 +191,15 @@ def transfer_integrals(
         Element symbols of the two molecules.
     pos_A, pos_B : array_like, shape (n_A, 3), (n_B, 3), Å
         Positions in one frame (B already at its minimum image next to A).
-    xc : str
-        PySCF functional name, or ``'hf'`` for Hartree-Fock.
-    basis : str
-        PySCF basis name, used for the monomers and the dimer.
+    method : clusterlab.Method
+        Functional, basis, density fitting, grid, SCF thresholds and the
+        Gaussian width of the environment charges, for the monomers and the
+        dimer (its excited-state fields are not used).
     env_positions : array_like, shape (n_env, 3), Å, optional
         Point charges around the pair (the same for all three SCF runs).
     env_charges : array_like, shape (n_env,), e, optional
     charge_A, charge_B : int
         Net charges of the closed-shell monomers (usually 0).
-    conv_tol : float, Hartree
-    max_cycle : int
     raise_on_failure : bool
         Raise :class:`~clusterlab.errors.ConvergenceError` instead of
         returning ``converged=False``.
@@ -252,13 +220,15 @@ def transfer_integrals(
     >>> import numpy as np
     >>> h2 = np.array([[0, 0, -0.37], [0, 0, 0.37]])
     >>> t = transfer_integrals(["H", "H"], h2, ["H", "H"], h2 + [3.0, 0, 0],
-    ...                        xc="hf", basis="sto-3g")
+    ...                        Method(xc="hf", basis="sto-3g"))
     >>> t.converged and abs(t.j_hole_eV) > 0
     True
     """
 
     pa = _check_molecule("pos_A", symbols_A, pos_A)
     pb = _check_molecule("pos_B", symbols_B, pos_B)
+    if not isinstance(method, Method):
+        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__} ({method!r}).")
     if env_positions is None:
         if env_charges is not None:
             raise InputError("env_charges given without env_positions.")
@@ -278,15 +248,16 @@ def transfer_integrals(
         raise InputError(
             f"an atom of A is {dmin:.3f} Å from an atom of B; the molecules overlap (need > 0.5 Å)."
         )
-    args = (xc, basis, ep, eq, conv_tol, max_cycle)
-    mfA = _run_scf(list(symbols_A), pa, charge_A, *args)
-    mfB = _run_scf(list(symbols_B), pb, charge_B, *args)
-    mfD = _run_scf(list(symbols_A) + list(symbols_B), both, charge_A + charge_B, *args)
+    emb = VACUUM if ep is None else Embedding(ep, eq)
+    with omp_threads(method.threads):
+        mfA = _closed_shell_scf(list(symbols_A), pa, charge_A, method, emb)
+        mfB = _closed_shell_scf(list(symbols_B), pb, charge_B, method, emb)
+        mfD = _closed_shell_scf(list(symbols_A) + list(symbols_B), both, charge_A + charge_B, method, emb)
     converged = bool(mfA.converged and mfB.converged and mfD.converged)
     if raise_on_failure and not converged:
         raise ConvergenceError(
             f"SCF did not converge (A: {mfA.converged}, B: {mfB.converged}, dimer: {mfD.converged}) "
-            f"with xc={xc!r}, basis={basis!r}; raise max_cycle or check the geometry."
+            f"with {method.xc}/{method.basis}; raise max_cycle or check the geometry."
         )
     naoA = mfA.mol.nao_nr()
     naoD = mfD.mol.nao_nr()
@@ -313,8 +284,8 @@ def transfer_integrals(
         hole=project(hA, hB),
         electron=project(hA + 1, hB + 1),
         converged=converged,
-        xc=xc,
-        basis=basis,
+        xc=method.xc,
+        basis=method.basis,
         n_env_charges=0 if ep is None else int(ep.shape[0]),
         dimer_mo_energy_eV=tuple(float(eD[k]) for k in sel),
         monomer_homo_eV=(float(mfA.mo_energy[hA] * HARTREE_TO_EV), float(mfB.mo_energy[hB] * HARTREE_TO_EV)),

@@ -5,8 +5,9 @@ States and their densities:
 ``S0``
     ground-state SCF density (restricted, closed shell).
 ``S1``, ``T1``
-    **unrelaxed** excited-state densities: ground density plus the TDA
-    difference density built from the amplitudes of PySCF's ``mf.TDA()``,
+    **unrelaxed** excited-state densities: ground density plus the
+    difference density built from the amplitudes of the lowest state of the
+    method's response model (the engine's solver, :mod:`clusterlab.qm.calc`),
     :math:`\\Delta D = C_v \\hat X^{\\mathsf T}\\hat X C_v^{\\mathsf T} - C_o \\hat X \\hat X^{\\mathsf T} C_o^{\\mathsf T}`
     (:math:`\\hat X` normalised to 1; spin-summed, the same form for singlet
     and triplet). Orbital relaxation (the Z-vector term) is left out, which
@@ -35,56 +36,19 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
+from ..electrostatics.espfit import Restraint, esp_rrms, fit_esp_charges, fit_points
 from ..errors import ConvergenceError, InputError
-from ..versions import software_versions
 from ..units import AU_DIPOLE_TO_DEBYE, BOHR_A, DEBYE_E_A, HARTREE_TO_EV
-from .espfit import (
-    Restraint,
-    cubic_points,
-    esp_on_points,
-    esp_rrms,
-    fit_esp_charges,
-    shell_points,
-    transition_density_ao,
-)
+from ..versions import software_versions
+from .calc import VACUUM, calculate, ion_states, n_electrons, omp_threads
+from .esp import esp_on_points, transition_density_ao
+from .method import Method
 
 FloatArray = npt.NDArray[np.float64]
 KNOWN_STATES = ("S0", "S1", "T1", "cation", "anion")
 TRANSITION_LABEL = "S0->S1"
 
-__all__ = ["StateCharges", "state_charges", "parse_method", "KNOWN_STATES"]
-
-
-def parse_method(method_like: Any) -> tuple[str, str]:
-    """``(xc, basis)`` from a method description.
-
-    Accepts any object with ``.xc`` and ``.basis`` attributes, a mapping with
-    those keys, a pair ``(xc, basis)`` or a string ``"xc/basis"``
-    (``"hf/..."`` means Hartree-Fock).
-
-    Raises
-    ------
-    InputError
-        If neither form fits.
-    """
-    if hasattr(method_like, "xc") and hasattr(method_like, "basis"):
-        return str(method_like.xc), str(method_like.basis)
-    if isinstance(method_like, dict) and "xc" in method_like and "basis" in method_like:
-        return str(method_like["xc"]), str(method_like["basis"])
-    if isinstance(method_like, str) and method_like.count("/") == 1:
-        xc, basis = method_like.split("/")
-        if xc.strip() and basis.strip():
-            return xc.strip(), basis.strip()
-    if isinstance(method_like, (tuple, list)) and len(method_like) == 2:
-        return str(method_like[0]), str(method_like[1])
-    raise InputError(
-        f"{method_like!r} is not a method description. Use an object with .xc and .basis, "
-        "a dict {'xc':..., 'basis':...}, a pair (xc, basis) or a string like 'b3lyp/6-31g'."
-    )
-
-
-def _is_hf(xc: str) -> bool:
-    return xc.strip().lower() in ("hf", "rhf", "uhf", "scf")
+__all__ = ["StateCharges", "state_charges", "KNOWN_STATES"]
 
 
 @dataclass
@@ -94,7 +58,8 @@ class StateCharges:
     Attributes
     ----------
     symbols : list of str; positions_A : ndarray (n, 3)
-    method : str ("xc/basis")
+    method : str
+        ``"xc/basis"`` of the fit (the whole method is in ``method_settings``).
     states : tuple of str
     charges_e : dict state -> ndarray (n,)
     total_charge_e : dict state -> float (imposed in the fit)
@@ -134,6 +99,7 @@ class StateCharges:
     density_kind: str = "S1/T1: unrelaxed TDA difference density; ions: ΔSCF UKS"
     n_points: int = 0
     versions: dict[str, str] = field(default_factory=dict)
+    method_settings: dict[str, Any] = field(default_factory=dict)
 
     def difference(self, state: str) -> FloatArray:
         """``q_state - q_S0`` (e), the charges that drive an environment shift."""
@@ -167,6 +133,7 @@ class StateCharges:
             "transition_dipole_fit_D": opt(self.transition_dipole_fit_D),
             "transition_dipole_qm_D": opt(self.transition_dipole_qm_D),
             "density_kind": self.density_kind, "n_points": self.n_points, "versions": self.versions,
+            "method_settings": self.method_settings,
         })
 
     @classmethod
@@ -183,13 +150,15 @@ class StateCharges:
             transition_dipole_fit_D=opt(d["transition_dipole_fit_D"]),
             transition_dipole_qm_D=opt(d["transition_dipole_qm_D"]),
             density_kind=d["density_kind"], n_points=d["n_points"], versions=d["versions"],
+            method_settings=d.get("method_settings", {}),
         )
 
 
-def _tda_difference_density(mf: Any, x_ia: FloatArray) -> FloatArray:
-    c = mf.mo_coeff
-    occ = mf.mo_occ > 0
-    co, cv = c[:, occ], c[:, ~occ]
+def difference_density(mo_coeff: FloatArray, mo_occ: FloatArray, x_ia: FloatArray) -> FloatArray:
+    """Unrelaxed spin-summed difference density (AO) of a closed-shell
+    excitation with amplitudes ``x_ia`` (any normalisation)."""
+    occ = np.asarray(mo_occ) > 0
+    co, cv = mo_coeff[:, occ], mo_coeff[:, ~occ]
     xn = x_ia / np.sqrt(np.sum(x_ia * x_ia))
     return cv @ (xn.T @ xn) @ cv.T - co @ (xn @ xn.T) @ co.T
 
@@ -197,7 +166,7 @@ def _tda_difference_density(mf: Any, x_ia: FloatArray) -> FloatArray:
 def state_charges(
     symbols: Sequence[str],
     positions_A: npt.ArrayLike,
-    method_like: Any,
+    method: Method,
     states: Sequence[str] = KNOWN_STATES,
     transition: bool = True,
     *,
@@ -206,21 +175,22 @@ def state_charges(
     points_A: npt.ArrayLike | None = None,
     restraint: Restraint | None = None,
     equivalent: Any = None,
-    conv_tol: float = 1e-9,
-    max_cycle: int = 100,
-    grid_level: int = 3,
-    density_fit: bool = False,
     raise_on_fail: bool = False,
-    verbose: int = 0,
     **grid_kw: Any,
 ) -> StateCharges:
     """ESP charges of a closed-shell molecule in several electronic states.
+
+    Every QM step goes through the engine's door (:mod:`clusterlab.qm.calc`)
+    with ``method``'s settings, exactly as the embedded calculations: the SCF
+    (grid, density fitting, fallback), the lowest singlet and triplet from the
+    method's response model (TDA by classic Davidson with extra roots, sTDA,
+    refined sTDA, ...) on its response grid, and the ions by ΔSCF.
 
     Parameters
     ----------
     symbols : sequence of str, length n
     positions_A : array_like, shape (n, 3), Å
-    method_like : method description (see :func:`parse_method`)
+    method : clusterlab.Method
     states : sequence of {"S0", "S1", "T1", "cation", "anion"}
     transition : bool
         Also fit S0→S1 transition charges.
@@ -228,14 +198,9 @@ def state_charges(
         Ground-state charge (closed shell required).
     grid, points_A, restraint, equivalent, **grid_kw
         Fit options (see :mod:`clusterlab.electrostatics.espfit`).
-    conv_tol, max_cycle : SCF settings.
-    grid_level : int
-        DFT integration grid level (PySCF ``grids.level``) of every SCF and TDA.
-    density_fit : bool
-        Density fitting (PySCF default auxiliary basis) for every SCF and TDA.
     raise_on_fail : bool
-        Raise :class:`~clusterlab.errors.ConvergenceError` when an SCF or TDA
-        step does not converge (default: flag it in ``converged``).
+        Raise :class:`~clusterlab.errors.ConvergenceError` when an SCF or
+        response step does not converge (default: flag it in ``converged``).
 
     Returns
     -------
@@ -244,108 +209,76 @@ def state_charges(
     Raises
     ------
     InputError
-        Unknown state, bad method description, or an open-shell ground state.
+        Unknown state, a method that is not a :class:`~clusterlab.Method`, or
+        an open-shell ground state.
     ConvergenceError
         Only with ``raise_on_fail=True``.
     """
-    import pyscf  # noqa: F401
-    from pyscf import dft, gto, scf
-
+    if not isinstance(method, Method):
+        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__} ({method!r}). "
+                         "Use e.g. Method.preset('fast-refined') or Method(xc='b3lyp', basis='6-31g').")
     bad = [s for s in states if s not in KNOWN_STATES]
     if bad:
         raise InputError(f"unknown state(s) {bad}; valid states are {list(KNOWN_STATES)}.")
-    xc, basis = parse_method(method_like)
     pos = np.atleast_2d(np.asarray(positions_A, dtype=np.float64))
     syms = [str(s) for s in symbols]
     if len(syms) != len(pos):
         raise InputError(f"{len(syms)} symbols for {len(pos)} positions; they must match.")
-    atom = [(s, tuple(p)) for s, p in zip(syms, pos)]
-    mol = gto.M(atom=atom, basis=basis, charge=charge, spin=0, unit="Angstrom", verbose=verbose)
-    if mol.nelectron % 2:
+    if n_electrons(syms, charge) % 2:
         raise InputError(f"the ground state with charge {charge} has an odd electron count; "
                          "state_charges needs a closed-shell ground state.")
-
-    def setup(mf: Any) -> Any:
-        mf.conv_tol, mf.max_cycle = conv_tol, max_cycle
-        if hasattr(mf, "grids"):
-            mf.grids.level = grid_level
-        return mf.density_fit() if density_fit else mf
-
-    def rks(m: Any):
-        return setup(scf.RHF(m) if _is_hf(xc) else dft.RKS(m, xc=xc))
-
-    def uks(m: Any):
-        return setup(scf.UHF(m) if _is_hf(xc) else dft.UKS(m, xc=xc))
+    label = f"{method.xc}/{method.basis}"
 
     def check(ok: bool, what: str) -> bool:
         if not ok and raise_on_fail:
-            raise ConvergenceError(f"{what} did not converge with {xc}/{basis}; "
-                                   "raise max_cycle or loosen conv_tol.")
+            raise ConvergenceError(f"{what} did not converge with {label}; raise max_cycle or loosen conv_tol.")
         return bool(ok)
 
-    if points_A is not None:
-        pts = np.atleast_2d(np.asarray(points_A, float))
-    elif grid == "shells":
-        pts = shell_points(syms, pos, **grid_kw)
-    elif grid == "cubic":
-        pts = cubic_points(syms, pos, **grid_kw)
-    else:
-        raise InputError(f"{grid!r} is an invalid grid. Use 'shells' or 'cubic'.")
-
+    pts = np.atleast_2d(np.asarray(points_A, float)) if points_A is not None else fit_points(syms, pos, grid, **grid_kw)
+    want_s1 = "S1" in states or transition
+    n_states = {"singlet": 1 if want_s1 else 0, "triplet": 1 if "T1" in states else 0}
+    with omp_threads(method.threads):
+        gs = calculate(syms, pos, method, VACUUM, charge=charge, n_states=n_states)
+        conv0 = check(gs.converged, "ground-state SCF")
+        ions = {}
+        wanted_ions = [s for s in ("cation", "anion") if s in states]
+        if wanted_ions:
+            ions = ion_states(syms, pos, method, VACUUM, neutral=gs, charge=charge, ions=wanted_ions,
+                              keep_density=True)
+    mol = gs.mol
     z = mol.atom_charges().astype(float)
     centre_A = (z @ pos) / z.sum()
     with mol.with_common_orig(centre_A / BOHR_A):
         r_ints = mol.intor_symmetric("int1e_r", comp=3)
 
-    def qm_dipole_D(dm: FloatArray, nuclei: bool = True) -> FloatArray:
-        el = -np.einsum("xij,ji->x", r_ints, dm)
-        if nuclei:
-            el = el + z @ ((pos - centre_A) / BOHR_A)
-        return el * AU_DIPOLE_TO_DEBYE
+    def qm_dipole_D(dm: FloatArray) -> FloatArray:
+        return (-np.einsum("xij,ji->x", r_ints, dm) + z @ ((pos - centre_A) / BOHR_A)) * AU_DIPOLE_TO_DEBYE
 
-    mf0 = rks(mol).run()
-    conv0 = check(mf0.converged, "ground-state SCF")
-    dm0 = mf0.make_rdm1()
-    e0 = float(mf0.e_tot)
-
+    dm0 = gs.dm
+    e0 = float(gs.energy_Eh)
     dms: dict[str, FloatArray] = {}
     qtot: dict[str, float] = {}
     energy: dict[str, float] = {}
     converged: dict[str, bool] = {}
     if "S0" in states:
         dms["S0"], qtot["S0"], energy["S0"], converged["S0"] = dm0, float(charge), 0.0, conv0
-
     x_s1 = None
-    td_s = None
-    if "S1" in states or transition:
-        td_s = mf0.TDA()
-        td_s.nstates = 3
-        td_s.singlet = True
-        td_s.kernel()
-        ok = conv0 and check(bool(np.all(td_s.converged)), "singlet TDA")
-        x_s1 = np.asarray(td_s.xy[0][0])
-        if "S1" in states:
-            dms["S1"] = dm0 + _tda_difference_density(mf0, x_s1)
-            qtot["S1"], energy["S1"], converged["S1"] = float(charge), float(td_s.e[0]) * HARTREE_TO_EV, ok
-    if "T1" in states:
-        td_t = mf0.TDA()
-        td_t.nstates = 3
-        td_t.singlet = False
-        td_t.kernel()
-        ok = conv0 and check(bool(np.all(td_t.converged)), "triplet TDA")
-        dms["T1"] = dm0 + _tda_difference_density(mf0, np.asarray(td_t.xy[0][0]))
-        qtot["T1"], energy["T1"], converged["T1"] = float(charge), float(td_t.e[0]) * HARTREE_TO_EV, ok
-    for name, dq in (("cation", +1), ("anion", -1)):
-        if name not in states:
+    for st, kind in (("S1", "singlet"), ("T1", "triplet")):
+        rs = gs.states.get(kind)
+        if rs is None or not (st in states or (st == "S1" and transition)):
             continue
-        mol_i = gto.M(atom=atom, basis=basis, charge=charge + dq, spin=1, unit="Angstrom", verbose=verbose)
-        mf_i = uks(mol_i).run()
-        ok = check(mf_i.converged, f"{name} ΔSCF")
-        dm = np.asarray(mf_i.make_rdm1())
-        dms[name] = dm[0] + dm[1]
-        qtot[name] = float(charge + dq)
-        energy[name] = (float(mf_i.e_tot) - e0) * HARTREE_TO_EV
-        converged[name] = ok
+        ok = conv0 and check(bool(rs.converged[0]), f"{kind} response")
+        x = np.asarray(rs.amplitudes[0])
+        if st == "S1":
+            x_s1 = x
+        if st in states:
+            dms[st] = dm0 + difference_density(gs.mo_coeff, gs.mo_occ, x)
+            qtot[st], energy[st], converged[st] = float(charge), float(rs.energies_Eh[0]) * HARTREE_TO_EV, ok
+    for name, ion in ions.items():
+        dms[name] = ion.dm
+        qtot[name] = float(ion.charge)
+        energy[name] = (ion.energy_Eh - e0) * HARTREE_TO_EV
+        converged[name] = check(ion.converged, f"{name} ΔSCF")
 
     charges, dip_fit, dip_qm, rrms = {}, {}, {}, {}
     order = [s for s in KNOWN_STATES if s in states]
@@ -359,16 +292,16 @@ def state_charges(
 
     tq = tfit = tqm = None
     if transition and x_s1 is not None:
-        tdm = transition_density_ao(mf0, x_s1)
+        tdm = transition_density_ao(gs.mf, x_s1)
         v = esp_on_points(mol, tdm, pts, include_nuclei=False)
         tq = fit_esp_charges(syms, pos, pts, v, 0.0, restraint=None, equivalent=equivalent)
         tfit = (tq @ (pos - centre_A)) / DEBYE_E_A
-        tqm = np.asarray(td_s.transition_dipole()[0]) * AU_DIPOLE_TO_DEBYE
+        tqm = np.asarray(gs.states["singlet"].transition_dipoles_au[0]) * AU_DIPOLE_TO_DEBYE
 
     return StateCharges(
-        symbols=syms, positions_A=pos, method=f"{xc}/{basis}", states=tuple(order),
+        symbols=syms, positions_A=pos, method=label, states=tuple(order),
         charges_e=charges, total_charge_e=qtot, dipole_fit_D=dip_fit, dipole_qm_D=dip_qm,
         rrms=rrms, energy_eV=energy, converged=converged, transition_charges_e=tq,
         transition_dipole_fit_D=tfit, transition_dipole_qm_D=tqm, n_points=len(pts),
-        versions=software_versions(),
+        versions=software_versions(), method_settings=method.to_dict(),
     )
