@@ -18,14 +18,14 @@ from MDAnalysis.coordinates.memory import MemoryReader
 
 from clusterlab import ResultStore, film_from_universe
 from clusterlab.errors import InputError
-from clusterlab.transport.export import pair_table
-from clusterlab.transport.transfer import transfer_integrals
-from clusterlab.transport.transfer_tasks import (
+from clusterlab.export import pair_table
+from clusterlab.export.transfer_tasks import (
     TRANSFER_KIND,
     compute_transfer_integrals,
     pair_geometry,
     transfer_task,
 )
+from clusterlab.transport.transfer import transfer_integrals
 
 pytest.importorskip("pyscf")
 
