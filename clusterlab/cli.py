@@ -159,7 +159,7 @@ def _dispatch(args: argparse.Namespace) -> int:
         return 0
     if args.command == "export":
         from .film import load_film
-        from .transport.export import export_study
+        from .export import export_study
 
         film = load_film(args.topology, args.trajectory or None, charges=args.charges)
         sample = _sample_from_store(args.store)

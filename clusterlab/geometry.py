@@ -7,6 +7,8 @@ Universes.
 
 from __future__ import annotations
 
+from typing import Sequence
+
 import numpy as np
 import numpy.typing as npt
 from MDAnalysis.lib.mdamath import triclinic_vectors
@@ -169,3 +171,55 @@ def lattice_translations(h: FloatArray, cutoff_A: float) -> npt.NDArray[np.int64
     rng = [np.arange(-m, m + 1) for m in n_max]
     grid = np.stack(np.meshgrid(*rng, indexing="ij"), axis=-1).reshape(-1, 3)
     return grid.astype(np.int64)
+
+
+def unwrap_over_frames(
+    points_A: npt.ArrayLike,
+    boxes: Sequence[npt.ArrayLike | None],
+) -> FloatArray:
+    """Points made continuous across frames by consecutive-frame minimum images.
+
+    ``u(0) = p(0)`` and ``u(f) = u(f-1) + minimum_image(p(f) - p(f-1), box(f))``;
+    a frame without a box starts again from its own points (``u(f) = p(f)``).
+    Exact as long as no point moves by more than half the smallest box width
+    between consecutive frames (true for MD snapshots of a solid film).
+
+    Parameters
+    ----------
+    points_A : array_like, shape (n_frames, n, 3), Å
+        Positions of the same ``n`` points in each frame (e.g. molecule
+        centroids wrapped into the primary cell).
+    boxes : sequence of length n_frames
+        ``[lx, ly, lz, alpha, beta, gamma]`` (or a (3, 3) matrix) or ``None``
+        per frame.
+
+    Returns
+    -------
+    ndarray, shape (n_frames, n, 3), Å
+
+    Raises
+    ------
+    InputError
+        For a wrong shape, non-finite points or a box count that does not
+        match the frames.
+
+    Examples
+    --------
+    >>> p = [[[9.5, 0, 0]], [[0.5, 0, 0]]]  # a point crossing the x face of a 10 Å box
+    >>> unwrap_over_frames(p, [[10, 10, 10, 90, 90, 90]] * 2)[:, 0, 0].tolist()
+    [9.5, 10.5]
+    """
+    p = np.asarray(points_A, dtype=np.float64)
+    if p.ndim != 3 or p.shape[-1] != 3:
+        raise InputError(f"points_A must have shape (n_frames, n, 3); got {p.shape}.")
+    if not np.all(np.isfinite(p)):
+        raise InputError("points_A must be finite.")
+    if len(boxes) != p.shape[0]:
+        raise InputError(f"boxes must hold one box (or None) per frame: {p.shape[0]} frames, {len(boxes)} boxes.")
+    out = np.empty_like(p)
+    for f in range(p.shape[0]):
+        if f == 0 or boxes[f] is None:
+            out[f] = p[f]
+        else:
+            out[f] = out[f - 1] + minimum_image(p[f] - p[f - 1], boxes[f])
+    return out

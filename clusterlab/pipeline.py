@@ -122,7 +122,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         model_section(rep, outcome.model, n_conformers=m["n_conformers"], response=m["response"])
 
     if "export" in present:
-        from .transport.export import export_study
+        from .export import export_study
 
         e = study["export"]
         folder = e["folder"] if os.path.isabs(e["folder"]) else os.path.join(rep.folder, e["folder"])

@@ -11,6 +11,7 @@ import scipy.constants as sc
 from clusterlab.errors import InputError
 from clusterlab.transport.couplings import (
     orientation_factor,
+    pair_transition_charge_couplings,
     point_dipole_coupling,
     transition_charge_coupling,
 )
@@ -179,3 +180,41 @@ def test_errors():
         transition_charge_coupling([[0, 0, 0]], [1.0, 2.0], [[1.0, 0, 0]], [1.0])
     with pytest.raises(InputError, match="coincides"):
         transition_charge_coupling([[0, 0, 0]], [1.0], [[0, 0, 0]], [1.0])
+
+
+def test_pair_transition_charge_couplings_match_the_one_pair_sum():
+    # Reference: transition_charge_coupling (a direct Coulomb double sum, checked
+    # above against Coulomb's law) on each pair, with j's copy translated by hand.
+    # Molecules of different sizes and with interleaved atoms exercise the padding.
+    rng = np.random.default_rng(3)
+    sizes = [3, 5, 2, 4]
+    mol = rng.permutation(np.repeat(np.arange(4), sizes))
+    cent = rng.uniform(0, 20, size=(4, 3))
+    pos = cent[mol] + rng.normal(scale=0.8, size=(mol.size, 3))
+    q = rng.normal(scale=0.1, size=mol.size)
+    i, j = np.array([0, 0, 1, 2, 3]), np.array([1, 2, 3, 3, 0])
+    d = rng.normal(size=(5, 3))
+    d = 7.0 * d / np.linalg.norm(d, axis=1)[:, None]
+    got = pair_transition_charge_couplings(pos, q, mol, cent, i, j, d, n=1.3)
+    for p in range(5):
+        a, b = np.flatnonzero(mol == i[p]), np.flatnonzero(mol == j[p])
+        pb = pos[b] + (cent[i[p]] + d[p] - cent[j[p]])
+        ref = transition_charge_coupling(pos[a], q[a], pb, q[b], n=1.3)
+        assert got[p] == pytest.approx(ref, rel=1e-12, abs=1e-15)
+    assert pair_transition_charge_couplings(pos, q, mol, cent, [], [], np.zeros((0, 3))).shape == (0,)
+
+
+def test_pair_transition_charge_couplings_reject_bad_input():
+    pos, mol, cent = np.zeros((2, 3)) + [[0, 0, 0], [0, 0, 1.0]], [0, 1], [[0, 0, 0], [0, 0, 1.0]]
+    with pytest.raises(InputError, match="one entry per atom"):
+        pair_transition_charge_couplings(pos, [0.1], mol, cent, [0], [1], [[5.0, 0, 0]])
+    with pytest.raises(InputError, match="charges_e must be finite"):
+        pair_transition_charge_couplings(pos, [np.nan, 0.1], mol, cent, [0], [1], [[5.0, 0, 0]])
+    with pytest.raises(InputError, match="same pairs"):
+        pair_transition_charge_couplings(pos, [0.1, 0.1], mol, cent, [0, 1], [1], [[5.0, 0, 0]])
+    with pytest.raises(InputError, match="molecule ids in 0..1"):
+        pair_transition_charge_couplings(pos, [0.1, 0.1], mol, cent, [0], [2], [[5.0, 0, 0]])
+    with pytest.raises(InputError, match="refractive index"):
+        pair_transition_charge_couplings(pos, [0.1, 0.1], mol, cent, [0], [1], [[5.0, 0, 0]], n=-1.0)
+    with pytest.raises(InputError, match="coincides"):
+        pair_transition_charge_couplings(pos, [0.1, 0.1], mol, cent, [0], [1], [[0, 0, 0.0]])

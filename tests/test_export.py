@@ -24,11 +24,13 @@ from MDAnalysis.lib.mdamath import triclinic_vectors
 from clusterlab import film_from_universe
 from clusterlab.electrostatics.sitemodel import StateChargeSet, film_site_energies
 from clusterlab.errors import InputError
+from clusterlab.geometry import unwrap_over_frames
 from clusterlab.transport import point_dipole_coupling, run_kmc
-from clusterlab.transport.export import (
+from clusterlab.export import (
     NO_SOURCE,
     column_info,
     export_study,
+    film_model_input,
     graph_from_export,
     hopping_rates,
     pair_table,
@@ -179,6 +181,26 @@ def test_unwrapped_centroids_are_continuous_across_the_boundary(box):
     assert np.ptp(frac[:, 0, 0]) > 0.5  # ...so the wrapped x jumps, the unwrapped does not
     unw = t[["x_unwrapped_A", "y_unwrapped_A", "z_unwrapped_A"]].to_numpy().reshape(3, 2, 3)
     assert np.allclose(unw, u)
+
+
+def test_unwrap_over_frames_follows_a_random_walk_through_the_faces():
+    # truth: a random walk with steps well below half the box; the input is the
+    # walk wrapped into the cell; the kernel gives back the walk exactly
+    rng = np.random.default_rng(2)
+    box = [8.0, 9.0, 10.0, 90, 90, 90]
+    walk = np.cumsum(rng.normal(scale=1.0, size=(40, 5, 3)), axis=0) + 4.0
+    wrapped = walk % np.array(box[:3])
+    u = unwrap_over_frames(wrapped, [box] * 40)
+    assert np.allclose(u, walk - (walk[0] - wrapped[0]), atol=1e-9)
+    assert np.ptp(walk[:, :, 0]) > 8.0  # the walk really crosses the faces
+    # a frame without a box starts again from its own points
+    again = unwrap_over_frames(wrapped, [box] * 20 + [None] + [box] * 19)
+    assert np.allclose(again[20], wrapped[20]) and np.allclose(again[:20], u[:20])
+    assert np.allclose(unwrap_over_frames(wrapped, [None] * 40), wrapped)
+    with pytest.raises(InputError, match="one box"):
+        unwrap_over_frames(wrapped, [box])
+    with pytest.raises(InputError, match="shape"):
+        unwrap_over_frames(wrapped[0], [box])
 
 
 # ---------------------------------------------------------------- pair table
@@ -394,3 +416,73 @@ def test_export_study_takes_transition_charges_from_the_model_attrs(water_film, 
     pairs = pd.read_parquet(paths["pairs_parquet"])
     ref = pair_table(water_film, 0, 4.5, transition_charges=charge_set)
     assert np.allclose(pairs[pairs.frame == 0].V_charges_eV, ref.V_charges_eV)
+
+
+# ---------------------------------------------------------------- film model input
+class _FilmModelResult:
+    """Stands for the film model's result object: table, radius_A, model, charges, to_frame()."""
+
+    def __init__(self, table, radius_A, model, charges):
+        self.table, self.radius_A, self.model, self.charges = table, radius_A, model, charges
+
+    def to_frame(self):
+        return self.table
+
+
+def test_film_model_input_reads_a_result_object_and_the_legacy_table(water_film, model_table, charge_set, tmp_path):
+    plain = pd.DataFrame(model_table)  # a copy without attrs, as pandas leaves after many operations
+    plain.attrs = {}
+    res = _FilmModelResult(plain, 6.0, "charges", charge_set)
+    got = film_model_input(res)
+    assert got.table is plain and got.radius_A == 6.0 and got.label == "charges" and got.charges is charge_set
+    assert got.details["charges_method"] == charge_set.method
+    legacy = film_model_input(model_table)
+    assert legacy.radius_A == 6.0 and legacy.label == model_table.attrs["model"]
+    assert legacy.details["rule"] == model_table.attrs["rule"]
+    # the site table is the same whichever form the model comes in
+    a = site_table(water_film, model=res, vacuum_eV=VACUUM)
+    b = site_table(water_film, model=model_table, vacuum_eV=VACUUM)
+    pd.testing.assert_frame_equal(a, b)
+    assert a.attrs["sources"][0]["label"] == "electrostatic-model:R=6A:charges"
+    # export_study takes the result object's transition charges, as it does from the attrs
+    paths = export_study(water_film, tmp_path, model=res, cutoff_A=4.5, frames=[0])
+    ref = pair_table(water_film, 0, 4.5, transition_charges=charge_set)
+    assert np.allclose(pd.read_parquet(paths["pairs_parquet"]).V_charges_eV, ref.V_charges_eV)
+
+
+def test_film_model_input_rejects_a_table_without_attrs_and_other_types(water_film, model_table):
+    plain = model_table.copy()
+    plain.attrs = {}
+    with pytest.raises(InputError, match="DataFrame without the film model's attrs"):
+        film_model_input(plain)
+    with pytest.raises(InputError, match="got dict"):
+        film_model_input({"radius_A": 6.0})
+    with pytest.raises(InputError, match="got list"):
+        site_table(water_film, model=[1, 2])
+    with pytest.raises(InputError, match="lacks the column"):
+        film_model_input(_FilmModelResult(pd.DataFrame({"frame": [0]}), 6.0, "charges", None))
+
+
+# ---------------------------------------------------------------- export_study round trip
+def test_export_study_reads_back_as_written(water_film, model_table, charge_set, tmp_path):
+    # what export_study writes, read back with read_export, equals the tables built
+    # piece by piece with the same settings (Parquet exactly, CSV to round-trip precision)
+    rates = [{"law": "marcus", "carrier": "exciton", "lambda_eV": 0.3, "label": "S1"},
+             {"law": "miller-abrahams", "carrier": "hole", "nu0_per_s": 1e12, "gamma_per_A": 0.5, "label": "h"}]
+    export_study(water_film, tmp_path, sample=_qm_sample(), model=model_table, cutoff_A=4.5,
+                 transition_charges=charge_set, vacuum_eV=VACUUM, rates=rates, metadata={"note": "made-up"})
+    sites = site_table(water_film, qm=_qm_sample(), model=model_table, vacuum_eV=VACUUM)
+    pairs = pd.concat([pair_table(water_film, f, 4.5, transition_charges=charge_set) for f in (0, 1)],
+                      ignore_index=True)
+    for kw in rates:
+        pairs = hopping_rates(sites, pairs, **kw)
+    back = read_export(tmp_path)
+    pd.testing.assert_frame_equal(back.sites, sites)
+    pd.testing.assert_frame_equal(back.pairs, pairs)
+    csv = read_export(tmp_path, prefer="csv")
+    pd.testing.assert_frame_equal(csv.sites, sites, check_dtype=False, check_exact=False, rtol=1e-12)
+    pd.testing.assert_frame_equal(csv.pairs, pairs, check_dtype=False, check_exact=False, rtol=1e-12)
+    assert set(back.metadata["rates"]) == {"S1", "h"} and back.metadata["user"] == {"note": "made-up"}
+    assert [m["kind"] for m in back.metadata["models"]] == ["qm", "electrostatic-model"]
+    model_entry = back.metadata["models"][1]
+    assert model_entry["radius_A"] == 6.0 and model_entry["rule"] == model_table.attrs["rule"]

@@ -18,15 +18,15 @@ from MDAnalysis.coordinates.memory import MemoryReader
 
 from clusterlab import ResultStore, film_from_universe
 from clusterlab.errors import InputError
-from clusterlab.transport.export import pair_table
-from clusterlab.qm.method import Method
-from clusterlab.qm.transfer import transfer_integrals
-from clusterlab.transport.transfer_tasks import (
+from clusterlab.export import pair_table
+from clusterlab.export.transfer_tasks import (
     TRANSFER_KIND,
     compute_transfer_integrals,
     pair_geometry,
     transfer_task,
 )
+from clusterlab.qm.method import Method
+from clusterlab.qm.transfer import transfer_integrals
 
 #: HF/STO-3G with the SCF settings the projective method was written with (no DF, bare charges)
 HF_STO = Method(xc="hf", basis="sto-3g", density_fit=False, charge_smearing_A=0.0)

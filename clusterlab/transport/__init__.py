@@ -1,5 +1,9 @@
-"""Transport kernels: hopping rates, a reference hopping simulation,
-excitonic couplings, charge-transfer integrals and neighbour pairs.
+"""Transport kernels on plain arrays: hopping rates, a reference hopping
+simulation, excitonic couplings and neighbour pairs.
+
+The table-level export (site and pair tables, rates on tables, files) is
+:mod:`clusterlab.export`; the PySCF transfer integrals belong to the quantum
+engine and are not re-exported here.
 
 Sign conventions for site energies and hops are in
 :mod:`clusterlab.transport.rates`.
@@ -7,7 +11,12 @@ Sign conventions for site energies and hops are in
 
 from __future__ import annotations
 
-from .couplings import orientation_factor, point_dipole_coupling, transition_charge_coupling
+from .couplings import (
+    orientation_factor,
+    pair_transition_charge_couplings,
+    point_dipole_coupling,
+    transition_charge_coupling,
+)
 from .hopping import (
     HoppingGraph,
     KMCResult,
@@ -42,30 +51,6 @@ __all__ = [
     "point_dipole_coupling",
     "orientation_factor",
     "transition_charge_coupling",
+    "pair_transition_charge_couplings",
     "neighbour_pairs",
-]
-
-from .export import (  # noqa: E402 - appended: the transport-model export
-    ExportTables,
-    export_study,
-    graph_from_export,
-    hopping_rates,
-    pair_table,
-    read_export,
-    site_table,
-    write_export,
-)
-from .transfer_tasks import compute_transfer_integrals, transfer_task  # noqa: E402
-
-__all__ += [
-    "ExportTables",
-    "site_table",
-    "pair_table",
-    "hopping_rates",
-    "write_export",
-    "read_export",
-    "export_study",
-    "graph_from_export",
-    "transfer_task",
-    "compute_transfer_integrals",
 ]

@@ -661,7 +661,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         """Write the transport-model export (site and pair tables as Parquet and
         CSV with a JSON sidecar; see the README) of the shown sites; returns the paths."""
         from clusterlab.errors import InputError
-        from clusterlab.transport.export import export_study
+        from clusterlab.export import export_study
 
         if not len(self.data):
             raise InputError("nothing to export yet: run a sample or load a store first.")

@@ -36,7 +36,7 @@ __all__ = ["TRANSFER_TASK_FN", "TRANSFER_KIND", "transfer_task", "run_transfer_t
            "compute_transfer_integrals"]
 
 #: import path of the worker function, for the runner
-TRANSFER_TASK_FN = "clusterlab.transport.transfer_tasks:run_transfer_task"
+TRANSFER_TASK_FN = "clusterlab.export.transfer_tasks:run_transfer_task"
 #: task kind in the store
 TRANSFER_KIND = "transfer"
 
@@ -200,7 +200,7 @@ def compute_transfer_integrals(
     ----------
     film : Film
     pairs_df : DataFrame
-        Pairs with columns ``i, j`` (e.g. :func:`~clusterlab.transport.export.pair_table`);
+        Pairs with columns ``i, j`` (e.g. :func:`~clusterlab.export.pairs.pair_table`);
         rows of other frames are dropped when it has a ``frame`` column.
     frame : int
     store : ResultStore or path
