@@ -29,7 +29,7 @@ import time
 import numpy as np
 
 from clusterlab.qm import Method
-from clusterlab.qm.engine import _tdscf_states
+from clusterlab.qm.calc import _tdscf_states
 from clusterlab.qm.stda import stda_response
 from clusterlab.units import HARTREE_TO_EV
 from pyscf import dft, gto, qmmm  # after clusterlab: its BLAS kernel choice applies to both sides

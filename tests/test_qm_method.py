@@ -1,9 +1,11 @@
 """Unit tests of clusterlab.qm.method.Method (no quantum chemistry runs)."""
 
 import json
+import re
 import subprocess
 import sys
 
+import numpy as np
 import pytest
 
 from clusterlab.errors import InputError
@@ -83,3 +85,44 @@ def test_frozen_and_default_smearing_documented():
     assert m.charge_smearing_A == DEFAULT_SMEARING_A == 1.0
     with pytest.raises(Exception):
         m.xc = "pbe"  # type: ignore[misc]
+
+
+@pytest.mark.parametrize("fields, named", [
+    ({"n_singlets": "abc"}, "n_singlets='abc'"),
+    ({"n_singlets": None}, "n_singlets=None"),
+    ({"n_triplets": float("nan")}, "n_triplets=nan"),
+    ({"n_singlets": 2.5}, "n_singlets=2.5"),
+    ({"conv_tol": "tight"}, "conv_tol='tight'"),
+    ({"max_cycle": "many"}, "max_cycle='many'"),
+    ({"grid_level": True}, "grid_level=True"),
+    ({"threads": 0}, "threads=0"),
+])
+def test_wrong_field_types_are_named_input_errors(fields, named):
+    with pytest.raises(InputError, match=re.escape(named)):
+        Method(**fields)
+
+
+def test_numpy_numbers_are_accepted_as_fields():
+    m = Method(n_singlets=np.int64(2), conv_tol=np.float64(1e-8))
+    assert m.n_singlets == 2 and isinstance(m.n_singlets, int) and m.conv_tol == 1e-8
+
+
+def test_preset_and_from_dict_refuse_bad_input_by_name():
+    with pytest.raises(InputError, match=r"\['n_singlet'\].*preset\('draft'"):
+        Method.preset("draft", n_singlet=2)
+    with pytest.raises(InputError, match="needs a dict of fields; got list"):
+        Method.from_dict([1, 2])
+
+
+def test_unknown_basis_or_functional_fails_before_any_calculation():
+    """PySCF's own KeyError for a misspelt basis or functional becomes an
+    InputError naming the value, before any SCF runs."""
+    from clusterlab.qm.calc import check_method
+
+    with pytest.raises(InputError, match="basis='6-31x'.*\\['C', 'H'\\]"):
+        check_method(Method(basis="6-31x"), ["C", "H", "H"])
+    with pytest.raises(InputError, match="xc='b3lpy'"):
+        check_method(Method(xc="b3lpy"), ["C"])
+    with pytest.raises(InputError, match="for element\\(s\\) \\['I'\\]"):
+        check_method(Method(basis="6-31g"), ["C", "I"])
+    check_method(Method(xc="hf", basis="sto-3g"), ["C", "H"])  # fine: no error

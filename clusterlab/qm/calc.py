@@ -118,6 +118,42 @@ def n_electrons(symbols: Sequence[str], charge: int) -> int:
         raise InputError(f"unknown element symbol in {list(symbols)!r}: {exc}") from None
 
 
+def check_method(method: Method, symbols: Sequence[str]) -> None:
+    """Check, before any calculation runs, that PySCF knows ``method``'s
+    functional and has its basis for every element of ``symbols``.
+
+    Raises
+    ------
+    InputError
+        Naming the functional, or the basis and the elements it lacks.
+    """
+    import warnings as _warnings
+
+    from pyscf import gto
+
+    if not method.is_hf:
+        from pyscf.dft import libxc
+
+        try:
+            libxc.parse_xc(method.xc)
+        except Exception:  # noqa: BLE001 - PySCF raises KeyError/ValueError for unknown names
+            raise InputError(f"functional xc={method.xc!r} is not known to PySCF (libxc); use e.g. 'b3lyp', "
+                             "'camb3lyp', 'pbe0', 'wb97x' or 'hf'.") from None
+    missing = []
+    for el in sorted(set(map(str, symbols))):
+        try:
+            with _warnings.catch_warnings():
+                _warnings.simplefilter("ignore")  # PySCF suggests installing basis-set-exchange
+                ok = bool(gto.basis.load(method.basis, el))
+        except Exception:  # noqa: BLE001 - unknown basis name (KeyError) or element (BasisNotFoundError)
+            ok = False
+        if not ok:
+            missing.append(el)
+    if missing:
+        raise InputError(f"basis={method.basis!r} is not available in PySCF for element(s) {missing}; check the "
+                         "spelling (e.g. '6-31g', 'def2-svp', 'cc-pvdz') or pick a basis that covers them.")
+
+
 def build_molecule(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method, *, charge: int = 0,
                    spin: int = 0):
     """A built ``pyscf.gto.Mole`` (Å, the method's basis, quiet).

@@ -34,6 +34,7 @@ from .calc import (
     Embedding,
     WarmStart,
     calculate,
+    check_method,
     ion_states,
     n_electrons,
     omp_threads,
@@ -135,6 +136,7 @@ def _validate(cluster: Cluster, method: Method) -> None:
         raise InputError(f"The QM region has {nel} electrons (qm_charge={cluster.qm_charge}); excited states "
                          "need a closed-shell ground state. Check qm_charge.")
     check_charge_distances(cluster, method.min_charge_distance_A)
+    check_method(method, cluster.qm_symbols)
 
 
 def _guess_parts(guess) -> tuple[Any, Calculation | None]:

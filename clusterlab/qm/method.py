@@ -10,8 +10,11 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
+import numbers
 from dataclasses import dataclass
 from typing import Any
+
+import numpy as np
 
 from ..errors import InputError
 
@@ -62,6 +65,26 @@ _PRESETS: dict[str, tuple[str, dict[str, Any]]] = {
              n_singlets=0, n_triplets=0, excited="tda", charged_states=True),
     ),
 }
+
+
+def _as_int(name: str, v: Any, what: str) -> int:
+    """``v`` as an int, or an InputError naming the field (bools, NaN, text and
+    fractions are refused)."""
+    ok = isinstance(v, numbers.Real) and not isinstance(v, (bool, np.bool_))
+    if ok:
+        try:
+            ok = float(v) == int(v)
+        except (ValueError, OverflowError):  # nan, inf
+            ok = False
+    if not ok:
+        raise InputError(f"{name}={v!r} must be {what}.")
+    return int(v)
+
+
+def _as_float(name: str, v: Any, what: str) -> float:
+    if isinstance(v, (bool, np.bool_)) or not isinstance(v, numbers.Real):
+        raise InputError(f"{name}={v!r} must be {what}.")
+    return float(v)
 
 
 @dataclass(frozen=True)
@@ -151,16 +174,18 @@ class Method:
         set_(self, "excited", excited)
         for name in ("n_singlets", "n_triplets"):
             v = getattr(self, name)
-            if isinstance(v, bool) or int(v) != v or v < 0:
-                raise InputError(f"{name}={v!r} must be a non-negative integer number of states.")
+            what = "a non-negative integer number of states"
+            if _as_int(name, v, what) < 0:
+                raise InputError(f"{name}={v!r} must be {what}.")
             set_(self, name, int(v))
         for name in ("grid_level", "response_grid_level"):
             v = getattr(self, name)
             if v is None and name == "response_grid_level":
                 continue
-            if isinstance(v, bool) or int(v) != v or not 0 <= int(v) <= 9:
-                raise InputError(f"{name}={v!r} must be an integer PySCF grid level from 0 to 9"
-                                 + (" (or None for the SCF grid)." if name == "response_grid_level" else "."))
+            what = ("an integer PySCF grid level from 0 to 9"
+                    + (" (or None for the SCF grid)" if name == "response_grid_level" else ""))
+            if not 0 <= _as_int(name, v, what) <= 9:
+                raise InputError(f"{name}={v!r} must be {what}.")
             set_(self, name, int(v))
         for name in ("density_fit", "charged_states"):
             v = getattr(self, name)
@@ -168,16 +193,17 @@ class Method:
                 raise InputError(f"{name}={v!r} must be True or False.")
         for name, positive in (("charge_smearing_A", False), ("conv_tol", True),
                                ("min_charge_distance_A", False), ("response_conv_tol", True)):
-            v = float(getattr(self, name))
+            what = f"a finite {'positive' if positive else 'non-negative'} number"
+            v = _as_float(name, getattr(self, name), what)
             if not v == v or v < 0 or (positive and v == 0) or v == float("inf"):
                 raise InputError(f"{name}={getattr(self, name)!r} must be a finite "
                                  f"{'positive' if positive else 'non-negative'} number.")
             set_(self, name, v)
-        if isinstance(self.max_cycle, bool) or int(self.max_cycle) != self.max_cycle or self.max_cycle < 1:
+        if _as_int("max_cycle", self.max_cycle, "a positive integer") < 1:
             raise InputError(f"max_cycle={self.max_cycle!r} must be a positive integer.")
         set_(self, "max_cycle", int(self.max_cycle))
         if self.threads is not None:
-            if isinstance(self.threads, bool) or int(self.threads) != self.threads or self.threads < 1:
+            if _as_int("threads", self.threads, "a positive integer or None") < 1:
                 raise InputError(f"threads={self.threads!r} must be a positive integer or None.")
             set_(self, "threads", int(self.threads))
 
@@ -195,6 +221,11 @@ class Method:
         if key not in _PRESETS:
             raise InputError(f"{name!r} is not a method preset. Use one of {', '.join(map(repr, _PRESETS))}.")
         fields = dict(_PRESETS[key][1])
+        names = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(overrides) - names)
+        if unknown:
+            raise InputError(f"Unknown Method field(s) {unknown} in Method.preset({name!r}, ...); valid fields are "
+                             f"{sorted(names)}.")
         fields.update(overrides)
         return cls(**fields)
 
@@ -211,6 +242,8 @@ class Method:
     @classmethod
     def from_dict(cls, data: dict[str, Any]) -> "Method":
         """Inverse of :meth:`to_dict`; unknown keys raise :class:`InputError`."""
+        if not isinstance(data, dict):
+            raise InputError(f"Method.from_dict needs a dict of fields; got {type(data).__name__} ({data!r:.80}).")
         names = {f.name for f in dataclasses.fields(cls)}
         unknown = sorted(set(data) - names)
         if unknown:

@@ -40,7 +40,7 @@ from ..electrostatics.espfit import Restraint, esp_rrms, fit_esp_charges, fit_po
 from ..errors import ConvergenceError, InputError
 from ..units import AU_DIPOLE_TO_DEBYE, BOHR_A, DEBYE_E_A, HARTREE_TO_EV
 from ..versions import software_versions
-from .calc import VACUUM, calculate, ion_states, n_electrons, omp_threads
+from .calc import VACUUM, check_method, calculate, ion_states, n_electrons, omp_threads
 from .esp import esp_on_points, transition_density_ao
 from .method import Method
 
@@ -227,6 +227,7 @@ def state_charges(
     if n_electrons(syms, charge) % 2:
         raise InputError(f"the ground state with charge {charge} has an odd electron count; "
                          "state_charges needs a closed-shell ground state.")
+    check_method(method, syms)
     label = f"{method.xc}/{method.basis}"
 
     def check(ok: bool, what: str) -> bool:

@@ -36,7 +36,7 @@ import numpy.typing as npt
 from ..errors import ConvergenceError, InputError
 from ..units import HARTREE_TO_EV
 from ..versions import software_versions
-from .calc import VACUUM, Embedding, build_molecule, make_scf, n_electrons, omp_threads, run_scf
+from .calc import VACUUM, check_method, Embedding, build_molecule, make_scf, n_electrons, omp_threads, run_scf
 from .method import Method
 
 FloatArray = npt.NDArray[np.float64]
@@ -248,6 +248,7 @@ def transfer_integrals(
         raise InputError(
             f"an atom of A is {dmin:.3f} Å from an atom of B; the molecules overlap (need > 0.5 Å)."
         )
+    check_method(method, list(symbols_A) + list(symbols_B))
     emb = VACUUM if ep is None else Embedding(ep, eq)
     with omp_threads(method.threads):
         mfA = _closed_shell_scf(list(symbols_A), pa, charge_A, method, emb)
