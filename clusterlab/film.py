@@ -402,6 +402,20 @@ class Film:
         self.universe.trajectory[self.check_frame(frame)]
         return None if not self.has_box else np.asarray(self.universe.dimensions, dtype=np.float64).copy()
 
+    def _check_finite(self, frame: int, pos: FloatArray) -> None:
+        """Non-finite coordinates would silently empty every cluster of the
+        frame (no distance is below a radius): refuse them by name."""
+        bad = ~np.isfinite(pos).all(axis=1)
+        if bad.any():
+            atoms = np.flatnonzero(bad)
+            mols = np.unique(self.molecule_of_atom[atoms])
+            raise FilmError(
+                f"frame {frame} of {self.trajectory_paths or self.topology_path!r} has non-finite coordinates "
+                f"(NaN or inf) for {atoms.size} atom(s): atoms {atoms[:10].tolist()}"
+                f"{' ...' if atoms.size > 10 else ''} in molecule(s) {mols[:10].tolist()}"
+                f"{' ...' if mols.size > 10 else ''}. Fix or drop this frame."
+            )
+
     def frame_geometry(self, frame: int = 0, *, periodic: bool = True) -> FrameGeometry:
         """Whole molecules of one frame with centroids in the primary cell (cached)."""
         f = self.check_frame(frame)
@@ -411,6 +425,7 @@ class Film:
             return self._frame_cache[key]
         ts = self.universe.trajectory[f]
         pos = np.asarray(ts.positions, dtype=np.float64).copy()
+        self._check_finite(f, pos)
         box = None
         if periodic:
             if not self.has_box:

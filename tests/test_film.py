@@ -173,3 +173,25 @@ def test_hill_formula():
     u.add_TopologyAttr("charges", [0.0] * len(els))
     film = film_from_universe(u)
     assert list(film.molecules.formula) == ["C2HS", "CO2", "ClHNO"]
+
+
+def test_non_finite_coordinates_are_refused_by_frame_molecule_and_atom():
+    """One NaN coordinate would make every distance test false and strip the
+    environment of every cluster in that frame: it is an error that names
+    the frame, the molecule and the atom."""
+    from MDAnalysis.coordinates.memory import MemoryReader
+
+    from clusterlab import film_from_universe
+    from clusterlab.errors import FilmError
+
+    from conftest import build_water_universe, lattice_centres
+
+    box = np.array([8.0, 8.0, 8.0, 90, 90, 90])
+    u, _ = build_water_universe(lattice_centres(2, 0.1, np.random.default_rng(0)), box, n_frames=2)
+    frames = np.stack([u.trajectory[f].positions.copy() for f in range(2)])
+    frames[1, 7, 2] = np.nan
+    u.load_new(frames, format=MemoryReader, dimensions=np.tile(box.astype(np.float32), (2, 1)))
+    film = film_from_universe(u)
+    film.carve(0, 4.0, frame=0)  # frame 0 is fine
+    with pytest.raises(FilmError, match=r"frame 1 .*atoms \[7\] in molecule\(s\) \[2\]"):
+        film.carve(0, 4.0, frame=1)
