@@ -20,7 +20,7 @@ EV_TO_CM1_SI = sc.e / (sc.h * sc.c * 100)
 
 
 def test_unit_conversion_5034_cm1():
-    # Kasha, Rawls & El-Bayoumi, Pure Appl. Chem. 11, 371 (1965) / REFERENCES.md:
+    # Kasha, Rawls & El-Bayoumi, Pure Appl. Chem. 11, 371 (1965):
     # two 1 D dipoles side by side at 1 nm (kappa = 1) couple by 5.034 cm^-1.
     v = point_dipole_coupling([0, 0, 1.0], [0, 0, 1.0], [10.0, 0, 0])
     assert v * EV_TO_CM1_SI == pytest.approx(5.034, abs=0.001)
@@ -102,7 +102,6 @@ def test_transition_charges_single_pair_exact():
 @pytest.fixture(scope="module")
 def h2_transition():
     """H2 lowest singlet (TDA, HF/6-31G) transition density in the AO basis."""
-    pyscf = pytest.importorskip("pyscf")
     from pyscf import gto, scf, tdscf
 
     mol = gto.M(atom="H 0 0 -0.37; H 0 0 0.37", basis="6-31g", verbose=0)

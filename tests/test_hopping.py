@@ -43,7 +43,8 @@ def test_cubic_lattice_pairs_structure():
 
 
 def test_random_walk_diffusion_exact():
-    # Textbook (REFERENCES.md "random walk"): continuous-time walk on a simple cubic
+    # Textbook random-walk result (common practice; e.g. Einstein's relation
+    # D = <r^2>/(2 d t)): continuous-time walk on a simple cubic
     # lattice with rate k to each of 6 neighbours has <r^2> = 6 k a^2 t, so D = k a^2
     # exactly at every t. The lattice (8 sites/side) is periodic: displacements must
     # be unwrapped across the boundaries for this to hold (walkers cross it ~10 times).

@@ -30,8 +30,7 @@ def water(origin=(0.0, 0.0, 0.0)):
 
 def test_formaldehyde_vacuum_npi_star_against_best_estimates():
     """Schreiber, Silva-Junior, Sauer, Thiel, J. Chem. Phys. 128, 134110
-    (2008), best estimates 1A2 3.88 eV, 3A2 3.50 eV (from memory, see
-    REFERENCES.md). B3LYP response on that set deviates by about 0.2-0.3 eV
+    (2008), best estimates 1A2 3.88 eV, 3A2 3.50 eV (from memory). B3LYP response on that set deviates by about 0.2-0.3 eV
     for singlets and more for triplets (Silva-Junior et al., J. Chem. Phys.
     129, 104103 (2008); from memory) and the geometry here is only close
     to theirs, so the tolerances are 0.3 eV (singlet) and 0.45 eV (triplet).

@@ -476,8 +476,12 @@ def test_validation_against_full_tda():
     # above full-TDA T1 on average (a systematic, documented limitation),
     # (measured: T1 MAD 0.95 eV, max 2.1 eV, always above full TDA). sTDA
     # triplets, and so sTDA ΔEST, are not to be trusted; the README says so.
-    assert d_t.mean() > 0.0
-    assert np.abs(d_t).max() < 2.5
+    # What README states is asserted, with margins for small numerical
+    # differences between machines (BLAS, thread count): every sTDA T1 lies
+    # above full TDA, MAD 0.95 eV (0.75-1.15 accepted), max 2.1 eV (< 2.3).
+    assert np.all(d_t > 0.0)
+    assert 0.75 < np.abs(d_t).mean() < 1.15
+    assert np.abs(d_t).max() < 2.3
 
 
 # --------------------------------------------------------------------------
@@ -537,5 +541,10 @@ def test_refined_model_against_full_tda():
         d_pub = np.array([r_[4] - r_[2] for r_ in rows if r_[1] == kind])
         print(f"{kind}: refined MAD {np.abs(d).mean():.4f} max {np.abs(d).max():.4f}; "
               f"published sTDA MAD {np.abs(d_pub).mean():.3f} max {np.abs(d_pub).max():.3f} eV")
-        assert np.abs(d).mean() < 0.02 and np.abs(d).max() < 0.06
+        # README states S1 MAD 2.2 meV (max 12.5 meV) and T1 MAD 0.5 meV (max
+        # 1.4 meV) on these molecules; the bounds add 50-100 % on the mean and
+        # about 20 % on the maximum for machine-to-machine round-off of a
+        # Rayleigh-Ritz value that is not converged to the root.
+        mad_bound, max_bound = (0.004, 0.015) if kind == "singlet" else (0.001, 0.002)
+        assert np.abs(d).mean() < mad_bound and np.abs(d).max() < max_bound
         assert np.abs(d).mean() < 0.2 * np.abs(d_pub).mean()

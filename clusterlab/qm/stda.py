@@ -72,8 +72,8 @@ STDA_HARDNESS_EH: dict[str, float] = {
 }
 
 #: alpha = ALPHA1 + ALPHA2 a_x, beta = BETA1 + BETA2 a_x
-#: (Grimme, J. Chem. Phys. 138, 244104 (2013); confirmed, see
-#: shared/REFERENCES.md)
+#: (Grimme, J. Chem. Phys. 138, 244104 (2013); checked against that paper's
+#: equations)
 ALPHA1, ALPHA2 = 1.42, 0.48
 BETA1, BETA2 = 0.20, 1.83
 
