@@ -93,17 +93,6 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
-def _sample_from_store(store_path: str):
-    from .store import ResultStore
-    from .study.sample import SiteSample
-
-    st = ResultStore(store_path, readonly=True)
-    df = st.to_frame(kind="excitations")
-    if not len(df):
-        raise ClusterlabError(f"The store {store_path!r} holds no finished site energies.")
-    return SiteSample(table=df)
-
-
 def main(argv: Sequence[str] | None = None) -> int:
     p = _parser()
     args = p.parse_args(argv)
@@ -150,8 +139,9 @@ def _dispatch(args: argparse.Namespace) -> int:
         return 0
     if args.command == "report":
         from .report import ReportWriter, sample_section
+        from .study.sample import SiteSample
 
-        sample = _sample_from_store(args.store)
+        sample = SiteSample.from_store(args.store)
         rep = ReportWriter(args.out, f"clusterlab report of {os.path.basename(args.store)}")
         stats = sample_section(rep, sample, args.quantity or ["S1_eV", "T1_eV", "S1_shift_eV"])
         print(stats.to_string(index=False))
@@ -159,10 +149,11 @@ def _dispatch(args: argparse.Namespace) -> int:
         return 0
     if args.command == "export":
         from .film import load_film
+        from .study.sample import SiteSample
         from .export import export_study
 
         film = load_film(args.topology, args.trajectory or None, charges=args.charges)
-        sample = _sample_from_store(args.store)
+        sample = SiteSample.from_store(args.store, film=film)
         paths = export_study(film, args.out, sample=sample, cutoff_A=args.cutoff, criterion=args.criterion)
         for k, v in paths.items():
             print(f"{k}: {v}")

@@ -14,9 +14,9 @@ Example (every key optional except ``film.topology``)::
     radii = [6.0, 9.0, 12.0]
 
     [sample]
-    molecules = "all"
+    molecules = "all"         # or ids "0-99", a selection "resname GST", a list [0, 5]
     n = 12
-    frames = [0, 10]
+    frames = "0-19:5"         # or a list [0, 10]; ranges include both ends
     radius = 12.0
 
     [runner]
@@ -38,7 +38,8 @@ import sys
 from dataclasses import dataclass
 from typing import Any
 
-from .errors import StudyFileError
+from .errors import InputError, StudyFileError
+from .ranges import is_id_text, parse_frames, parse_ids, parse_radii
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -82,7 +83,8 @@ SCHEMA: dict[str, dict[str, Setting]] = {
     },
     "scan": {
         "molecule": Setting((int,), None, "molecule id of a radius scan (omit the section to skip the scan)"),
-        "radii": Setting((list,), [6.0, 9.0, 12.0, 15.0], "cut radii of the scan (Å)"),
+        "radii": Setting((list, str), [6.0, 9.0, 12.0, 15.0], "cut radii of the scan (Å): a list or a text "
+                                                             "such as '6-15:3' (ends included)"),
         "frame": Setting((int,), 0, "frame of the scan"),
         "rule": Setting((str,), "atom", "carving rule", ("atom", "centroid")),
         "qm_shell": Setting(_num(), 0.0, "QM shell (Å): whole neighbours this close join the QM region"),
@@ -90,19 +92,24 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "tol_eV": Setting(_num(), 0.010, "convergence tolerance (eV)"),
     },
     "sample": {
-        "molecules": Setting((str, list), "all", "'all', an MDAnalysis selection string, or a list of ids"),
+        "molecules": Setting((str, list), "all", "'all', ids such as '0-99, 120' (ends included), an MDAnalysis "
+                                                 "selection string, or a list of ids"),
         "n": Setting((int,), None, "random sub-sample size (omit for all selected)"),
         "seed": Setting((int,), 0, "random seed of the sub-sample"),
-        "frames": Setting((int, list), None, "frame or list of frames (omit for all)"),
-        "radius": Setting(_num(list), 12.0, "cut radius (Å), or a list for the growth of the statistics"),
+        "frames": Setting((int, list, str), None, "frame, list of frames or a text such as '0-19:5' (ends "
+                                                  "included; -1 is the last frame); omit for all"),
+        "radius": Setting(_num(list, str), 12.0, "cut radius (Å), or a list or text such as '6-12:3' for the "
+                                                 "growth of the statistics"),
         "rule": Setting((str,), "atom", "carving rule", ("atom", "centroid")),
         "quantities": Setting((list,), ["S1_eV", "T1_eV", "S1_shift_eV"], "columns to report statistics for"),
     },
     "model": {
         "radius": Setting(_num(), 15.0, "cut radius of the film-wide electrostatic model (Å)"),
-        "frames": Setting((int, list), None, "frames of the film-wide model (omit for all)"),
+        "frames": Setting((int, list, str), None, "frames of the film-wide model: a list or a text such as "
+                                                  "'0-19:5' (omit for all)"),
         "polarization": Setting((bool,), False, "add Thole induced-dipole polarization (charged states)"),
-        "polarize_molecules": Setting((list,), None, "molecule ids to polarize (default all; seconds each)"),
+        "polarize_molecules": Setting((list, str), None, "molecule ids to polarize, a list or a text such as "
+                                                         "'0-9' (default all; seconds each)"),
         "reference_molecule": Setting((int,), 0, "molecule whose geometry the state charges are fitted on"),
         "charges_method": Setting((str,), None, "'xc/basis' of the state-charge fit (default: the study method)"),
         "n_conformers": Setting((int,), 1, "conformer references per molecule type (one QM fit each)"),
@@ -145,11 +152,39 @@ def _check_value(section: str, key: str, value: Any, where: str) -> Any:
     if s.choices is not None and value not in s.choices:
         raise StudyFileError(f"{where}: [{section}] {key} = {value!r} is not valid; use one of "
                              f"{', '.join(map(repr, s.choices))}.")
-    if key in ("radii",) and (not value or not all(isinstance(r, (int, float)) and r > 0 for r in value)):
+    if key in ("radii",) and isinstance(value, list) and (
+            not value or not all(isinstance(r, (int, float)) and r > 0 for r in value)):
         raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must be a non-empty list of positive radii (Å).")
     if key == "radius" and isinstance(value, list) and not all(isinstance(r, (int, float)) and r > 0 for r in value):
         raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must hold positive radii (Å).")
+    try:
+        return _read_ranges(section, key, value)
+    except InputError as exc:
+        raise StudyFileError(f"{where}: [{section}] {key}: {exc}") from exc
+
+
+def _read_ranges(section: str, key: str, value: Any) -> Any:
+    """Radii, frames and molecule ids written in the grammar of
+    :mod:`clusterlab.ranges` (or as TOML lists) as plain lists. The film is
+    not loaded yet: ids and frames are bounded later, negative frames stay
+    negative (counted from the end by the film) and ``"all"`` means None
+    (every frame / molecule)."""
+    if key == "radii" or (key == "radius" and isinstance(value, (list, str))):
+        radii = parse_radii(value)
+        return radii[0] if key == "radius" and isinstance(value, str) and len(radii) == 1 else radii
+    if key == "frames" and isinstance(value, (list, str)):
+        return None if _is_all(value) else parse_frames(value, None)
+    if key == "molecules" and isinstance(value, list):
+        return parse_ids(value, None).tolist()
+    if key == "molecules" and is_id_text(value) and not _is_all(value):
+        return parse_ids(value, None).tolist()
+    if key == "polarize_molecules":
+        return None if _is_all(value) else parse_ids(value, None).tolist()
     return value
+
+
+def _is_all(value: Any) -> bool:
+    return isinstance(value, str) and value.strip().lower() == "all"
 
 
 def validate(data: dict[str, Any], where: str = "study") -> dict[str, dict[str, Any]]:

@@ -46,7 +46,10 @@ def pqr(tmp_path):
 @pytest.mark.parametrize("body, match", [
     ("[film]\ntopology='x.pqr'\n[scna]\nmolecule=1\n", r"unknown section \[scna\]"),
     ("[film]\ntopology='x.pqr'\n[scan]\nmolecul=1\n", r"unknown key 'molecul' in \[scan\]; valid keys are molecule"),
-    ("[film]\ntopology='x.pqr'\n[scan]\nradii='big'\n", r"\[scan\] radii = 'big' has the wrong type; expected list"),
+    ("[film]\ntopology='x.pqr'\n[scan]\nradii='big'\n", r"\[scan\] radii: radii 'big' are not valid: 'big' is not a number"),
+    ("[film]\ntopology='x.pqr'\n[scan]\nradii=true\n", r"\[scan\] radii = True has the wrong type; expected list or str"),
+    ("[film]\ntopology='x.pqr'\n[sample]\nframes='0:20:5'\n", r"\[sample\] frames: .*'0:20:5' is not a frame.*'0-19:5'"),
+    ("[film]\ntopology='x.pqr'\n[model]\npolarize_molecules='2-x'\n", r"\[model\] polarize_molecules: .*'2-x'"),
     ("[film]\ntopology='x.pqr'\n[scan]\nradii=[3, -1]\n", r"\[scan\] radii .* positive radii"),
     ("[film]\ntopology='x.pqr'\n[runner]\nkind='mpi'\n", r"\[runner\] kind = 'mpi' is not valid; use one of 'serial'"),
     ("[scan]\nmolecule=1\n", r"\[film\] topology is required"),
@@ -72,6 +75,26 @@ def test_overrides_and_relative_paths(tmp_path):
     with pytest.raises(StudyFileError, match="cannot read it as int"):
         parse_override("sample", "n", "many")
     assert validate({"film": {"topology": "a"}})["runner"]["kind"] == "processes"
+
+
+def test_study_file_ranges_as_text(tmp_path):
+    """molecules, frames and radii may be text in the range grammar (ends included) or TOML lists."""
+    p = tmp_path / "study.toml"
+    p.write_text("[film]\ntopology='x.pqr'\n[scan]\nmolecule=0\nradii='6-12:3'\n"
+                 "[sample]\nmolecules='0-3, 9'\nframes='0-19:5'\nradius='6-9:3'\n"
+                 "[model]\nframes='-2--1'\npolarize_molecules='4-6'\n")
+    st = load_study(p)
+    assert st["scan"]["radii"] == [6.0, 9.0, 12.0]
+    assert st["sample"]["molecules"] == [0, 1, 2, 3, 9] and st["sample"]["frames"] == [0, 5, 10, 15]
+    assert st["sample"]["radius"] == [6.0, 9.0]
+    assert st["model"]["frames"] == [-2, -1] and st["model"]["polarize_molecules"] == [4, 5, 6]
+    # selections, 'all' and single numbers keep their meaning; flags read the same grammar
+    st = load_study(p, {("sample", "molecules"): parse_override("sample", "molecules", "resname WAT"),
+                        ("sample", "frames"): parse_override("sample", "frames", "all"),
+                        ("sample", "radius"): parse_override("sample", "radius", "12"),
+                        ("scan", "radii"): parse_override("scan", "radii", "4, 8")})
+    assert st["sample"]["molecules"] == "resname WAT" and st["sample"]["frames"] is None
+    assert st["sample"]["radius"] == 12.0 and st["scan"]["radii"] == [4.0, 8.0]
 
 
 def test_inspect_and_presets(pqr, capsys):
@@ -126,6 +149,17 @@ radius = 3.0
     assert (tmp_path / "rep" / "histogram_S1_eV.png").exists()
     assert main(["report", str(tmp_path / "st.sqlite"), "--out", str(tmp_path / "rep2")]) == 0
     assert (tmp_path / "rep2" / "summary.md").exists()
+    # the export reads the same sites from the store (this film's records only)
+    assert main(["export", str(tmp_path / "st.sqlite"), "--topology", gro[0], "--charges", gro[1],
+                 "--out", str(tmp_path / "exp")]) == 0
+    import pandas as pd
+
+    from clusterlab.store import ResultStore
+
+    sites = pd.read_parquet(tmp_path / "exp" / "sites.parquet")
+    with ResultStore(tmp_path / "st.sqlite", readonly=True) as st:
+        computed = set(st.to_frame(kind="excitations").molecule.astype(int))  # the 4 sampled + the scanned one
+    assert len(computed) == 5 and set(sites.dropna(subset=["S1_qm_eV"]).molecule) == computed
 
 
 def test_console_script_help():

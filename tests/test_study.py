@@ -104,3 +104,59 @@ def test_choose_molecules_selection_and_errors(film):
         choose_molecules(film, [1, 2], n=3)
     with pytest.raises(InputError, match="use n="):
         choose_molecules(film, 5)
+
+
+def test_choose_molecules_and_frames_read_the_range_grammar(film):
+    from clusterlab.ranges import RepeatedValueWarning
+    from clusterlab.study import choose_frames
+
+    assert choose_molecules(film, "0-4:2, 20").tolist() == [0, 2, 4, 20]   # ends included
+    assert choose_molecules(film, "all").tolist() == list(range(27))
+    assert choose_frames(film, "0-1") == [0, 1]
+    assert choose_frames(film, "-1") == [1]
+    assert choose_frames(film, None) == [0, 1] and choose_frames(film, slice(1, None)) == [1]
+    with pytest.raises(InputError, match="valid molecule ids are 0..26"):
+        choose_molecules(film, "25-27")
+    with pytest.raises(InputError, match="the film has frames 0..1"):
+        choose_frames(film, [0, 2])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        with pytest.raises(RepeatedValueWarning, match="frames"):   # a repeat would count twice
+            choose_frames(film, [0, 0])
+
+
+def test_site_table_keeps_one_films_finished_sites(film, tmp_path):
+    """The store reader the disorder panel and the CLI share: kind, status and film filters."""
+    from clusterlab.store import task_key
+    from clusterlab.study import SiteSample, site_table
+
+    path = tmp_path / "sites.sqlite"
+    mine = {"film": {"film_id": film.film_id}}
+    with ResultStore(path) as st:
+        for m in range(4):
+            k = task_key(film_id=film.film_id, frame=m % 2, molecule=m, radius_A=5.0, kind="excitations")
+            st.put(k, {"kind": "excitations", "payload": mine}, "{}",
+                   {"frame": m % 2, "molecule": m, "radius_A": 5.0, "S1_eV": 7.0 + 0.01 * m, "converged": True})
+        other = task_key(film_id="another film", frame=0, molecule=9, radius_A=5.0, kind="excitations")
+        st.put(other, {"kind": "excitations", "payload": {"film": {"film_id": "another film"}}}, "{}",
+               {"frame": 0, "molecule": 9, "radius_A": 5.0, "S1_eV": 1.0})
+        limit = task_key(film_id=film.film_id, frame=0, molecule=0, radius_A="inf", kind="periodic")
+        st.put(limit, {"kind": "periodic", "payload": mine}, "{}",
+               {"frame": 0, "molecule": 0, "radius_A": float("inf"), "S1_eV": 6.9})
+        failed = task_key(film_id=film.film_id, frame=1, molecule=5, radius_A=5.0, kind="excitations")
+        st.put_failure(failed, {"kind": "excitations", "payload": mine}, "SCF did not converge")
+    t = site_table(path, film=film)
+    assert sorted(t.molecule) == [0, 1, 2, 3] and set(t.kind) == {"excitations"}
+    np.testing.assert_allclose(t.sort_values("molecule").S1_eV, [7.0, 7.01, 7.02, 7.03])
+    # without a film: every excitation record (the other film's too), no centroids added
+    assert sorted(site_table(path).molecule) == [0, 1, 2, 3, 9]
+    assert "centroid_x_A" not in site_table(path).columns
+    # centroids from the film's own geometry when the records lack them
+    row = t[t.molecule == 3].iloc[0]
+    np.testing.assert_allclose([row.centroid_x_A, row.centroid_y_A, row.centroid_z_A],
+                               film.frame_geometry(1, periodic=True).centroids_A[3])
+    sample = SiteSample.from_store(path, film=film)
+    assert set(sample.box) == {0, 1} and np.allclose(sample.box[1], film.box(1))
+    assert sample.stats("S1_eV", n_boot=200, seed=0)["n"] == 4
+    with pytest.raises(InputError, match="holds no finished site-energy records"):
+        site_table(path, film=film, kinds=("transfer",))

@@ -20,9 +20,8 @@ import pytest
 from clusterlab import film_from_universe
 from clusterlab.store import ResultStore, task_key
 from clusterlab.widgets import DisorderPanel, FilmExplorer, ShiftScanPanel
+from clusterlab.widgets import calc, disorder
 from clusterlab.widgets._style import cluster_scene_pdb
-from clusterlab.widgets.calc import parse_radii
-from clusterlab.widgets.disorder import parse_frames
 
 from conftest import build_water_universe, lattice_centres
 
@@ -59,7 +58,7 @@ def test_radius_slider_recarves_and_updates_readout(film):
     assert n_atoms == len(ref.qm_symbols) + ref.n_charges
 
 
-def test_other_controls_drive_carve_settings(film):
+def test_other_controls_drive_carve_settings(film, monkeypatch):
     calls = []
     ex = FilmExplorer(film, molecule=2, radius_A=5.0, show_view=False)
     real = film.carve
@@ -68,7 +67,7 @@ def test_other_controls_drive_carve_settings(film):
         calls.append((molecule, radius, kw))
         return real(molecule, radius, **kw)
 
-    ex.carve_fn = recording
+    monkeypatch.setattr(film, "carve", recording)
     ex.shell_slider.value = 3.0
     ex.rule_toggle.value = "centroid"
     ex.frame_slider.value = 1
@@ -130,6 +129,67 @@ def test_search_by_ids_residue_name_and_bad_selection(film):
     assert "clusterlab-error" in ex.readout.value and "matches no atoms" in ex.readout.value
 
 
+def test_explorer_settings_are_traits_linked_to_controls(film):
+    from clusterlab.errors import CarvingError, InputError
+
+    ex = FilmExplorer(film, molecule=0, radius_A=4.0, show_view=False)
+    seen = []
+    ex.observe(lambda ch: seen.append((ch["name"], ch["new"])), names=["molecule", "radius_A", "frame"])
+    ex.molecule = 5                      # assigning the trait moves the dropdown and re-carves
+    assert ex.molecule_picker.value == 5 and ex.cluster.center == 5
+    ex.molecule_picker.value = 6         # and the other way round
+    assert ex.molecule == 6 and ex.cluster.center == 6
+    ex.radius_A = 55.0                   # beyond the slider's end: the slider grows
+    assert ex.radius_slider.max == 55.0 and ex.radius_slider.value == 55.0
+    ex.frame = -1                        # negative frames count from the end, as in the library
+    assert ex.frame == 1 and ex.frame_slider.value == 1 and ex.cluster is not None
+    assert seen == [("molecule", 5), ("molecule", 6), ("radius_A", 55.0), ("frame", 1)]
+    ex.shell_slider.value = 2.0
+    ex.rule_toggle.value = "centroid"
+    assert (ex.qm_shell_A, ex.rule) == (2.0, "centroid")
+    assert ex.settings() == {"molecule": 6, "radius": 55.0, "frame": 1, "qm_shell": 2.0, "rule": "centroid",
+                             "periodic": True}
+    with pytest.raises(CarvingError, match="molecule 999 does not exist"):
+        ex.molecule = 999
+    with pytest.raises(InputError, match="radius_A=-1 Å is not valid"):
+        ex.radius_A = -1.0
+    assert ex.molecule == 6 and ex.radius_A == 55.0
+
+
+def test_search_reads_the_id_grammar(film):
+    ex = FilmExplorer(film, molecule=0, radius_A=4.0, show_view=False)
+    ex.search.value = "2-10:4, 20"
+    assert [v for _, v in ex.molecule_picker.options] == [2, 6, 10, 20]
+    ex.search.value = "60-70"
+    assert "molecule id 70 in '60-70' is out of range; valid molecule ids are 0..63" in html.unescape(ex.readout.value)
+
+
+def test_scan_panel_traits_follow_controls_and_explorer(film):
+    ex = FilmExplorer(film, molecule=3, radius_A=6.0, show_view=False)
+    panel = ShiftScanPanel(film, explorer=ex, radii_A=(6, 9))
+    assert panel.radii_A == [6.0, 9.0] and panel.radii.value == "6, 9"
+    panel.radii.value = "4-10:3"                     # text in the range grammar sets the trait
+    assert panel.radii_A == [4.0, 7.0, 10.0]
+    panel.radii_A = [12, 5]                          # and the trait rewrites the text
+    assert panel.radii.value == "5, 12" and panel.radii_A == [5.0, 12.0]
+    panel.radii.value = "5, twelve"                  # text that does not parse leaves the trait alone
+    assert panel.radii_A == [5.0, 12.0]
+    ex.molecule = 7
+    ex.qm_shell_A = 1.5
+    ex.frame = 1
+    ex.rule = "centroid"
+    assert (panel.molecule_id, panel.frame_index, panel.cut_rule, panel.qm_shell_A) == (7, 1, "centroid", 1.5)
+    assert (panel.molecule.value, panel.frame.value, panel.rule.value, panel.qm_shell.value) == (7, 1, "centroid",
+                                                                                                  1.5)
+    panel.tol_meV = 4.0
+    panel.periodic_limit.value = True
+    assert panel.tol.value == 4.0 and panel.with_periodic_limit is True
+    panel.radii.value = "5-6:1"
+    s = panel.settings()
+    assert (s["molecule"], s["frame"], s["rule"], s["qm_shell"], s["radii"]) == (7, 1, "centroid", 1.5, [5.0, 6.0])
+    assert s["tol_eV"] == pytest.approx(0.004) and s["periodic_limit"] is True
+
+
 def test_cluster_scene_marks_qm_and_charges(film):
     c = film.carve(4, 6.0, qm_shell=3.0)
     text, atom_mol = cluster_scene_pdb(c, 4)
@@ -187,11 +247,11 @@ SCAN_ROWS = [
 ]
 
 
-def test_run_button_calls_scan_with_settings_and_fills_outputs(film):
+def test_run_button_calls_scan_with_settings_and_fills_outputs(film, monkeypatch):
     ex = FilmExplorer(film, molecule=3, radius_A=6.0, show_view=False)
     panel = ShiftScanPanel(film, explorer=ex, radii_A=(6, 9, 12), basis="sto-3g", n_singlets=2, n_triplets=1)
     fake = FakeScan(SCAN_ROWS)
-    panel.scan_fn = fake
+    monkeypatch.setattr(calc, "radius_scan", fake)
     ex.shell_slider.value = 1.0
     ex.frame_slider.value = 1
     panel.tol.value = 5.0
@@ -220,10 +280,10 @@ def test_run_button_calls_scan_with_settings_and_fills_outputs(film):
     pd.testing.assert_frame_equal(panel.table, pd.DataFrame(SCAN_ROWS))
 
 
-def test_cancel_sets_the_event(film):
+def test_cancel_sets_the_event(film, monkeypatch):
     panel = ShiftScanPanel(film, radii_A=(6, 9))
     fake = FakeScan([], wait_for_cancel=True)
-    panel.scan_fn = fake
+    monkeypatch.setattr(calc, "radius_scan", fake)
     panel.run()
     time.sleep(0.05)
     assert panel.running and not panel.cancel_event.is_set()
@@ -234,11 +294,11 @@ def test_cancel_sets_the_event(film):
     assert "cancelled" in panel.status.value
 
 
-def test_scan_exception_reaches_the_error_output(film):
+def test_scan_exception_reaches_the_error_output(film, monkeypatch):
     from clusterlab.errors import ConvergenceError
 
     panel = ShiftScanPanel(film, radii_A=(6,))
-    panel.scan_fn = FakeScan([], fail=ConvergenceError("SCF did not converge at radius 6 Å"))
+    monkeypatch.setattr(calc, "radius_scan", FakeScan([], fail=ConvergenceError("SCF did not converge at radius 6 Å")))
     panel.run_button.click()
     assert panel.wait(10.0)
     text = "".join(o.get("text", "") for o in panel.errors.outputs)
@@ -247,10 +307,10 @@ def test_scan_exception_reaches_the_error_output(film):
     assert "failed" in panel.status.value and not panel.run_button.disabled
 
 
-def test_bad_radii_are_reported_and_scan_not_called(film):
+def test_bad_radii_are_reported_and_scan_not_called(film, monkeypatch):
     panel = ShiftScanPanel(film)
     fake = FakeScan(SCAN_ROWS)
-    panel.scan_fn = fake
+    monkeypatch.setattr(calc, "radius_scan", fake)
     panel.radii.value = "6, nine"
     panel.run_button.click()
     assert fake.calls == []
@@ -262,24 +322,17 @@ def test_defaults_are_the_library_functions(film):
     from clusterlab.qm.method import Method
     from clusterlab.stats import disorder_stats, spatial_correlation
     from clusterlab.study.plots import plot_convergence
+    from clusterlab.study.sample import SiteSample, sample_sites, site_table
+    from clusterlab.study.scan import radius_scan
 
     panel = ShiftScanPanel(film, preset="draft")
-    assert panel.plot_fn is plot_convergence
+    assert calc.plot_convergence is plot_convergence and calc.radius_scan is radius_scan
     assert list(panel.preset.options) == list(Method.presets())
     assert panel.build_method() == Method.preset("draft")
-    dp = DisorderPanel(film, show_view=False)
-    assert dp.stats_fn is disorder_stats and dp.corr_fn is spatial_correlation
-
-
-def test_parse_radii_and_frames():
-    assert parse_radii("12, 6 9") == [6.0, 9.0, 12.0]
-    assert parse_radii("6:15:3") == [6.0, 9.0, 12.0, 15.0]
-    with pytest.raises(ValueError, match="positive numbers"):
-        parse_radii("-3, 6")
-    assert parse_frames("0:20:5", 20) == [0, 5, 10, 15]
-    assert parse_frames("all", 3) == [0, 1, 2]
-    with pytest.raises(ValueError, match=r"frames 0..2"):
-        parse_frames("7", 3)
+    DisorderPanel(film, show_view=False)
+    assert disorder.disorder_stats is disorder_stats and disorder.spatial_correlation is spatial_correlation
+    assert disorder.sample_sites is sample_sites and disorder.site_table is site_table
+    assert disorder.SiteSample is SiteSample
 
 
 # ------------------------------------------------------------ disorder panel
@@ -310,11 +363,11 @@ def _fake_sample_factory(film, seed=11):
     return fake, calls
 
 
-def test_disorder_run_histogram_growth_scene_and_export(film, tmp_path):
+def test_disorder_run_histogram_growth_scene_and_export(film, tmp_path, monkeypatch):
     dp = DisorderPanel(film, molecules="0-39", n_molecules=12, frames="0, 1", radii_A=(6, 9), seed=4,
                        store=str(tmp_path / "sites.sqlite"), basis="sto-3g")
     fake, calls = _fake_sample_factory(film)
-    dp.sample_fn = fake
+    monkeypatch.setattr(disorder, "sample_sites", fake)
     dp.run_button.click()
     assert dp.wait(20.0), dp.status.value
     assert dp.error == ""
@@ -375,8 +428,8 @@ def test_disorder_load_from_store(film, tmp_path):
         for m in range(8):
             e = float(3.0 + rng.normal(0, 0.05))
             energies[m] = e
-            k = task_key(film_id=film.film_id, frame=1, molecule=m, radius_A=8.0, kind="site")
-            st.put(k, {"kind": "site"}, "{}", {"frame": 1, "molecule": m, "radius_A": 8.0, "S1_eV": e})
+            k = task_key(film_id=film.film_id, frame=1, molecule=m, radius_A=8.0, kind="excitations")
+            st.put(k, {"kind": "excitations"}, "{}", {"frame": 1, "molecule": m, "radius_A": 8.0, "S1_eV": e})
     dp = DisorderPanel(film, show_view=False)
     df = dp.load(path)
     assert dp.error == "" and len(df) == 8
@@ -386,15 +439,21 @@ def test_disorder_load_from_store(film, tmp_path):
     np.testing.assert_allclose([row.centroid_x_A, row.centroid_y_A, row.centroid_z_A], cent[5])
     assert dp.stats["n"] == 8
     assert dp.frame_pick.value == 1 and set(dp.site_values) == set(range(8))
+    # what is drawn is panel state in traits linked to the dropdowns
+    assert (dp.shown_quantity, dp.shown_radius_A, dp.shown_frame) == ("S1_eV", 8.0, 1)
+    dp.radii.value = "6-12:3"
+    assert dp.radii_A == [6.0, 9.0, 12.0]
+    dp.radii_A = [10]
+    assert dp.radii.value == "10"
 
 
-def test_disorder_errors_reach_the_output(film, tmp_path):
+def test_disorder_errors_reach_the_output(film, tmp_path, monkeypatch):
     dp = DisorderPanel(film, show_view=False, store=str(tmp_path / "x.sqlite"))
 
     def broken(*a, **k):
         raise RuntimeError("worker pool died")
 
-    dp.sample_fn = broken
+    monkeypatch.setattr(disorder, "sample_sites", broken)
     dp.run()
     assert dp.wait(10.0)
     text = "".join(o.get("text", "") for o in dp.errors.outputs)

@@ -14,7 +14,7 @@ environment between frames and the finite sample are not in the model
 
 from __future__ import annotations
 
-import math
+import os
 import threading
 from dataclasses import dataclass, field
 from typing import Any, Callable, Sequence
@@ -25,11 +25,15 @@ import pandas as pd
 from ..errors import InputError
 from ..film import Film
 from ..qm.method import Method
+from ..ranges import is_id_text, parse_frames, parse_ids, parse_radii
 from ..runner import RunReport
 from ..stats import conformational_environmental, disorder_stats, spatial_correlation, static_dynamic
 from ..store import ResultStore
 from .scan import open_store
 from .tasks import cluster_task, run_cluster_tasks
+
+#: the molecule-centroid columns of a site table (Å)
+CENTROID_COLUMNS = ("centroid_x_A", "centroid_y_A", "centroid_z_A")
 
 
 def choose_molecules(film: Film, molecules: Any = "all", *, n: int | None = None,
@@ -38,18 +42,27 @@ def choose_molecules(film: Film, molecules: Any = "all", *, n: int | None = None
 
     Parameters
     ----------
-    molecules : "all", an MDAnalysis selection string (e.g. ``"resname GST"``),
-        or a sequence of ids.
+    molecules : "all", ids in the text grammar of :mod:`clusterlab.ranges`
+        (``"0-9, 20"``, ends included), an MDAnalysis selection string (e.g.
+        ``"resname GST"``), or a sequence of ids.
     n : int, optional
         Draw ``n`` of them at random without replacement (reproducible by ``seed``).
+
+    Raises
+    ------
+    InputError
+        A bad id text or id, an int instead of a list, or ``n`` larger than the selection.
     """
     if isinstance(molecules, str):
-        ids = film.select(None if molecules.strip() == "all" else molecules)
+        if is_id_text(molecules):
+            ids = parse_ids(molecules, film.n_molecules)
+        else:
+            ids = film.select(molecules)
     elif isinstance(molecules, (int, np.integer)):
         raise InputError(f"molecules={molecules!r}: give 'all', a selection string or a list of ids; "
                          "use n= for a random sample of that size.")
     else:
-        ids = film.select(list(molecules))
+        ids = parse_ids(molecules, film.n_molecules)
     if n is not None:
         if not isinstance(n, (int, np.integer)) or n < 1:
             raise InputError(f"n={n!r} must be a positive integer.")
@@ -60,14 +73,82 @@ def choose_molecules(film: Film, molecules: Any = "all", *, n: int | None = None
 
 
 def choose_frames(film: Film, frames: Any = None) -> list[int]:
-    """Frame indices: None (all), an int (that frame), a slice, or a list."""
-    if frames is None:
-        return list(range(film.n_frames))
-    if isinstance(frames, slice):
-        return list(range(film.n_frames))[frames]
-    if isinstance(frames, (int, np.integer)):
-        return [film.check_frame(int(frames))]
-    return [film.check_frame(int(f)) for f in frames]
+    """Frame indices: None (all), text in the grammar of :mod:`clusterlab.ranges`
+    (``"0-19:5"``, ends included; ``"-1"`` the last frame), an int, a slice or a list.
+
+    Raises
+    ------
+    InputError
+        A bad frame text or a frame out of range.
+    """
+    return parse_frames(frames, film.n_frames)
+
+
+def site_table(store: ResultStore | str | os.PathLike[str], *, film: Film | None = None,
+               kinds: Sequence[str] = ("excitations",)) -> pd.DataFrame:
+    """The finished site-energy records of a result store as a tidy table.
+
+    One row per stored cluster calculation of the given ``kinds`` (by default
+    the finite-radius calculations of samples and scans; not the periodic
+    limit, vacuum references or other record kinds). With a ``film``, only
+    its records are kept (those carrying another film's content id are left
+    out; hand-written records without one are kept), and ``resname`` and the
+    molecule centroids (Å, from :meth:`Film.frame_geometry`) are added when
+    the records lack them.
+
+    Parameters
+    ----------
+    store : ResultStore or path
+        A path is opened read-only and closed again.
+    film : Film, optional
+    kinds : sequence of str, default ("excitations",)
+
+    Returns
+    -------
+    pandas.DataFrame
+        :meth:`ResultStore.to_frame` columns, ``molecule`` and ``frame`` as int.
+
+    Raises
+    ------
+    clusterlab.errors.StudyFileError
+        If the file is not a result store.
+    InputError
+        If no finished site-energy record (a column ending in ``_eV``) is left.
+    """
+    if isinstance(store, ResultStore):
+        df, name = _site_records(store, kinds), str(store.path)
+    else:
+        name = os.fspath(store)
+        with ResultStore(store, readonly=True) as st:
+            df = _site_records(st, kinds)
+    if film is not None and len(df) and "film.film_id" in df.columns:
+        ids = df["film.film_id"]
+        df = df[ids.isna() | (ids.astype(str) == film.film_id)]
+    energy_cols = [c for c in df.columns if str(c).endswith("_eV") and df[c].notna().any()]
+    if not len(df) or not energy_cols:
+        which = "" if film is None else f" of the film {film.topology_path!r}"
+        raise InputError(f"result store {name!r} holds no finished site-energy records{which} "
+                         f"(kinds {list(kinds)}; columns: {list(df.columns)}).")
+    df = df.copy()
+    df["molecule"] = df["molecule"].astype(int)
+    df["frame"] = df["frame"].astype(int)
+    if film is not None:
+        if "resname" not in df.columns:
+            df["resname"] = film.molecules["resname"].to_numpy()[df["molecule"].to_numpy()]
+        if not all(c in df.columns for c in CENTROID_COLUMNS):
+            cent = np.full((len(df), 3), np.nan)
+            for f, idx in df.groupby("frame").indices.items():
+                geo = film.frame_geometry(int(f), periodic=film.has_box)
+                cent[idx] = geo.centroids_A[df["molecule"].to_numpy()[idx]]
+            for k, c in enumerate(CENTROID_COLUMNS):
+                df[c] = cent[:, k]
+    return df.reset_index(drop=True)
+
+
+def _site_records(store: ResultStore, kinds: Sequence[str]) -> pd.DataFrame:
+    if not kinds:
+        raise InputError("kinds must name at least one record kind, e.g. ('excitations',).")
+    return pd.concat([store.to_frame(kind=k, status="done") for k in kinds], ignore_index=True)
 
 
 @dataclass
@@ -84,9 +165,24 @@ class SiteSample:
     report: RunReport | None = None
     failures: list[str] = field(default_factory=list)
 
+    @classmethod
+    def from_store(cls, store: ResultStore | str | os.PathLike[str], *, film: Film | None = None,
+                   kinds: Sequence[str] = ("excitations",)) -> SiteSample:
+        """The sample held in a result store (see :func:`site_table`); with a
+        ``film``, its records only and the box of each frame for the correlation."""
+        table = site_table(store, film=film, kinds=kinds)
+        box = {} if film is None else {int(f): film.box(int(f)) for f in np.unique(table.frame)}
+        return cls(table=table, box=box)
+
+    def _converged(self) -> pd.DataFrame:
+        """Rows flagged converged (every row of a table without the flag)."""
+        if "converged" not in self.table.columns:
+            return self.table
+        return self.table[self.table.converged.astype(bool)]
+
     def at(self, radius_A: float | None = None) -> pd.DataFrame:
         """Rows at one radius (default: the largest), converged only."""
-        t = self.table[self.table.converged.astype(bool)]
+        t = self._converged()
         if radius_A is None:
             radius_A = float(t.radius_A.max())
         return t[np.isclose(t.radius_A.astype(float), radius_A)]
@@ -102,7 +198,7 @@ class SiteSample:
         """Mean and σ of ``quantity`` at each radius with confidence intervals:
         how the statistics converge as the cluster grows."""
         rows = []
-        t = self.table[self.table.converged.astype(bool)]
+        t = self._converged()
         for r, g in t.groupby("radius_A"):
             vals = g[quantity].to_numpy(dtype=float)
             if np.isfinite(vals).sum() < 3:
@@ -123,7 +219,7 @@ class SiteSample:
         """Spatial correlation of site energies vs centroid distance (periodic,
         pairs within the same frame)."""
         df = self.at(radius_A)
-        pos = df[["centroid_x_A", "centroid_y_A", "centroid_z_A"]].to_numpy(dtype=float)
+        pos = df[list(CENTROID_COLUMNS)].to_numpy(dtype=float)
         frames = df.frame.to_numpy()
         boxes = {int(f): self.box.get(int(f)) for f in np.unique(frames)}
         return spatial_correlation(pos, df[quantity].to_numpy(dtype=float), box=boxes, frames=frames, **kw)
@@ -152,9 +248,9 @@ def sample_sites(
     Parameters
     ----------
     film : Film
-    molecules : "all", selection string, or list of ids (see :func:`choose_molecules`)
-    frames : None (all), int, slice or list
-    radius : float or sequence of float, Å
+    molecules : "all", id text, selection string, or list of ids (see :func:`choose_molecules`)
+    frames : None (all), frame text (``"0-19:5"``, see :mod:`clusterlab.ranges`), int, slice or list
+    radius : float, sequence of float or radius text (``"6-12:3"``), Å
         One radius, or several for the growth of the statistics with the cluster.
     method : Method
     store : ResultStore or path
@@ -172,9 +268,7 @@ def sample_sites(
         raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__}.")
     ids = choose_molecules(film, molecules, n=n, seed=seed)
     fr = choose_frames(film, frames)
-    radii = [float(radius)] if np.ndim(radius) == 0 else sorted(float(r) for r in radius)
-    if any(not (math.isfinite(r) and r > 0) for r in radii):
-        raise InputError(f"radius must be positive and finite; got {radii}.")
+    radii = parse_radii(radius)
     st = open_store(store)
     # molecule-major order, radii innermost, so one worker's warm starts chain
     tasks = [cluster_task(film, int(m), r, method, frame=f, rule=rule, qm_shell_A=qm_shell)

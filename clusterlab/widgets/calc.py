@@ -12,78 +12,30 @@ from __future__ import annotations
 import html
 import threading
 import traceback
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from typing import Any
 
 import ipywidgets as widgets
 import numpy as np
 import pandas as pd
+import traitlets
 
+from ..qm.method import Method
+from ..ranges import parse_radii
+from ..store import ResultStore
+from ..study.plots import plot_convergence
+from ..study.scan import radius_scan
+from ._controls import Radii, fit_control, format_radii, link_radii
 from ._jobs import BackgroundJob
 from . import _style
 
-__all__ = ["ShiftScanPanel", "MethodControls", "parse_radii", "library_scan", "method_presets", "make_method"]
+__all__ = ["ShiftScanPanel", "MethodControls", "make_method"]
 
 
-# ------------------------------------------------------------- library links
-def library_scan() -> Callable[..., Any]:
-    """The library's :func:`radius_scan` (imported on first use)."""
-    try:
-        from clusterlab import radius_scan  # type: ignore[attr-defined]
-    except ImportError:
-        from clusterlab.study.scan import radius_scan  # type: ignore[no-redef]
-    return radius_scan
-
-
-def _method_class() -> Any:
-    try:
-        from clusterlab import Method  # type: ignore[attr-defined]
-    except ImportError:
-        from clusterlab.qm.method import Method  # type: ignore[no-redef]
-    return Method
-
-
-def method_presets() -> dict[str, str]:
-    """Preset name -> one-line description, from ``Method.presets()``."""
-    return dict(_method_class().presets())
-
-
-def make_method(preset: str, **overrides: Any) -> Any:
+def make_method(preset: str, **overrides: Any) -> Method:
     """``Method.preset(preset, **overrides)`` with empty overrides dropped."""
     clean = {k: v for k, v in overrides.items() if v is not None and v != ""}
-    return _method_class().preset(preset, **clean)
-
-
-def parse_radii(text: str) -> list[float]:
-    """Radii (Å) from ``"6, 9, 12"``, ``"6 9 12"`` or a range ``"6:15:3"``
-    (start:stop:step, stop included when on the grid).
-
-    Raises
-    ------
-    clusterlab.errors.InputError
-        On anything that is not a list of positive numbers.
-    """
-    from clusterlab.errors import InputError
-
-    t = str(text).strip()
-    if not t:
-        raise InputError("no radii given; type radii in Å such as '6, 9, 12' or a range '6:15:3'.")
-    try:
-        if ":" in t:
-            parts = [float(p) for p in t.split(":")]
-            if len(parts) != 3 or parts[2] <= 0:
-                raise ValueError
-            start, stop, step = parts
-            n = int(np.floor((stop - start) / step + 1e-9)) + 1
-            radii = [round(start + i * step, 6) for i in range(max(n, 0))]
-        else:
-            radii = [float(p) for p in t.replace(",", " ").split()]
-    except ValueError as exc:
-        raise InputError(f"radii {text!r} are not valid; use numbers in Å such as '6, 9, 12' "
-                         "or a range start:stop:step such as '6:15:3'.") from exc
-    if not radii or any(not np.isfinite(r) or r <= 0 for r in radii):
-        raise InputError(f"radii {text!r} must be positive numbers of Å; got {radii}.")
-    return sorted(set(radii))
+    return Method.preset(preset, **clean)
 
 
 #: bookkeeping columns not shown in the panels' tables (they stay in exports)
@@ -120,13 +72,8 @@ class MethodControls(widgets.VBox):
     """
 
     def __init__(self, preset: str = "draft", *, basis: str = "", n_singlets: int | None = None,
-                 n_triplets: int | None = None, errors: widgets.Output | None = None) -> None:
-        try:
-            presets = method_presets()
-        except Exception as exc:  # noqa: BLE001 - the engine may be missing; say so
-            presets = {preset: "(method presets unavailable)"}
-            if errors is not None:
-                errors.append_stderr(f"Method presets could not be loaded: {exc}\n")
+                 n_triplets: int | None = None) -> None:
+        presets = dict(Method.presets())
         if preset not in presets:
             presets = {preset: "", **presets}
         self._descriptions = presets
@@ -161,7 +108,7 @@ class MethodControls(widgets.VBox):
         self.singlets.value = int(m.n_singlets)
         self.triplets.value = int(m.n_triplets)
 
-    def build(self) -> Any:
+    def build(self) -> Method:
         """The Method of the current settings."""
         return make_method(self.preset.value, basis=self.basis.value.strip(),
                            n_singlets=int(self.singlets.value), n_triplets=int(self.triplets.value))
@@ -192,14 +139,28 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         Path of a result store ("" for none).
     runner : str, default "serial"
 
+    Traits
+    ------
+    molecule_id : Int
+        Central molecule (follows the explorer when there is one).
+    frame_index : Int
+    cut_rule : Unicode
+        ``"atom"`` or ``"centroid"``.
+    qm_shell_A : Float
+        QM-shell distance (Å).
+    radii_A : List of Float
+        Scan radii (Å), ascending; mirrors the radii box (text in the
+        grammar of :mod:`clusterlab.ranges`, e.g. ``"6-15:3"``).
+    tol_meV : Float
+        Convergence tolerance (meV).
+    with_periodic_limit : Bool
+        End the scan with the periodic (Ewald) embedding.
+
+    Each trait is linked to its control (``molecule``, ``frame``, ``rule``,
+    ``qm_shell``, ``radii``, ``tol``, ``periodic_limit``).
+
     Attributes
     ----------
-    scan_fn : callable
-        The scan function; defaults to the library's ``radius_scan``
-        (imported on first use). Tests put a recording fake here.
-    plot_fn : callable
-        ``plot_fn(scan_df, tol_eV=...) -> Figure``; defaults to
-        :func:`clusterlab.study.plots.plot_convergence`.
     rows : list of dict
         Rows reported so far by the running scan.
     result : ScanResult or None
@@ -214,14 +175,20 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
     progress : ipywidgets.IntProgress
     """
 
+    molecule_id = traitlets.CInt(0)
+    frame_index = traitlets.CInt(0)
+    cut_rule = traitlets.Unicode("atom")
+    qm_shell_A = traitlets.Float(0.0)
+    radii_A = Radii((6.0, 9.0, 12.0))
+    tol_meV = traitlets.Float(10.0)
+    with_periodic_limit = traitlets.Bool(False)
+
     def __init__(self, film: Any, *, explorer: Any = None, molecule: int = 0, frame: int = 0,
                  radii_A: Sequence[float] = (6.0, 9.0, 12.0), preset: str = "draft", basis: str = "",
                  n_singlets: int | None = None, n_triplets: int | None = None, tol_meV: float = 10.0,
                  periodic_limit: bool = False, store: str = "", runner: str = "serial", **kwargs: Any) -> None:
         self.film = film
         self.explorer = explorer
-        self._scan_fn: Callable[..., Any] | None = None
-        self._plot_fn: Callable[..., Any] | None = None
         self.rows: list[dict] = []
         self.result: Any = None
         self.error = ""
@@ -235,13 +202,13 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
 
         self.errors = widgets.Output(layout=widgets.Layout(max_height="220px", overflow="auto"))
         self.method_controls = MethodControls(preset, basis=basis, n_singlets=n_singlets,
-                                              n_triplets=n_triplets, errors=self.errors)
+                                              n_triplets=n_triplets)
         self.preset = self.method_controls.preset
         self.basis = self.method_controls.basis
         self.singlets = self.method_controls.singlets
         self.triplets = self.method_controls.triplets
-        self.radii = widgets.Text(value=", ".join(f"{r:g}" for r in radii_A), description="radii (Å)",
-                                  placeholder="6, 9, 12  or  6:15:3")
+        self.radii = widgets.Text(value=format_radii(radii_A), description="radii (Å)",
+                                  placeholder="6, 9, 12  or  6-15:3")
         self.tol = widgets.BoundedFloatText(value=tol_meV, min=0.01, max=1000.0, step=1.0,
                                             description="tol (meV)", layout=widgets.Layout(width="170px"))
         self.periodic_limit = widgets.Checkbox(value=periodic_limit, description="periodic (Ewald) limit",
@@ -266,11 +233,17 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         self.plot = widgets.Image(format="png", layout=widgets.Layout(max_width="560px"))
         self.table_html = widgets.HTML(value=_TABLE_CSS + frame_html(pd.DataFrame()))
 
+        for name, control in (("molecule_id", self.molecule), ("frame_index", self.frame),
+                              ("cut_rule", self.rule), ("qm_shell_A", self.qm_shell), ("tol_meV", self.tol),
+                              ("with_periodic_limit", self.periodic_limit)):
+            traitlets.link((control, "value"), (self, name))
+        link_radii(self.radii, self)
         if explorer is not None:
-            explorer.on_change(self._follow_explorer)
-            self._follow_explorer(explorer.cluster)
-            for w in (self.molecule, self.frame, self.rule, self.qm_shell):
-                w.disabled = True
+            for source, name, control in (("molecule", "molecule_id", self.molecule),
+                                          ("frame", "frame_index", self.frame), ("rule", "cut_rule", self.rule),
+                                          ("qm_shell_A", "qm_shell_A", self.qm_shell)):
+                traitlets.dlink((explorer, source), (self, name))
+                control.disabled = True
 
         self.run_button.on_click(self._on_run_click)
         self.cancel_button.on_click(self._on_cancel_click)
@@ -288,35 +261,22 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         super().__init__([settings, results, self.errors], **kwargs)
         self.add_class("clusterlab-scan-panel")
 
-    # ------------------------------------------------------------- links
-    @property
-    def scan_fn(self) -> Callable[..., Any]:
-        """Scan function (default: the library's ``radius_scan``)."""
-        return self._scan_fn if self._scan_fn is not None else library_scan()
+    # ------------------------------------------------------------ checks
+    @traitlets.validate("molecule_id")
+    def _valid_molecule(self, proposal: dict) -> int:
+        return self.film.check_molecule(proposal["value"])
 
-    @scan_fn.setter
-    def scan_fn(self, fn: Callable[..., Any] | None) -> None:
-        self._scan_fn = fn
+    @traitlets.validate("frame_index")
+    def _valid_frame(self, proposal: dict) -> int:
+        return self.film.check_frame(proposal["value"])
 
-    @property
-    def plot_fn(self) -> Callable[..., Any]:
-        """Plot function (default: :func:`clusterlab.study.plots.plot_convergence`)."""
-        if self._plot_fn is not None:
-            return self._plot_fn
-        from clusterlab.study.plots import plot_convergence
+    @traitlets.validate("qm_shell_A")
+    def _valid_shell(self, proposal: dict) -> float:
+        return fit_control(self.qm_shell, proposal["value"], "qm_shell_A", "Å", grow=True)
 
-        return plot_convergence
-
-    @plot_fn.setter
-    def plot_fn(self, fn: Callable[..., Any] | None) -> None:
-        self._plot_fn = fn
-
-    def _follow_explorer(self, cluster: Any) -> None:
-        ex = self.explorer
-        self.molecule.value = ex.molecule
-        self.frame.value = ex.frame
-        self.rule.value = ex.rule
-        self.qm_shell.value = ex.qm_shell_A
+    @traitlets.validate("tol_meV")
+    def _valid_tol(self, proposal: dict) -> float:
+        return fit_control(self.tol, proposal["value"], "tol_meV", "meV")
 
     # ----------------------------------------------------------- settings
     def build_method(self) -> Any:
@@ -324,20 +284,24 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         return self.method_controls.build()
 
     def settings(self) -> dict[str, Any]:
-        """Keyword arguments the scan will get (except film, method and callbacks)."""
+        """Keyword arguments the scan will get (except film, method and callbacks).
+
+        Raises
+        ------
+        clusterlab.errors.InputError
+            If the radii box does not hold radii in the grammar of :mod:`clusterlab.ranges`.
+        """
         s: dict[str, Any] = {
-            "molecule": int(self.molecule.value),
+            "molecule": self.molecule_id,
             "radii": parse_radii(self.radii.value),
-            "frame": int(self.frame.value),
-            "rule": str(self.rule.value),
-            "qm_shell": float(self.qm_shell.value),
-            "periodic_limit": bool(self.periodic_limit.value),
-            "tol_eV": float(self.tol.value) * 1e-3,
+            "frame": self.frame_index,
+            "rule": self.cut_rule,
+            "qm_shell": self.qm_shell_A,
+            "periodic_limit": self.with_periodic_limit,
+            "tol_eV": self.tol_meV * 1e-3,
             "runner": str(self.runner.value),
         }
         if self.store.value.strip():
-            from clusterlab.store import ResultStore
-
             s["store"] = ResultStore(self.store.value.strip())
         return s
 
@@ -356,7 +320,6 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         try:
             settings = self.settings()
             self.method = self.build_method()
-            fn = self.scan_fn
         except Exception as exc:  # noqa: BLE001 - shown to the user
             self._fail(exc)
             return self
@@ -367,16 +330,16 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         self.plot.value = b""
         self.run_button.disabled = True
         self.cancel_button.disabled = False
-        self._set_status(f"running {len(settings['radii'])} radii with {html.escape(self.method.describe())}"
-                         if hasattr(self.method, "describe") else "running", "info")
-        self._start(self._work, (fn, settings), "clusterlab-scan")
+        self._set_status(f"running {len(settings['radii'])} radii with {html.escape(self.method.describe())}",
+                         "info")
+        self._start(self._work, (settings,), "clusterlab-scan")
         return self
 
-    def _work(self, fn: Callable[..., Any], settings: dict[str, Any]) -> None:
+    def _work(self, settings: dict[str, Any]) -> None:
         s = dict(settings)
         molecule, radii = s.pop("molecule"), s.pop("radii")
         try:
-            result = fn(self.film, molecule, radii, self.method, progress=False, on_result=self._on_result,
+            result = radius_scan(self.film, molecule, radii, self.method, progress=False, on_result=self._on_result,
                         cancel=self._cancel, **s)
         except Exception as exc:  # noqa: BLE001 - shown in the panel
             if self._cancel.is_set() and "cancel" in type(exc).__name__.lower():
@@ -389,7 +352,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
             self._finish(result)
         finally:
             store = s.get("store")
-            if store is not None and hasattr(store, "close"):
+            if store is not None:
                 store.close()
             self.run_button.disabled = False
             self.cancel_button.disabled = True
@@ -424,7 +387,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         rows = df[pd.to_numeric(df["radius_A"], errors="coerce") > 0]
         if not len(rows):
             return
-        fig = self.plot_fn(rows, states, tol_eV=float(self.tol.value) * 1e-3)
+        fig = plot_convergence(rows, states, tol_eV=self.tol_meV * 1e-3)
         self.plot.value = _style.figure_png(fig)
         self.n_plots += 1
 

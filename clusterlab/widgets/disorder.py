@@ -1,7 +1,8 @@
 """The static-disorder panel: sample site energies, look at their spread.
 
 A thin layer over :func:`clusterlab.sample_sites`,
-:class:`clusterlab.store.ResultStore`, :mod:`clusterlab.stats` and
+:func:`clusterlab.study.site_table` (a result store's sites),
+:meth:`clusterlab.SiteSample.growth`, :mod:`clusterlab.stats` and
 :mod:`clusterlab.study.plots`: it gathers settings, runs the sample in a
 worker thread, and draws what the library computes (histogram with the
 Gaussian fit and confidence intervals, mean and σ against radius, site
@@ -16,103 +17,28 @@ import os
 import threading
 import time
 import traceback
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from typing import Any
 
 import ipywidgets as widgets
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
+import traitlets
 
+from ..errors import InputError
+from ..ranges import parse_frames, parse_radii
+from ..stats import disorder_stats, spatial_correlation
+from ..store import ResultStore
+from ..study.plots import plot_correlation, plot_growth, plot_histogram
+from ..study.sample import CENTROID_COLUMNS, SiteSample, choose_molecules, sample_sites, site_table
+from ..export import export_study
+from ._controls import Radii, format_radii, link_radii
 from ._jobs import BackgroundJob
 from . import _style
-from .calc import _TABLE_CSS, MethodControls, frame_html, parse_radii
+from .calc import _TABLE_CSS, MethodControls, frame_html
 
-__all__ = ["DisorderPanel", "library_sample", "store_table", "parse_frames"]
-
-_CENTROID = ("centroid_x_A", "centroid_y_A", "centroid_z_A")
-
-
-def library_sample() -> Callable[..., Any]:
-    """The library's :func:`sample_sites` (imported on first use)."""
-    try:
-        from clusterlab import sample_sites  # type: ignore[attr-defined]
-    except ImportError:
-        from clusterlab.study.sample import sample_sites  # type: ignore[no-redef]
-    return sample_sites
-
-
-def parse_frames(text: str, n_frames: int) -> list[int]:
-    """Frame numbers from ``"0"``, ``"0, 5, 10"``, ``"0:20:5"`` (stop
-    excluded, as Python slices) or ``"all"``.
-
-    Raises
-    ------
-    clusterlab.errors.InputError
-        On anything else or frames out of range.
-    """
-    from clusterlab.errors import InputError
-
-    t = str(text).strip().lower()
-    try:
-        if t in ("all", ""):
-            frames = list(range(n_frames))
-        elif ":" in t:
-            parts = [int(p) if p.strip() else None for p in t.split(":")]
-            frames = list(range(n_frames))[slice(*parts)]
-        else:
-            frames = [int(p) for p in t.replace(",", " ").split()]
-    except (ValueError, TypeError) as exc:
-        raise InputError(f"frames {text!r} are not valid; use '0', '0, 5, 10', a slice '0:20:5' or 'all'.") from exc
-    bad = [f for f in frames if not 0 <= f < n_frames]
-    if bad or not frames:
-        raise InputError(f"frames {text!r} give {frames}; the film has frames 0..{n_frames - 1}.")
-    return sorted(set(frames))
-
-
-def store_table(film: Any, path: str | os.PathLike[str]) -> pd.DataFrame:
-    """Site-energy rows of a result store as a tidy table.
-
-    Reads the finished records (:meth:`ResultStore.to_frame`); adds
-    ``resname`` and molecule centroids (from :meth:`Film.frame_geometry`)
-    when the store does not hold them.
-
-    Raises
-    ------
-    clusterlab.errors.StudyFileError
-        If the file is not a result store.
-    clusterlab.errors.InputError
-        If the store holds no site-energy records.
-    """
-    from clusterlab.errors import InputError
-    from clusterlab.store import ResultStore
-
-    with ResultStore(path, readonly=True) as st:
-        df = st.to_frame(status="done")
-    energy_cols = [c for c in df.columns if str(c).endswith("_eV")]
-    if len(df):
-        df = df.dropna(subset=["molecule", "frame"])
-        if "kind" in df.columns:  # vacuum references of radius scans are not sites
-            df = df[df["kind"].astype(str) != "vacuum"]
-        if "radius_A" in df.columns:
-            r = pd.to_numeric(df["radius_A"], errors="coerce")
-            df = df[~(r <= 0)]
-    if not len(df) or not energy_cols:
-        raise InputError(f"result store {os.fspath(path)!r} holds no finished site-energy records "
-                         f"(columns: {list(df.columns)}).")
-    df = df.copy()
-    df["molecule"] = df["molecule"].astype(int)
-    df["frame"] = df["frame"].astype(int)
-    if "resname" not in df.columns:
-        df["resname"] = film.molecules["resname"].to_numpy()[df["molecule"].to_numpy()]
-    if not all(c in df.columns for c in _CENTROID):
-        cent = np.full((len(df), 3), np.nan)
-        for f, idx in df.groupby("frame").indices.items():
-            geo = film.frame_geometry(int(f), periodic=film.has_box)
-            cent[idx] = geo.centroids_A[df["molecule"].to_numpy()[idx]]
-        for k, c in enumerate(_CENTROID):
-            df[c] = cent[:, k]
-    return df.reset_index(drop=True)
+__all__ = ["DisorderPanel"]
 
 
 class DisorderPanel(BackgroundJob, widgets.VBox):
@@ -122,11 +48,13 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
     ----------
     film : clusterlab.Film
     molecules : str, default "all"
-        Which molecules: an MDAnalysis selection, ids (``"0-9, 20"``) or "all".
+        Which molecules: an MDAnalysis selection, ids (``"0-9, 20"``, ends
+        included; see :mod:`clusterlab.ranges`) or "all".
     n_molecules : int, default 0
         Random subset of that many molecules (0: all selected).
     frames : str, default "0"
-        Frames (``"0"``, ``"0, 10"``, ``"0:20:5"``, ``"all"``).
+        Frames (``"0"``, ``"0, 10"``, ``"0-19:5"`` with both ends included,
+        ``"-1"`` for the last, ``"all"``).
     radii_A : sequence of float, default (10.0,)
         One sample per radius (several radii give σ and mean vs radius).
     preset, basis, n_singlets, n_triplets : method settings at start
@@ -138,16 +66,20 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
     show_view : bool, default True
         Build the 3D site-energy view.
 
+    Traits
+    ------
+    radii_A : List of Float
+        Sample radii (Å), ascending; mirrors the radii box (text in the
+        grammar of :mod:`clusterlab.ranges`, e.g. ``"6-12:3"``).
+    shown_quantity : Unicode or None
+        Column drawn (linked to the ``quantity`` dropdown).
+    shown_radius_A : Float or None
+        Radius whose sites are drawn (linked to ``radius_pick``).
+    shown_frame : Int or None
+        Frame of the 3D site-energy scene (linked to ``frame_pick``).
+
     Attributes
     ----------
-    sample_fn : callable
-        Default: the library's ``sample_sites`` (imported on first use).
-    load_fn : callable
-        ``load_fn(film, path) -> DataFrame``; default :func:`store_table`.
-    stats_fn : callable
-        Default :func:`clusterlab.stats.disorder_stats`.
-    corr_fn : callable
-        Default :func:`clusterlab.stats.spatial_correlation`.
     data : pandas.DataFrame
         The site-energy table shown (sample result, loaded store or rows so far).
     result : SampleResult or None
@@ -157,16 +89,17 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
     view : nglview.NGLWidget or None
     """
 
+    radii_A = Radii((10.0,))
+    shown_quantity = traitlets.Unicode(None, allow_none=True)
+    shown_radius_A = traitlets.Float(None, allow_none=True)
+    shown_frame = traitlets.Int(None, allow_none=True)
+
     def __init__(self, film: Any, *, molecules: str = "all", n_molecules: int = 0, frames: str = "0",
                  radii_A: Sequence[float] = (10.0,), preset: str = "draft", basis: str = "",
                  n_singlets: int | None = None, n_triplets: int | None = None,
                  store: str = "clusterlab_sites.sqlite", runner: str = "serial", seed: int = 0,
                  show_view: bool = True, **kwargs: Any) -> None:
         self.film = film
-        self._sample_fn: Callable[..., Any] | None = None
-        self._load_fn: Callable[..., Any] | None = None
-        self._stats_fn: Callable[..., Any] | None = None
-        self._corr_fn: Callable[..., Any] | None = None
         self.data = pd.DataFrame()
         self.rows: list[dict] = []
         self.result: Any = None
@@ -193,12 +126,12 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
                                       placeholder="all, ids 0-9, or a selection")
         self.n_molecules = widgets.BoundedIntText(value=n_molecules, min=0, max=max(film.n_molecules, 1),
                                                   description="random n", layout=w(width="170px"))
-        self.frames = widgets.Text(value=frames, description="frames", placeholder="0 | 0, 10 | 0:20:5 | all",
+        self.frames = widgets.Text(value=frames, description="frames", placeholder="0 | 0, 10 | 0-19:5 | all",
                                    layout=w(width="260px"))
-        self.radii = widgets.Text(value=", ".join(f"{r:g}" for r in radii_A), description="radii (Å)",
-                                  layout=w(width="260px"))
+        self.radii = widgets.Text(value=format_radii(radii_A), description="radii (Å)",
+                                  placeholder="10  or  6-12:3", layout=w(width="260px"))
         self.method_controls = MethodControls(preset, basis=basis, n_singlets=n_singlets,
-                                              n_triplets=n_triplets, errors=self.errors)
+                                              n_triplets=n_triplets)
         self.preset = self.method_controls.preset
         self.basis = self.method_controls.basis
         self.singlets = self.method_controls.singlets
@@ -257,7 +190,10 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.load_button.on_click(self._on_load_click)
         self.export_button.on_click(self._on_export_click)
         self.transport_button.on_click(self._on_transport_click)
-        for dd in (self.quantity, self.radius_pick, self.frame_pick):
+        link_radii(self.radii, self)
+        for dd, name in ((self.quantity, "shown_quantity"), (self.radius_pick, "shown_radius_A"),
+                         (self.frame_pick, "shown_frame")):
+            traitlets.link((dd, "value"), (self, name))
             dd.observe(self._on_pick, names="value")
         self.tabs.observe(self._on_tab, names="selected_index")
 
@@ -277,72 +213,15 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.add_class("clusterlab-disorder-panel")
         self._draw_film_scene()
 
-    # ------------------------------------------------------------ links
-    def _get(self, name: str, default: Callable[[], Callable[..., Any]]) -> Callable[..., Any]:
-        fn = getattr(self, name)
-        return fn if fn is not None else default()
-
-    @property
-    def sample_fn(self) -> Callable[..., Any]:
-        return self._get("_sample_fn", library_sample)
-
-    @sample_fn.setter
-    def sample_fn(self, fn: Callable[..., Any] | None) -> None:
-        self._sample_fn = fn
-
-    @property
-    def load_fn(self) -> Callable[..., Any]:
-        return self._get("_load_fn", lambda: store_table)
-
-    @load_fn.setter
-    def load_fn(self, fn: Callable[..., Any] | None) -> None:
-        self._load_fn = fn
-
-    @property
-    def stats_fn(self) -> Callable[..., Any]:
-        def default() -> Callable[..., Any]:
-            from clusterlab.stats import disorder_stats
-
-            return disorder_stats
-        return self._get("_stats_fn", default)
-
-    @stats_fn.setter
-    def stats_fn(self, fn: Callable[..., Any] | None) -> None:
-        self._stats_fn = fn
-
-    @property
-    def corr_fn(self) -> Callable[..., Any]:
-        def default() -> Callable[..., Any]:
-            from clusterlab.stats import spatial_correlation
-
-            return spatial_correlation
-        return self._get("_corr_fn", default)
-
-    @corr_fn.setter
-    def corr_fn(self, fn: Callable[..., Any] | None) -> None:
-        self._corr_fn = fn
-
     # ---------------------------------------------------------- settings
     def selected_molecules(self) -> npt.NDArray[np.int64]:
-        """Molecule ids of the current selection (random subset when asked)."""
-        import re
-
-        text = self.molecules.value.strip()
-        if re.fullmatch(r"[\d\s,\-]+", text or "x"):
-            ids: list[int] = []
-            for part in filter(None, (p.strip() for p in text.split(","))):
-                if "-" in part:
-                    a, b = (int(x) for x in part.split("-", 1))
-                    ids.extend(range(a, b + 1))
-                else:
-                    ids.append(int(part))
-            sel = np.asarray(self.film.select(ids), dtype=np.int64)
-        else:
-            sel = np.asarray(self.film.select(text or None), dtype=np.int64)
+        """Molecule ids of the current selection (random subset when asked;
+        :func:`clusterlab.study.choose_molecules`)."""
+        text = self.molecules.value.strip() or "all"
+        sel = choose_molecules(self.film, text)
         n = int(self.n_molecules.value)
         if 0 < n < len(sel):
-            rng = np.random.default_rng(int(self.seed.value))
-            sel = np.sort(rng.choice(sel, size=n, replace=False))
+            sel = choose_molecules(self.film, sel, n=n, seed=int(self.seed.value))
         return sel
 
     def build_method(self) -> Any:
@@ -352,7 +231,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         """What the sample will be run with (ids, frames, radii, store path, runner, seed)."""
         return {
             "molecules": self.selected_molecules(),
-            "frames": parse_frames(self.frames.value, self.film.n_frames),
+            "frames": parse_frames(self.frames.value.strip() or "all", self.film.n_frames),
             "radii": parse_radii(self.radii.value),
             "store": self.store.value.strip(),
             "runner": str(self.runner.value),
@@ -373,11 +252,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         try:
             s = self.settings()
             if not s["store"]:
-                from clusterlab.errors import InputError
-
                 raise InputError("a store path is needed: the sample writes every site into it as it finishes.")
             method = self.build_method()
-            fn = self.sample_fn
         except Exception as exc:  # noqa: BLE001
             self._fail(exc)
             return self
@@ -390,18 +266,16 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self._set_status(f"sampling {len(s['molecules'])} molecule(s) × {len(s['frames'])} frame(s) × "
                          f"{len(s['radii'])} radius/radii", "info")
         self._radius_chosen = False
-        self._start(self._work, (fn, method, s), "clusterlab-sample")
+        self._start(self._work, (method, s), "clusterlab-sample")
         return self
 
-    def _work(self, fn: Callable[..., Any], method: Any, s: dict[str, Any]) -> None:
-        from clusterlab.store import ResultStore
-
+    def _work(self, method: Any, s: dict[str, Any]) -> None:
         try:
             with ResultStore(s["store"]) as store:
                 radius: float | list[float] = s["radii"][0] if len(s["radii"]) == 1 else list(s["radii"])
-                res = fn(self.film, s["molecules"], s["frames"], radius, method, store=store,
-                         runner=s["runner"], seed=s["seed"], progress=False, on_result=self._on_result,
-                         cancel=self._cancel)
+                res = sample_sites(self.film, s["molecules"], s["frames"], radius, method, store=store,
+                                   runner=s["runner"], seed=s["seed"], progress=False, on_result=self._on_result,
+                                   cancel=self._cancel)
                 self.result = res
         except Exception as exc:  # noqa: BLE001
             if self._cancel.is_set() and "cancel" in type(exc).__name__.lower():
@@ -456,7 +330,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
                 df = source
             else:
                 path = os.fspath(source) if source is not None else self.store.value.strip()
-                df = self.load_fn(self.film, path)
+                df = site_table(path, film=self.film)
             self.set_data(df)
             self._set_status(f"loaded {len(df)} site energies", "ok")
         except Exception as exc:  # noqa: BLE001
@@ -527,14 +401,12 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self.errors.append_stderr(traceback.format_exc())
 
     def _draw_histogram(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
-        from clusterlab.study.plots import plot_histogram
-
         finite = vals[np.isfinite(vals)]
         if finite.size < 3:
             self.stats = None
             self.stats_html.value = f"<i>{finite.size} site(s) so far; the statistics need at least 3.</i>"
             return
-        self.stats = self.stats_fn(finite, seed=int(self.seed.value))
+        self.stats = disorder_stats(finite, seed=int(self.seed.value))
         self.hist_plot.value = _style.figure_png(plot_histogram(finite, self.stats, label=q.replace("_eV", "")))
         keys = ["n", "mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi", "sigma_chi2_lo",
                 "sigma_chi2_hi", "skewness", "excess_kurtosis", "normality_p", "normality_test", "confidence"]
@@ -544,20 +416,11 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.stats_html.value = f'<table class="clusterlab-table clusterlab-stats">{rows}</table>'
 
     def _draw_growth(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
-        from clusterlab.study.plots import plot_growth
-
         col = self._shift_column(q)
         if "radius_A" not in self.data:
             return
-        rows = []
-        for r, g in self.data.groupby("radius_A"):
-            v = pd.to_numeric(g[col], errors="coerce").dropna().to_numpy(dtype=float)
-            if v.size >= 3:
-                s = self.stats_fn(v, seed=int(self.seed.value))
-                rows.append({"radius_A": float(r), **{k: float(s[k]) for k in
-                             ("mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi")}})
-        self.growth = pd.DataFrame(rows)
-        if len(rows) < 2:
+        self.growth = SiteSample(table=self.data).growth(col, seed=int(self.seed.value))
+        if len(self.growth) < 2:
             self.growth_note.value = ("<i>σ and mean against radius need at least 2 radii with 3 or more "
                                       "sites each (give several radii).</i>")
             self.growth_plot.value = b""
@@ -566,22 +429,20 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.growth_plot.value = _style.figure_png(plot_growth(self.growth, label=col.replace("_eV", "")))
 
     def _draw_correlation(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
-        from clusterlab.study.plots import plot_correlation
-
-        if not all(c in sub.columns for c in _CENTROID):
+        if not all(c in sub.columns for c in CENTROID_COLUMNS):
             self.corr_note.value = "<i>the table has no molecule centroids.</i>"
             return
         ok = np.isfinite(vals)
         if ok.sum() < 3:
             self.corr_note.value = "<i>the spatial correlation needs at least 3 sites.</i>"
             return
-        pos = sub.loc[ok, list(_CENTROID)].to_numpy(dtype=float)
+        pos = sub.loc[ok, list(CENTROID_COLUMNS)].to_numpy(dtype=float)
         frames = sub.loc[ok, "frame"].to_numpy(dtype=int) if "frame" in sub else None
         box = None
         if self.film.has_box:
             box = {int(f): self.film.box(int(f)) for f in np.unique(frames)} if frames is not None \
                 else self.film.box(0)
-        self.correlation = self.corr_fn(pos, vals[ok], box, frames=frames, n_bins=10)
+        self.correlation = spatial_correlation(pos, vals[ok], box, frames=frames, n_bins=10)
         self.corr_note.value = (f"<span>{html.escape(q)}, {int(ok.sum())} sites; bins with at least "
                                 f"{self.min_pairs} pairs drawn</span>")
         self.corr_plot.value = _style.figure_png(plot_correlation(self.correlation, min_pairs=self.min_pairs))
@@ -644,8 +505,6 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         clusterlab.errors.InputError
             If there is nothing to export.
         """
-        from clusterlab.errors import InputError
-
         if not len(self.data):
             raise InputError("nothing to export yet: run a sample or load a store first.")
         p = os.fspath(path) if path is not None else self.export_path.value.strip()
@@ -660,9 +519,6 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
     def export_transport(self, folder: str | os.PathLike[str] | None = None, *, cutoff_A: float | None = None) -> dict:
         """Write the transport-model export (site and pair tables as Parquet and
         CSV with a JSON sidecar; see the README) of the shown sites; returns the paths."""
-        from clusterlab.errors import InputError
-        from clusterlab.export import export_study
-
         if not len(self.data):
             raise InputError("nothing to export yet: run a sample or load a store first.")
         f = os.fspath(folder) if folder is not None else self.transport_path.value.strip()

@@ -8,7 +8,6 @@ of the coordinates as PDB text (never the analysis Universe).
 
 from __future__ import annotations
 
-import re
 import traceback
 from collections.abc import Callable
 from typing import Any
@@ -16,8 +15,11 @@ from typing import Any
 import ipywidgets as widgets
 import numpy as np
 import numpy.typing as npt
+import traitlets
 
+from ..ranges import is_id_text, parse_ids
 from . import _style
+from ._controls import fit_control
 
 __all__ = ["FilmExplorer"]
 
@@ -57,6 +59,23 @@ class FilmExplorer(widgets.VBox):
         False builds the controls and readout without a 3D view (for
         scripts; the view can still be made later with :meth:`make_view`).
 
+    Traits
+    ------
+    molecule : Int
+        Central molecule id (assigning it selects the molecule, adding it to
+        the dropdown when needed; an invalid id raises ``CarvingError``).
+    radius_A : Float
+        Cut radius (Å); a value beyond the slider's end extends the slider.
+    qm_shell_A : Float
+        QM-shell distance (Å).
+    rule : Unicode
+        Cut rule, ``"atom"`` or ``"centroid"``.
+    frame : Int
+    periodic : Bool
+        Periodic images on (only when the film has a box).
+
+    Each trait is linked to its control; changing either re-carves.
+
     Attributes
     ----------
     film : clusterlab.Film
@@ -65,9 +84,6 @@ class FilmExplorer(widgets.VBox):
     error : str
         Message of the last carve error ("" when the last carve worked).
     view : nglview.NGLWidget or None
-    carve_fn : callable or None
-        ``carve_fn(molecule, radius, frame=, qm_shell=, rule=, periodic=)``;
-        None (default) uses ``film.carve``. Tests replace it.
     scene_pdb : str
         The cluster PDB text last sent to the view.
     errors : ipywidgets.Output
@@ -80,11 +96,17 @@ class FilmExplorer(widgets.VBox):
     >>> ex.radius_A = 15.0; ex.cluster.n_env_molecules       # doctest: +SKIP
     """
 
+    molecule = traitlets.CInt(0)
+    radius_A = traitlets.Float(10.0)
+    qm_shell_A = traitlets.Float(0.0)
+    rule = traitlets.Unicode("atom")
+    frame = traitlets.CInt(0)
+    periodic = traitlets.Bool(False)
+
     def __init__(self, film: Any, *, molecule: int = 0, radius_A: float = 10.0, qm_shell_A: float = 0.0,
                  rule: str = "atom", frame: int = 0, max_radius_A: float = 40.0, show_view: bool = True,
                  **kwargs: Any) -> None:
         self.film = film
-        self.carve_fn: Callable[..., Any] | None = None
         self.cluster: Any = None
         self.error = ""
         self.scene_pdb = ""
@@ -143,62 +165,45 @@ class FilmExplorer(widgets.VBox):
         super().__init__(children, **kwargs)
         self.add_class("clusterlab-explorer")
 
-        self.select_molecule(int(molecule))
-        for w in (self.molecule_picker, self.radius_slider, self.shell_slider, self.rule_toggle,
-                  self.frame_slider, self.periodic_box):
-            w.observe(self._on_control, names="value")
+        self.molecule = int(molecule)
+        self.molecule_picker.value = self.molecule
+        for name, control in (("radius_A", self.radius_slider), ("qm_shell_A", self.shell_slider),
+                              ("rule", self.rule_toggle), ("frame", self.frame_slider),
+                              ("periodic", self.periodic_box)):
+            traitlets.link((control, "value"), (self, name))
+        self.observe(self._on_molecule, names="molecule")
+        self.molecule_picker.observe(self._on_picker, names="value")
+        self.observe(self._on_setting, names=["molecule", "radius_A", "qm_shell_A", "rule", "frame", "periodic"])
         self.search.observe(self._on_search, names="value")
         self.refresh()
 
     # ------------------------------------------------------------- settings
-    @property
-    def molecule(self) -> int:
-        """Central molecule id."""
-        return int(self.molecule_picker.value)
+    @traitlets.validate("molecule")
+    def _valid_molecule(self, proposal: dict) -> int:
+        mol = self.film.check_molecule(proposal["value"])
+        values = [v for _, v in self.molecule_picker.options]
+        if mol not in values:
+            self.molecule_picker.options = self._options([mol]) + list(self.molecule_picker.options)
+        return mol
 
-    @molecule.setter
-    def molecule(self, value: int) -> None:
-        self.select_molecule(value)
+    @traitlets.validate("radius_A")
+    def _valid_radius(self, proposal: dict) -> float:
+        return fit_control(self.radius_slider, proposal["value"], "radius_A", "Å", grow=True)
 
-    @property
-    def radius_A(self) -> float:
-        """Cut radius (Å)."""
-        return float(self.radius_slider.value)
+    @traitlets.validate("qm_shell_A")
+    def _valid_shell(self, proposal: dict) -> float:
+        return fit_control(self.shell_slider, proposal["value"], "qm_shell_A", "Å", grow=True)
 
-    @radius_A.setter
-    def radius_A(self, value: float) -> None:
-        if value > self.radius_slider.max:
-            self.radius_slider.max = float(value)
-        self.radius_slider.value = float(value)
+    @traitlets.validate("frame")
+    def _valid_frame(self, proposal: dict) -> int:
+        return self.film.check_frame(proposal["value"])
 
-    @property
-    def qm_shell_A(self) -> float:
-        """QM-shell distance (Å)."""
-        return float(self.shell_slider.value)
+    def _on_molecule(self, change: dict) -> None:
+        self.molecule_picker.value = change["new"]
 
-    @qm_shell_A.setter
-    def qm_shell_A(self, value: float) -> None:
-        self.shell_slider.value = float(value)
-
-    @property
-    def rule(self) -> str:
-        return str(self.rule_toggle.value)
-
-    @rule.setter
-    def rule(self, value: str) -> None:
-        self.rule_toggle.value = value
-
-    @property
-    def frame(self) -> int:
-        return int(self.frame_slider.value)
-
-    @frame.setter
-    def frame(self, value: int) -> None:
-        self.frame_slider.value = int(value)
-
-    @property
-    def periodic(self) -> bool:
-        return bool(self.periodic_box.value)
+    def _on_picker(self, change: dict) -> None:
+        if change["new"] is not None:
+            self.molecule = int(change["new"])
 
     def settings(self) -> dict[str, Any]:
         """Current carve settings as keyword arguments of the library calls."""
@@ -219,28 +224,19 @@ class FilmExplorer(widgets.VBox):
         return out
 
     def select_molecule(self, molecule: int) -> None:
-        """Make ``molecule`` the centre (adds it to the dropdown if needed)."""
-        mol = self.film.check_molecule(int(molecule))
-        values = [v for _, v in self.molecule_picker.options]
-        if mol not in values:
-            self.molecule_picker.options = self._options([mol]) + list(self.molecule_picker.options)
-        self.molecule_picker.value = mol
+        """Make ``molecule`` the centre (adds it to the dropdown if needed);
+        the same as assigning :attr:`molecule`."""
+        self.molecule = int(molecule)
 
     def find_molecules(self, text: str) -> npt.NDArray[np.int64]:
-        """Molecule ids matching ``text``: ids (``"7"``, ``"3-9, 12"``), a
+        """Molecule ids matching ``text``: ids in the grammar of
+        :mod:`clusterlab.ranges` (``"7"``, ``"3-9, 12"``, ends included), a
         residue name (case-insensitive) or an MDAnalysis selection string."""
         text = text.strip()
         if not text:
             return np.arange(self.film.n_molecules)
-        if re.fullmatch(r"[\d\s,\-]+", text):
-            ids: list[int] = []
-            for part in filter(None, (p.strip() for p in text.split(","))):
-                if "-" in part:
-                    a, b = (int(x) for x in part.split("-", 1))
-                    ids.extend(range(a, b + 1))
-                else:
-                    ids.append(int(part))
-            return np.asarray(self.film.select(ids), dtype=np.int64)
+        if is_id_text(text):
+            return parse_ids(text, self.film.n_molecules)
         names = self.film.molecules["resname"].astype(str).str.upper()
         hit = np.flatnonzero(names.to_numpy() == text.upper())
         if hit.size:
@@ -288,15 +284,14 @@ class FilmExplorer(widgets.VBox):
         return None
 
     # ------------------------------------------------------------- updates
-    def _on_control(self, change: dict) -> None:
+    def _on_setting(self, change: dict) -> None:
         with self.errors:
             self.refresh()
 
     def carve(self) -> Any:
         """Carve with the current settings (library call) and return the cluster."""
-        fn = self.carve_fn if self.carve_fn is not None else self.film.carve
         s = self.settings()
-        return fn(s.pop("molecule"), s.pop("radius"), **s)
+        return self.film.carve(s.pop("molecule"), s.pop("radius"), **s)
 
     def refresh(self) -> None:
         """Re-carve, update the readout, legend and 3D view."""
