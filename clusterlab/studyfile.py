@@ -104,7 +104,8 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "polarization": Setting((bool,), False, "add Thole induced-dipole polarization (charged states)"),
         "polarize_molecules": Setting((list,), None, "molecule ids to polarize (default all; seconds each)"),
         "reference_molecule": Setting((int,), 0, "molecule whose geometry the state charges are fitted on"),
-        "charges_method": Setting((str,), None, "'xc/basis' of the state-charge fit (default: the study method)"),
+        "charges_method": Setting((str,), None, "'xc/basis' of the state-charge fit and finite fields (the study "
+                                                "method with this xc and basis; default: the study method)"),
         "n_conformers": Setting((int,), 1, "conformer references per molecule type (one QM fit each)"),
         "response": Setting((bool,), False, "S1 from the finite-field response -Δμ·F - ½F·Δα·F (25 QM runs "
                                             "per reference) instead of first-order charges"),
@@ -147,9 +148,29 @@ def _check_value(section: str, key: str, value: Any, where: str) -> Any:
                              f"{', '.join(map(repr, s.choices))}.")
     if key in ("radii",) and (not value or not all(isinstance(r, (int, float)) and r > 0 for r in value)):
         raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must be a non-empty list of positive radii (Å).")
+    if key == "charges_method":
+        try:
+            xc_basis(value)
+        except StudyFileError as exc:
+            raise StudyFileError(f"{where}: [{section}] {key} = {value!r}: {exc}") from None
     if key == "radius" and isinstance(value, list) and not all(isinstance(r, (int, float)) and r > 0 for r in value):
         raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must hold positive radii (Å).")
     return value
+
+
+def xc_basis(text: str) -> tuple[str, str]:
+    """``(xc, basis)`` of an ``"xc/basis"`` setting such as ``[model] charges_method``
+    (``"hf/..."`` means Hartree-Fock).
+
+    Raises
+    ------
+    StudyFileError
+        Anything but two non-empty names around one ``/``.
+    """
+    xc, sep, basis = str(text).partition("/")
+    if not sep or not xc.strip() or not basis.strip() or "/" in basis:
+        raise StudyFileError(f"{text!r} is not a method description; use 'xc/basis', e.g. 'b3lyp/6-31g'.")
+    return xc.strip(), basis.strip()
 
 
 def validate(data: dict[str, Any], where: str = "study") -> dict[str, dict[str, Any]]:

@@ -22,8 +22,9 @@ from MDAnalysis.coordinates.memory import MemoryReader
 from MDAnalysis.lib.mdamath import triclinic_vectors
 
 from clusterlab import film_from_universe
-from clusterlab.electrostatics.sitemodel import StateChargeSet, film_site_energies
+from clusterlab.electrostatics.chargeset import StateChargeSet
 from clusterlab.errors import InputError
+from clusterlab.study.filmmodel import film_site_energies
 from clusterlab.transport import point_dipole_coupling, run_kmc
 from clusterlab.transport.export import (
     NO_SOURCE,
@@ -85,7 +86,7 @@ def charge_set():
 
 @pytest.fixture(scope="module")
 def model_table(water_film, charge_set):
-    return film_site_energies(water_film, radius=6.0, charges=charge_set, progress=False)
+    return film_site_energies(water_film, charge_set, radius_A=6.0, progress=False)
 
 
 def _qm_sample(frames=(0,), molecules=(0, 1, 2), radius=8.0, converged=True):

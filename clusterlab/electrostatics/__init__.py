@@ -8,7 +8,8 @@
 * :mod:`.pairsum` - exact potentials of every molecule's carved environment, all molecules at once.
 * :mod:`.conformers` - superposition, conformer references, topological equivalence.
 * :mod:`.stark` - finite-field dipole and polarizability changes of excited states (engine).
-* :mod:`.sitemodel` - the film-wide site-energy model.
+* :mod:`.chargeset` - state charges per molecule type (plain data, JSON).
+* :mod:`.fieldfit` - least-squares uniform field of a potential over each molecule.
 
 Units: Å, e, V (= eV/e), V/Å, e·Å, Å³, eV; boxes ``[lx, ly, lz, alpha, beta, gamma]``.
 """
@@ -55,17 +56,12 @@ __all__ = [
     "permanent_field", "polarization_energy", "solve_induced_dipoles",
 ]
 
+from .chargeset import ConformerCharges, StateChargeSet  # noqa: E402
 from .conformers import assign_conformers, equivalence_classes, pick_references, superpose  # noqa: E402
+from .fieldfit import UniformFieldFit, uniform_field_fit  # noqa: E402
 from .pairsum import environment_potential  # noqa: E402
-from .sitemodel import (  # noqa: E402
-    ConformerCharges,
-    StateChargeSet,
-    conformer_spread,
-    environment_pairs,
-    film_site_energies,
-)
 from .stark import StarkFit, differential_polarizability, stark_energy_eV  # noqa: E402
 
-__all__ += ["StateChargeSet", "ConformerCharges", "film_site_energies", "conformer_spread", "environment_pairs",
-            "environment_potential", "superpose", "pick_references", "assign_conformers", "equivalence_classes",
+__all__ += ["StateChargeSet", "ConformerCharges", "UniformFieldFit", "uniform_field_fit", "environment_potential",
+            "superpose", "pick_references", "assign_conformers", "equivalence_classes",
             "StarkFit", "differential_polarizability", "stark_energy_eV"]
