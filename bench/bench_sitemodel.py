@@ -36,7 +36,8 @@ import MDAnalysis as mda  # noqa: E402
 from MDAnalysis.coordinates.memory import MemoryReader  # noqa: E402
 
 from clusterlab import film_from_universe, load_film  # noqa: E402
-from clusterlab.electrostatics.sitemodel import StateChargeSet, film_site_energies  # noqa: E402
+from clusterlab.electrostatics.chargeset import StateChargeSet  # noqa: E402
+from clusterlab.study.filmmodel import film_site_energies  # noqa: E402
 from clusterlab.units import COULOMB_EV_A  # noqa: E402
 
 RADIUS = 15.0
@@ -136,17 +137,18 @@ def main() -> None:
     print(f"film: {what}: {film.n_molecules} molecules, {film.n_atoms} atoms, {film.n_frames} frames; "
           f"radius {RADIUS} Å, rule 'atom'; OMP_NUM_THREADS={os.environ.get('OMP_NUM_THREADS', '?')}, "
           f"{os.cpu_count()} CPUs, load average before {os.getloadavg()[0]:.2f}")
-    film_site_energies(film, radius=RADIUS, charges=cset, progress=False, frames=[0])      # warm-up
+    film_site_energies(film, cset, radius_A=RADIUS, progress=False, frames=[0])      # warm-up
 
     rng = np.random.default_rng(3)
     picks = rng.choice(film.n_molecules, N_LOOP, replace=False)
     rows = {}
     # interleave: model, loops, model again, so that load changes hit both sides alike
-    df1, t1 = timed(film_site_energies, film, radius=RADIUS, charges=cset, progress=False)
+    res1, t1 = timed(film_site_energies, film, cset, radius_A=RADIUS, progress=False)
     ref_a, ta = timed(lambda: [loop_a(film, cset, m, 0) for m in picks])
     ref_b, tb = timed(lambda: [loop_b(film, cset, m, 0) for m in picks])
-    df2, t2 = timed(film_site_energies, film, radius=RADIUS, charges=cset, progress=False, threads=2)
-    _, t1b = timed(film_site_energies, film, radius=RADIUS, charges=cset, progress=False)
+    res2, t2 = timed(film_site_energies, film, cset, radius_A=RADIUS, progress=False, threads=2)
+    _, t1b = timed(film_site_energies, film, cset, radius_A=RADIUS, progress=False)
+    df1, df2 = res1.table, res2.table
     t1 = min(t1, t1b)
     n_rows = len(df1)
     sub = df1[df1.frame == 0].set_index("molecule")
@@ -167,11 +169,12 @@ def main() -> None:
 
     big = replicate(film)
     cbig = made_up_states(big)
-    dfb, tb1 = timed(film_site_energies, big, radius=RADIUS, charges=cbig, frames=[0], progress=False)
+    resb, tb1 = timed(film_site_energies, big, cbig, radius_A=RADIUS, frames=[0], progress=False)
+    dfb = resb.table
     picks_b = rng.choice(big.n_molecules, 8, replace=False)
     _, tla = timed(lambda: [loop_a(big, cbig, m, 0) for m in picks_b])
     refb, tlb = timed(lambda: [loop_b(big, cbig, m, 0) for m in picks_b])
-    dfb2, tb2 = timed(film_site_energies, big, radius=RADIUS, charges=cbig, frames=[0], progress=False, threads=2)
+    _, tb2 = timed(film_site_energies, big, cbig, radius_A=RADIUS, frames=[0], progress=False, threads=2)
     per_la, per_lb = tla / len(picks_b), tlb / len(picks_b)
     subb = dfb.set_index("molecule")
     err_big = max(abs(subb.loc[int(m), f"{s}_shift_eV"] - r[s]) for m, r in zip(picks_b, refb) for s in r)

@@ -37,8 +37,9 @@ import warnings
 import numpy as np
 
 from clusterlab import Cluster, load_film
-from clusterlab.electrostatics.sitemodel import StateChargeSet, film_site_energies
-from clusterlab.electrostatics.statecharges import state_charges
+from clusterlab.electrostatics.chargeset import StateChargeSet
+from clusterlab.qm.statecharges import state_charges
+from clusterlab.study.filmmodel import film_site_energies
 from clusterlab.units import COULOMB_EV_A
 
 HERE = os.path.dirname(os.path.abspath(__file__))
@@ -166,8 +167,8 @@ def main() -> None:
           " -> Å³:", np.round(np.linalg.eigvalsh(dal["S1"]) * COULOMB_EV_A, 1))
 
     mols = [int(m) for m in sys.argv[1:] if not m.startswith("-")] or [57, 146, 156, 171, 197, 212, 226, 235]
-    model = film_site_energies(film, ("S1", "T1"), radius=RADIUS, frames=[0], charges=cset, molecules=mols,
-                               progress=False).set_index("molecule")
+    model = film_site_energies(film, cset, states=("S1", "T1"), radius_A=RADIUS, frames=[0], molecules=mols,
+                               progress=False).table.set_index("molecule")
     for m in mols:
         if str(m) in done["molecules"]:
             continue
@@ -187,9 +188,9 @@ def main() -> None:
         e0 = np.array([sp["S1_vacuum_eV"], sp["T1_vacuum_eV"]])
         ep = np.array(s1(excitations(field_cluster(c.qm_symbols, own, f_lsq), method, vacuum=vac0, guess=vac0)))
         em = np.array(s1(excitations(field_cluster(c.qm_symbols, own, -f_lsq), method, vacuum=vac0, guess=vac0)))
-        # own-geometry S1 charges (full TDA, as the reference fit)
-        sc = state_charges(c.qm_symbols, own, "b3lyp/6-31g", states=("S0", "S1", "T1"), transition=False,
-                           grid_level=1, density_fit=True)
+        # own-geometry S1 charges (the reference fit's method, full TDA)
+        sc = state_charges(c.qm_symbols, own, method.replace(excited="tda", grid_level=1, density_fit=True),
+                           states=("S0", "S1", "T1"), transition=False)
         v_at = COULOMB_EV_A * (c.env_charges[None] /
                                np.linalg.norm(own[:, None] - c.env_positions[None], axis=2)).sum(1)
         row = {

@@ -43,7 +43,9 @@ import warnings
 import numpy as np
 
 from clusterlab import load_film
-from clusterlab.electrostatics.sitemodel import ConformerCharges, StateChargeSet, film_site_energies
+from clusterlab.electrostatics.chargeset import ConformerCharges, StateChargeSet
+from clusterlab.study.chargefits import add_field_response, film_equivalence_classes, fit_state_charges
+from clusterlab.study.filmmodel import film_site_energies
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 OUT = os.path.join(HERE, "results")
@@ -91,21 +93,22 @@ def charge_set(film, method, cache: str, n_conformers: int) -> StateChargeSet:
     """Conformer references (medoids of the families) with charges and Δα; every
     reference copy's QM is cached by molecule id, so only new ones are fitted."""
     from clusterlab.electrostatics.conformers import pick_references
-    from clusterlab.electrostatics.statecharges import state_charges
+    from clusterlab.qm.statecharges import state_charges
 
     want_method = f"{method.xc}/{method.basis}"
     cset = StateChargeSet.load(cache) if os.path.exists(cache) else None
     if cset is not None and cset.method != want_method:
         cset = None
     if cset is None:
-        cset = StateChargeSet.from_film(film, method, frame=0, grid_level=method.grid_level,
-                                        density_fit=method.density_fit)
+        cset = fit_state_charges(film, method, frame=0)
         cset.save(cache)
     res = cset.resnames[0]
     if not cset.conformers.get(res):
         fit = cset.fits[res]
-        cset.conformers[res] = [ConformerCharges(positions_A=fit.positions_A, charges_e=dict(fit.charges_e),
-                                                 transition_e=fit.transition_charges_e,
+        tr = fit["transition_charges_e"]
+        q = {k: np.asarray(v, float) for k, v in fit["charges_e"].items()}
+        cset.conformers[res] = [ConformerCharges(positions_A=np.asarray(fit["positions_A"], float), charges_e=q,
+                                                 transition_e=None if tr is None else np.asarray(tr, float),
                                                  frame=cset.reference[res]["frame"],
                                                  molecule=cset.reference[res]["molecule"])]
     known = {c.molecule: c for c in cset.conformers[res]}
@@ -119,8 +122,7 @@ def charge_set(film, method, cache: str, n_conformers: int) -> StateChargeSet:
         if mol not in known:
             t0 = time.perf_counter()
             pos = geo.positions_A[film.molecule_atoms(mol)]
-            sc = state_charges(list(film.symbols[film.molecule_atoms(mol)]), pos, method,
-                               grid_level=method.grid_level, density_fit=method.density_fit)
+            sc = state_charges(list(film.symbols[film.molecule_atoms(mol)]), pos, method)
             known[mol] = ConformerCharges(positions_A=pos, charges_e=dict(sc.charges_e),
                                           transition_e=sc.transition_charges_e, frame=0, molecule=mol)
             print(f"state charges of conformer reference molecule {mol}: {time.perf_counter() - t0:.0f} s", flush=True)
@@ -136,7 +138,7 @@ def charge_set(film, method, cache: str, n_conformers: int) -> StateChargeSet:
     if any("S1" not in c.dalpha_A3 for c in refs):
         t0 = time.perf_counter()
         stark = method.replace(n_singlets=3, n_triplets=3)
-        cset = cset.with_stark(stark, film=film, refit=False)
+        cset = add_field_response(cset, film, stark, refit=False)
         cset.save(cache)
         print(f"finite-field polarizability changes: {time.perf_counter() - t0:.0f} s", flush=True)
     return cset
@@ -175,26 +177,22 @@ def main() -> None:
     mols = np.array((EARLIER + rest)[: args.n])
     states = ("S1", "T1", "cation", "anion")
     t0 = time.perf_counter()
-    kw = dict(radius=args.radius, frames=[0], molecules=mols.tolist(), progress=False)
-    sym = cset.symmetrized(film=film)
+    kw = dict(states=states, radius_A=args.radius, frames=[0], molecules=mols.tolist(), progress=False)
+    sym = cset.symmetrized(film_equivalence_classes(film, cset.resnames))
     variants = {}
     before_file = os.path.join(OUT, "sitemodel_charges_before.json")
     if os.path.exists(before_file):
         before = StateChargeSet.load(before_file)
-        variants["before: molecule 0's charges, first order"] = film_site_energies(film, states, charges=before,
-                                                                                   **kw)
+        variants["before: molecule 0's charges, first order"] = film_site_energies(film, before, **kw)
     variants.update({
-        "one reference, first order": film_site_energies(film, states, charges=one, **kw),
-        "families, first order": film_site_energies(film, states, charges=cset, **kw),
-        "families, first order + Stark": film_site_energies(film, states, charges=cset, model="charges+stark",
-                                                            **kw),
-        "families symmetrized, first order + Stark": film_site_energies(film, states, charges=sym,
-                                                                        model="charges+stark", **kw),
-        "families, field response": film_site_energies(film, states, charges=cset, model="field", **kw),
-        "families, field response for S1": film_site_energies(film, states, charges=cset, model="field",
-                                                              response_states=("S1",), **kw),
+        "one reference, first order": film_site_energies(film, one, **kw),
+        "families, first order": film_site_energies(film, cset, **kw),
+        "families, first order + Stark": film_site_energies(film, cset, second_order=True, **kw),
+        "families symmetrized, first order + Stark": film_site_energies(film, sym, second_order=True, **kw),
+        "families, field response": film_site_energies(film, cset, field_response=("S1", "T1"), **kw),
+        "families, field response for S1": film_site_energies(film, cset, field_response=("S1",), **kw),
     })
-    variants = {k: v.set_index("molecule") for k, v in variants.items()}
+    variants = {k: v.table.set_index("molecule") for k, v in variants.items()}
     t_model = time.perf_counter() - t0
     keys = ["S1_shift_eV", "T1_shift_eV"] + (["IP_shift_eV", "EA_shift_eV"] if args.charged else [])
     qcache = os.path.join(OUT, "parity_qm_cache.json")

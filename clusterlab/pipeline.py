@@ -17,7 +17,7 @@ from typing import Any, Callable
 from .film import Film, load_film
 from .report import ReportWriter, model_section, sample_section, scan_section
 from .store import ResultStore
-from .studyfile import method_from_study
+from .studyfile import method_from_study, xc_basis
 
 
 @dataclass
@@ -101,25 +101,22 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
                      f"[{r.sigma_lo_eV * 1e3:.0f}, {r.sigma_hi_eV * 1e3:.0f}] (95 % CI), n={r.n}")
 
     if "model" in present:
-        from .electrostatics.sitemodel import run_film_model
-        from .electrostatics.statecharges import parse_method
+        from .study.filmmodel import run_film_model
 
         t0 = time.perf_counter()
         m = study["model"]
         echo(f"film-wide electrostatic model (radius {m['radius']} Å, polarization {m['polarization']}, "
              f"{m['n_conformers']} conformer reference(s), S1 response {m['response']}) ...")
-        fit_method: Any = method
-        if m["charges_method"]:
-            fit_method = m["charges_method"]
-            if m["response"]:  # the finite fields run the engine: the study method at the fit's xc/basis
-                xc, basis = parse_method(m["charges_method"])
-                fit_method = method.replace(xc=xc, basis=basis)
+        fit_method = method
+        if m["charges_method"]:  # the study method at the fit's xc/basis (charges and finite fields)
+            xc, basis = xc_basis(m["charges_method"])
+            fit_method = method.replace(xc=xc, basis=basis)
         outcome.model = run_film_model(film, fit_method, radius_A=m["radius"], frames=m["frames"],
                                        polarization=m["polarization"], polarize_molecules=m["polarize_molecules"],
                                        reference_molecule=m["reference_molecule"], n_conformers=m["n_conformers"],
                                        response=m["response"], progress=progress, store=store)
         outcome.timings_s["model"] = time.perf_counter() - t0
-        model_section(rep, outcome.model, n_conformers=m["n_conformers"], response=m["response"])
+        model_section(rep, outcome.model)
 
     if "export" in present:
         from .export import export_study

@@ -138,20 +138,28 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
     return stats
 
 
-def model_section(rep: ReportWriter, model_df: pd.DataFrame, parity: dict[str, Any] | None = None, *,
-                  n_conformers: int = 1, response: bool = False) -> None:
-    """Film-wide electrostatic model: distribution of every state's shift."""
+def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None = None) -> None:
+    """Film-wide electrostatic model: distribution of every state's shift.
+
+    ``result`` is a :class:`~clusterlab.study.filmmodel.FilmModelResult`; the
+    conformer references and the field response are read from it.
+    """
     from .stats import disorder_stats
     from .study.plots import plot_histogram
 
+    model_df = result.table
+    n_fit = max([len(refs) for refs in result.charges.conformers.values()] or [1])
+    n_asked = int(result.options.get("n_conformers", n_fit))
+    refs = f"{n_asked} conformer reference(s)" + (f" asked for, {n_fit} fitted" if n_asked != n_fit else "")
+    response = list(result.options.get("field_response") or [])
     cols = [c for c in model_df.columns if c.endswith("_eV") and model_df[c].notna().sum() > 3]
     rep.section(f"Film-wide electrostatic model ({model_df.molecule.nunique()} molecules x "
                 f"{model_df.frame.nunique()} frames)",
                 "Shift of each state = Σ (q_state − q_ground) × potential of the environment's ground-state "
-                f"charges (state charges fitted to the QM electrostatic potential of {n_conformers} conformer "
-                "reference(s); each copy takes the reference it superposes onto best)"
-                + ("; S1 instead from the finite-field response −Δμ·F − ½F·Δα·F with F the uniform field that "
-                   "best fits the environment potential over the molecule" if response else
+                f"charges (state charges fitted to the QM electrostatic potential of {refs}; each copy takes "
+                "the reference it superposes onto best)"
+                + (f"; {' and '.join(response)} instead from the finite-field response −Δμ·F − ½F·Δα·F with F "
+                   "the uniform field that best fits the environment potential over the molecule" if response else
                    "; for a bright S1 the second-order (polarizability) part of the shift is missing, which "
                    "can dominate (README: set response = true)")
                 + ". Leaves out: each copy's own distortion beyond its conformer family, polarisation unless "

@@ -111,7 +111,8 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "polarize_molecules": Setting((list, str), None, "molecule ids to polarize, a list or a text such as "
                                                          "'0-9' (default all; seconds each)"),
         "reference_molecule": Setting((int,), 0, "molecule whose geometry the state charges are fitted on"),
-        "charges_method": Setting((str,), None, "'xc/basis' of the state-charge fit (default: the study method)"),
+        "charges_method": Setting((str,), None, "'xc/basis' of the state-charge fit and finite fields (the study "
+                                                "method with this xc and basis; default: the study method)"),
         "n_conformers": Setting((int,), 1, "conformer references per molecule type (one QM fit each)"),
         "response": Setting((bool,), False, "S1 from the finite-field response -Δμ·F - ½F·Δα·F (25 QM runs "
                                             "per reference) instead of first-order charges"),
@@ -155,6 +156,11 @@ def _check_value(section: str, key: str, value: Any, where: str) -> Any:
     if key in ("radii",) and isinstance(value, list) and (
             not value or not all(isinstance(r, (int, float)) and r > 0 for r in value)):
         raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must be a non-empty list of positive radii (Å).")
+    if key == "charges_method":
+        try:
+            xc_basis(value)
+        except StudyFileError as exc:
+            raise StudyFileError(f"{where}: [{section}] {key} = {value!r}: {exc}") from None
     if key == "radius" and isinstance(value, list) and not all(isinstance(r, (int, float)) and r > 0 for r in value):
         raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must hold positive radii (Å).")
     try:
@@ -185,6 +191,21 @@ def _read_ranges(section: str, key: str, value: Any) -> Any:
 
 def _is_all(value: Any) -> bool:
     return isinstance(value, str) and value.strip().lower() == "all"
+
+
+def xc_basis(text: str) -> tuple[str, str]:
+    """``(xc, basis)`` of an ``"xc/basis"`` setting such as ``[model] charges_method``
+    (``"hf/..."`` means Hartree-Fock).
+
+    Raises
+    ------
+    StudyFileError
+        Anything but two non-empty names around one ``/``.
+    """
+    xc, sep, basis = str(text).partition("/")
+    if not sep or not xc.strip() or not basis.strip() or "/" in basis:
+        raise StudyFileError(f"{text!r} is not a method description; use 'xc/basis', e.g. 'b3lyp/6-31g'.")
+    return xc.strip(), basis.strip()
 
 
 def validate(data: dict[str, Any], where: str = "study") -> dict[str, dict[str, Any]]:

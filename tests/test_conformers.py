@@ -84,7 +84,7 @@ def test_equivalence_classes_and_symmetrized_charges():
     bond list) and its atom pairs are exactly the classes found; the symmetrized
     charges are invariant under the swap and keep every state's total charge."""
     from clusterlab.electrostatics.conformers import bonds_by_distance, equivalence_classes
-    from clusterlab.electrostatics.sitemodel import StateChargeSet
+    from clusterlab.electrostatics.chargeset import StateChargeSet
 
     import warnings
 

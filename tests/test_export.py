@@ -9,6 +9,8 @@ lattice (D = k a^2, textbook).
 
 from __future__ import annotations
 
+import dataclasses
+
 import json
 import math
 
@@ -22,9 +24,10 @@ from MDAnalysis.coordinates.memory import MemoryReader
 from MDAnalysis.lib.mdamath import triclinic_vectors
 
 from clusterlab import film_from_universe
-from clusterlab.electrostatics.sitemodel import StateChargeSet, film_site_energies
+from clusterlab.electrostatics.chargeset import StateChargeSet
 from clusterlab.errors import InputError
 from clusterlab.geometry import unwrap_over_frames
+from clusterlab.study.filmmodel import film_site_energies
 from clusterlab.transport import point_dipole_coupling, run_kmc
 from clusterlab.export import (
     NO_SOURCE,
@@ -87,7 +90,7 @@ def charge_set():
 
 @pytest.fixture(scope="module")
 def model_table(water_film, charge_set):
-    return film_site_energies(water_film, radius=6.0, charges=charge_set, progress=False)
+    return film_site_energies(water_film, charge_set, radius_A=6.0, progress=False)
 
 
 def _qm_sample(frames=(0,), molecules=(0, 1, 2), radius=8.0, converged=True):
@@ -125,7 +128,7 @@ def test_site_table_keeps_qm_and_model_and_names_sources(water_film, model_table
     # QM has no ions, so IP comes from the model everywhere
     assert (t.source_IP == "electrostatic-model:R=6A:charges").all() and t.extrapolated_IP.all()
     # model shifts equal the model table row by row
-    merged = t.merge(model_table, on=["frame", "molecule"])
+    merged = t.merge(model_table.table, on=["frame", "molecule"])
     assert np.allclose(merged.S1_shift_model_eV, merged.S1_shift_eV_y)
     assert np.allclose(t.dEST_eV, t.S1_eV - t.T1_eV)
 
@@ -408,59 +411,34 @@ def test_kmc_on_exported_lattice_gives_k_a2(tmp_path):
     assert math.isfinite(D)
 
 
-def test_export_study_takes_transition_charges_from_the_model_attrs(water_film, model_table, charge_set,
-                                                                     tmp_path):
-    m = model_table.copy()
-    m.attrs = {**model_table.attrs, "charges": charge_set}
-    paths = export_study(water_film, tmp_path, model=m, cutoff_A=4.5)
+def test_export_study_takes_transition_charges_from_the_model(water_film, model_table, charge_set, tmp_path):
+    assert model_table.charges is charge_set
+    paths = export_study(water_film, tmp_path, model=model_table, cutoff_A=4.5)
     pairs = pd.read_parquet(paths["pairs_parquet"])
     ref = pair_table(water_film, 0, 4.5, transition_charges=charge_set)
     assert np.allclose(pairs[pairs.frame == 0].V_charges_eV, ref.V_charges_eV)
 
 
 # ---------------------------------------------------------------- film model input
-class _FilmModelResult:
-    """Stands for the film model's result object: table, radius_A, model, charges, to_frame()."""
-
-    def __init__(self, table, radius_A, model, charges):
-        self.table, self.radius_A, self.model, self.charges = table, radius_A, model, charges
-
-    def to_frame(self):
-        return self.table
-
-
-def test_film_model_input_reads_a_result_object_and_the_legacy_table(water_film, model_table, charge_set, tmp_path):
-    plain = pd.DataFrame(model_table)  # a copy without attrs, as pandas leaves after many operations
-    plain.attrs = {}
-    res = _FilmModelResult(plain, 6.0, "charges", charge_set)
-    got = film_model_input(res)
-    assert got.table is plain and got.radius_A == 6.0 and got.label == "charges" and got.charges is charge_set
-    assert got.details["charges_method"] == charge_set.method
-    legacy = film_model_input(model_table)
-    assert legacy.radius_A == 6.0 and legacy.label == model_table.attrs["model"]
-    assert legacy.details["rule"] == model_table.attrs["rule"]
-    # the site table is the same whichever form the model comes in
-    a = site_table(water_film, model=res, vacuum_eV=VACUUM)
-    b = site_table(water_film, model=model_table, vacuum_eV=VACUUM)
-    pd.testing.assert_frame_equal(a, b)
+def test_film_model_input_reads_the_film_model_result(water_film, model_table, charge_set):
+    got = film_model_input(model_table)
+    assert got.table is model_table.table and got.radius_A == 6.0 and got.label == "charges"
+    assert got.charges is charge_set and got.details["charges_method"] == charge_set.method
+    assert got.details["rule"] == model_table.options["rule"] == "atom"
+    assert got.details["environment"] == model_table.options["environment"]
+    a = site_table(water_film, model=model_table, vacuum_eV=VACUUM)
     assert a.attrs["sources"][0]["label"] == "electrostatic-model:R=6A:charges"
-    # export_study takes the result object's transition charges, as it does from the attrs
-    paths = export_study(water_film, tmp_path, model=res, cutoff_A=4.5, frames=[0])
-    ref = pair_table(water_film, 0, 4.5, transition_charges=charge_set)
-    assert np.allclose(pd.read_parquet(paths["pairs_parquet"]).V_charges_eV, ref.V_charges_eV)
 
 
-def test_film_model_input_rejects_a_table_without_attrs_and_other_types(water_film, model_table):
-    plain = model_table.copy()
-    plain.attrs = {}
-    with pytest.raises(InputError, match="DataFrame without the film model's attrs"):
-        film_model_input(plain)
+def test_film_model_input_rejects_bare_tables_and_other_types(water_film, model_table):
+    with pytest.raises(InputError, match="bare table carries neither.*got DataFrame"):
+        film_model_input(model_table.to_frame())
     with pytest.raises(InputError, match="got dict"):
         film_model_input({"radius_A": 6.0})
     with pytest.raises(InputError, match="got list"):
         site_table(water_film, model=[1, 2])
     with pytest.raises(InputError, match="lacks the column"):
-        film_model_input(_FilmModelResult(pd.DataFrame({"frame": [0]}), 6.0, "charges", None))
+        film_model_input(dataclasses.replace(model_table, table=pd.DataFrame({"frame": [0]})))
 
 
 # ---------------------------------------------------------------- export_study round trip
@@ -485,4 +463,4 @@ def test_export_study_reads_back_as_written(water_film, model_table, charge_set,
     assert set(back.metadata["rates"]) == {"S1", "h"} and back.metadata["user"] == {"note": "made-up"}
     assert [m["kind"] for m in back.metadata["models"]] == ["qm", "electrostatic-model"]
     model_entry = back.metadata["models"][1]
-    assert model_entry["radius_A"] == 6.0 and model_entry["rule"] == model_table.attrs["rule"]
+    assert model_entry["radius_A"] == 6.0 and model_entry["rule"] == model_table.options["rule"]

@@ -119,7 +119,8 @@ def test_film_model_over_frames_and_threads():
     molecules of one frame split when only one frame is asked for) against
     Film.carve and Coulomb's law summed over the carved point charges."""
     from clusterlab import film_from_universe
-    from clusterlab.electrostatics.sitemodel import StateChargeSet, film_site_energies
+    from clusterlab.electrostatics.chargeset import StateChargeSet
+    from clusterlab.study.filmmodel import film_site_energies
     from clusterlab.errors import InputError
 
     from conftest import TIP3P_Q, build_water_universe, lattice_centres
@@ -131,9 +132,9 @@ def test_film_model_over_frames_and_threads():
     cset = StateChargeSet.from_arrays({"WAT": {"S0": TIP3P_Q, "cation": [0.0, 0.5, 0.5]}})
     dq = cset.difference("WAT", "cation")
     radius = 7.0                                  # beyond half the 12.4 Å box: images
-    both = film_site_energies(film, ("cation",), radius=radius, charges=cset, progress=False, threads=2)
-    one = film_site_energies(film, ("cation",), radius=radius, charges=cset, progress=False, threads=2,
-                             frames=[2])
+    both = film_site_energies(film, cset, states=("cation",), radius_A=radius, progress=False, threads=2).table
+    one = film_site_energies(film, cset, states=("cation",), radius_A=radius, progress=False, threads=2,
+                             frames=[2]).table
     assert both.frame.tolist() == np.repeat([0, 1, 2], film.n_molecules).tolist()
     for frame, table in ((0, both), (1, both), (2, both), (2, one)):
         sub = table[table.frame == frame].set_index("molecule")
@@ -143,4 +144,4 @@ def test_film_model_over_frames_and_threads():
             ref = float(dq @ (c.env_charges / np.linalg.norm(d, axis=2)).sum(axis=1)) * COULOMB_EV_A
             assert sub.loc[i, "cation_shift_eV"] == pytest.approx(ref, abs=1e-10)
     with pytest.raises(InputError, match="no frame"):
-        film_site_energies(film, ("cation",), radius=radius, charges=cset, progress=False, frames=[])
+        film_site_energies(film, cset, states=("cation",), radius_A=radius, progress=False, frames=[])

@@ -19,11 +19,12 @@ from scipy.spatial.transform import Rotation
 
 from clusterlab import film_from_universe
 from clusterlab.cluster import Cluster
-from clusterlab.electrostatics.sitemodel import ConformerCharges, StateChargeSet, film_site_energies
+from clusterlab.electrostatics.chargeset import ConformerCharges, StateChargeSet
 from clusterlab.electrostatics.stark import StarkFit, stark_energy_eV, uniform_field_charges
 from clusterlab.errors import InputError
 from clusterlab.qm.finitefield import differential_polarizability
 from clusterlab.qm.method import Method
+from clusterlab.study.filmmodel import film_site_energies
 from clusterlab.units import BOHR_A, COULOMB_EV_A, DEBYE_E_A, HARTREE_TO_EV
 
 from conftest import TIP3P_Q, build_water_universe, lattice_centres
@@ -167,8 +168,8 @@ def test_film_model_second_order_matches_embedded_qm(ethylene_fit):
     ref = ConformerCharges(positions_A=pos, charges_e=dict(sc.charges_e), dalpha_A3=fit.dalpha_A3,
                            dmu_D=fit.dmu_D, frame=0, molecule=0)
     cset = StateChargeSet.from_conformers({"ETH": [ref]})
-    df = film_site_energies(film, ("T1",), radius=13.0, charges=cset, model="charges+stark", molecules=[0],
-                            progress=False).set_index("molecule")
+    df = film_site_energies(film, cset, states=("T1",), radius_A=13.0, second_order=True, molecules=[0],
+                            progress=False).table.set_index("molecule")
     c = film.carve(0, 13.0)
     assert c.n_charges == 4
     rp = excitations(c, CIS)
@@ -185,8 +186,8 @@ def test_film_model_second_order_matches_embedded_qm(ethylene_fit):
     assert df.loc[0, "T1_shift_eV"] == pytest.approx(sp, rel=0.2)
     assert df.loc[0, "field_V_A"] == pytest.approx(0.3, rel=0.3)
     # the response-only model: -Δμ·F - 1/2 F·Δα·F (Δμ = 0 here) gives the whole shift within 8 %
-    fm = film_site_energies(film, ("T1",), radius=13.0, charges=cset, model="field", molecules=[0],
-                            progress=False).set_index("molecule")
+    fm = film_site_energies(film, cset, states=("T1",), radius_A=13.0, field_response=("T1",), molecules=[0],
+                            progress=False).table.set_index("molecule")
     assert fm.loc[0, "T1_shift_eV"] == pytest.approx(sp, rel=0.08)
 
 
@@ -215,10 +216,10 @@ def test_stark_term_uses_rotated_tensor_and_least_squares_field():
     ref = ConformerCharges(positions_A=ref_pos, charges_e={"S0": q0, "S1": q0 + np.array([0.1, -0.05, -0.05])},
                            dalpha_A3={"S1": dalpha}, dmu_D={"S1": dmu})
     cset = StateChargeSet.from_conformers({"WAT": [ref]})
-    df = film_site_energies(film, ("S1",), radius=6.0, charges=cset, model="charges+stark",
-                            progress=False).set_index("molecule")
-    fm = film_site_energies(film, ("S1",), radius=6.0, charges=cset, model="field",
-                            progress=False).set_index("molecule")
+    df = film_site_energies(film, cset, states=("S1",), radius_A=6.0, second_order=True,
+                            progress=False).table.set_index("molecule")
+    fm = film_site_energies(film, cset, states=("S1",), radius_A=6.0, field_response=("S1",),
+                            progress=False).table.set_index("molecule")
     for i in (0, 9, 30, 63):
         c = film.carve(i, 6.0)
         x = c.qm_positions
@@ -236,6 +237,6 @@ def test_stark_term_uses_rotated_tensor_and_least_squares_field():
         assert fm.loc[i, "S1_first_order_eV"] == pytest.approx(first, rel=1e-6, abs=1e-12)
         assert fm.loc[i, "S1_shift_eV"] == pytest.approx(first + want, rel=1e-6, abs=1e-12)
     with pytest.raises(InputError, match="needs polarizability"):
-        film_site_energies(film, ("S1",), radius=6.0, charges=StateChargeSet.from_arrays({"WAT": ref.charges_e}),
-                           model="charges+stark", progress=False)
+        film_site_energies(film, StateChargeSet.from_arrays({"WAT": ref.charges_e}), states=("S1",), radius_A=6.0,
+                           second_order=True, progress=False)
     assert isinstance(c, Cluster)

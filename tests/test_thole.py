@@ -101,6 +101,34 @@ def test_iterative_matches_direct_random_field():
         assert res.energy_eV == pytest.approx(ref.energy_eV, rel=1e-8)
 
 
+def test_several_fields_at_once_match_one_by_one():
+    """A stack of fields (k, n, 3): the dense block CG (the automatic choice
+    without cutoff) gives each field's dipoles and energy of the direct solve;
+    "cg" on the stack gives exactly what one field at a time gives; the
+    automatic choice for one field (n, 3) is exactly "cg"."""
+    rng = np.random.default_rng(8)
+    sym, pos = benzene()
+    al = atomic_polarizabilities(sym)
+    fields = rng.normal(size=(3, len(sym), 3))
+    dense = solve_induced_dipoles(pos, al, fields, tol_eA=1e-10)
+    per_cg = solve_induced_dipoles(pos, al, fields, method="cg", tol_eA=1e-10)
+    assert len(dense) == 3 and all(p.method == "dense-cg" and p.converged for p in dense)
+    for k, f in enumerate(fields):
+        ref = solve_induced_dipoles(pos, al, f, method="direct")
+        assert np.allclose(dense[k].dipoles_eA, ref.dipoles_eA, atol=1e-9)
+        assert dense[k].energy_eV == pytest.approx(ref.energy_eV, rel=1e-8)
+        one = solve_induced_dipoles(pos, al, f, method="cg", tol_eA=1e-10)
+        assert np.array_equal(per_cg[k].dipoles_eA, one.dipoles_eA) and per_cg[k].energy_eV == one.energy_eV
+        auto = solve_induced_dipoles(pos, al, f, tol_eA=1e-10)
+        assert auto.method == "cg" and np.array_equal(auto.dipoles_eA, one.dipoles_eA)
+    # a cutoff keeps the stack on the pair-list path
+    assert {p.method for p in solve_induced_dipoles(pos, al, fields, cutoff_A=4.0)} == {"cg"}
+    with pytest.raises(InputError, match=r"field_V_per_A must have shape \(12, 3\) or \(k, 12, 3\)"):
+        solve_induced_dipoles(pos, al, fields[:, :5])
+    with pytest.raises(InputError, match="invalid method"):
+        solve_induced_dipoles(pos, al, fields, method="block")
+
+
 def test_non_convergence_is_flagged_or_raised():
     sym, pos = benzene()
     al = atomic_polarizabilities(sym)

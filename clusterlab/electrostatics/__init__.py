@@ -7,7 +7,8 @@
 * :mod:`.pairsum` - exact potentials of every molecule's carved environment, all molecules at once.
 * :mod:`.conformers` - superposition, conformer references, topological equivalence.
 * :mod:`.stark` - the Stark energy of a dipole and polarizability change, the finite-field fit record.
-* :mod:`.sitemodel` - the film-wide site-energy model.
+* :mod:`.chargeset` - state charges per molecule type (plain data, JSON).
+* :mod:`.fieldfit` - least-squares uniform field of a potential over each molecule.
 
 Units: Å, e, V (= eV/e), V/Å, e·Å, Å³, eV; boxes ``[lx, ly, lz, alpha, beta, gamma]``.
 """
@@ -49,9 +50,12 @@ __all__ = [
     "permanent_field", "polarization_energy", "solve_induced_dipoles",
 ]
 
+from .chargeset import ConformerCharges, StateChargeSet  # noqa: E402
 from .conformers import assign_conformers, equivalence_classes, pick_references, superpose  # noqa: E402
+from .fieldfit import UniformFieldFit, uniform_field_fit  # noqa: E402
 from .pairsum import environment_potential  # noqa: E402
 from .stark import StarkFit, stark_energy_eV, uniform_field_charges  # noqa: E402
 
-__all__ += ["environment_potential", "superpose", "pick_references", "assign_conformers", "equivalence_classes",
+__all__ += ["StateChargeSet", "ConformerCharges", "UniformFieldFit", "uniform_field_fit", "environment_potential",
+            "superpose", "pick_references", "assign_conformers", "equivalence_classes",
             "StarkFit", "stark_energy_eV", "uniform_field_charges"]

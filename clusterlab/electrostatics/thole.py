@@ -71,6 +71,7 @@ __all__ = [
     "permanent_field",
     "dipole_tensor_matrix",
     "solve_induced_dipoles",
+    "SOLVE_METHODS",
     "polarization_energy",
     "molecular_polarizability",
 ]
@@ -279,20 +280,26 @@ class Polarization:
     method: str
 
 
+#: Methods of :func:`solve_induced_dipoles`.
+SOLVE_METHODS = ("auto", "cg", "dense-cg", "jacobi", "direct")
+#: Largest 3n for which ``method="auto"`` builds the dense tensor (about 230 MB).
+_DENSE_MAX = 5400
+
+
 def solve_induced_dipoles(
     positions_A: npt.ArrayLike,
     alpha_A3: npt.ArrayLike,
     field_V_per_A: npt.ArrayLike,
     *,
     a: float = THOLE_EXP_A,
-    method: str = "cg",
+    method: str = "auto",
     tol_eA: float = 1e-8,
     max_iter: int = 500,
     omega: float = 0.8,
     cutoff_A: float | None = None,
     raise_on_fail: bool = False,
-) -> Polarization:
-    """Induced dipoles in a given permanent field, by an iterative or a direct solve.
+) -> Polarization | tuple[Polarization, ...]:
+    """Induced dipoles in one or several permanent fields, by an iterative or a direct solve.
 
     Solves :math:`(\\alpha^{-1} - \\mathsf T)\\,\\mu = \\mathbf E^0`, written
     as :math:`(1 - \\alpha \\mathsf T)\\mu = \\alpha \\mathbf E^0` so that
@@ -302,16 +309,26 @@ def solve_induced_dipoles(
     ----------
     positions_A : array_like, shape (n, 3), Å
     alpha_A3 : array_like, shape (n,), Å³
-    field_V_per_A : array_like, shape (n, 3), V/Å
-        Permanent field at each site (see :func:`permanent_field`).
+    field_V_per_A : array_like, shape (n, 3) or (k, n, 3), V/Å
+        Permanent field at each site (see :func:`permanent_field`); a stack
+        of k fields is solved for at once (same sites, one solution each).
     a : float
         Thole damping parameter.
-    method : {"cg", "jacobi", "direct"}
+    method : {"auto", "cg", "dense-cg", "jacobi", "direct"}
         ``"cg"``: preconditioned conjugate gradients on the symmetric system
-        :math:`\\alpha^{1/2}(\\alpha^{-1}-T)\\alpha^{1/2}`;
+        :math:`\\alpha^{1/2}(\\alpha^{-1}-T)\\alpha^{1/2}`, with the coupling
+        applied pair by pair (memory grows with the pairs, so ``cutoff_A``
+        can thin it), one field after the other;
+        ``"dense-cg"``: the same conjugate gradients for all fields at once
+        (block), with the dense tensor of :func:`dipole_tensor_matrix`
+        (memory 72 n² bytes; one matrix product per iteration for all k
+        fields; a field stops when its residual is below ``tol_eA``);
         ``"jacobi"``: relaxed Jacobi iteration
         :math:`\\mu \\leftarrow (1-\\omega)\\mu + \\omega\\alpha(E^0+T\\mu)`;
         ``"direct"``: dense linear solve (small systems, reference).
+        ``"auto"`` (default): ``"dense-cg"`` for a stack of fields (k, n, 3)
+        without ``cutoff_A`` when 3n <= 5400, ``"cg"`` otherwise (so one
+        field of shape (n, 3) is solved exactly as by ``"cg"``).
     tol_eA : float
         Convergence: largest residual component below this (e·Å).
     max_iter : int
@@ -326,23 +343,61 @@ def solve_induced_dipoles(
     Returns
     -------
     Polarization
+        For one field of shape (n, 3); a tuple of k of them (in the order of
+        the stack) for fields of shape (k, n, 3).
+
+    Raises
+    ------
+    InputError
+        Bad shapes, polarizabilities, method or omega.
+    ConvergenceError
+        Only with ``raise_on_fail=True``.
     """
     pos, al = _check_sites(positions_A, alpha_A3)
-    e0 = np.asarray(field_V_per_A, dtype=np.float64).reshape(len(pos), 3) / COULOMB_EV_A
-    if method not in ("cg", "jacobi", "direct"):
-        raise InputError(f"{method!r} is an invalid method. Use 'cg', 'jacobi' or 'direct'.")
+    n = len(pos)
+    fields = np.asarray(field_V_per_A, dtype=np.float64)
+    stacked = fields.ndim == 3
+    if (stacked and fields.shape[1:] != (n, 3)) or (not stacked and fields.size != 3 * n):
+        raise InputError(f"field_V_per_A must have shape ({n}, 3) or (k, {n}, 3) for {n} sites; got {fields.shape}.")
+    if method not in SOLVE_METHODS:
+        raise InputError(f"{method!r} is an invalid method. Use {', '.join(map(repr, SOLVE_METHODS))}.")
     if not 0 < omega <= 1.5:
         raise InputError(f"omega must lie in (0, 1.5]; got {omega!r}.")
-    n = len(pos)
+    if method == "auto":
+        method = "dense-cg" if stacked and cutoff_A is None and 3 * n <= _DENSE_MAX else "cg"
+    e0 = fields.reshape(-1, n, 3) / COULOMB_EV_A
     if n == 0:
-        return Polarization(np.zeros((0, 3)), 0.0, True, 0, 0.0, method)
-    rhs = al[:, None] * e0
+        out = [Polarization(np.zeros((0, 3)), 0.0, True, 0, 0.0, method) for _ in e0]
+    elif method == "dense-cg":
+        out = _dense_block_cg(pos, al, e0, a, cutoff_A, tol_eA, max_iter)
+    else:
+        out = [_solve_one(pos, al, e, a, method, tol_eA, max_iter, omega, cutoff_A) for e in e0]
+    for pol in out:
+        if not pol.converged and raise_on_fail:
+            raise ConvergenceError(
+                f"induced dipoles did not converge with method {method!r}: residual {pol.residual_eA:.3g} e·Å "
+                f"after {pol.iterations} iterations (tol_eA={tol_eA}). Raise max_iter, lower omega, or check "
+                "for sites that are too close (polarization catastrophe)."
+            )
+    return tuple(out) if stacked else out[0]
 
+
+def _masked_tensor(pos: FloatArray, al: FloatArray, a: float, cutoff_A: float | None) -> FloatArray:
+    """Dense T of :func:`dipole_tensor_matrix`, pairs beyond ``cutoff_A`` set to zero."""
+    t = dipole_tensor_matrix(pos, al, a)
+    if cutoff_A is not None:
+        rr = np.linalg.norm(pos[:, None] - pos[None], axis=2)
+        t = t * np.repeat(np.repeat(rr <= cutoff_A, 3, 0), 3, 1)
+    return t
+
+
+def _solve_one(pos: FloatArray, al: FloatArray, e0: FloatArray, a: float, method: str, tol_eA: float,
+               max_iter: int, omega: float, cutoff_A: float | None) -> Polarization:
+    """One field (n, 3) in e/Å² by "cg", "jacobi" or "direct"."""
+    n = len(pos)
+    rhs = al[:, None] * e0
     if method == "direct":
-        t = dipole_tensor_matrix(pos, al, a)
-        if cutoff_A is not None:
-            rr = np.linalg.norm(pos[:, None] - pos[None], axis=2)
-            t = t * np.repeat(np.repeat(rr <= cutoff_A, 3, 0), 3, 1)
+        t = _masked_tensor(pos, al, a, cutoff_A)
         m = np.eye(3 * n) - np.repeat(al, 3)[:, None] * t
         mu = np.linalg.solve(m, rhs.ravel()).reshape(n, 3)
         coup = None
@@ -387,14 +442,47 @@ def solve_induced_dipoles(
         resid = mu - rhs - al[:, None] * coup.apply(mu)
     res = float(np.max(np.abs(resid)))
     converged = bool(res < tol_eA and np.all(np.isfinite(mu)))
-    if not converged and raise_on_fail:
-        raise ConvergenceError(
-            f"induced dipoles did not converge with method {method!r}: residual {res:.3g} e·Å "
-            f"after {it} iterations (tol_eA={tol_eA}). Raise max_iter, lower omega, or check "
-            "for sites that are too close (polarization catastrophe)."
-        )
     energy = -0.5 * float(np.sum(mu * e0)) * COULOMB_EV_A
     return Polarization(mu, energy, converged, it, res, method)
+
+
+def _dense_block_cg(pos: FloatArray, al: FloatArray, e0_k: FloatArray, a: float, cutoff_A: float | None,
+                    tol_eA: float, max_iter: int) -> list[Polarization]:
+    """Fields (k, n, 3) in e/Å² at once: conjugate gradients on the symmetric
+    system (1 - s T s) y = s E0, s = alpha^1/2, mu = s y (the equations of "cg"),
+    one column per field, with the dense tensor."""
+    k, n = len(e0_k), len(pos)
+    s = np.repeat(np.sqrt(al), 3)
+    mat = -(s[:, None] * _masked_tensor(pos, al, a, cutoff_A) * s[None, :])
+    mat[np.diag_indices_from(mat)] += 1.0
+    e0 = np.ascontiguousarray(e0_k.reshape(k, 3 * n).T)                  # (3n, k), e/Å^2
+    b = s[:, None] * e0
+    y = b.copy()
+    r = b - mat @ y
+    p = r.copy()
+    rs = np.einsum("ik,ik->k", r, r)
+    done = np.max(np.abs(s[:, None] * r), axis=0) < tol_eA
+    its = np.zeros(k, np.int64)
+    for it in range(1, max_iter + 1):
+        if done.all():
+            break
+        its[~done] = it
+        ap = mat @ p
+        pap = np.einsum("ik,ik->k", p, ap)
+        step = np.where(done | (pap <= 0), 0.0, rs / np.where(pap > 0, pap, 1.0))
+        y += step * p
+        r -= step * ap
+        rs_new = np.einsum("ik,ik->k", r, r)
+        done |= np.max(np.abs(s[:, None] * r), axis=0) < tol_eA
+        done |= pap <= 0                                                   # not positive definite
+        p = r + np.where(rs > 0, rs_new / np.where(rs > 0, rs, 1.0), 0.0) * p
+        rs = rs_new
+    mu = s[:, None] * y
+    resid = np.max(np.abs(s[:, None] * (b - mat @ y)), axis=0)
+    energy = -0.5 * np.einsum("ik,ik->k", mu, e0) * COULOMB_EV_A
+    return [Polarization(np.ascontiguousarray(mu[:, j].reshape(n, 3)), float(energy[j]),
+                         bool(resid[j] < tol_eA and np.all(np.isfinite(mu[:, j]))), int(its[j]), float(resid[j]),
+                         "dense-cg") for j in range(k)]
 
 
 def polarization_energy(

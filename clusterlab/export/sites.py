@@ -257,7 +257,7 @@ def _vacuum_table(vacuum_eV: Any) -> dict[str, dict[str, float]]:
     if fits is not None:  # a StateChargeSet: its reference fits carry vacuum energies
         out: dict[str, dict[str, float]] = {}
         for res, fit in fits.items():
-            e = dict(getattr(fit, "energy_eV", {}) or {})
+            e = dict(fit.get("energy_eV", {}) or {})  # fits are plain JSON records of the QM fits
             d: dict[str, float] = {}
             for q in ("S1", "T1"):
                 if q in e:
@@ -289,13 +289,10 @@ class FilmModelInput(NamedTuple):
     radius_A: float | None
     #: the kind of model, e.g. ``"charges"`` or ``"field"``
     label: str
-    #: the model's :class:`~clusterlab.electrostatics.sitemodel.StateChargeSet` (None when not known)
+    #: the model's :class:`~clusterlab.electrostatics.chargeset.StateChargeSet`
     charges: Any
     #: further provenance for the sidecar: ``rule``, ``environment``, ``charges_method`` (None when not known)
     details: dict[str, Any]
-
-
-_MODEL_DETAILS = ("rule", "environment", "charges_method")
 
 
 def film_model_input(model: Any) -> FilmModelInput:
@@ -303,15 +300,10 @@ def film_model_input(model: Any) -> FilmModelInput:
 
     Parameters
     ----------
-    model : film model result or DataFrame
-        The film model's result: any object with ``to_frame()`` (the table of
-        per-molecule environment shifts) and ``radius_A``, and optionally
-        ``model`` (the kind, default ``"charges"``), ``charges`` (the
-        state-charge set), ``rule``, ``environment`` and ``charges_method``.
-        Also, for now, the DataFrame of
-        :func:`~clusterlab.electrostatics.sitemodel.film_site_energies` or
-        ``run_film_model`` with its ``attrs`` (``radius_A``, ``model``,
-        ``charges``, ...) as those functions leave them.
+    model : clusterlab.study.FilmModelResult
+        What :func:`~clusterlab.study.filmmodel.film_site_energies`,
+        :meth:`~clusterlab.study.filmmodel.FilmModel.run` and
+        :func:`~clusterlab.study.filmmodel.run_film_model` return.
 
     Returns
     -------
@@ -321,45 +313,30 @@ def film_model_input(model: Any) -> FilmModelInput:
     Raises
     ------
     InputError
-        For any other type, a DataFrame without the model's ``attrs`` (pandas
-        drops them in many operations), or a table without ``frame`` and
-        ``molecule`` columns.
+        For any other type (a bare DataFrame carries neither the radius nor
+        the charges), or a table without ``frame`` and ``molecule`` columns.
 
     Examples
     --------
     >>> film_model_input([1, 2])  # doctest: +IGNORE_EXCEPTION_DETAIL
     Traceback (most recent call last):
-    InputError: model= must be a film model result ...; got list.
+    InputError: model= must be a FilmModelResult ...; got list.
     """
-    # a DataFrame is tested first: it shows its columns as attributes (a radius_A column, say)
-    if isinstance(model, pd.DataFrame):  # legacy: DataFrame with attrs
-        if "radius_A" not in model.attrs:
-            raise InputError("model= is a DataFrame without the film model's attrs (radius_A, model, charges): "
-                             "pandas drops them in many operations. Pass the film model's result, or its "
-                             "table as film_site_energies / run_film_model returned it.")
-        table = model
-        radius = model.attrs.get("radius_A")
-        label = model.attrs.get("model")
-        charges = model.attrs.get("charges")
-        details = {k: model.attrs.get(k) for k in _MODEL_DETAILS}
-    elif hasattr(model, "to_frame") and hasattr(model, "radius_A"):
-        table = model.to_frame()
-        radius = model.radius_A
-        label = getattr(model, "model", None)
-        charges = getattr(model, "charges", None)
-        details = {k: getattr(model, k, None) for k in _MODEL_DETAILS}
-    else:
-        raise InputError("model= must be a film model result (with to_frame() and radius_A) or the DataFrame of "
-                         f"film_site_energies; got {type(model).__name__}.")
-    if not isinstance(table, pd.DataFrame):
-        raise InputError(f"the film model's table must be a pandas DataFrame; got {type(table).__name__}.")
+    from ..study.filmmodel import FilmModelResult
+
+    if not isinstance(model, FilmModelResult):
+        hint = (" (a bare table carries neither the model's radius nor its charges)"
+                if isinstance(model, pd.DataFrame) else "")
+        raise InputError("model= must be a FilmModelResult (what film_site_energies, FilmModel.run and "
+                         f"run_film_model return){hint}; got {type(model).__name__}.")
+    table = model.table
     miss = [c for c in ("frame", "molecule") if c not in table.columns]
     if miss:
         raise InputError(f"the model table lacks the column(s) {miss}.")
-    if details["charges_method"] is None and charges is not None:
-        details["charges_method"] = getattr(charges, "method", None)
-    return FilmModelInput(table=table, radius_A=None if radius is None else float(radius),
-                          label=str(label) if label else "charges", charges=charges, details=details)
+    details = {"rule": model.options.get("rule"), "environment": model.options.get("environment"),
+               "charges_method": getattr(model.charges, "method", None)}
+    return FilmModelInput(table=table, radius_A=float(model.radius_A), label=str(model.model or "charges"),
+                          charges=model.charges, details=details)
 
 
 def site_table(

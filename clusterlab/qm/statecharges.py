@@ -36,6 +36,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
+from ..electrostatics.chargeset import KNOWN_STATES
 from ..electrostatics.espfit import Restraint, esp_rrms, fit_esp_charges, fit_points
 from ..errors import ConvergenceError, InputError
 from ..units import AU_DIPOLE_TO_DEBYE, BOHR_A, DEBYE_E_A, HARTREE_TO_EV
@@ -45,7 +46,6 @@ from .esp import esp_on_points, transition_density_ao
 from .method import Method
 
 FloatArray = npt.NDArray[np.float64]
-KNOWN_STATES = ("S0", "S1", "T1", "cation", "anion")
 TRANSITION_LABEL = "S0->S1"
 
 __all__ = ["StateCharges", "state_charges", "KNOWN_STATES"]

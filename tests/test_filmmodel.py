@@ -3,16 +3,16 @@ published ranges."""
 
 from __future__ import annotations
 
-import json
-
 import MDAnalysis as mda
 import numpy as np
+import pandas as pd
 import pytest
 from MDAnalysis.coordinates.memory import MemoryReader
 
 from clusterlab import film_from_universe
-from clusterlab.electrostatics.sitemodel import StateChargeSet, environment_pairs, film_site_energies
+from clusterlab.electrostatics.chargeset import StateChargeSet
 from clusterlab.errors import InputError
+from clusterlab.study.filmmodel import FilmModel, FilmModelResult, environment_pairs, film_site_energies
 from clusterlab.units import COULOMB_EV_A, DEBYE_E_A
 
 from conftest import TIP3P_Q, build_water_universe, lattice_centres, random_rotation
@@ -51,7 +51,7 @@ def _carved_shift(cluster, dq):
 def test_shift_equals_sum_over_carved_cluster(small_film, water_set, rule, radius):
     """Independent path: Film.carve builds the cluster, the shift is summed
     directly from its point charges (Coulomb's law), for every molecule."""
-    df = film_site_energies(small_film, radius=radius, charges=water_set, rule=rule, progress=False)
+    df = film_site_energies(small_film, water_set, radius_A=radius, rule=rule, progress=False).table
     assert len(df) == 2 * small_film.n_molecules
     for frame in (0, 1):
         sub = df[df.frame == frame].set_index("molecule")
@@ -96,8 +96,8 @@ def _loop_reference(film, charges_by_state, radius, frame):
 def test_matches_plain_loop(small_film, water_set):
     radius = 6.5
     ref = _loop_reference(small_film, {s: water_set.difference("WAT", s) for s in ("cation", "S1")}, radius, 1)
-    df = film_site_energies(small_film, ("cation", "S1"), radius=radius, frames=[1], charges=water_set,
-                            progress=False).set_index("molecule")
+    df = film_site_energies(small_film, water_set, states=("cation", "S1"), radius_A=radius, frames=[1],
+                            progress=False).table.set_index("molecule")
     for i, d in ref.items():
         assert df.loc[i, "cation_shift_eV"] == pytest.approx(d["cation"], abs=1e-10)
         assert df.loc[i, "S1_shift_eV"] == pytest.approx(d["S1"], abs=1e-10)
@@ -108,7 +108,8 @@ def test_triclinic_box_matches_carving(water_set):
     box = np.array([16.0, 15.0, 17.0, 75.0, 85.0, 100.0])
     u, _ = build_water_universe(lattice_centres(4, 0.15, rng), box, seed=9)
     film = film_from_universe(u)
-    df = film_site_energies(film, ("cation",), radius=7.0, charges=water_set, progress=False).set_index("molecule")
+    df = film_site_energies(film, water_set, states=("cation",), radius_A=7.0, progress=False).table.set_index(
+        "molecule")
     for i in range(0, film.n_molecules, 5):
         ref = _carved_shift(film.carve(i, 7.0), water_set.difference("WAT", "cation"))
         assert df.loc[i, "cation_shift_eV"] == pytest.approx(ref, abs=1e-10)
@@ -116,18 +117,48 @@ def test_triclinic_box_matches_carving(water_set):
 
 def test_limits_and_subset(small_film, water_set):
     """No environment gives zero shift; a molecule subset gives the same numbers."""
-    full = film_site_energies(small_film, radius=6.0, frames=[0], charges=water_set, progress=False)
-    part = film_site_energies(small_film, radius=6.0, frames=[0], charges=water_set, progress=False,
-                              molecules=[3, 17, 40])
+    full = film_site_energies(small_film, water_set, radius_A=6.0, frames=[0], progress=False).table
+    part = film_site_energies(small_film, water_set, radius_A=6.0, frames=[0], progress=False,
+                              molecules=[3, 17, 40]).table
     assert np.allclose(part["cation_shift_eV"].to_numpy(),
                        full.set_index("molecule").loc[[3, 17, 40], "cation_shift_eV"].to_numpy(), atol=1e-12)
-    tiny = film_site_energies(small_film, radius=0.5, frames=[0], charges=water_set, progress=False)
+    tiny = film_site_energies(small_film, water_set, radius_A=0.5, frames=[0], progress=False).table
     assert (tiny["n_env_molecules"] == 0).all()
     assert np.allclose(tiny["cation_shift_eV"], 0.0)
     # fitted environment charges equal to the film's give identical shifts
-    fit = film_site_energies(small_film, radius=6.0, frames=[0], charges=water_set, progress=False,
-                             environment="fitted")
+    fit = film_site_energies(small_film, water_set, radius_A=6.0, frames=[0], progress=False,
+                             environment="fitted").table
     assert np.allclose(fit["cation_shift_eV"], full["cation_shift_eV"], atol=1e-12)
+
+
+def test_model_object_step_run_and_result(small_film, water_set):
+    """One model object: its per-frame step gives the rows its run gives; the
+    result carries radius, label, every option, the charge set and versions,
+    and comes back from JSON exactly."""
+    model = FilmModel(small_film, water_set, radius_A=6.0, states=("cation", "S1"), environment="fitted")
+    res = model.run(frames=[1, 0], molecules=[40, 3, 17], progress=False)
+    assert isinstance(res, FilmModelResult) and res.table.attrs == {}
+    assert res.table.frame.tolist() == [1, 1, 1, 0, 0, 0] and res.table.molecule.tolist() == [3, 17, 40] * 2
+    step = model.step(0, molecules=[3, 17, 40])
+    pd.testing.assert_frame_equal(step, res.table[res.table.frame == 0].reset_index(drop=True), check_exact=True)
+    assert res.radius_A == 6.0 and res.model == "charges" and res.charges is water_set
+    assert res.options["environment"] == "fitted" and res.options["states"] == ["cation", "S1"]
+    assert res.options["frames"] == [1, 0] and res.options["molecules"] == [3, 17, 40]
+    assert res.options["film_id"] == small_film.film_id and res.versions["clusterlab"]
+    s = res.summary()
+    assert s["n_rows"] == 6 and s["n_frames"] == 2 and s["model"] == "charges"
+    assert s["cation_shift_mean_eV"] == pytest.approx(res.table.cation_shift_eV.mean(), rel=1e-12)
+    assert s["S1_shift_std_eV"] == pytest.approx(res.table.S1_shift_eV.std(), rel=1e-12)
+    back = FilmModelResult.from_json(res.to_json())
+    pd.testing.assert_frame_equal(back.table, res.table, check_exact=True)
+    assert (back.radius_A, back.model, back.options, back.versions) == (res.radius_A, res.model, res.options,
+                                                                        res.versions)
+    assert back.charges.to_json() == water_set.to_json()
+    pd.testing.assert_frame_equal(res.to_frame(), res.table)
+    with pytest.raises(InputError, match="not a film model result"):
+        FilmModelResult.from_json('{"kind": "clusterlab.StateChargeSet"}')
+    # labels name the options (report and export source strings)
+    assert FilmModel(small_film, water_set, radius_A=6.0, polarization=True).label == "charges+polarization"
 
 
 def test_environment_pairs_match_carve(small_film):
@@ -141,30 +172,25 @@ def test_environment_pairs_match_carve(small_film):
 
 
 def test_input_errors(small_film, water_set):
-    with pytest.raises(InputError, match="invalid model"):
-        film_site_energies(small_film, radius=5.0, charges=water_set, model="dipoles")
+    # the model's options are checked once, when it is built
+    with pytest.raises(InputError, match="field_response .* is invalid"):
+        FilmModel(small_film, water_set, radius_A=5.0, field_response=("cation",))
+    with pytest.raises(InputError, match="second_order must be True or False"):
+        FilmModel(small_film, water_set, radius_A=5.0, second_order="stark")
     with pytest.raises(InputError, match="choose from"):
-        film_site_energies(small_film, ("S2",), radius=5.0, charges=water_set)
+        FilmModel(small_film, water_set, radius_A=5.0, states=("S2",))
     with pytest.raises(InputError, match="invalid rule"):
-        film_site_energies(small_film, radius=5.0, charges=water_set, rule="com")
+        FilmModel(small_film, water_set, radius_A=5.0, rule="com")
     with pytest.raises(InputError, match="positive number"):
-        film_site_energies(small_film, radius=-1.0, charges=water_set)
+        FilmModel(small_film, water_set, radius_A=-1.0)
+    with pytest.raises(InputError, match="invalid environment"):
+        FilmModel(small_film, water_set, radius_A=5.0, environment="vacuum")
+    with pytest.raises(InputError, match="threads must be a positive integer"):
+        FilmModel(small_film, water_set, radius_A=5.0, threads=0)
     with pytest.raises(InputError, match="StateChargeSet"):
-        film_site_energies(small_film, radius=5.0, charges={"WAT": WATER_STATES})
+        FilmModel(small_film, {"WAT": WATER_STATES}, radius_A=5.0)
     with pytest.raises(InputError, match="no S0"):
         StateChargeSet.from_arrays({"WAT": {"cation": [0, 0.5, 0.5]}})
-
-
-def test_json_round_trip(water_set, tmp_path):
-    path = tmp_path / "set.json"
-    water_set.save(str(path))
-    back = StateChargeSet.load(str(path))
-    assert back.resnames == ["WAT"]
-    for st in WATER_STATES:
-        assert np.array_equal(back.charges_e["WAT"][st], water_set.charges_e["WAT"][st])
-    assert json.loads(path.read_text())["kind"] == "clusterlab.StateChargeSet"
-    with pytest.raises(InputError, match="not a state-charge set"):
-        StateChargeSet.from_json('{"kind": "other"}')
 
 
 # ------------------------------------------------------------------ polarization
@@ -190,8 +216,8 @@ def test_polarization_negative_growing_and_born_like(water_lattice10, water_set)
     radii = [4.0, 7.0, 10.0, 12.0]
     p = {}
     for r in radii:
-        df = film_site_energies(water_lattice10, ("cation", "anion"), radius=r, charges=water_set,
-                                model="charges+polarization", molecules=mols, progress=False)
+        df = film_site_energies(water_lattice10, water_set, states=("cation", "anion"), radius_A=r,
+                                polarization=True, molecules=mols, progress=False).table
         assert df["P_converged"].all()
         assert np.allclose(df["cation_total_eV"], df["cation_shift_eV"] + df["P_cation_eV"])
         p[r] = df["P_cation_eV"].to_numpy()
@@ -247,8 +273,8 @@ def test_hole_polarization_energy_in_published_range():
     cset = StateChargeSet.from_arrays({"BNZ": {"S0": q0, "cation": q0 + np.r_[[1 / 6] * 6, [0.0] * 6]}})
     p = {}
     for r in (11.0, 14.0):
-        df = film_site_energies(film, ("cation",), radius=r, charges=cset, model="charges+polarization",
-                                molecules=[100], progress=False)
+        df = film_site_energies(film, cset, states=("cation",), radius_A=r, polarization=True,
+                                molecules=[100], progress=False).table
         assert df["P_converged"].all()
         p[r] = -float(df["P_cation_eV"].iloc[0])
     slope = (p[14.0] - p[11.0]) / (1 / 11.0 - 1 / 14.0)
@@ -301,7 +327,7 @@ def test_dipolar_disorder_width_from_film_model():
     n, a, p_D, rc = 16, 10.0, 2.0, 5.5
     film = _dipole_lattice_film(n, a, p_D, 3, seed=1)
     cset = StateChargeSet.from_arrays({"DIP": {"S0": [0.0, 0.0, 0.0], "cation": [1.0, 0.0, 0.0]}})
-    df = film_site_energies(film, ("cation",), radius=rc * a, charges=cset, rule="centroid", progress=False)
+    df = film_site_energies(film, cset, states=("cation",), radius_A=rc * a, rule="centroid", progress=False).table
     g = np.arange(-8, 9)
     nn = np.stack(np.meshgrid(g, g, g, indexing="ij"), -1).reshape(-1, 3)
     r2 = (nn**2).sum(1)
@@ -314,91 +340,25 @@ def test_dipolar_disorder_width_from_film_model():
     assert sigma * np.sqrt(16.5323 / s_sphere) == pytest.approx(2.35 * unit, rel=0.06)
 
 
-# ------------------------------------------------------------------ conformers
-def _two_shape_water_film():
-    """64 TIP3P-like waters; the odd-numbered ones bent to 85° (O-H kept at 0.9572 Å)."""
-    rng = np.random.default_rng(21)
-    box = np.array([3.1 * 4] * 3 + [90.0] * 3)
-    u, _ = build_water_universe(lattice_centres(4, 0.15, rng), box, seed=2)
-    pos = u.atoms.positions.astype(float).copy()
-    film0 = film_from_universe(u)
-    whole = film0.frame_geometry(0).positions_A
-    for k in range(1, 64, 2):
-        o, h1, h2 = whole[3 * k], whole[3 * k + 1], whole[3 * k + 2]
-        a, b = h1 - o, h2 - o
-        n = np.cross(a, b)
-        n /= np.linalg.norm(n)
-        ua = a / np.linalg.norm(a)
-        t = np.deg2rad(85.0)
-        new_b = 0.9572 * (np.cos(t) * ua + np.sin(t) * np.cross(n, ua))
-        pos[3 * k + 2] = o + new_b
-        pos[3 * k + 1] = o + a
-    u.load_new(pos[None].astype(np.float32), format=MemoryReader, dimensions=box[None].astype(np.float32))
-    return film_from_universe(u)
-
-
-def test_conformer_families_and_spread():
-    """Copies of two shapes (HOH 104.5° and 85°). With one reference (a
-    104.5° copy) the refit check of conformer_spread finds a clear error on the
-    85° copies; with two conformer references it drops to the fit noise. The
-    refit shifts are checked against an independent path (state_charges on the
-    copy, Film.carve, Coulomb's law), and the reference copies' own errors are zero
-    (HF/STO-3G ESP charges of the cation; ΔSCF)."""
-    from clusterlab.electrostatics.sitemodel import conformer_spread
-    from clusterlab.electrostatics.statecharges import state_charges
-
-    film = _two_shape_water_film()
-    kw = dict(states=("S0", "cation"), transition=False)
-    one = StateChargeSet.from_film(film, "hf/sto-3g", molecules={"WAT": 0}, **kw)
-    two = StateChargeSet.from_film(film, "hf/sto-3g", molecules={"WAT": 0}, n_conformers=2,
-                                   min_conformer_rmsd_A=0.05, **kw)
-    assert [c.molecule % 2 for c in two.conformers["WAT"]] == [0, 1]
-    refs2 = [c.molecule for c in two.conformers["WAT"]]
-    mols = sorted({0, 1, 2, 3, 5, 8, 9, *refs2})
-    s1 = conformer_spread(film, one, "hf/sto-3g", radius=6.0, states=("cation",), molecules=mols)
-    s2 = conformer_spread(film, two, "hf/sto-3g", radius=6.0, states=("cation",), molecules=mols)
-    e1 = s1.set_index("molecule")["error_eV"]
-    e2 = s2.set_index("molecule")["error_eV"]
-    assert e1.loc[0] == 0.0 and all(e2.loc[r] == 0.0 for r in refs2)
-    assert (s2.set_index("molecule")["conformer"].loc[mols].to_numpy() == np.array(mols) % 2).all()
-    odd = [k for k in mols if k % 2 and k not in refs2]
-    rms1 = float(np.sqrt(np.mean(e1.loc[odd] ** 2)))
-    rms2 = float(np.sqrt(np.mean(e2.loc[odd] ** 2)))
-    # measured while writing this test: 5.5 meV with one reference, 0.6 meV with two
-    # (the same-shape copies keep about 1 meV: the fit points turn with the lab frame)
-    assert rms1 > 4e-3
-    assert rms2 < 0.3 * rms1
-    # independent path for one copy
-    c = film.carve(5, 6.0)
-    sc = state_charges(c.qm_symbols, c.qm_positions, "hf/sto-3g", states=("S0", "cation"), transition=False)
-    assert s2.set_index("molecule").loc[5, "shift_refit_eV"] == pytest.approx(_carved_shift(c, sc.difference("cation")),
-                                                                              abs=1e-10)
-    # the film model uses each copy's family charges: molecule 5 (85°) takes reference 2's
-    df = film_site_energies(film, ("cation",), radius=6.0, charges=two, molecules=[5], progress=False)
-    ref2 = two.conformers["WAT"][1].charges_e
-    assert float(df["cation_shift_eV"].iloc[0]) == pytest.approx(_carved_shift(c, ref2["cation"] - ref2["S0"]),
-                                                                  abs=1e-10)
-    back = StateChargeSet.from_json(two.to_json())
-    assert len(back.conformers["WAT"]) == 2 and np.allclose(back.conformers["WAT"][1].positions_A,
-                                                            two.conformers["WAT"][1].positions_A)
-
-
 def test_run_film_model_with_response(small_film):
     """The study-level driver with response=True fits charges and finite-field
     Δμ/Δα on the reference copy (HF/STO-3G CIS water) and reports S1/T1 as
     -Δμ·F - 1/2 F·Δα·F; the parts add up and the ions keep their charges."""
-    from clusterlab.electrostatics.sitemodel import run_film_model
     from clusterlab.qm.method import Method
+    from clusterlab.study.filmmodel import run_film_model
 
     m = Method(xc="hf", basis="sto-3g", density_fit=False, grid_level=1, n_singlets=2, n_triplets=2,
                excited="tda")
-    table = run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True, progress=False)
-    cset = table.attrs["charges"]
+    result = run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True, progress=False)
+    table = result.table
+    cset = result.charges
+    assert result.model == "field" and result.radius_A == 5.0 and result.options["field_response"] == ["S1"]
     ref = cset.conformers["WAT"][0]
     # only the response states are fitted (default S1)
     assert set(ref.dalpha_A3) == {"S1"} and set(ref.dmu_D) == {"S1"}
     assert np.allclose(table["S1_shift_eV"], table["S1_first_order_eV"] + table["S1_stark_eV"])
-    plain = film_site_energies(small_film, ("cation", "T1"), radius=5.0, frames=[0], charges=cset, progress=False)
+    plain = film_site_energies(small_film, cset, states=("cation", "T1"), radius_A=5.0, frames=[0],
+                               progress=False).table
     assert np.allclose(table["cation_shift_eV"], plain["cation_shift_eV"])
     # T1 keeps its charges by default (response_states=("S1",))
     assert np.allclose(table["T1_shift_eV"], plain["T1_shift_eV"]) and "T1_stark_eV" not in table
@@ -407,14 +367,15 @@ def test_run_film_model_with_response(small_film):
     with pytest.raises(InputError, match="response_states"):
         run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True, response_states=("cation",),
                        charges=cset, progress=False)
-    # fields still to fit (T1) need an engine method, not an "xc/basis" string
+    # an "xc/basis" string is refused also when the set is given (fields still to fit: T1)
     with pytest.raises(InputError, match="needs a clusterlab.Method"):
         run_film_model(small_film, "hf/sto-3g", radius_A=5.0, frames=[0], response=True,
                        response_states=("S1", "T1"), charges=cset, progress=False)
     # asking for T1 later adds its fit to the given set and keeps the S1 one
-    both = run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True, response_states=("S1", "T1"),
-                          charges=cset, progress=False)
-    ref2 = both.attrs["charges"].conformers["WAT"][0]
+    both_result = run_film_model(small_film, m, radius_A=5.0, frames=[0], response=True,
+                                 response_states=("S1", "T1"), charges=cset, progress=False)
+    both = both_result.table
+    ref2 = both_result.charges.conformers["WAT"][0]
     assert set(ref2.dalpha_A3) == {"S1", "T1"} and np.array_equal(ref2.dalpha_A3["S1"], ref.dalpha_A3["S1"])
     assert np.allclose(both["S1_shift_eV"], table["S1_shift_eV"])
     assert np.allclose(both["T1_shift_eV"], both["T1_first_order_eV"] + both["T1_stark_eV"])
@@ -424,17 +385,17 @@ def test_run_film_model_resumes_its_fits_from_the_store(small_film, tmp_path, mo
     """A crash during the finite fields keeps the fitted state charges in the
     store; the rerun fits no state charges again, only the fields, and gives
     the table of an uninterrupted run; a third run does no QM at all."""
-    from clusterlab.electrostatics import sitemodel, stark
-    from clusterlab.electrostatics.sitemodel import run_film_model
     from clusterlab.qm.method import Method
     from clusterlab.store import ResultStore
+    from clusterlab.study import chargefits
+    from clusterlab.study.filmmodel import run_film_model
 
     m = Method(xc="hf", basis="sto-3g", density_fit=False, grid_level=1, n_singlets=2, n_triplets=1,
                excited="tda")
     kw = dict(radius_A=5.0, frames=[0], response=True, progress=False)
-    fresh = run_film_model(small_film, m, **kw)
+    fresh = run_film_model(small_film, m, **kw).table
     store = ResultStore(str(tmp_path / "st.sqlite"))
-    real_fields, real_charges = stark.differential_polarizability, sitemodel.state_charges
+    real_fields, real_charges = chargefits.differential_polarizability, chargefits.state_charges
     calls = {"charges": 0}
 
     def crash(*a, **k):
@@ -444,23 +405,23 @@ def test_run_film_model_resumes_its_fits_from_the_store(small_film, tmp_path, mo
         calls["charges"] += 1
         return real_charges(*a, **k)
 
-    monkeypatch.setattr(stark, "differential_polarizability", crash)
-    monkeypatch.setattr(sitemodel, "state_charges", counted)
+    monkeypatch.setattr(chargefits, "differential_polarizability", crash)
+    monkeypatch.setattr(chargefits, "state_charges", counted)
     with pytest.raises(RuntimeError, match="power cut"):
         run_film_model(small_film, m, store=store, **kw)
     assert calls["charges"] == 1
     assert len([k for k in store.meta if k.startswith("film_model_charges:")]) == 1
-    monkeypatch.setattr(stark, "differential_polarizability", real_fields)
-    resumed = run_film_model(small_film, m, store=store, **kw)
+    monkeypatch.setattr(chargefits, "differential_polarizability", real_fields)
+    resumed = run_film_model(small_film, m, store=store, **kw).table
     assert calls["charges"] == 1                      # state charges came from the store
-    monkeypatch.setattr(stark, "differential_polarizability", crash)
-    again = run_film_model(small_film, m, store=store, **kw)   # fields came from the store too
+    monkeypatch.setattr(chargefits, "differential_polarizability", crash)
+    again = run_film_model(small_film, m, store=store, **kw).table   # fields came from the store too
     assert calls["charges"] == 1
     for table in (resumed, again):
         for col in ("S1_shift_eV", "T1_shift_eV", "cation_shift_eV", "anion_shift_eV"):
             np.testing.assert_allclose(table[col], fresh[col], rtol=1e-9, atol=1e-12)
     # other settings are another entry, not a reuse
-    monkeypatch.setattr(stark, "differential_polarizability", real_fields)
+    monkeypatch.setattr(chargefits, "differential_polarizability", real_fields)
     run_film_model(small_film, m.replace(n_triplets=2), store=store, **kw)
     assert calls["charges"] == 2
     store.close()
