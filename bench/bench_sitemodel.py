@@ -164,8 +164,10 @@ def main() -> None:
     print(f"loop B (potential once),      {N_LOOP} molecules: {per_b * 1e3:7.2f} ms per molecule-frame; "
           f"scaled to the film {per_b * n_rows:7.1f} s; largest difference from the model {err_b:.1e} eV")
     rows["demo"] = (per_a * n_rows / t1, per_b * n_rows / t1, per_a * n_rows / t2, per_b * n_rows / t2)
-    print(f"SPEED RATIO demo film: loop A / model {rows['demo'][0]:6.1f}x (1 thread), {rows['demo'][2]:6.1f}x (2 threads);"
-          f" loop B / model {rows['demo'][1]:6.1f}x (1 thread), {rows['demo'][3]:6.1f}x (2 threads)")
+    # headline: the fair baseline is the lean loop B (what a skilled user would write)
+    print(f"SPEED RATIO demo film (fair baseline, loop B / model): {rows['demo'][1]:6.1f}x (1 thread), "
+          f"{rows['demo'][3]:6.1f}x (2 threads); against the per-state loop A: {rows['demo'][0]:6.1f}x / "
+          f"{rows['demo'][2]:6.1f}x")
 
     big = replicate(film)
     cbig = made_up_states(big)
@@ -181,9 +183,9 @@ def main() -> None:
     print(f"replicated film, {big.n_molecules} molecules, one frame: model {tb1:6.2f} s (1 thread), {tb2:6.2f} s "
           f"(2 threads); on that film loop A {per_la * 1e3:.1f} ms and loop B {per_lb * 1e3:.1f} ms per molecule "
           f"(scaled {per_la * len(dfb):.0f} s and {per_lb * len(dfb):.0f} s); largest difference {err_big:.1e} eV")
-    print(f"SPEED RATIO >=10k film: loop A / model {per_la * len(dfb) / tb1:6.1f}x (1 thread), "
-          f"{per_la * len(dfb) / tb2:6.1f}x (2 threads); loop B / model {per_lb * len(dfb) / tb1:6.1f}x (1 thread), "
-          f"{per_lb * len(dfb) / tb2:6.1f}x (2 threads)")
+    print(f"SPEED RATIO >=10k film (fair baseline, loop B / model): {per_lb * len(dfb) / tb1:6.1f}x (1 thread), "
+          f"{per_lb * len(dfb) / tb2:6.1f}x (2 threads); against loop A: {per_la * len(dfb) / tb1:6.1f}x / "
+          f"{per_la * len(dfb) / tb2:6.1f}x")
     # a replicated box is periodic in the same way: the same shifts as the original frame 0
     same = np.allclose(subb.loc[: film.n_molecules - 1, "cation_shift_eV"].to_numpy(),
                        sub["cation_shift_eV"].to_numpy(), atol=1e-4)  # float32 coordinates

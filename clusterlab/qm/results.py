@@ -15,7 +15,6 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
-import numpy as np
 import pandas as pd
 
 NAN = float("nan")
