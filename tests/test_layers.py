@@ -161,3 +161,29 @@ def test_the_checker_catches_a_violation(tmp_path, monkeypatch):
         assert layer_of(_module_file(mod), table) > layer_of(fake, table)
     finally:
         fake.unlink()
+
+
+#: PySCF modules a module outside qm/ may import: constants and element data
+#: (no calculation), and pyscf.lib in blas.py (which loads the bundled OpenBLAS).
+PYSCF_OUTSIDE_QM = {"pyscf.data", "pyscf.data.nist", "pyscf.data.elements", "pyscf.data.radii"}
+
+
+def _pyscf_imports(path: Path) -> list[tuple[int, str]]:
+    tree = ast.parse(path.read_text(encoding="utf-8"))
+    out = []
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            out += [(node.lineno, a.name) for a in node.names if a.name.split(".")[0] == "pyscf"]
+        elif isinstance(node, ast.ImportFrom) and not node.level and (node.module or "").split(".")[0] == "pyscf":
+            out += [(node.lineno, f"{node.module}.{a.name}" if node.module == "pyscf" else node.module)
+                    for a in node.names]
+    return out
+
+
+@pytest.mark.parametrize("path", [p for p in MODULES if not p.relative_to(PKG).as_posix().startswith("qm/")],
+                         ids=lambda p: p.relative_to(PKG).as_posix())
+def test_pyscf_calculations_only_through_the_quantum_door(path):
+    """Outside qm/ nothing imports PySCF's SCF, response or integral code."""
+    allowed = PYSCF_OUTSIDE_QM | ({"pyscf.lib"} if path.name == "blas.py" else set())
+    bad = [f"line {n}: {m}" for n, m in _pyscf_imports(path) if m not in allowed]
+    assert not bad, f"{path.relative_to(PKG)} imports PySCF outside the quantum engine: {bad}"
