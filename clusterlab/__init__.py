@@ -48,6 +48,7 @@ from .errors import (
     FilmError,
     GeometryError,
     InputError,
+    ProvenanceError,
 )
 
 __all__ = [
@@ -87,6 +88,7 @@ __all__ = [
     "plot_parity",
     "ClusterlabError",
     "InputError",
+    "ProvenanceError",
     "FilmError",
     "ChargeError",
     "CarvingError",

@@ -47,6 +47,11 @@ def _overrides(args: argparse.Namespace) -> dict[tuple[str, str], Any]:
     return out
 
 
+def _add_choice_flags(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--film-id", help="film content id to read when the store holds several (leading part enough)")
+    p.add_argument("--method-key", help="method key to read when the store holds several (leading part enough)")
+
+
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="clusterlab", description=__doc__.split("\n\n")[0], epilog=EPILOG,
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -73,6 +78,7 @@ def _parser() -> argparse.ArgumentParser:
     rp.add_argument("--out", default="report", help="report folder (default: report)")
     rp.add_argument("--quantity", action="append", help="column to report (repeatable; default S1_eV, T1_eV, "
                     "S1_shift_eV)")
+    _add_choice_flags(rp)
 
     ex = sub.add_parser("export", help="site and pair tables for transport models from a store")
     ex.add_argument("store")
@@ -82,6 +88,7 @@ def _parser() -> argparse.ArgumentParser:
     ex.add_argument("--out", default="export")
     ex.add_argument("--cutoff", type=float, default=8.0, help="pair cutoff in Å (default 8)")
     ex.add_argument("--criterion", choices=("centroid", "atom"), default="centroid")
+    _add_choice_flags(ex)
 
     d = sub.add_parser("demo", help="run the demo study on the bundled film", epilog=EPILOG,
                        description="Radius scan, site-energy sample with disorder statistics, film-wide "
@@ -135,13 +142,18 @@ def _dispatch(args: argparse.Namespace) -> int:
         from .studyfile import load_study
 
         study = load_study(args.study, _overrides(args))
-        run_study(study, progress=not args.quiet)
+        outcome = run_study(study, progress=not args.quiet)
+        if outcome.all_failed:
+            print(f"clusterlab run: error: every one of the {outcome.sample.report.n_tasks} site calculations "
+                  f"failed; first: {outcome.sample.failures[0] if outcome.sample.failures else 'unknown'}",
+                  file=sys.stderr)
+            return 1
         return 0
     if args.command == "report":
         from .report import ReportWriter, sample_section
         from .study.sample import SiteSample
 
-        sample = SiteSample.from_store(args.store)
+        sample = SiteSample.from_store(args.store, film_id=args.film_id, method_key=args.method_key)
         rep = ReportWriter(args.out, f"clusterlab report of {os.path.basename(args.store)}")
         stats = sample_section(rep, sample, args.quantity or ["S1_eV", "T1_eV", "S1_shift_eV"])
         print(stats.to_string(index=False))
@@ -153,7 +165,7 @@ def _dispatch(args: argparse.Namespace) -> int:
         from .export import export_study
 
         film = load_film(args.topology, args.trajectory or None, charges=args.charges)
-        sample = SiteSample.from_store(args.store, film=film)
+        sample = SiteSample.from_store(args.store, film=film, film_id=args.film_id, method_key=args.method_key)
         paths = export_study(film, args.out, sample=sample, cutoff_A=args.cutoff, criterion=args.criterion)
         for k, v in paths.items():
             print(f"{k}: {v}")

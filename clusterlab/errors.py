@@ -39,6 +39,13 @@ class StudyFileError(InputError):
     """Raised when a study file (TOML) has a missing, unknown or invalid key."""
 
 
+class ProvenanceError(InputError):
+    """Raised when results of different films or methods would be mixed: a
+    run into a store that holds another film's results, or a report or export
+    of a store with several films or methods and no choice among them (the
+    message lists the choices)."""
+
+
 class CalculationError(ClusterlabError, RuntimeError):
     """Raised when a quantum-chemistry calculation fails."""
 

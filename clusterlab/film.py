@@ -41,6 +41,10 @@ _KNOWN.pop("Du", None)
 #: net molecular charges must be integers within this tolerance (e)
 CHARGE_INTEGER_TOL = 1e-3
 
+#: the most environment point charges one carve may hold (about 80 bytes each
+#: while carving: positions, images, charges, symbols); a larger radius is refused
+MAX_CLUSTER_CHARGES = 20_000_000
+
 
 def _hash_file(path: str, h: "hashlib._Hash") -> None:
     with open(path, "rb") as fh:
@@ -342,7 +346,12 @@ class Film:
             if ids.size == 0:
                 raise CarvingError(f"selection {selection!r} matches no atoms in {self.topology_path!r}.")
             return ids
-        ids = np.asarray([self.check_molecule(int(i)) for i in selection], dtype=np.int64)
+        if isinstance(selection, (int, np.integer)):
+            raise CarvingError(f"selection {selection!r} must be a selection string, a list of molecule ids or None.")
+        ids = np.asarray([self.check_molecule(i) for i in selection], dtype=np.int64)
+        if ids.size == 0:
+            raise CarvingError(f"selection {list(selection)!r} is empty; give at least one molecule id "
+                               f"(0..{self.n_molecules - 1}) or None for all.")
         return ids
 
     # --------------------------------------------------------------- charges
@@ -372,6 +381,12 @@ class Film:
             q = np.asarray(self.charge_source.atom_charges(self), dtype=np.float64)
             if q.shape != (self.n_atoms,):
                 raise ChargeError(f"charge source gave {q.shape} charges for {self.n_atoms} atoms.")
+            nonfinite = np.flatnonzero(~np.isfinite(q))
+            if nonfinite.size:
+                names = np.asarray(self.universe.atoms.names).astype(str)
+                ex = ", ".join(f"atom {i} ({names[i]}) {q[i]!r}" for i in nonfinite[:5])
+                raise ChargeError(f"{nonfinite.size} atom charge(s) of {self.topology_path!r} are not finite "
+                                  f"({self.charge_source.describe()}): {ex}.")
             net = np.bincount(self.molecule_of_atom, weights=q, minlength=self.n_molecules)
             bad = np.flatnonzero(np.abs(net - np.round(net)) > CHARGE_INTEGER_TOL)
             if bad.size:
@@ -518,6 +533,11 @@ class Film:
             radius = float(radius)
         except (TypeError, ValueError) as exc:
             raise CarvingError(f"radius must be a number of Å; got {radius!r}.") from exc
+        if isinstance(qm_shell, (bool, np.bool_)) or not isinstance(qm_shell, (int, float, np.integer, np.floating)):
+            raise CarvingError(f"qm_shell must be a number of Å (0 for the central molecule alone); got {qm_shell!r}.")
+        if not isinstance(periodic, (bool, np.bool_)):
+            raise CarvingError(f"periodic must be True or False; got {periodic!r}.")
+        self._check_cluster_size(radius, frame, periodic=bool(periodic))
         geo = self.frame_geometry(frame, periodic=periodic)
         charges = self.charges
         sel = select_images(geo.positions_A, geo.centroids_A, self.index, mol, radius,
@@ -548,6 +568,24 @@ class Film:
             film_id=self.film_id,
             film_path=os.path.abspath(self.topology_path),
         )
+
+    def _check_cluster_size(self, radius_A: float, frame: Any, *, periodic: bool) -> None:
+        """Refuse a periodic carve whose radius would allocate more than
+        :data:`MAX_CLUSTER_CHARGES` point charges, naming the memory it would need."""
+        if not (periodic and self.has_box and np.isfinite(radius_A) and radius_A > 0):
+            return
+        box = self.box(self.check_frame(frame))
+        h = box_vectors(box)
+        volume = abs(float(np.linalg.det(h)))
+        reach = radius_A + float(perpendicular_widths(h).max())  # molecules reaching in from outside
+        n_est = self.n_atoms * (4.0 / 3.0) * np.pi * reach ** 3 / volume
+        if n_est > MAX_CLUSTER_CHARGES:
+            gib = n_est * 80 / 2 ** 30
+            raise CarvingError(
+                f"radius {radius_A:g} Å would carve about {n_est:.2g} point charges from "
+                f"{n_est / self.n_atoms:.2g} periodic copies of the box (about {gib:.3g} GiB while carving); "
+                f"the limit is {MAX_CLUSTER_CHARGES:.0e} charges. Use a smaller radius, or the periodic "
+                "(Ewald) embedding for the infinite-film limit.")
 
     def _gather(self, geo: FrameGeometry, mols: np.ndarray, imgs: np.ndarray
                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:

@@ -34,6 +34,16 @@ class StudyOutcome:
     export: dict[str, str] = field(default_factory=dict)
     timings_s: dict[str, float] = field(default_factory=dict)
 
+    @property
+    def all_failed(self) -> bool:
+        """True when the site-energy sample had tasks and every one of them failed
+        (nothing computed now, nothing already in the store): the CLI then exits non-zero."""
+        rep = getattr(self.sample, "report", None)
+        if rep is None or not rep.n_tasks:
+            return False
+        return rep.failed == rep.n_tasks or (rep.failed > 0 and rep.done == 0 and rep.skipped == 0
+                                             and not len(self.sample.table))
+
 
 def _runner_kwargs(study: dict[str, Any]) -> dict[str, Any]:
     r = study["runner"]

@@ -12,6 +12,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from .errors import InputError
+
 MODEL_NOTE = (
     "All numbers are model estimates. The QM values use electrostatic point-charge embedding of a "
     "fixed ground-state charge distribution: no polarisation of the environment by the QM region, "
@@ -56,6 +58,9 @@ class ReportWriter:
 
     def __init__(self, folder: str, title: str):
         self.folder = os.path.abspath(folder)
+        if os.path.exists(self.folder) and not os.path.isdir(self.folder):
+            raise InputError(f"report folder {folder!r} is an existing file; give a folder path "
+                             "(it is created when missing).")
         os.makedirs(self.folder, exist_ok=True)
         self.lines: list[str] = [f"# {title}", "", MODEL_NOTE, ""]
         self.figures: list[str] = []
@@ -99,6 +104,10 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
     from .study.plots import plot_correlation, plot_growth, plot_histogram
 
     t = sample.at()
+    unknown = [q for q in quantities if q not in sample.table.columns]
+    if unknown:
+        have = sorted(c for c in sample.table.columns if str(c).endswith(("_eV", "_osc")))
+        raise InputError(f"quantity {unknown[0]!r} is not a column of the sample; it has {have}.")
     radius = float(t.radius_A.max()) if len(t) else float("nan")
     rep.section(f"Site-energy sample ({t.molecule.nunique()} molecules x {t.frame.nunique()} frames, "
                 f"radius {radius:g} Å)")

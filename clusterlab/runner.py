@@ -347,6 +347,27 @@ def _init_process_worker(n_threads: int | None, start_queue: Any) -> None:
     except (ValueError, OSError):
         pass
     _limit_threads(n_threads)
+    _exit_with_parent()
+
+
+#: how often a pool worker checks that its parent (the client) is alive (s)
+PARENT_POLL_S = 0.5
+
+
+def _exit_with_parent(poll_s: float | None = None) -> None:
+    """Start a daemon thread that ends this worker process when its parent
+    dies (a killed ``clusterlab run`` must not leave workers computing):
+    the parent id changes when the parent is gone (the worker is re-parented)."""
+    parent = os.getppid()
+    period = PARENT_POLL_S if poll_s is None else float(poll_s)
+
+    def watch() -> None:
+        while True:
+            time.sleep(period)
+            if os.getppid() != parent:
+                os._exit(3)
+
+    threading.Thread(target=watch, name="clusterlab-parent-watch", daemon=True).start()
 
 
 def execute_task(fn_ref: str, key: str, payload: Mapping[str, Any],
@@ -804,6 +825,18 @@ class _Stream:
         return next(self._gen)
 
 
+def _claim_films(store: ResultStore, tasks: Iterable[Task]) -> None:
+    """Register the film of every task with the store before anything runs
+    (:meth:`ResultStore.claim_film` refuses a film other than the store's)."""
+    films: dict[str, str] = {}
+    for t in tasks:
+        spec = t.payload.get("film") if isinstance(t.payload, Mapping) else None
+        if isinstance(spec, Mapping) and spec.get("film_id"):
+            films.setdefault(str(spec["film_id"]), str(spec.get("topology", "")))
+    for fid, top in films.items():
+        store.claim_film(fid, topology=top)
+
+
 def iter_tasks(
     tasks: Iterable[Task],
     fn: str | Callable,
@@ -843,6 +876,7 @@ def iter_tasks(
             continue
         unique[t.key] = t
     report.n_tasks = len(unique)
+    _claim_films(store, unique.values())
 
     done_keys = set(store.keys(status="done"))
     todo = [t for t in unique.values() if t.key not in done_keys]

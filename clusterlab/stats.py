@@ -57,6 +57,8 @@ def _as_1d_float(values: Any, name: str = "values") -> npt.NDArray[np.float64]:
 
 
 def _check_confidence(confidence: float) -> float:
+    if isinstance(confidence, (bool, np.bool_)) or not isinstance(confidence, (int, float, np.integer, np.floating)):
+        raise InputError(f"confidence={confidence!r} is invalid; use a number between 0 and 1 (e.g. 0.95)")
     c = float(confidence)
     if not 0.0 < c < 1.0:
         raise InputError(f"confidence={confidence!r} is invalid; use a number between 0 and 1 (e.g. 0.95)")
@@ -163,7 +165,8 @@ def disorder_stats(
     """
     arr = _as_1d_float(values)
     confidence = _check_confidence(confidence)
-    if int(n_boot) != n_boot or n_boot < 100:
+    if (isinstance(n_boot, (bool, np.bool_)) or not isinstance(n_boot, (int, float, np.integer, np.floating))
+            or not np.isfinite(n_boot) or int(n_boot) != n_boot or n_boot < 100):
         raise InputError(f"n_boot={n_boot!r} is invalid; use an integer of at least 100 (default 2000)")
     n_boot = int(n_boot)
     kind = {"bca": "BCa", "percentile": "percentile"}.get(str(method).lower())

@@ -41,7 +41,7 @@ from pathlib import Path
 from typing import Any
 
 from .versions import __version__
-from .errors import InputError, StudyFileError
+from .errors import InputError, ProvenanceError, StudyFileError
 
 __all__ = [
     "ResultStore",
@@ -378,6 +378,12 @@ class ResultStore:
                 f"synchronous={synchronous!r} is not valid; use 'FULL' (default) or 'NORMAL'"
             )
         self._lock = threading.RLock()
+        self._conn = None
+        if self.path.is_dir():
+            raise StudyFileError(
+                f"result store {str(self.path)!r} is a directory; give the path of a .sqlite file "
+                f"(e.g. {str(self.path / 'results.sqlite')!r})"
+            )
         if readonly:
             if not self.path.exists():
                 raise StudyFileError(f"result store {str(self.path)!r} does not exist")
@@ -692,6 +698,89 @@ class ResultStore:
 
     def __len__(self) -> int:
         return self.counts()["total"]
+
+    # ------------------------------------------------------------------ provenance
+    def _grouped(self, expr: str, kind: str | None) -> dict[str, int]:
+        sql = f"SELECT {expr} AS v, COUNT(*) FROM results WHERE v IS NOT NULL"
+        params: tuple = ()
+        if kind is not None:
+            sql, params = sql + " AND kind = ?", (kind,)
+        return {str(v): int(n) for v, n in self._query(sql + " GROUP BY v ORDER BY v", params)}
+
+    def film_ids(self, kind: str | None = None) -> dict[str, int]:
+        """Film content ids of the stored records (any status), with their counts.
+
+        A record's film is the ``film_id`` of its task's film spec
+        (``spec["payload"]["film"]["film_id"]``); records without one are not counted.
+        """
+        return self._grouped("json_extract(spec_json, '$.payload.film.film_id')", kind)
+
+    def method_keys(self, kind: str | None = None) -> dict[str, int]:
+        """Method keys of the stored records (any status), with their counts."""
+        return self._grouped("method_key", kind)
+
+    def films(self) -> dict[str, dict[str, Any]]:
+        """Every film this store holds or was given, by content id.
+
+        Returns ``{film_id: {"topology": str, "n_records": int}}``: the films
+        registered by :meth:`claim_film` and those named by stored records
+        (a store written before films were registered has only the latter).
+        """
+        registered = dict(self.meta.get("films", {}))
+        counts = self.film_ids()
+        tops = dict(self._query(
+            "SELECT json_extract(spec_json, '$.payload.film.film_id') AS v, "
+            "MIN(json_extract(spec_json, '$.payload.film.topology')) FROM results "
+            "WHERE v IS NOT NULL GROUP BY v"
+        ))
+        out: dict[str, dict[str, Any]] = {}
+        for fid in sorted(set(registered) | set(counts)):
+            top = (registered.get(fid) or {}).get("topology") or tops.get(fid) or ""
+            out[fid] = {"topology": str(top), "n_records": counts.get(fid, 0)}
+        return out
+
+    def claim_film(self, film_id: str, *, topology: str = "", allow_another: bool = False) -> None:
+        """Register the film a run writes into this store; refuse another film.
+
+        A store holds the results of one film: the first run registers its
+        content id (``store.meta["films"]``), and a later run of a film with
+        another id (another film, the same film with moved atoms or other
+        charges) is refused.  ``allow_another=True`` keeps a second film in
+        the same store on purpose; its records stay apart by film id, and
+        :func:`clusterlab.study.sample.site_table` then asks which film to read.
+
+        Parameters
+        ----------
+        film_id : str
+            :attr:`clusterlab.Film.film_id`.
+        topology : str
+            The film's topology path, shown in messages.
+        allow_another : bool
+            Register ``film_id`` even though the store holds another film.
+
+        Raises
+        ------
+        ProvenanceError
+            If the store holds another film and ``allow_another`` is False;
+            the message names both ids.
+        """
+        if not isinstance(film_id, str) or not film_id:
+            raise InputError(f"film_id={film_id!r} must be a non-empty string (Film.film_id)")
+        known = self.films()
+        if film_id not in known and known and not allow_another:
+            held = "; ".join(f"{fid} ({v['topology'] or 'no topology recorded'}, {v['n_records']} records)"
+                             for fid, v in known.items())
+            raise ProvenanceError(
+                f"result store {str(self.path)!r} holds results of the film {held}, not of the film "
+                f"{film_id} ({topology or 'no topology given'}): a different film, the same film with "
+                "moved atoms or other charges. Use a separate store for this film, or keep both films "
+                f"apart in this store explicitly with store.claim_film({film_id!r}, allow_another=True)."
+            )
+        if film_id not in dict(self.meta.get("films", {})):
+            registered = dict(self.meta.get("films", {}))
+            registered[film_id] = {"topology": str(topology),
+                                   "registered_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
+            self.meta["films"] = registered
 
     def to_frame(self, kind: str | None = None, status: str | None = "done"):
         """All records as a pandas DataFrame, one row per key.

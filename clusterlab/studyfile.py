@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import copy
 import os
+import re
 import sys
 from dataclasses import dataclass
 from typing import Any
@@ -156,6 +157,10 @@ def _check_value(section: str, key: str, value: Any, where: str) -> Any:
     if key in ("radii",) and isinstance(value, list) and (
             not value or not all(isinstance(r, (int, float)) and r > 0 for r in value)):
         raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must be a non-empty list of positive radii (Å).")
+    if (section, key) in _POSITIVE_INTS and value < 1:
+        raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must be a positive integer ({s.help}).")
+    if key == "quantities":
+        _check_quantity_names(value, where)
     if key == "charges_method":
         try:
             xc_basis(value)
@@ -167,6 +172,39 @@ def _check_value(section: str, key: str, value: Any, where: str) -> Any:
         return _read_ranges(section, key, value)
     except InputError as exc:
         raise StudyFileError(f"{where}: [{section}] {key}: {exc}") from exc
+
+
+#: integer keys that must be >= 1 (0 workers is not "all cores": omit the key for that)
+_POSITIVE_INTS = {("runner", "workers"), ("runner", "threads_per_worker"), ("sample", "n"),
+                  ("model", "n_conformers"), ("method", "threads")}
+
+#: a reported quantity: a state's energy, shift, vacuum energy or oscillator strength, or dEST
+_QUANTITY = re.compile(r"^(?:(?P<state>[ST])(?P<n>[1-9][0-9]*)_(?:eV|shift_eV|vacuum_eV|followed_shift_eV|osc)"
+                       r"|(?:IP|EA)_(?:eV|shift_eV|vacuum_eV)|dEST_eV)$")
+
+
+def _check_quantity_names(value: list, where: str) -> None:
+    bad = [q for q in value if not (isinstance(q, str) and _QUANTITY.match(q))]
+    if bad or not value:
+        raise StudyFileError(f"{where}: [sample] quantities = {value!r}: {bad[0] if bad else 'an empty list'!r} "
+                             "is not a site-energy column; use e.g. 'S1_eV', 'T1_shift_eV', 'S2_vacuum_eV', "
+                             "'IP_eV', 'EA_shift_eV' or 'dEST_eV'.")
+
+
+def _check_quantity_states(study: dict[str, Any], where: str) -> None:
+    """Each Sn / Tn quantity must be a state the study's method computes."""
+    method = method_from_study(study)
+    n_of = {"S": method.n_singlets, "T": method.n_triplets}
+    for q in study["sample"]["quantities"]:
+        m = _QUANTITY.match(q)
+        if m and m["state"] and int(m["n"]) > n_of[m["state"]]:
+            raise StudyFileError(f"{where}: [sample] quantities holds {q!r}, but the method computes "
+                                 f"{n_of[m['state']]} {'singlet' if m['state'] == 'S' else 'triplet'} state(s) "
+                                 f"({method.describe()}); raise [method] n_{'singlets' if m['state'] == 'S' else 'triplets'} "
+                                 "or drop it.")
+        if q[:2] in ("IP", "EA") and not method.charged_states:
+            raise StudyFileError(f"{where}: [sample] quantities holds {q!r}, but the method computes no charged "
+                                 "states; set [method] charged_states = true or drop it.")
 
 
 def _read_ranges(section: str, key: str, value: Any) -> Any:
@@ -232,6 +270,8 @@ def validate(data: dict[str, Any], where: str = "study") -> dict[str, dict[str, 
             out[section][key] = _check_value(section, key, value, where)
     if not out["film"]["topology"]:
         raise StudyFileError(f"{where}: [film] topology is required (the film's topology file).")
+    if "sample" in present:
+        _check_quantity_states(out, where)
     out["_present"] = sorted(present)  # type: ignore[assignment]
     return out
 

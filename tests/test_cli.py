@@ -151,7 +151,7 @@ radius = 3.0
     assert (tmp_path / "rep2" / "summary.md").exists()
     # the export reads the same sites from the store (this film's records only)
     assert main(["export", str(tmp_path / "st.sqlite"), "--topology", gro[0], "--charges", gro[1],
-                 "--out", str(tmp_path / "exp")]) == 0
+                 "--out", str(tmp_path / "exp"), "--cutoff", "4.5"]) == 0  # below half the 9.3 Å box
     import pandas as pd
 
     from clusterlab.store import ResultStore

@@ -279,6 +279,48 @@ def test_sigkill_study_then_resume(tmp_path):
     assert sorted(ends) == [f"t{i:03d}" for i in range(n)]
 
 
+def _alive(pid: int) -> bool:
+    """True while ``pid`` runs (a zombie waiting to be reaped counts as gone)."""
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0] != "Z"
+    except OSError:
+        return False
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
+def test_workers_exit_when_the_client_is_killed(tmp_path):
+    """SIGKILL of the client alone (not its process group): its pool workers,
+    busy with long tasks, notice that their parent is gone and exit within a
+    few poll periods instead of computing on (issue 18)."""
+    path, log = tmp_path / "study.sqlite", tmp_path / "log.txt"
+    cmd = [sys.executable, str(HERE / "_study_worker.py"), str(path), "6",
+           "--workers", "2", "--sleep", "30", "--log", str(log)]
+    proc = subprocess.Popen(cmd, env=dict(os.environ, OMP_NUM_THREADS="1"), start_new_session=True,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    try:
+        deadline = time.time() + 60
+        while len({pid for what, _, pid in log_lines(log) if what == "start"}) < 2:
+            assert proc.poll() is None, proc.communicate()
+            assert time.time() < deadline, "workers never started"
+            time.sleep(0.05)
+        workers = {pid for what, _, pid in log_lines(log) if what == "start"}
+        assert proc.pid not in workers
+        os.kill(proc.pid, signal.SIGKILL)  # the client only
+        proc.wait(timeout=30)
+        deadline = time.time() + 10  # poll period 0.5 s; a 30 s task would still be running
+        while any(_alive(p) for p in workers) and time.time() < deadline:
+            time.sleep(0.1)
+        assert not any(_alive(p) for p in workers), "workers kept running after their client died"
+    finally:
+        try:
+            os.killpg(proc.pid, signal.SIGKILL)
+        except ProcessLookupError:
+            pass
+    assert not [name for what, name, _ in log_lines(log) if what == "end"]  # no task finished
+
+
 def check_results_path(path: Path, n: int) -> None:
     with ResultStore(path, readonly=True) as st:
         check_results(st, sw.make_tasks(n, sleep_s=0.4))

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from clusterlab import Method, ResultStore, disorder_stats, excitations, film_from_universe, radius_scan, sample_sites
-from clusterlab.errors import InputError
+from clusterlab.errors import InputError, ProvenanceError
 from clusterlab.study import choose_molecules
 
 from conftest import build_water_universe, lattice_centres
@@ -148,9 +148,13 @@ def test_site_table_keeps_one_films_finished_sites(film, tmp_path):
     t = site_table(path, film=film)
     assert sorted(t.molecule) == [0, 1, 2, 3] and set(t.kind) == {"excitations"}
     np.testing.assert_allclose(t.sort_values("molecule").S1_eV, [7.0, 7.01, 7.02, 7.03])
-    # without a film: every excitation record (the other film's too), no centroids added
-    assert sorted(site_table(path).molecule) == [0, 1, 2, 3, 9]
-    assert "centroid_x_A" not in site_table(path).columns
+    # without a film: never the two films mixed (issue 18); a film id chooses, no centroids added
+    with pytest.raises(ProvenanceError, match=film.film_id) as err:
+        site_table(path)
+    assert "another film" in str(err.value)
+    assert sorted(site_table(path, film_id=film.film_id).molecule) == [0, 1, 2, 3]
+    assert sorted(site_table(path, film_id="another").molecule) == [9]
+    assert "centroid_x_A" not in site_table(path, film_id=film.film_id[:8]).columns
     # centroids from the film's own geometry when the records lack them
     row = t[t.molecule == 3].iloc[0]
     np.testing.assert_allclose([row.centroid_x_A, row.centroid_y_A, row.centroid_z_A],

@@ -33,6 +33,16 @@ _MA_FORMULA = ("k = nu0 exp(-2 gamma r) exp(-max(dE, 0) / kB T) "
                "(Miller & Abrahams, Phys. Rev. 120, 745 (1960)); r = distance_A")
 
 
+def _field_vector(field_V_per_A: npt.ArrayLike) -> npt.NDArray[np.float64]:
+    try:
+        F = np.asarray(field_V_per_A, dtype=np.float64)
+    except (TypeError, ValueError):
+        F = np.zeros(0)
+    if F.shape != (3,) or not np.all(np.isfinite(F)):
+        raise InputError(f"field_V_per_A={field_V_per_A!r} must be three finite numbers (Fx, Fy, Fz) in V/Å.")
+    return F
+
+
 def hopping_rates(
     sites: pd.DataFrame,
     pairs: pd.DataFrame,
@@ -126,7 +136,7 @@ def hopping_rates(
     Ej = out[by + ["j"]].merge(e.rename(columns={"molecule": "j"}), on=by + ["j"], how="left")["_E"]
     Ei, Ej = Ei.to_numpy(dtype=float), Ej.to_numpy(dtype=float)
     dr = out[["dx_A", "dy_A", "dz_A"]].to_numpy(dtype=float)
-    F = np.zeros(3) if field_V_per_A is None else np.asarray(field_V_per_A, dtype=np.float64).reshape(3)
+    F = np.zeros(3) if field_V_per_A is None else _field_vector(field_V_per_A)
     dE = np.full(len(out), np.nan)
     fin = np.isfinite(Ei) & np.isfinite(Ej)
     if fin.any():
@@ -156,6 +166,11 @@ def hopping_rates(
             if lambda_eV not in out.columns:
                 raise InputError(f"lambda_eV={lambda_eV!r} is not a pair column.")
             lam = out[lambda_eV].to_numpy(dtype=float)
+            neg = np.flatnonzero(lam <= 0)
+            if neg.size:
+                raise InputError(f"lambda_eV column {lambda_eV!r} holds {neg.size} value(s) <= 0 eV (e.g. "
+                                 f"{lam[neg[0]]!r} for pair {int(out['i'].iloc[neg[0]])}-{int(out['j'].iloc[neg[0]])}); "
+                                 "a reorganisation energy must be > 0 eV (NaN marks a pair without one).")
         else:
             if not (np.isfinite(lambda_eV) and lambda_eV > 0):
                 raise InputError(f"lambda_eV must be > 0 eV; got {lambda_eV!r}.")

@@ -22,7 +22,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
-from ..errors import InputError
+from ..errors import InputError, ProvenanceError
 from ..geometry import unwrap_over_frames
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -224,6 +224,25 @@ def _qm_frame(qm: Any) -> pd.DataFrame | None:
     return t
 
 
+def _check_one_film_one_method(t: pd.DataFrame, film: "Film", sample_film_id: str | None) -> None:
+    """QM rows must be of ``film`` and of one method: a column is never made of two."""
+    held = set()
+    if sample_film_id:
+        held.add(str(sample_film_id))
+    if "film.film_id" in t.columns:
+        held |= set(t["film.film_id"].dropna().astype(str))
+    if held and held != {film.film_id}:
+        raise ProvenanceError(f"the QM results are of the film(s) {sorted(held)}, not of the film {film.film_id} "
+                              f"({film.topology_path!r}) being exported: another film, or the same film with "
+                              "moved atoms or other charges.")
+    if "method_key" in t.columns:
+        keys = t["method_key"].dropna().astype(str).value_counts().sort_index()
+        if len(keys) > 1:
+            raise ProvenanceError("the QM results hold " + str(len(keys)) + " methods ("
+                                  + ", ".join(f"{k} ({n} rows)" for k, n in keys.items())
+                                  + "); export one method (SiteSample.from_store(..., method_key=...)).")
+
+
 def _pick_radius(t: pd.DataFrame, qm_radius_A: float | None) -> pd.DataFrame:
     if qm_radius_A is not None:
         sel = t[np.isclose(t["radius_A"], float(qm_radius_A)) | (np.isinf(t["radius_A"]) & math.isinf(qm_radius_A))]
@@ -414,6 +433,7 @@ def site_table(
     """
     qt = _qm_frame(qm)
     if qt is not None and len(qt):
+        _check_one_film_one_method(qt, film, getattr(qm, "film_id", None))
         qt = _pick_radius(qt, qm_radius_A)
     mi = film_model_input(model) if model is not None else None
     if frames is not None:

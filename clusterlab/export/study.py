@@ -9,11 +9,14 @@ The only orchestration of :mod:`clusterlab.export`: it builds the site table
 
 from __future__ import annotations
 
+import inspect
+import numbers
 import os
 from typing import TYPE_CHECKING, Any, Iterable, Literal, Mapping, Sequence
 
 import pandas as pd
 
+from ..errors import InputError
 from .files import export_metadata, write_export
 from .pairs import pair_table
 from .rates import hopping_rates
@@ -67,7 +70,7 @@ def export_study(
         Keyword arguments of :func:`~clusterlab.export.rates.hopping_rates`
         (one rate set each; give each a ``label`` when there are several).
     method : Method, optional
-        The QM method, for the sidecar.
+        The QM method, for the sidecar; default the sample's (``SiteSample.method``).
     verdict, vacuum_eV
         See :func:`~clusterlab.export.sites.site_table`.
     metadata : mapping, optional
@@ -84,6 +87,10 @@ def export_study(
     >>> sorted(paths)  # doctest: +SKIP
     ['pairs_csv', 'pairs_parquet', 'sidecar', 'sites_csv', 'sites_parquet']
     """
+    if method is None and getattr(sample, "method", None) is not None:
+        method = sample.method  # the sample's one method, so the sidecar names it
+    if isinstance(cutoff_A, bool) or not isinstance(cutoff_A, numbers.Real):
+        raise InputError(f"cutoff_A={cutoff_A!r} must be a number of Å (e.g. 8.0).")
     model_charges = film_model_input(model).charges if model is not None else None
     if model_charges is not None and hasattr(model_charges, "transition_e"):
         # a model that carries its state-charge set (run_film_model): use its
@@ -98,7 +105,14 @@ def export_study(
                        refractive_index=refractive_index, transfer=transfer) for f in frame_list]
     pairs = pd.concat(tabs, ignore_index=True) if tabs else pd.DataFrame()
     if rates:
+        allowed = [n for n in inspect.signature(hopping_rates).parameters if n not in ("sites", "pairs")]
         for kw in ([rates] if isinstance(rates, Mapping) else list(rates)):
+            if not isinstance(kw, Mapping):
+                raise InputError(f"rates entry {kw!r} must be a mapping of hopping_rates keywords.")
+            unknown = sorted(set(kw) - set(allowed))
+            if unknown:
+                raise InputError(f"rates entry {dict(kw)!r}: {unknown[0]!r} is not a keyword of hopping_rates; "
+                                 f"valid keywords are {', '.join(allowed)}.")
             attrs = dict(pairs.attrs)
             pairs = hopping_rates(sites, pairs, **dict(kw))
             pairs.attrs = {**attrs, **pairs.attrs}

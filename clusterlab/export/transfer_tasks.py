@@ -246,6 +246,10 @@ def compute_transfer_integrals(
         p = p.head(int(max_pairs))
     tasks = [transfer_task(film, f, int(a), int(b), method, embed_radius_A=embed_radius_A)
              for a, b in zip(p["i"], p["j"])]
+    if tasks:  # an unknown basis or functional is named before any pair is queued
+        from ..study.tasks import check_film_method
+
+        check_film_method(film, method)
     st = open_store(store)
     report = run_tasks(tasks, TRANSFER_TASK_FN, store=st, runner=runner, progress=progress,
                        desc="transfer integrals", **runner_kw)

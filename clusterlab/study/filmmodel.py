@@ -765,6 +765,8 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
     if response and (bad or not response_states):
         raise InputError(f"response_states {response_states!r} are invalid; the field response knows 'S1' and 'T1'.")
     save: Callable[[StateChargeSet], None] | None = None
+    if store is not None:
+        store.claim_film(film.film_id, topology=film.topology_path)
     if store is not None and charges is None:
         slot = "film_model_charges:" + task_key(
             kind="film-model-charges", film_id=film.film_id, reference_molecule=int(reference_molecule),

@@ -22,7 +22,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError
+from ..errors import InputError, ProvenanceError
 from ..film import Film
 from ..qm.method import Method
 from ..ranges import is_id_text, parse_frames, parse_ids, parse_radii
@@ -30,7 +30,7 @@ from ..runner import RunReport
 from ..stats import conformational_environmental, disorder_stats, spatial_correlation, static_dynamic
 from ..store import ResultStore
 from .scan import open_store
-from .tasks import cluster_task, run_cluster_tasks
+from .tasks import check_film_method, cluster_task, run_cluster_tasks
 
 #: the molecule-centroid columns of a site table (Å)
 CENTROID_COLUMNS = ("centroid_x_A", "centroid_y_A", "centroid_z_A")
@@ -85,16 +85,19 @@ def choose_frames(film: Film, frames: Any = None) -> list[int]:
 
 
 def site_table(store: ResultStore | str | os.PathLike[str], *, film: Film | None = None,
-               kinds: Sequence[str] = ("excitations",)) -> pd.DataFrame:
-    """The finished site-energy records of a result store as a tidy table.
+               kinds: Sequence[str] = ("excitations",), film_id: str | None = None,
+               method_key: str | None = None) -> pd.DataFrame:
+    """The finished site-energy records of one film and one method in a result store, as a tidy table.
 
     One row per stored cluster calculation of the given ``kinds`` (by default
     the finite-radius calculations of samples and scans; not the periodic
-    limit, vacuum references or other record kinds). With a ``film``, only
-    its records are kept (those carrying another film's content id are left
-    out; hand-written records without one are kept), and ``resname`` and the
-    molecule centroids (Å, from :meth:`Film.frame_geometry`) are added when
-    the records lack them.
+    limit, vacuum references or other record kinds). The records of one film
+    and one method are read, never a mix: the film is ``film`` (its content
+    id), else ``film_id``, else the only film of the store; the method is
+    ``method_key``, else the only method of that film's records. With a
+    ``film``, ``resname`` and the molecule centroids (Å, from
+    :meth:`Film.frame_geometry`) are added when the records lack them.
+    Hand-written records without a film id count as records of any film.
 
     Parameters
     ----------
@@ -102,6 +105,9 @@ def site_table(store: ResultStore | str | os.PathLike[str], *, film: Film | None
         A path is opened read-only and closed again.
     film : Film, optional
     kinds : sequence of str, default ("excitations",)
+    film_id, method_key : str, optional
+        Which film and method to read; a unique leading part of the id or key
+        is enough. Needed when the store holds several.
 
     Returns
     -------
@@ -112,6 +118,10 @@ def site_table(store: ResultStore | str | os.PathLike[str], *, film: Film | None
     ------
     clusterlab.errors.StudyFileError
         If the file is not a result store.
+    ProvenanceError
+        If the store holds several films or methods and none was chosen (the
+        message lists them), or none of the one asked for (the message names
+        the store's ids and the one asked for).
     InputError
         If no finished site-energy record (a column ending in ``_eV``) is left.
     """
@@ -121,9 +131,7 @@ def site_table(store: ResultStore | str | os.PathLike[str], *, film: Film | None
         name = os.fspath(store)
         with ResultStore(store, readonly=True) as st:
             df = _site_records(st, kinds)
-    if film is not None and len(df) and "film.film_id" in df.columns:
-        ids = df["film.film_id"]
-        df = df[ids.isna() | (ids.astype(str) == film.film_id)]
+    df = _one_film_one_method(df, name, film=film, film_id=film_id, method_key=method_key)
     energy_cols = [c for c in df.columns if str(c).endswith("_eV") and df[c].notna().any()]
     if not len(df) or not energy_cols:
         which = "" if film is None else f" of the film {film.topology_path!r}"
@@ -151,28 +159,122 @@ def _site_records(store: ResultStore, kinds: Sequence[str]) -> pd.DataFrame:
     return pd.concat([store.to_frame(kind=k, status="done") for k in kinds], ignore_index=True)
 
 
+def _pick_one(values: pd.Series, asked: str | None, what: str, flag: str, name: str,
+              labels: dict[str, str]) -> str | None:
+    """The one id among ``values`` (non-null): ``asked`` (a unique leading part
+    is enough), or the only one; a ProvenanceError that lists the choices otherwise."""
+    counts = values.dropna().astype(str).value_counts().sort_index()
+
+    def choices() -> str:
+        return "; ".join(f"{v}{labels.get(v, '')} ({n} records)" for v, n in counts.items())
+
+    if asked is not None:
+        if not isinstance(asked, str) or not asked:
+            raise InputError(f"{flag}={asked!r} must be a non-empty string (a {what} or its leading part).")
+        hits = [v for v in counts.index if v.startswith(asked)]
+        if len(hits) == 1:
+            return hits[0]
+        if not hits:
+            raise ProvenanceError(f"result store {name!r} holds no records of the {what} {asked!r}; "
+                                  f"it holds: {choices() or 'none'}.")
+        raise ProvenanceError(f"{flag}={asked!r} matches several {what}s of result store {name!r}: "
+                              f"{choices()}; give more of it.")
+    if len(counts) > 1:
+        raise ProvenanceError(f"result store {name!r} holds records of {len(counts)} {what}s: {choices()}. "
+                              f"Choose one with {flag}= (the leading part is enough); a number is never "
+                              f"computed over several {what}s.")
+    return counts.index[0] if len(counts) else None
+
+
+def _one_film_one_method(df: pd.DataFrame, name: str, *, film: Film | None, film_id: str | None,
+                         method_key: str | None) -> pd.DataFrame:
+    """Rows of one film and one method (see :func:`site_table`)."""
+    if not len(df):
+        return df
+    if "film.film_id" in df.columns:
+        ids = df["film.film_id"]
+        tops = {}
+        if "film.topology" in df.columns:
+            tops = {str(k): f" ({os.path.basename(str(v))})" for k, v in zip(ids, df["film.topology"])
+                    if isinstance(k, str)}
+        if film is not None:
+            if film_id is not None and not film.film_id.startswith(str(film_id)):
+                raise ProvenanceError(f"film_id={film_id!r} is not the id {film.film_id} of the film "
+                                      f"{film.topology_path!r} given.")
+            held = sorted(set(ids.dropna().astype(str)))
+            if held and film.film_id not in held:
+                raise ProvenanceError(
+                    f"result store {name!r} holds results of the film(s) "
+                    f"{', '.join(h + tops.get(h, '') for h in held)}, not of the film {film.film_id} "
+                    f"({film.topology_path!r}) given: another film, or the same film with moved atoms "
+                    "or other charges.")
+            fid = film.film_id
+        else:
+            fid = _pick_one(ids, film_id, "film", "film_id", name, tops)
+        if fid is not None:
+            df = df[ids.isna() | (ids.astype(str) == fid)]
+    elif film_id is not None:
+        raise ProvenanceError(f"result store {name!r} records no film ids; film_id={film_id!r} cannot be checked.")
+    if "method_key" in df.columns and len(df):
+        labels = {}
+        if {"method.xc", "method.basis"} <= set(df.columns):
+            labels = {str(k): f" ({x}/{b})" for k, x, b in zip(df["method_key"], df["method.xc"], df["method.basis"])
+                      if isinstance(k, str)}
+        mk = _pick_one(df["method_key"], method_key, "method", "method_key", name, labels)
+        if mk is not None:
+            df = df[df["method_key"].isna() | (df["method_key"].astype(str) == mk)]
+    elif method_key is not None:
+        raise ProvenanceError(f"result store {name!r} records no method keys; method_key={method_key!r} "
+                              "cannot be checked.")
+    return df
+
+
 @dataclass
 class SiteSample:
     """A site-energy sample: tidy table plus statistics on it.
 
     ``table`` has one row per (frame, molecule, radius): ids, resname,
     centroid (Å), the site energies and shifts (eV) of every computed state,
-    ``converged``.
+    ``converged``. ``film_id`` and ``method`` name the one film and the one
+    method every row belongs to (None when not known, e.g. hand-written records).
     """
 
     table: pd.DataFrame
     box: dict[int, np.ndarray | None] = field(default_factory=dict)
     report: RunReport | None = None
     failures: list[str] = field(default_factory=list)
+    film_id: str | None = None
+    method: Method | None = None
 
     @classmethod
     def from_store(cls, store: ResultStore | str | os.PathLike[str], *, film: Film | None = None,
-                   kinds: Sequence[str] = ("excitations",)) -> SiteSample:
-        """The sample held in a result store (see :func:`site_table`); with a
-        ``film``, its records only and the box of each frame for the correlation."""
-        table = site_table(store, film=film, kinds=kinds)
+                   kinds: Sequence[str] = ("excitations",), film_id: str | None = None,
+                   method_key: str | None = None) -> SiteSample:
+        """The sample of one film and one method held in a result store (see
+        :func:`site_table`, which says how they are chosen); with a ``film``,
+        the box of each frame for the correlation."""
+        if isinstance(store, ResultStore):
+            return cls._from_open_store(store, film, kinds, film_id, method_key)
+        with ResultStore(store, readonly=True) as st:
+            return cls._from_open_store(st, film, kinds, film_id, method_key)
+
+    @classmethod
+    def _from_open_store(cls, st: ResultStore, film: Film | None, kinds: Sequence[str], film_id: str | None,
+                         method_key: str | None) -> SiteSample:
+        table = site_table(st, film=film, kinds=kinds, film_id=film_id, method_key=method_key)
         box = {} if film is None else {int(f): film.box(int(f)) for f in np.unique(table.frame)}
-        return cls(table=table, box=box)
+        fid = film.film_id if film is not None else None
+        if fid is None and "film.film_id" in table.columns:
+            held = table["film.film_id"].dropna().unique()
+            fid = str(held[0]) if len(held) == 1 else None
+        method = None
+        keys = table["method_key"].dropna().unique() if "method_key" in table.columns else []
+        if len(keys) == 1:
+            rec = st.get(str(table.loc[table["method_key"] == keys[0], "key"].iloc[0]))
+            payload = (rec.spec.get("payload") or {}) if rec is not None else {}
+            if isinstance(payload.get("method"), dict):
+                method = Method.from_dict(payload["method"])
+        return cls(table=table, box=box, film_id=fid, method=method)
 
     def _converged(self) -> pd.DataFrame:
         """Rows flagged converged (every row of a table without the flag)."""
@@ -269,6 +371,7 @@ def sample_sites(
     ids = choose_molecules(film, molecules, n=n, seed=seed)
     fr = choose_frames(film, frames)
     radii = parse_radii(radius)
+    check_film_method(film, method)
     st = open_store(store)
     # molecule-major order, radii innermost, so one worker's warm starts chain
     tasks = [cluster_task(film, int(m), r, method, frame=f, rule=rule, qm_shell_A=qm_shell)
@@ -280,4 +383,5 @@ def sample_sites(
     if len(table):
         table = table.sort_values(["radius_A", "frame", "molecule"], kind="stable").reset_index(drop=True)
     boxes = {f: film.box(f) for f in fr}
-    return SiteSample(table=table, box=boxes, report=report, failures=failures)
+    return SiteSample(table=table, box=boxes, report=report, failures=failures, film_id=film.film_id,
+                      method=method)

@@ -29,7 +29,7 @@ from ..qm.method import Method
 from ..runner import RunReport
 from ..stats import ConvergenceVerdict, converged_radius
 from ..store import ResultStore
-from .tasks import cluster_task, run_cluster_tasks
+from .tasks import check_film_method, cluster_task, run_cluster_tasks
 
 #: the columns a scan tracks for convergence, when present
 TRACKED = ("S1_shift_eV", "T1_shift_eV", "dEST_eV", "S1_followed_shift_eV", "IP_shift_eV", "EA_shift_eV")
@@ -168,6 +168,7 @@ def radius_scan(
     if not isinstance(method, Method):
         raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__}.")
     radii = _check_radii(radii)
+    check_film_method(film, method)
     st = open_store(store)
     tasks = scan_tasks(film, molecule, radii, method, frame=frame, rule=rule, qm_shell=qm_shell,
                        periodic_limit=periodic_limit)

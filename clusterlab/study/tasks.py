@@ -71,6 +71,23 @@ def cluster_task(
     return Task(key=key, kind=kind, payload=payload)
 
 
+def check_film_method(film: Film, method: Method) -> None:
+    """Check, before any task is queued, that PySCF knows ``method``'s
+    functional and has its basis for every element of ``film``.
+
+    Raises
+    ------
+    InputError
+        Naming the functional, or the basis and the elements it lacks
+        (:func:`clusterlab.qm.calc.check_method`).
+    """
+    from ..qm.calc import check_method
+
+    if not isinstance(method, Method):
+        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__} ({method!r}).")
+    check_method(method, sorted({str(s) for s in film.symbols}))
+
+
 def run_cluster_tasks(tasks: list[Task], store: ResultStore, *, desc: str, on_result: Any = None,
                       **run_kw: Any) -> tuple[RunReport, list[dict[str, Any]], list[str]]:
     """Run cluster tasks through :func:`~clusterlab.runner.run_tasks` and read

@@ -18,6 +18,7 @@ import pandas as pd
 from MDAnalysis.lib import distances as mdadist
 
 from ..errors import InputError
+from ..geometry import box_vectors, perpendicular_widths
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -143,13 +144,13 @@ def neighbour_pairs(
     Raises
     ------
     InputError
-        For a bad cutoff, box, criterion, or missing atom positions.
+        For a bad cutoff (or one beyond half the shortest box width), box,
+        criterion, or missing atom positions.
 
     Notes
     -----
-    The cutoff should be below half the shortest box width (perpendicular
-    distance between faces) so that each pair has one nearest image; a pair
-    is listed once even when a second image lies within the cutoff.
+    The cutoff must not exceed half the shortest box width (perpendicular
+    distance between faces), so that each pair has one nearest image.
     Atom distances are minimum-image per atom pair, so molecules need not be
     whole for them; centroids must belong to whole molecules.
 
@@ -163,9 +164,16 @@ def neighbour_pairs(
     [-1.0, -4.0]
     """
     c = _positions("centroids_A", centroids_A)
-    if not (np.isfinite(cutoff_A) and cutoff_A > 0):
-        raise InputError(f"cutoff_A must be finite and > 0 Å; got {cutoff_A!r}.")
+    if (isinstance(cutoff_A, (bool, np.bool_)) or not isinstance(cutoff_A, (int, float, np.integer, np.floating))
+            or not (np.isfinite(cutoff_A) and cutoff_A > 0)):
+        raise InputError(f"cutoff_A must be a finite number > 0 of Å; got {cutoff_A!r}.")
     b = _box(box)
+    if b is not None:
+        half = 0.5 * float(perpendicular_widths(box_vectors(b)).min())
+        if cutoff_A > half * (1 + 1e-6):  # float32 boxes: 16 Å may read 16.0000005
+            # beyond half the width a pair has two images within the cutoff; one would be dropped
+            raise InputError(f"cutoff_A={cutoff_A!r} Å exceeds half the shortest box width ({half:.3f} Å); "
+                             f"each pair has one nearest image only up to {half:.3f} Å.")
     if criterion not in ("centroid", "atom"):
         raise InputError(f"{criterion!r} is not a pair criterion. Use 'centroid' or 'atom'.")
     need_atoms = criterion == "atom" or with_min_atom_distance
