@@ -466,6 +466,7 @@ class Film:
         qm_shell: float = 0.0,
         rule: str = "atom",
         periodic: bool = True,
+        polarizable_radius: float | None = None,
     ) -> Cluster:
         """Carve a cluster around ``molecule``.
 
@@ -485,6 +486,11 @@ class Film:
         periodic : bool
             False carves without periodic images (the only choice for films
             without a box).
+        polarizable_radius : float, Å, optional
+            Inner radius of a two-layer environment: environment molecules
+            within it (same ``rule``, whole molecules) are marked
+            polarizable (``Cluster.env_polarizable``), those beyond stay
+            fixed charges. At most ``radius``. None: no polarizable layer.
 
         Returns
         -------
@@ -503,6 +509,15 @@ class Film:
             radius = float(radius)
         except (TypeError, ValueError) as exc:
             raise CarvingError(f"radius must be a number of Å; got {radius!r}.") from exc
+        pol_r = 0.0
+        if polarizable_radius is not None:
+            try:
+                pol_r = float(polarizable_radius)
+            except (TypeError, ValueError) as exc:
+                raise CarvingError(f"polarizable_radius must be a number of Å; got {polarizable_radius!r}.") from exc
+            if not (np.isfinite(pol_r) and 0 <= pol_r <= radius):
+                raise CarvingError(f"polarizable_radius={polarizable_radius!r} Å must lie between 0 and the cut "
+                                   f"radius ({radius:g} Å): the polarizable layer is the inner part of the cluster.")
         geo = self.frame_geometry(frame, periodic=periodic)
         charges = self.charges
         sel = select_images(geo.positions_A, geo.centroids_A, self.index, mol, radius,
@@ -514,6 +529,10 @@ class Film:
         qm_pos = np.vstack([geo.positions_A[c_atoms], qp])
         qm_atom_mol = np.r_[np.full(len(c_atoms), mol), qm_mol]
         qm_charge_f = float(charges[qm_atoms].sum())
+        env = ~sel.in_qm
+        dist = sel.atom_distance_A[env] if rule == "atom" else sel.centroid_distance_A[env]
+        pol_images = dist <= pol_r if polarizable_radius is not None else np.zeros(int(env.sum()), bool)
+        env_pol = np.repeat(pol_images, self.index.sizes()[sel.molecules[env]])
         return Cluster(
             qm_symbols=list(self.symbols[qm_atoms]),
             qm_positions=qm_pos,
@@ -532,6 +551,8 @@ class Film:
             box=geo.box,
             film_id=self.film_id,
             film_path=os.path.abspath(self.topology_path),
+            env_polarizable=env_pol,
+            polarizable_radius_A=pol_r,
         )
 
     def _gather(self, geo: FrameGeometry, mols: np.ndarray, imgs: np.ndarray
