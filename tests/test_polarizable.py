@@ -292,3 +292,29 @@ def test_bad_inputs_name_the_value():
         film.carve(0, 6.0, polarizable_radius=9.0)
     with pytest.raises(InputError, match="periodic"):
         Embedding([[1, 0, 0]], [0.1], {"lattice_A": np.eye(3)}, polarizabilities_A3=[1.0], groups=[0])
+
+
+# ------------------------------------------------------------- radius scans
+def test_scan_covers_outer_and_inner_radius(tmp_path):
+    from clusterlab.study.scan import radius_scan
+    from clusterlab.study.tasks import cluster_task
+
+    u, _ = build_water_universe(lattice_centres(4, 0.1, np.random.default_rng(1)), np.array([13.0] * 3 + [90.0] * 3))
+    film = film_from_universe(u)
+    m = HF_MIN.replace(n_singlets=1, n_triplets=1, environment="polarizable")
+    scan = radius_scan(film, 0, [4.0, 6.0], m, polarizable_radius=3.0, polarizable_radii=[2.0, 4.0, 6.0],
+                       store=str(tmp_path / "s.sqlite"), progress=False, tol_eV=0.05)
+    t = scan.table
+    assert list(t.radius_A) == [0.0, 4.0, 6.0] and list(t.polarizable_radius_A.iloc[1:]) == [3.0, 3.0]
+    assert "S1_polarization_eV" in scan.tracked
+    inner = scan.polarizable_table
+    assert list(inner.polarizable_radius_A) == [0.0, 2.0, 4.0, 6.0] and set(inner.radius_A) == {6.0}
+    assert inner.S1_polarization_eV.iloc[0] == 0.0 and inner.n_polarizable.is_monotonic_increasing
+    assert scan.polarizable_verdict is not None and "inner (polarizable) radius" in scan.message
+    # the inner radius enters the task key; a fixed-charge task keeps its old key and refuses one
+    k3 = cluster_task(film, 0, 6.0, m, polarizable_radius_A=3.0).key
+    assert k3 != cluster_task(film, 0, 6.0, m, polarizable_radius_A=4.0).key
+    with pytest.raises(InputError, match="polarizable_radius_A=3.0 needs"):
+        cluster_task(film, 0, 6.0, HF_MIN, polarizable_radius_A=3.0)
+    with pytest.raises(InputError, match="polarizable_radius_A=8.0"):
+        cluster_task(film, 0, 6.0, m, polarizable_radius_A=8.0)

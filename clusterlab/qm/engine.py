@@ -247,6 +247,8 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: bool | Calculation
                     guess_dm, guess_calc = fixed.dm, fixed
             emb = calculate(*qm, embedding, charge=cluster.qm_charge, guess_dm=guess_dm, warm_from=guess_calc,
                             progress=progress, tag="embedded")
+        if method.is_polarizable and method.polarization_reference and not embedding.is_polarizable:
+            fixed = emb  # no dipole inside the inner radius: the calculation is its own reference
         timings.update(emb.timings)
         charged = None
         if method.charged_states:
@@ -356,7 +358,7 @@ def _charged_result(cluster, method, emb: Calculation, vac: Calculation | None, 
                         koopmans_IP_eV=float(-emb.mo_energy[nocc - 1] * HARTREE_TO_EV) if emb.converged else NAN,
                         converged_flags=dict(flags), environment=method.environment)
     if fixed is not None:
-        ef, ff = _ion_energies(cluster, method, fixed, embedding.fixed())
+        ef, ff = (e, flags) if fixed is emb else _ion_energies(cluster, method, fixed, embedding.fixed())
         res.IP_fixed_eV = (ef["cation"] - ef["neutral"]) * HARTREE_TO_EV
         res.EA_fixed_eV = (ef["neutral"] - ef["anion"]) * HARTREE_TO_EV
         res.IP_polarization_eV = ip - res.IP_fixed_eV
@@ -450,6 +452,8 @@ def charged_states(cluster: Cluster, method: Method, *, vacuum: bool = True,
             fixed = calculate(*qm, embedding.fixed(), charge=cluster.qm_charge, with_states=False)
         emb = calculate(*qm, embedding, charge=cluster.qm_charge, with_states=False,
                         guess_dm=fixed.dm if fixed is not None and fixed.converged else None)
+        if method.is_polarizable and method.polarization_reference and fixed is None:
+            fixed = emb
         vac = None
         if vacuum:
             vac = emb if embedding.is_vacuum else calculate(*qm, VACUUM, charge=cluster.qm_charge, with_states=False)

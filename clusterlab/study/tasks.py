@@ -46,18 +46,25 @@ def cluster_task(
     rule: str = "atom",
     qm_shell_A: float = 0.0,
     kind: str = "excitations",
+    polarizable_radius_A: float | None = None,
 ) -> Task:
     """Describe one cluster calculation as a :class:`~clusterlab.runner.Task`.
 
     The key hashes the film content, frame, molecule, radius, rule, QM shell,
-    method and clusterlab version, so a re-run finds results it already has.
-    ``kind="periodic"`` is the Ewald-embedded limit (radius ∞).
+    method and clusterlab version (and the polarizable radius, when there is
+    one), so a re-run finds results it already has. ``kind="periodic"`` is
+    the Ewald-embedded limit (radius ∞).
+
+    ``polarizable_radius_A`` is the inner radius of a two-layer environment
+    (only with ``method.environment == "polarizable"``); None there means
+    ``min(radius_A, DEFAULT_POLARIZABLE_RADIUS_A)``.
     """
     if kind not in KINDS:
         raise InputError(f"kind={kind!r} is not valid; use one of {KINDS}.")
     molecule = film.check_molecule(molecule)
     frame = film.check_frame(frame)
     radius = math.inf if kind == "periodic" else float(radius_A)
+    pol_r = polarizable_radius(radius, polarizable_radius_A, method, kind)
     remember_film(film)
     resname = str(film.molecule_resnames[molecule])
     payload = {
@@ -65,10 +72,49 @@ def cluster_task(
         "radius_A": "inf" if math.isinf(radius) else radius, "rule": rule,
         "qm_shell_A": float(qm_shell_A), "method": method.to_dict(), "kind": kind, "resname": resname,
     }
+    extra = {}
+    if pol_r is not None:
+        payload["polarizable_radius_A"] = extra["polarizable_radius_A"] = pol_r
     key = task_key(film_id=film.film_id, frame=frame, molecule=molecule,
                    radius_A=payload["radius_A"], rule=rule, qm_shell_A=float(qm_shell_A),
-                   method_key=method.key(), kind=kind, version=__version__)
+                   method_key=method.key(), kind=kind, version=__version__, **extra)
     return Task(key=key, kind=kind, payload=payload)
+
+
+#: Inner (polarizable) radius, Å, of a polarizable method when none is given:
+#: provisional, from the demo-molecule benchmark (bench/bench_polarizable.py,
+#: see its notes for the measured convergence and cost).
+DEFAULT_POLARIZABLE_RADIUS_A = 8.0
+
+
+def polarizable_radius(radius_A: float, polarizable_radius_A: float | None, method: Method,
+                       kind: str = "excitations") -> float | None:
+    """The inner radius a task carves with (checked once, here), or None for
+    a fixed-charge method.
+
+    Raises
+    ------
+    InputError
+        An inner radius with a fixed-charge method or the periodic limit, or
+        one that is negative, not finite or larger than ``radius_A``.
+    """
+    if not method.is_polarizable:
+        if polarizable_radius_A is not None:
+            raise InputError(f"polarizable_radius_A={polarizable_radius_A!r} needs "
+                             "Method(environment='polarizable'); this method has fixed charges.")
+        return None
+    if kind == "periodic":
+        raise InputError("the periodic (Ewald) limit takes fixed charges only; use a fixed-charge method for it.")
+    if polarizable_radius_A is None:
+        return float(min(radius_A, DEFAULT_POLARIZABLE_RADIUS_A))
+    try:
+        r = float(polarizable_radius_A)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"polarizable_radius_A must be a number of Å; got {polarizable_radius_A!r}.") from exc
+    if not (math.isfinite(r) and 0 <= r <= radius_A):
+        raise InputError(f"polarizable_radius_A={polarizable_radius_A!r} Å must lie between 0 and the cut radius "
+                         f"({radius_A:g} Å).")
+    return r
 
 
 def run_cluster_tasks(tasks: list[Task], store: ResultStore, *, desc: str, on_result: Any = None,
@@ -120,7 +166,8 @@ def run_cluster_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
         res = periodic_excitations(cluster, method, vacuum=True, guess=prev)
     else:
         cluster = film.carve(mol, float(payload["radius_A"]), frame=frame, rule=payload["rule"],
-                             qm_shell=float(payload["qm_shell_A"]))
+                             qm_shell=float(payload["qm_shell_A"]),
+                             polarizable_radius=payload.get("polarizable_radius_A"))
         ws = prev.warm_start if prev is not None else None
         if ws is not None and ws.fits(cluster) and prev.scf_converged and ws.vacuum is not None:
             res = excitations(cluster, method, vacuum=prev, guess=prev)
@@ -142,5 +189,7 @@ def run_cluster_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
         "method_key": method.key(), "kind": kind, "wall_s": float(res.meta.get("timings_s", {}).get("total", np.nan)),
         "pid": os.getpid(),
     }
+    if method.is_polarizable:
+        summary["environment"] = method.environment
     summary.update(res.summary())
     return res.to_json(), summary
