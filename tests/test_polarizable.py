@@ -318,3 +318,62 @@ def test_scan_covers_outer_and_inner_radius(tmp_path):
         cluster_task(film, 0, 6.0, HF_MIN, polarizable_radius_A=3.0)
     with pytest.raises(InputError, match="polarizable_radius_A=8.0"):
         cluster_task(film, 0, 6.0, m, polarizable_radius_A=8.0)
+
+
+# --------------------------------------------------- (4) acetone n->pi* in water
+def acetone_in_water():
+    """Planar acetone (C=O 1.214, C-C 1.515 Å, CCC 116.7°, C-H 1.09 Å; approximate gas-phase
+    geometry, from memory) with two waters hydrogen-bonded to the oxygen in the molecular plane
+    (O...O 2.85 Å, 55° off the C=O axis: the sp2 lone pairs) and four more around it."""
+    sym = ["C", "O", "C", "C"] + ["H"] * 6
+    half = np.deg2rad(116.7 / 2)
+    cm = [np.array([s * 1.515 * np.sin(half), 0.0, -1.515 * np.cos(half)]) for s in (1, -1)]
+    pos = [np.zeros(3), np.array([0, 0, 1.214]), *cm]
+    for c in cm:
+        u = c / np.linalg.norm(c)
+        e1 = np.cross(u, [0, 1.0, 0])
+        e1 /= np.linalg.norm(e1)
+        e2 = np.cross(u, e1)
+        for phi in np.deg2rad([0.0, 120.0, 240.0]):
+            pos.append(c + 1.09 * (np.cos(np.deg2rad(70.5)) * u
+                                   + np.sin(np.deg2rad(70.5)) * (np.cos(phi) * e1 + np.sin(phi) * e2)))
+    o = np.array([0, 0, 1.214])
+    env_pos, mol = [], []
+    theta = np.deg2rad(104.52)
+    for k, ang in enumerate(np.deg2rad([55.0, -55.0])):
+        ow = o + 2.85 * np.array([np.sin(ang), 0, np.cos(ang)])
+        b = (o - ow) / 2.85  # donor H points at the acetone oxygen
+        perp = np.array([0, 1.0, 0])
+        h2 = ow + 0.9572 * (np.cos(theta) * b + np.sin(theta) * perp)
+        env_pos += [ow, ow + 0.9572 * b, h2]
+        mol += [k] * 3
+    rng = np.random.default_rng(11)
+    w, _, _, _ = waters([[3.4, 2.6, -1.2], [-3.4, -2.6, -1.2], [0.2, 3.3, 1.6], [0.0, -3.4, 1.4]], rng)
+    env_pos = np.vstack([np.array(env_pos), w])
+    mol = np.r_[mol, np.repeat(np.arange(2, 6), 3)]
+    q = np.tile(TIP3P_Q, 6)
+    return sym, np.array(pos), env_pos, q, ["O", "H", "H"] * 6, mol
+
+
+@pytest.mark.slow
+def test_acetone_n_pi_star_blue_shift_in_polarizable_water():
+    """The n->pi* (S1) of acetone moves to the blue in water: +0.14 to +0.15 eV in the
+    polarizable-embedding study of Aidas et al. 2005 (an ensemble average in bulk water) and
+    +0.22 eV in experiment (Renge 2009). One configuration with six waters (two hydrogen bonds,
+    which carry most of the shift) is compared with a band of ±0.15 eV around 0.18 eV: a single
+    snapshot differs from the thermal average by about 0.1 eV (the spread of snapshot shifts in
+    such studies) and the bulk beyond the first shell adds a few hundredths. The induction adds
+    to the blue shift (the ground state, about 3 D, is more polar than the n->pi* state and gains
+    more from the induced dipoles than the response to the dark transition gives back) but stays
+    below the whole shift; its size is not checked against a published split (measured here:
+    +0.085 of a +0.231 eV shift at B3LYP/6-31G)."""
+    sym, pos, env_pos, q, env_sym, mol = acetone_in_water()
+    c = Cluster(sym, pos, env_pos, q, env_molecules=mol, env_symbols=env_sym,
+                env_polarizable=np.ones(len(q), bool), polarizable_radius_A=6.0, radius_A=6.0)
+    m = Method(xc="b3lyp", basis="6-31g", grid_level=2, response_grid_level=1, n_singlets=2, n_triplets=0,
+               environment="polarizable")
+    r = excitations(c, m)
+    s1 = r.s1
+    assert r.converged and s1.osc_strength < 1e-2  # the dark n->pi* state
+    assert 0.03 <= s1.shift_eV <= 0.33
+    assert 0 < s1.polarization_eV < s1.shift_eV
