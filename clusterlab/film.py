@@ -509,15 +509,7 @@ class Film:
             radius = float(radius)
         except (TypeError, ValueError) as exc:
             raise CarvingError(f"radius must be a number of Å; got {radius!r}.") from exc
-        pol_r = 0.0
-        if polarizable_radius is not None:
-            try:
-                pol_r = float(polarizable_radius)
-            except (TypeError, ValueError) as exc:
-                raise CarvingError(f"polarizable_radius must be a number of Å; got {polarizable_radius!r}.") from exc
-            if not (np.isfinite(pol_r) and 0 <= pol_r <= radius):
-                raise CarvingError(f"polarizable_radius={polarizable_radius!r} Å must lie between 0 and the cut "
-                                   f"radius ({radius:g} Å): the polarizable layer is the inner part of the cluster.")
+        pol_r = 0.0 if polarizable_radius is None else check_polarizable_radius(polarizable_radius, radius)
         geo = self.frame_geometry(frame, periodic=periodic)
         charges = self.charges
         sel = select_images(geo.positions_A, geo.centroids_A, self.index, mol, radius,
@@ -610,6 +602,24 @@ class Film:
 #: caller's Film (also in-memory ones) and process workers load each film once
 _FILM_CACHE: "OrderedDict[str, Film]" = OrderedDict()
 _FILM_CACHE_SIZE = 4
+
+
+def check_polarizable_radius(polarizable_radius: Any, radius_A: float) -> float:
+    """The inner (polarizable) radius of a two-layer carve as a float in Å.
+
+    Raises
+    ------
+    CarvingError
+        Not a number, or not between 0 and the cut radius ``radius_A``.
+    """
+    try:
+        r = float(polarizable_radius)
+    except (TypeError, ValueError) as exc:
+        raise CarvingError(f"polarizable_radius must be a number of Å; got {polarizable_radius!r}.") from exc
+    if not (np.isfinite(r) and 0 <= r <= radius_A):
+        raise CarvingError(f"polarizable_radius={polarizable_radius!r} Å must lie between 0 and the cut radius "
+                           f"({radius_A:g} Å): the polarizable layer is the inner part of the cluster.")
+    return r
 
 
 def remember_film(film: Film) -> None:

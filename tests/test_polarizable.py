@@ -316,7 +316,7 @@ def test_scan_covers_outer_and_inner_radius(tmp_path):
     assert k3 != cluster_task(film, 0, 6.0, m, polarizable_radius_A=4.0).key
     with pytest.raises(InputError, match="polarizable_radius_A=3.0 needs"):
         cluster_task(film, 0, 6.0, HF_MIN, polarizable_radius_A=3.0)
-    with pytest.raises(InputError, match="polarizable_radius_A=8.0"):
+    with pytest.raises(InputError, match="polarizable_radius=8.0"):
         cluster_task(film, 0, 6.0, m, polarizable_radius_A=8.0)
 
 

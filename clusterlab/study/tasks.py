@@ -21,7 +21,7 @@ import numpy as np
 
 from ..versions import __version__
 from ..errors import InputError
-from ..film import Film, film_from_spec, remember_film
+from ..film import Film, check_polarizable_radius, film_from_spec, remember_film
 from ..qm.method import Method
 from ..runner import RunReport, Task, run_tasks
 from ..store import ResultStore, task_key
@@ -95,8 +95,9 @@ def polarizable_radius(radius_A: float, polarizable_radius_A: float | None, meth
     Raises
     ------
     InputError
-        An inner radius with a fixed-charge method or the periodic limit, or
-        one that is negative, not finite or larger than ``radius_A``.
+        An inner radius with a fixed-charge method or the periodic limit;
+        :class:`~clusterlab.errors.CarvingError` (an InputError) for one
+        that is not a number or not between 0 and ``radius_A``.
     """
     if not method.is_polarizable:
         if polarizable_radius_A is not None:
@@ -107,14 +108,7 @@ def polarizable_radius(radius_A: float, polarizable_radius_A: float | None, meth
         raise InputError("the periodic (Ewald) limit takes fixed charges only; use a fixed-charge method for it.")
     if polarizable_radius_A is None:
         return float(min(radius_A, DEFAULT_POLARIZABLE_RADIUS_A))
-    try:
-        r = float(polarizable_radius_A)
-    except (TypeError, ValueError) as exc:
-        raise InputError(f"polarizable_radius_A must be a number of Å; got {polarizable_radius_A!r}.") from exc
-    if not (math.isfinite(r) and 0 <= r <= radius_A):
-        raise InputError(f"polarizable_radius_A={polarizable_radius_A!r} Å must lie between 0 and the cut radius "
-                         f"({radius_A:g} Å).")
-    return r
+    return check_polarizable_radius(polarizable_radius_A, radius_A)
 
 
 def run_cluster_tasks(tasks: list[Task], store: ResultStore, *, desc: str, on_result: Any = None,
