@@ -81,9 +81,14 @@ def cluster_task(
     return Task(key=key, kind=kind, payload=payload)
 
 
-#: Inner (polarizable) radius, Å, of a polarizable method when none is given:
-#: provisional, from the demo-molecule benchmark (bench/bench_polarizable.py,
-#: see its notes for the measured convergence and cost).
+#: Inner (polarizable) radius, Å, of a polarizable method when none is given.
+#: Measured on demo molecule 0 (bench/bench_polarizable.py, B3LYP/6-31G, outer
+#: radius 10 Å; bench/results/bench_polarizable.txt): from 6 to 8 Å the
+#: polarization contributions to S1, T1 and IP changed by 4, 0 and 5 meV
+#: (-0.089, -0.006, -0.718 eV at 8 Å, 672 dipoles), the polarizable part cost
+#: 1.7x more than at 6 Å. EA had not converged (+0.53 -> +0.65 eV: the 6-31G
+#: anion is unbound and its diffuse electron follows the dipoles); scan the
+#: inner radius (radius_scan(..., polarizable_radii=)) before trusting EA.
 DEFAULT_POLARIZABLE_RADIUS_A = 8.0
 
 
