@@ -64,6 +64,11 @@ class Cluster:
     film_id : str
         Content hash of the film the cluster came from ("" if external).
     film_path : str
+    env_polarizable : ndarray of bool, shape (m,)
+        Which environment atoms carry a polarizability (whole molecules:
+        the inner layer of a two-layer environment); all False by default.
+    polarizable_radius_A : float
+        Inner (polarizable) radius of the carve, Å (0: no polarizable layer).
     """
 
     qm_symbols: list[str]
@@ -83,6 +88,8 @@ class Cluster:
     box: FloatArray | None = None
     film_id: str = ""
     film_path: str = ""
+    env_polarizable: npt.NDArray[np.bool_] = field(default_factory=lambda: np.zeros(0, dtype=bool))
+    polarizable_radius_A: float = 0.0
 
     def __post_init__(self) -> None:
         qm_pos = _as_positions("qm_positions", self.qm_positions)
@@ -115,7 +122,18 @@ class Cluster:
                              ("qm_atom_molecules", qm_am, len(qm_pos))):
             if len(arr) != n:
                 raise InputError(f"{name} has {len(arr)} entries; expected {n}.")
+        env_pol = np.asarray(self.env_polarizable, dtype=bool).reshape(-1)
+        if env_pol.size == 0:
+            env_pol = np.zeros(m, dtype=bool)
+        if len(env_pol) != m:
+            raise InputError(f"env_polarizable has {len(env_pol)} entries; expected one per point charge ({m}).")
+        pol_r = float(self.polarizable_radius_A)
+        if not (pol_r >= 0 and np.isfinite(pol_r)):
+            raise InputError(f"polarizable_radius_A={self.polarizable_radius_A!r} must be a finite non-negative "
+                             "number of Å.")
         set_ = object.__setattr__
+        set_(self, "env_polarizable", env_pol)
+        set_(self, "polarizable_radius_A", pol_r)
         set_(self, "qm_symbols", [str(s) for s in self.qm_symbols])
         set_(self, "qm_positions", qm_pos)
         set_(self, "env_positions", env_pos)
@@ -195,6 +213,11 @@ class Cluster:
         return int(len(np.unique(keys, axis=0)))
 
     @property
+    def n_polarizable(self) -> int:
+        """Number of environment atoms that carry a polarizability."""
+        return int(np.count_nonzero(self.env_polarizable))
+
+    @property
     def net_env_charge(self) -> float:
         """Sum of the environment point charges (e)."""
         return float(self.env_charges.sum())
@@ -214,6 +237,8 @@ class Cluster:
             "n_env_molecules": self.n_env_molecules,
             "net_env_charge": self.net_env_charge,
             "qm_charge": int(self.qm_charge),
+            "polarizable_radius_A": float(self.polarizable_radius_A),
+            "n_polarizable": self.n_polarizable,
         }
 
     def fingerprint(self) -> str:
@@ -225,6 +250,8 @@ class Cluster:
         h.update(np.round(self.env_positions, 6).astype("<f8").tobytes())
         h.update(np.round(self.env_charges, 8).astype("<f8").tobytes())
         h.update(str(int(self.qm_charge)).encode())
+        if self.env_polarizable.any():  # (clusters without a polarizable layer keep their old fingerprint)
+            h.update(np.packbits(self.env_polarizable).tobytes())
         return h.hexdigest()
 
     def fingerprint_qm(self) -> str:

@@ -496,6 +496,7 @@ class Film:
         qm_shell: float = 0.0,
         rule: str = "atom",
         periodic: bool = True,
+        polarizable_radius: float | None = None,
     ) -> Cluster:
         """Carve a cluster around ``molecule``.
 
@@ -515,6 +516,11 @@ class Film:
         periodic : bool
             False carves without periodic images (the only choice for films
             without a box).
+        polarizable_radius : float, Å, optional
+            Inner radius of a two-layer environment: environment molecules
+            within it (same ``rule``, whole molecules) are marked
+            polarizable (``Cluster.env_polarizable``), those beyond stay
+            fixed charges. At most ``radius``. None: no polarizable layer.
 
         Returns
         -------
@@ -538,6 +544,7 @@ class Film:
         if not isinstance(periodic, (bool, np.bool_)):
             raise CarvingError(f"periodic must be True or False; got {periodic!r}.")
         self._check_cluster_size(radius, frame, periodic=bool(periodic))
+        pol_r = 0.0 if polarizable_radius is None else check_polarizable_radius(polarizable_radius, radius)
         geo = self.frame_geometry(frame, periodic=periodic)
         charges = self.charges
         sel = select_images(geo.positions_A, geo.centroids_A, self.index, mol, radius,
@@ -549,6 +556,10 @@ class Film:
         qm_pos = np.vstack([geo.positions_A[c_atoms], qp])
         qm_atom_mol = np.r_[np.full(len(c_atoms), mol), qm_mol]
         qm_charge_f = float(charges[qm_atoms].sum())
+        env = ~sel.in_qm
+        dist = sel.atom_distance_A[env] if rule == "atom" else sel.centroid_distance_A[env]
+        pol_images = dist <= pol_r if polarizable_radius is not None else np.zeros(int(env.sum()), bool)
+        env_pol = np.repeat(pol_images, self.index.sizes()[sel.molecules[env]])
         return Cluster(
             qm_symbols=list(self.symbols[qm_atoms]),
             qm_positions=qm_pos,
@@ -567,6 +578,8 @@ class Film:
             box=geo.box,
             film_id=self.film_id,
             film_path=os.path.abspath(self.topology_path),
+            env_polarizable=env_pol,
+            polarizable_radius_A=pol_r,
         )
 
     def _check_cluster_size(self, radius_A: float, frame: Any, *, periodic: bool) -> None:
@@ -642,6 +655,24 @@ class Film:
 #: caller's Film (also in-memory ones) and process workers load each film once
 _FILM_CACHE: "OrderedDict[str, Film]" = OrderedDict()
 _FILM_CACHE_SIZE = 4
+
+
+def check_polarizable_radius(polarizable_radius: Any, radius_A: float) -> float:
+    """The inner (polarizable) radius of a two-layer carve as a float in Å.
+
+    Raises
+    ------
+    CarvingError
+        Not a number, or not between 0 and the cut radius ``radius_A``.
+    """
+    try:
+        r = float(polarizable_radius)
+    except (TypeError, ValueError) as exc:
+        raise CarvingError(f"polarizable_radius must be a number of Å; got {polarizable_radius!r}.") from exc
+    if not (np.isfinite(r) and 0 <= r <= radius_A):
+        raise CarvingError(f"polarizable_radius={polarizable_radius!r} Å must lie between 0 and the cut radius "
+                           f"({radius_A:g} Å): the polarizable layer is the inner part of the cluster.")
+    return r
 
 
 def remember_film(film: Film) -> None:

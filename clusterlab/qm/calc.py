@@ -9,7 +9,10 @@ settings of one :class:`~clusterlab.qm.method.Method`:
 * :func:`build_molecule` - a ``pyscf.gto.Mole`` in Å with the method's basis;
 * :class:`Embedding` - what surrounds the QM region: fixed point charges
   (Gaussian-smeared by ``method.charge_smearing_A``), optionally summed
-  periodically (Ewald, ``pyscf.qmmm.pbc``);
+  periodically (Ewald, ``pyscf.qmmm.pbc``), optionally with induced dipoles
+  on polarizable sites solved with the QM density (:mod:`.induction`, cppe
+  through ``pyscf.solvent``; the response solves include the environment's
+  response to the transition density);
 * :func:`make_scf` and :func:`run_scf` - RKS/UKS (or HF) with density
   fitting and the SCF grid of the method, and the documented fallback:
   (1) DIIS from the given guess; (2) DIIS with a 0.3 Eh level shift restarted
@@ -40,6 +43,7 @@ from ..errors import CalculationError, InputError
 from ..units import AU_DIPOLE_TO_DEBYE
 from . import ct as _ct
 from .following import rotate_amplitudes
+from .induction import attach_induced_dipoles, has_induced_dipoles
 from .method import Method
 from .response import ResponseStates, subspace_refine
 
@@ -72,11 +76,20 @@ class Embedding:
         Ewald embedding of the charges' lattice: ``lattice_A`` (3, 3),
         ``rcut_ewald_A``, ``rcut_hcore_A`` (see :mod:`.periodic`); None for
         a finite cluster.
+    polarizabilities_A3 : ndarray, shape (n,), Å³, optional
+        Isotropic polarizability of each charge site; sites with a positive
+        value carry an induced dipole solved with the QM density (see
+        :mod:`.induction`). Empty (default): fixed charges only.
+    groups : ndarray of int, shape (n,), optional
+        Molecule copy of each site (needed with polarizabilities: a dipole
+        feels the charges of other copies only).
     """
 
     positions_A: FloatArray = field(default_factory=lambda: np.zeros((0, 3)))
     charges_e: FloatArray = field(default_factory=lambda: np.zeros(0))
     periodic: Mapping[str, Any] | None = None
+    polarizabilities_A3: FloatArray = field(default_factory=lambda: np.zeros(0))
+    groups: npt.NDArray[np.int64] = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
 
     def __post_init__(self) -> None:
         pos = np.asarray(self.positions_A, dtype=np.float64).reshape(-1, 3)
@@ -85,12 +98,41 @@ class Embedding:
             raise InputError(f"the embedding has {len(pos)} positions for {len(q)} charges; give one charge each.")
         if not (np.all(np.isfinite(pos)) and np.all(np.isfinite(q))):
             raise InputError("embedding positions and charges must be finite numbers.")
+        alpha = np.asarray(self.polarizabilities_A3, dtype=np.float64).reshape(-1)
+        grp = np.asarray(self.groups, dtype=np.int64).reshape(-1)
+        if alpha.size:
+            if len(alpha) != len(q):
+                raise InputError(f"the embedding has {len(alpha)} polarizabilities for {len(q)} sites; give one "
+                                 "per site (0 for a charge-only site).")
+            if not np.all(np.isfinite(alpha)) or np.any(alpha < 0):
+                raise InputError("polarizabilities_A3 must be finite and non-negative (Å³).")
+            if len(grp) != len(q):
+                raise InputError(f"polarizable sites need a molecule copy per site (groups): got {len(grp)} for "
+                                 f"{len(q)} sites.")
+            if np.any(alpha > 0) and self.periodic is not None:
+                raise InputError("the periodic (Ewald) embedding takes fixed charges only; polarizable sites "
+                                 "need a finite cluster.")
         object.__setattr__(self, "positions_A", pos)
         object.__setattr__(self, "charges_e", q)
+        object.__setattr__(self, "polarizabilities_A3", alpha)
+        object.__setattr__(self, "groups", grp)
 
     @property
     def n_charges(self) -> int:
         return int(len(self.charges_e))
+
+    @property
+    def n_polarizable(self) -> int:
+        """Number of sites with an induced dipole."""
+        return int(np.count_nonzero(self.polarizabilities_A3 > 0))
+
+    @property
+    def is_polarizable(self) -> bool:
+        return self.n_polarizable > 0
+
+    def fixed(self) -> "Embedding":
+        """The same charges without induced dipoles (the fixed-charge reference)."""
+        return Embedding(self.positions_A, self.charges_e, self.periodic)
 
     @property
     def is_vacuum(self) -> bool:
@@ -211,6 +253,8 @@ def make_scf(mol, method: Method, embedding: Embedding = VACUUM, *, unrestricted
         from pyscf import qmmm
 
         mf = qmmm.mm_charge(mf, env_pos, env_q, radii=radii, unit="Angstrom")
+    if embedding.is_polarizable:
+        mf = attach_induced_dipoles(mf, env_pos, env_q, embedding.polarizabilities_A3, embedding.groups)
     return mf
 
 
@@ -327,7 +371,10 @@ def _tdscf_states(mf, mf_resp, method: Method, kind: str, n: int, x0: FloatArray
     singlet = kind == "singlet"
     refined = method.excited == "stda-refined"
     full_rpa = method.excited == "tddft"
-    td = mf_resp.TDDFT() if full_rpa else mf_resp.TDA()
+    # induced dipoles answer the transition density too (PySCF: equilibrium_solvation=True; the
+    # default leaves the environment out of the response). Triplets have no density to answer.
+    env_kw = {"equilibrium_solvation": True} if has_induced_dipoles(mf_resp) else {}
+    td = mf_resp.TDDFT(**env_kw) if full_rpa else mf_resp.TDA(**env_kw)
     td.singlet = singlet
     td.conv_tol = method.response_conv_tol
     td.verbose = 0
@@ -591,11 +638,15 @@ class WarmStart:
         :meth:`clusterlab.Cluster.fingerprint_qm` of the QM region it belongs to.
     ground : Calculation
     vacuum : Calculation or None
+    fixed : Calculation or None
+        The fixed-charge reference of a polarizable calculation (the next
+        radius's reference starts from it).
     """
 
     qm_fingerprint: str
     ground: Calculation
     vacuum: Calculation | None = None
+    fixed: Calculation | None = None
 
     def fits(self, cluster: Any) -> bool:
         """True when ``cluster`` has the same QM region (symbols, charge, positions)."""

@@ -2,10 +2,15 @@
 
 Model: the QM region is treated by DFT (or HF) in the electrostatic field of
 fixed environment point charges (electrostatic embedding, PySCF ``qmmm``),
-optionally Gaussian-smeared. Left out: polarisation of the environment by
-the QM region (and by the excitation), exchange-repulsion with the
-environment, and relaxation of the geometry. Excitation energies are
-vertical; IP/EA are vertical ΔSCF energies.
+optionally Gaussian-smeared. With ``Method(environment="polarizable")`` the
+molecules inside the cluster's polarizable radius also carry induced
+dipoles (Thole model, :mod:`.induction`) solved with the QM density in the
+SCF, the ΔSCF ions and the singlet response; the same cluster with fixed
+charges is computed in the same call (``polarization_reference``), so every
+state gets its polarization contribution. Left out: polarisation beyond the
+polarizable radius, exchange-repulsion with the environment, and relaxation
+of the geometry. Excitation energies are vertical; IP/EA are vertical ΔSCF
+energies.
 
 Every PySCF step (molecule, SCF with its documented fallback, response
 solve) goes through :mod:`clusterlab.qm.calc`, the package's one door to
@@ -25,6 +30,7 @@ import numpy as np
 import numpy.typing as npt
 
 from ..cluster import Cluster
+from ..electrostatics.thole import THOLE_EXP_A, atomic_polarizabilities
 from ..errors import ConvergenceError, GeometryError, InputError
 from ..units import AU_DIPOLE_TO_DEBYE, HARTREE_TO_EV
 from ..versions import software_versions
@@ -40,6 +46,7 @@ from .calc import (
     omp_threads,
 )
 from .following import assign_states, transition_overlaps
+from .induction import induced_dipole_options
 from .method import Method
 from .results import NAN, ChargedResult, ExcitationResult, ExcitedState
 
@@ -80,7 +87,44 @@ def check_charge_distances(cluster: Cluster, min_distance_A: float) -> None:
         )
 
 
-def _states_to_records(emb: Calculation, vac: Calculation | None) -> tuple[list[ExcitedState], int]:
+def cluster_embedding(cluster: Cluster, method: Method) -> Embedding:
+    """The :class:`Embedding` of ``cluster`` for ``method``: its charges, and
+    with a polarizable method the van Duijnen-Swart polarizability of every
+    atom marked ``env_polarizable`` (one exclusion group per molecule copy).
+
+    Raises
+    ------
+    InputError
+        A polarizable method on a cluster with point charges but no
+        polarizable layer (carve with ``polarizable_radius=``), missing
+        element symbols or molecule ids of the polarizable atoms, or an
+        element without a polarizability.
+    """
+    pos, q = cluster.env_positions, cluster.env_charges
+    if not method.is_polarizable:
+        return Embedding(pos, q)
+    mask = cluster.env_polarizable
+    if not mask.any():
+        if cluster.n_charges and cluster.polarizable_radius_A == 0:
+            raise InputError("method.environment='polarizable' but the cluster has no polarizable layer: carve it "
+                             "with Film.carve(..., polarizable_radius=R_inner) or set Cluster.env_polarizable.")
+        return Embedding(pos, q)
+    if not cluster.env_symbols:
+        raise InputError("polarizable environment atoms need their elements (Cluster.env_symbols) for their "
+                         "polarizabilities.")
+    idx = np.flatnonzero(mask)
+    mol = cluster.env_molecules
+    if np.any(mol[idx] < 0):
+        raise InputError("polarizable environment atoms need molecule ids (Cluster.env_molecules >= 0): a dipole "
+                         "feels the charges of other molecules only.")
+    alpha = np.zeros(cluster.n_charges)
+    alpha[idx] = atomic_polarizabilities([cluster.env_symbols[i] for i in idx])
+    _, groups = np.unique(np.column_stack([mol, cluster.env_images]), axis=0, return_inverse=True)
+    return Embedding(pos, q, polarizabilities_A3=alpha, groups=np.asarray(groups).reshape(-1))
+
+
+def _states_to_records(emb: Calculation, vac: Calculation | None,
+                       fixed: Calculation | None = None) -> tuple[list[ExcitedState], int]:
     records: list[ExcitedState] = []
     followed = -1
     for kind, prefix in (("singlet", "S"), ("triplet", "T")):
@@ -112,6 +156,11 @@ def _states_to_records(emb: Calculation, vac: Calculation | None) -> tuple[list[
                 rec.followed_vacuum_state = f"{prefix}{j + 1}"
                 rec.follow_overlap = float(value[i])
                 rec.followed_shift_eV = e - float(vrs.energies_Eh[j] * HARTREE_TO_EV)
+            frs = fixed.states.get(kind) if fixed is not None and fixed.converged else None
+            if frs is not None and i < frs.n_states:
+                rec.fixed_charges_eV = float(frs.energies_Eh[i] * HARTREE_TO_EV)
+                rec.polarization_eV = e - rec.fixed_charges_eV
+                rec.converged = rec.converged and bool(frs.converged[i])
             records.append(rec)
     return records, followed
 
@@ -158,7 +207,7 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: bool | Calculation
     t_start = time.perf_counter()
     _validate(cluster, method)
     if embedding is None:
-        embedding = Embedding(cluster.env_positions, cluster.env_charges)
+        embedding = cluster_embedding(cluster, method)
     env_q = embedding.charges_e
     periodic = embedding.periodic
     qm = (cluster.qm_symbols, cluster.qm_positions, method)
@@ -182,6 +231,7 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: bool | Calculation
             timings["vacuum"] = time.perf_counter() - t
             for k, v in vac.timings.items():
                 timings[f"vacuum_{k}"] = v
+        fixed: Calculation | None = None
         if embedding.is_vacuum and vac is not None:
             emb = vac  # no charges: the vacuum calculation is the embedded one
         else:
@@ -189,21 +239,33 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: bool | Calculation
                 guess_dm = vac.dm
             if guess_calc is None and vac is not None:
                 guess_calc = vac
+            if embedding.is_polarizable and method.polarization_reference:
+                ref_dm, ref_calc = _reference_guess(guess, guess_dm, guess_calc)
+                t = time.perf_counter()
+                fixed = calculate(*qm, embedding.fixed(), charge=cluster.qm_charge, guess_dm=ref_dm,
+                                  warm_from=ref_calc, progress=progress, tag="fixed charges")
+                timings["fixed_charges"] = time.perf_counter() - t
+                if fixed.converged:  # the polarizable SCF and Davidson start from the fixed-charge solution
+                    guess_dm, guess_calc = fixed.dm, fixed
             emb = calculate(*qm, embedding, charge=cluster.qm_charge, guess_dm=guess_dm, warm_from=guess_calc,
                             progress=progress, tag="embedded")
+        if method.is_polarizable and method.polarization_reference and not embedding.is_polarizable:
+            fixed = emb  # no dipole inside the inner radius: the calculation is its own reference
         timings.update(emb.timings)
         charged = None
         if method.charged_states:
             t = time.perf_counter()
-            charged = _charged_result(cluster, method, emb, vac, embedding)
+            charged = _charged_result(cluster, method, emb, vac, embedding, fixed)
             timings["charged"] = time.perf_counter() - t
     if emb.converged:
         t = time.perf_counter()
-        states, followed = _states_to_records(emb, vac)
+        states, followed = _states_to_records(emb, vac, fixed)
         timings["following"] = time.perf_counter() - t
     else:
         states, followed = _failed_states(method), -1
-    meta = _meta(cluster, method, timings, t_start, periodic, len(env_q))
+    meta = _meta(cluster, method, timings, t_start, periodic, len(env_q), embedding)
+    if fixed is not None and not fixed.converged:
+        warn.append("the fixed-charge reference SCF did not converge: polarization contributions are nan")
     res = ExcitationResult(
         states=states, scf_energy_Eh=emb.energy_Eh, scf_converged=emb.converged, scf_route=emb.route,
         vacuum_scf_energy_Eh=vac.energy_Eh if vac is not None else NAN,
@@ -213,7 +275,9 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: bool | Calculation
         net_env_charge_e=net, neutral_embedding=abs(net) <= NEUTRAL_TOL_E, followed_index=followed,
         charged=charged, radius_A=float(cluster.radius_A if radius_A is None else radius_A),
         periodic=periodic is not None, warnings=warn, meta=meta, dm=emb.dm,
-        warm_start=WarmStart(qm_fingerprint=cluster.fingerprint_qm(), ground=emb, vacuum=vac))
+        environment=method.environment, polarizable_radius_A=float(cluster.polarizable_radius_A),
+        n_polarizable=embedding.n_polarizable,
+        warm_start=WarmStart(qm_fingerprint=cluster.fingerprint_qm(), ground=emb, vacuum=vac, fixed=fixed))
     _check_failure(res, raise_on_failure)
     return res
 
@@ -236,7 +300,17 @@ def _check_failure(res: ExcitationResult, raise_on_failure: bool) -> None:
     warnings.warn(msg, EmbeddingWarning, stacklevel=3)
 
 
-def _meta(cluster: Cluster, method: Method, timings, t_start, periodic, n_charges: int) -> dict[str, Any]:
+def _reference_guess(guess, guess_dm, guess_calc) -> tuple[Any, Calculation | None]:
+    """Starting point of the fixed-charge reference: the previous result's
+    own fixed-charge calculation when there is one (a radius series)."""
+    ws = guess.warm_start if isinstance(guess, ExcitationResult) else guess if isinstance(guess, WarmStart) else None
+    if ws is not None and ws.fixed is not None and ws.fixed.converged:
+        return ws.fixed.dm, ws.fixed
+    return guess_dm, guess_calc
+
+
+def _meta(cluster: Cluster, method: Method, timings, t_start, periodic, n_charges: int,
+          embedding: Embedding | None = None) -> dict[str, Any]:
     prov = cluster.provenance()
     prov["n_charges"] = int(n_charges)
     timings = dict(timings)
@@ -245,10 +319,26 @@ def _meta(cluster: Cluster, method: Method, timings, t_start, periodic, n_charge
             "provenance": prov, "timings_s": {k: float(v) for k, v in timings.items()},
             "charge_model": ("gaussian" if method.charge_smearing_A > 0 else "point"),
             "embedding": "periodic-ewald" if periodic is not None else "cluster"}
+    if embedding is not None and embedding.is_polarizable:
+        meta["polarizable"] = polarizable_meta(embedding, method)
     if periodic is not None:
         meta["periodic"] = {k: (np.asarray(v).tolist() if isinstance(v, np.ndarray) else v)
                             for k, v in periodic.items()}
     return meta
+
+
+def polarizable_meta(embedding: Embedding, method: Method) -> dict[str, Any]:
+    """What a result records about its induced dipoles."""
+    return {"n_dipoles": embedding.n_polarizable,
+            "polarizabilities": "van Duijnen & Swart 1998 exponential Thole set (atomic, isotropic)",
+            "damping": f"Thole exponential, a = {THOLE_EXP_A} (dipole-dipole, intra- and intermolecular); "
+                       "permanent and QM fields undamped",
+            "permanent_field": "charges of other molecule copies only",
+            "response": ("singlets: induced dipoles answer the transition density; triplets: none needed"
+                         if method.excited in ("tda", "tddft", "stda-refined") else
+                         "sTDA: through the orbitals only"),
+            "solver": {k: v for k, v in induced_dipole_options(embedding.n_polarizable).items()},
+            "reference": bool(method.polarization_reference)}
 
 
 def _ion_energies(cluster: Cluster, method: Method, neutral: Calculation, embedding: Embedding
@@ -260,15 +350,22 @@ def _ion_energies(cluster: Cluster, method: Method, neutral: Calculation, embedd
     return energies, flags
 
 
-def _charged_result(cluster, method, emb: Calculation, vac: Calculation | None, embedding: Embedding
-                    ) -> ChargedResult:
+def _charged_result(cluster, method, emb: Calculation, vac: Calculation | None, embedding: Embedding,
+                    fixed: Calculation | None = None) -> ChargedResult:
     e, flags = _ion_energies(cluster, method, emb, embedding)
     ip = (e["cation"] - e["neutral"]) * HARTREE_TO_EV
     ea = (e["neutral"] - e["anion"]) * HARTREE_TO_EV
     nocc = int((emb.mo_occ > 0).sum())
     res = ChargedResult(neutral_Eh=e["neutral"], cation_Eh=e["cation"], anion_Eh=e["anion"], IP_eV=ip, EA_eV=ea,
                         koopmans_IP_eV=float(-emb.mo_energy[nocc - 1] * HARTREE_TO_EV) if emb.converged else NAN,
-                        converged_flags=dict(flags))
+                        converged_flags=dict(flags), environment=method.environment)
+    if fixed is not None:
+        ef, ff = (e, flags) if fixed is emb else _ion_energies(cluster, method, fixed, embedding.fixed())
+        res.IP_fixed_eV = (ef["cation"] - ef["neutral"]) * HARTREE_TO_EV
+        res.EA_fixed_eV = (ef["neutral"] - ef["anion"]) * HARTREE_TO_EV
+        res.IP_polarization_eV = ip - res.IP_fixed_eV
+        res.EA_polarization_eV = ea - res.EA_fixed_eV
+        res.converged_flags.update({f"fixed_{k}": v for k, v in ff.items()})
     if vac is not None:
         if vac is emb:
             ev, fv = e, flags
@@ -281,7 +378,7 @@ def _charged_result(cluster, method, emb: Calculation, vac: Calculation | None, 
         res.EA_shift_eV = ea - res.EA_vacuum_eV
         res.converged_flags.update({f"vacuum_{k}": v for k, v in fv.items()})
     res.meta = {"provenance": cluster.provenance(), "radius_A": float(cluster.radius_A),
-                "method_key": method.key()}
+                "polarizable_radius_A": float(cluster.polarizable_radius_A), "method_key": method.key()}
     return res
 
 
@@ -351,12 +448,18 @@ def charged_states(cluster: Cluster, method: Method, *, vacuum: bool = True,
     t0 = time.perf_counter()
     with omp_threads(method.threads):
         qm = (cluster.qm_symbols, cluster.qm_positions, method)
-        embedding = Embedding(cluster.env_positions, cluster.env_charges)
-        emb = calculate(*qm, embedding, charge=cluster.qm_charge, with_states=False)
+        embedding = cluster_embedding(cluster, method)
+        fixed = None
+        if embedding.is_polarizable and method.polarization_reference:
+            fixed = calculate(*qm, embedding.fixed(), charge=cluster.qm_charge, with_states=False)
+        emb = calculate(*qm, embedding, charge=cluster.qm_charge, with_states=False,
+                        guess_dm=fixed.dm if fixed is not None and fixed.converged else None)
+        if method.is_polarizable and method.polarization_reference and fixed is None:
+            fixed = emb
         vac = None
         if vacuum:
             vac = emb if embedding.is_vacuum else calculate(*qm, VACUUM, charge=cluster.qm_charge, with_states=False)
-        res = _charged_result(cluster, method, emb, vac, embedding)
+        res = _charged_result(cluster, method, emb, vac, embedding, fixed)
     res.meta.update({"method": method.to_dict(), "versions": software_versions(),
                      "timings_s": {"total": time.perf_counter() - t0}})
     if not res.converged:

@@ -21,6 +21,16 @@ from ..errors import InputError
 #: Valid values of :attr:`Method.excited`.
 EXCITED_MODELS = ("tda", "tddft", "stda", "stda-refined")
 
+#: Valid values of :attr:`Method.environment`: fixed point charges, or the
+#: charges plus induced dipoles on the polarizable molecules of the cluster
+#: (those inside its polarizable radius; see :mod:`clusterlab.qm.induction`).
+ENVIRONMENTS = ("charges", "polarizable")
+
+#: Fields added after method keys were first stored, with their defaults: they
+#: enter :meth:`Method.key` only when they differ from these, so that the keys
+#: of every method written before them stay the same.
+_KEY_OMITS_DEFAULTS = {"environment": "charges", "polarization_reference": True}
+
 #: Default Gaussian width (Å) of the environment charges. A Gaussian charge
 #: exp(-r^2/w^2) differs from a point charge in its potential by
 #: q erfc(r/w)/r; for w = 1.0 Å that is below 0.2 % at 2.2 Å (the shortest
@@ -132,6 +142,19 @@ class Method:
         OpenMP threads for PySCF (None: leave PySCF's setting).
     response_conv_tol : float
         Residual threshold of the Davidson solver.
+    environment : {"charges", "polarizable"}
+        What the environment is: fixed point charges (default), or the
+        charges plus isotropic atomic polarizabilities (van Duijnen-Swart
+        Thole set) on the molecules inside the cluster's polarizable radius,
+        their induced dipoles solved self-consistently with the QM density
+        in the SCF, in the ΔSCF ions and, for singlets, in the response to
+        the transition density (TDA/TDDFT; the sTDA models see them through
+        the orbitals only). Charges beyond that radius stay fixed.
+    polarization_reference : bool
+        With ``environment="polarizable"``, also compute the same cluster
+        with fixed charges in the same call, giving the polarization
+        contribution (polarizable minus fixed) of every state; its density
+        and response vectors start the polarizable calculation.
 
     Examples
     --------
@@ -157,6 +180,8 @@ class Method:
     min_charge_distance_A: float = 0.8
     threads: int | None = None
     response_conv_tol: float = 1e-5
+    environment: str = "charges"
+    polarization_reference: bool = True
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
@@ -172,6 +197,11 @@ class Method:
                 f"excited={self.excited!r} is not a response model. Use one of {', '.join(map(repr, EXCITED_MODELS))}."
             )
         set_(self, "excited", excited)
+        env = str(self.environment).strip().lower()
+        if env not in ENVIRONMENTS:
+            raise InputError(f"environment={self.environment!r} is not an environment model. Use one of "
+                             f"{', '.join(map(repr, ENVIRONMENTS))}.")
+        set_(self, "environment", env)
         for name in ("n_singlets", "n_triplets"):
             v = getattr(self, name)
             what = "a non-negative integer number of states"
@@ -187,7 +217,7 @@ class Method:
             if not 0 <= _as_int(name, v, what) <= 9:
                 raise InputError(f"{name}={v!r} must be {what}.")
             set_(self, name, int(v))
-        for name in ("density_fit", "charged_states"):
+        for name in ("density_fit", "charged_states", "polarization_reference"):
             v = getattr(self, name)
             if not isinstance(v, bool):
                 raise InputError(f"{name}={v!r} must be True or False.")
@@ -259,8 +289,18 @@ class Method:
         return dataclasses.replace(self, **changes)
 
     def canonical_json(self) -> str:
-        """Canonical JSON of the fields (sorted keys, floats by repr)."""
-        return json.dumps(self.to_dict(), sort_keys=True, separators=(",", ":"))
+        """Canonical JSON of the fields (sorted keys, floats by repr); the
+        later fields of ``_KEY_OMITS_DEFAULTS`` only when not at their default."""
+        d = self.to_dict()
+        for name, default in _KEY_OMITS_DEFAULTS.items():
+            if d[name] == default:
+                del d[name]
+        return json.dumps(d, sort_keys=True, separators=(",", ":"))
+
+    @property
+    def is_polarizable(self) -> bool:
+        """The environment carries induced dipoles."""
+        return self.environment == "polarizable"
 
     def key(self) -> str:
         """SHA-256 hex digest of :meth:`canonical_json`: stable across
@@ -276,4 +316,5 @@ class Method:
         grid = "" if self.is_hf else f", grid {self.grid_level}/{self.response_grid_level or self.grid_level}"
         return (f"{self.xc.upper()}/{self.basis}{' +DF' if self.density_fit else ''}{grid}, "
                 f"{self.excited.upper()} {self.n_singlets}S+{self.n_triplets}T"
-                f"{', ΔSCF IP/EA' if self.charged_states else ''}, charge width {self.charge_smearing_A:g} Å")
+                f"{', ΔSCF IP/EA' if self.charged_states else ''}, charge width {self.charge_smearing_A:g} Å"
+                f"{', polarizable environment' if self.is_polarizable else ''}")

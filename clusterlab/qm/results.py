@@ -48,6 +48,10 @@ class ExcitedState:
     follow_overlap : float
     followed_shift_eV : float
         ``energy_eV`` minus the energy of the matched vacuum state.
+    fixed_charges_eV, polarization_eV : float
+        With a polarizable environment: the same-index state of the same
+        cluster with fixed charges, and ``energy_eV - fixed_charges_eV``
+        (the polarization contribution); nan otherwise.
     """
 
     label: str
@@ -64,6 +68,12 @@ class ExcitedState:
     followed_vacuum_state: str = ""
     follow_overlap: float = NAN
     followed_shift_eV: float = NAN
+    fixed_charges_eV: float = NAN
+    polarization_eV: float = NAN
+
+
+#: Extra columns of the tables of a polarizable result.
+POLARIZATION_COLUMNS = ("fixed_charges_eV", "polarization_eV")
 
 
 def _prov_columns(meta: dict[str, Any]) -> dict[str, Any]:
@@ -80,7 +90,12 @@ class ChargedResult:
     IP = E(cation) - E(neutral), EA = E(neutral) - E(anion), both vertical
     (same geometry) and in eV; ``*_vacuum_eV`` are the same for the QM region
     alone and ``*_shift_eV`` the environment shifts. Each energy travels
-    with its own converged flag; an unconverged SCF gives nan.
+    with its own converged flag; an unconverged SCF gives nan. With a
+    polarizable environment (``environment="polarizable"``), ``*_fixed_eV``
+    are the same cluster with fixed charges and ``*_polarization_eV`` the
+    polarization contribution: ``IP_polarization_eV = IP - IP_fixed`` is
+    -P+ and ``EA_polarization_eV = EA - EA_fixed`` is +P- in the solid-state
+    convention (IP_solid = IP_gas - P+, EA_solid = EA_gas + P-).
     """
 
     neutral_Eh: float
@@ -98,15 +113,25 @@ class ChargedResult:
     koopmans_IP_eV: float = NAN
     converged_flags: dict[str, bool] = field(default_factory=dict)
     meta: dict[str, Any] = field(default_factory=dict)
+    environment: str = "charges"
+    IP_fixed_eV: float = NAN
+    EA_fixed_eV: float = NAN
+    IP_polarization_eV: float = NAN
+    EA_polarization_eV: float = NAN
 
     @property
     def converged(self) -> bool:
         return bool(self.converged_flags) and all(self.converged_flags.values())
 
     def summary(self) -> dict[str, float | bool]:
-        return {"IP_eV": self.IP_eV, "IP_vacuum_eV": self.IP_vacuum_eV, "IP_shift_eV": self.IP_shift_eV,
-                "EA_eV": self.EA_eV, "EA_vacuum_eV": self.EA_vacuum_eV, "EA_shift_eV": self.EA_shift_eV,
-                "converged": self.converged}
+        out: dict[str, float | bool] = {
+            "IP_eV": self.IP_eV, "IP_vacuum_eV": self.IP_vacuum_eV, "IP_shift_eV": self.IP_shift_eV,
+            "EA_eV": self.EA_eV, "EA_vacuum_eV": self.EA_vacuum_eV, "EA_shift_eV": self.EA_shift_eV}
+        if self.environment == "polarizable":
+            out.update({"IP_fixed_eV": self.IP_fixed_eV, "IP_polarization_eV": self.IP_polarization_eV,
+                        "EA_fixed_eV": self.EA_fixed_eV, "EA_polarization_eV": self.EA_polarization_eV})
+        out["converged"] = self.converged
+        return out
 
     def to_frame(self) -> pd.DataFrame:
         """Two rows (state "IP" and "EA") with the study-table columns."""
@@ -114,10 +139,14 @@ class ChargedResult:
         rows = []
         for name in ("IP", "EA"):
             keys = ("neutral", "cation") if name == "IP" else ("neutral", "anion")
-            rows.append({**base, "state": name, "energy_eV": getattr(self, f"{name}_eV"),
-                         "vacuum_eV": getattr(self, f"{name}_vacuum_eV"),
-                         "shift_eV": getattr(self, f"{name}_shift_eV"), "osc_strength": 0.0,
-                         "converged": all(self.converged_flags.get(k, False) for k in keys)})
+            row = {**base, "state": name, "energy_eV": getattr(self, f"{name}_eV"),
+                   "vacuum_eV": getattr(self, f"{name}_vacuum_eV"),
+                   "shift_eV": getattr(self, f"{name}_shift_eV"), "osc_strength": 0.0,
+                   "converged": all(self.converged_flags.get(k, False) for k in keys)}
+            if self.environment == "polarizable":
+                row.update(fixed_charges_eV=getattr(self, f"{name}_fixed_eV"),
+                           polarization_eV=getattr(self, f"{name}_polarization_eV"))
+            rows.append(row)
         return pd.DataFrame(rows)
 
     def to_dict(self) -> dict[str, Any]:
@@ -166,7 +195,14 @@ class ExcitationResult:
     warnings : list of str
     meta : dict
         ``method`` (dict), ``method_key``, ``versions``, ``provenance``,
-        ``timings_s`` (per step), ``model`` details.
+        ``timings_s`` (per step), ``model`` details (``polarizable``: the
+        induced-dipole model and solver settings).
+    environment : {"charges", "polarizable"}
+        The environment model of the method.
+    polarizable_radius_A : float
+        Inner (polarizable) radius of the cluster (0: none).
+    n_polarizable : int
+        Environment atoms that carried an induced dipole.
 
     Notes
     -----
@@ -192,6 +228,9 @@ class ExcitationResult:
     periodic: bool = False
     warnings: list[str] = field(default_factory=list)
     meta: dict[str, Any] = field(default_factory=dict)
+    environment: str = "charges"
+    polarizable_radius_A: float = 0.0
+    n_polarizable: int = 0
     dm: Any = field(default=None, repr=False, compare=False)
     #: :class:`~clusterlab.qm.calc.WarmStart` built by the engine (in memory only)
     warm_start: Any = field(default=None, repr=False, compare=False)
@@ -262,6 +301,10 @@ class ExcitationResult:
             "scf_energy_Eh": self.scf_energy_Eh,
             "converged": self.converged,
         }
+        if self.environment == "polarizable":
+            out.update({"polarizable_radius_A": self.polarizable_radius_A, "n_polarizable": self.n_polarizable,
+                        "S1_fixed_eV": g(s1, "fixed_charges_eV"), "S1_polarization_eV": g(s1, "polarization_eV"),
+                        "T1_fixed_eV": g(t1, "fixed_charges_eV"), "T1_polarization_eV": g(t1, "polarization_eV")})
         if self.charged is not None:
             ch = self.charged.summary()
             ch.pop("converged")
@@ -274,6 +317,8 @@ class ExcitationResult:
         n_charges``."""
         base = _prov_columns(self.meta)
         base["radius_A"] = self.radius_A
+        if self.environment == "polarizable":
+            base["polarizable_radius_A"] = self.polarizable_radius_A
         rows = []
         for s in self.states:
             d = dataclasses.asdict(s)
@@ -283,10 +328,15 @@ class ExcitationResult:
         cols = ["frame", "molecule", "radius_A", "n_charges", "state", "kind", "energy_eV", "vacuum_eV",
                 "shift_eV", "osc_strength", "converged", "followed_vacuum_state", "follow_overlap",
                 "followed_shift_eV", "ct_distance_A", "ct_lambda", "pairs", "mu_x_D", "mu_y_D", "mu_z_D"]
+        if self.environment == "polarizable":
+            cols += list(POLARIZATION_COLUMNS)
+            cols.insert(cols.index("radius_A") + 1, "polarizable_radius_A")
         frame = pd.DataFrame(rows, columns=cols)
         if self.charged is not None:
             ch = self.charged.to_frame()
             ch["radius_A"] = self.radius_A
+            if self.environment == "polarizable":
+                ch["polarizable_radius_A"] = self.polarizable_radius_A
             ch["kind"] = "charged"
             frame = pd.concat([frame, ch.reindex(columns=cols)], ignore_index=True) if len(frame) else ch.reindex(columns=cols)
         return frame

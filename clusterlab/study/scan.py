@@ -6,9 +6,13 @@ common runner and store, and judges the converged radius with
 :func:`clusterlab.stats.converged_radius`.
 
 Model notes: each radius is a point-charge (electrostatic) embedding of a
-fixed ground-state charge distribution; the environment does not polarise
-in response to the QM region and there is no exchange repulsion or
-dispersion, so the shifts are electrostatic model estimates.
+fixed ground-state charge distribution; with a fixed-charge method the
+environment does not polarise in response to the QM region. With
+``Method(environment="polarizable")`` the clusters have two layers
+(polarizable molecules within the inner radius, fixed charges beyond): the
+scan can grow the outer radius at a given inner radius and/or the inner
+radius at the largest outer radius, and the verdict covers both. There is no
+exchange repulsion or dispersion, so the shifts are model estimates.
 """
 
 from __future__ import annotations
@@ -33,6 +37,9 @@ from .tasks import check_film_method, cluster_task, run_cluster_tasks
 
 #: the columns a scan tracks for convergence, when present
 TRACKED = ("S1_shift_eV", "T1_shift_eV", "dEST_eV", "S1_followed_shift_eV", "IP_shift_eV", "EA_shift_eV")
+
+#: the polarization contributions a polarizable scan also tracks
+TRACKED_POLARIZATION = ("S1_polarization_eV", "T1_polarization_eV", "IP_polarization_eV", "EA_polarization_eV")
 
 SCAN_COLUMNS = ("radius_A", "n_env_molecules", "n_charges", "net_env_charge", "S1_eV", "S1_shift_eV",
                 "S1_osc", "S1_followed_shift_eV", "S1_follow_overlap", "T1_eV", "T1_shift_eV", "dEST_eV",
@@ -80,6 +87,12 @@ class ScanResult:
     periodic : dict or None
         The periodic-limit values of the tracked quantities.
     report : RunReport
+    polarizable_table : pandas.DataFrame or None
+        The inner-radius series of a polarizable scan (outer radius fixed at
+        the largest of ``radii``): one row per inner radius, ascending, a
+        first row at inner radius 0 (fixed charges, polarization 0).
+    polarizable_verdict : ConvergenceVerdict or None
+        Convergence of the polarization contributions with the inner radius.
     """
 
     table: pd.DataFrame
@@ -92,9 +105,26 @@ class ScanResult:
     periodic: dict[str, float] | None = None
     report: RunReport | None = None
     notes: list[str] = field(default_factory=list)
+    polarizable_table: pd.DataFrame | None = None
+    polarizable_verdict: ConvergenceVerdict | None = None
 
     def to_frame(self) -> pd.DataFrame:
         return self.table.copy()
+
+    @property
+    def converged(self) -> bool:
+        """Both verdicts (outer radius and, when scanned, inner radius) converged."""
+        ok = self.verdict.converged
+        if self.polarizable_verdict is not None:
+            ok = ok and self.polarizable_verdict.converged
+        return bool(ok)
+
+    @property
+    def message(self) -> str:
+        """The verdict in words, both radii when both were scanned."""
+        if self.polarizable_verdict is None:
+            return self.verdict.message
+        return f"outer radius: {self.verdict.message}; inner (polarizable) radius: {self.polarizable_verdict.message}"
 
     def plot(self, **kw: Any):
         """Shift vs radius with the tolerance band (see :func:`plot_convergence`)."""
@@ -104,13 +134,30 @@ class ScanResult:
                                 states=kw.pop("states", None), tol_eV=self.tol_eV, periodic=self.periodic, **kw)
 
     def __repr__(self) -> str:
-        return f"<ScanResult molecule={self.molecule} frame={self.frame}: {self.verdict.message}>"
+        return f"<ScanResult molecule={self.molecule} frame={self.frame}: {self.message}>"
 
 
 def scan_tasks(film: Film, molecule: int, radii: Sequence[float], method: Method, *, frame: int = 0,
-               rule: str = "atom", qm_shell: float = 0.0, periodic_limit: bool = False) -> list:
-    """The tasks of a scan, smallest radius first (so warm starts chain)."""
-    tasks = [cluster_task(film, molecule, r, method, frame=frame, rule=rule, qm_shell_A=qm_shell) for r in radii]
+               rule: str = "atom", qm_shell: float = 0.0, periodic_limit: bool = False,
+               polarizable_radius: float | None = None,
+               polarizable_radii: Sequence[float] | None = None) -> list:
+    """The tasks of a scan, smallest radius first (so warm starts chain): the
+    outer radii (each with inner radius ``min(polarizable_radius, R)``), then
+    the inner radii at the largest outer radius (a task both series share is
+    listed once)."""
+    def inner(r: float) -> float | None:
+        return None if polarizable_radius is None else min(float(polarizable_radius), r)
+
+    tasks = [cluster_task(film, molecule, r, method, frame=frame, rule=rule, qm_shell_A=qm_shell,
+                          polarizable_radius_A=inner(r)) for r in radii]
+    if polarizable_radii:
+        seen = {t.key for t in tasks}
+        for rp in polarizable_radii:
+            t = cluster_task(film, molecule, max(radii), method, frame=frame, rule=rule, qm_shell_A=qm_shell,
+                             polarizable_radius_A=rp)
+            if t.key not in seen:
+                tasks.append(t)
+                seen.add(t.key)
     if periodic_limit:
         tasks.append(cluster_task(film, molecule, math.inf, method, frame=frame, rule=rule,
                                   qm_shell_A=qm_shell, kind="periodic"))
@@ -127,6 +174,8 @@ def radius_scan(
     rule: str = "atom",
     qm_shell: float = 0.0,
     periodic_limit: bool = False,
+    polarizable_radius: float | None = None,
+    polarizable_radii: Sequence[float] | None = None,
     tol_eV: float = 0.010,
     store: ResultStore | str | None = None,
     runner: str = "serial",
@@ -149,6 +198,14 @@ def radius_scan(
     periodic_limit : bool
         Also compute the Ewald-embedded limit (orthorhombic boxes); the
         verdict is then judged against it.
+    polarizable_radius : float, Å, optional
+        With a polarizable method: the inner radius of the outer-radius
+        series (at each radius ``min(polarizable_radius, R)``; default
+        :data:`~clusterlab.study.tasks.DEFAULT_POLARIZABLE_RADIUS_A`).
+    polarizable_radii : sequence of float, Å, optional
+        With a polarizable method: also scan the inner radius at the largest
+        outer radius (``ScanResult.polarizable_table`` and
+        ``polarizable_verdict``, judged on the polarization contributions).
     tol_eV : float
         Convergence tolerance (default 10 meV).
     store : ResultStore, path or None
@@ -169,15 +226,29 @@ def radius_scan(
         raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__}.")
     radii = _check_radii(radii)
     check_film_method(film, method)
+    if polarizable_radii is not None:
+        if not method.is_polarizable:
+            raise InputError("polarizable_radii needs Method(environment='polarizable'); this method has fixed "
+                             "charges.")
+        polarizable_radii = _check_radii(polarizable_radii)
     st = open_store(store)
     tasks = scan_tasks(film, molecule, radii, method, frame=frame, rule=rule, qm_shell=qm_shell,
-                       periodic_limit=periodic_limit)
+                       periodic_limit=periodic_limit, polarizable_radius=polarizable_radius,
+                       polarizable_radii=polarizable_radii)
+    n_outer = len(radii)
 
     report, rows, failures = run_cluster_tasks(tasks, st, desc=f"radius scan m{molecule}", on_result=on_result,
                                                runner=runner, progress=progress, cancel=cancel, **runner_kw)
     if not rows:
         raise InputError("The scan produced no results" + (f": {failures}" if failures else
                          " (cancelled before the first radius finished)."))
+    inner_table, inner_verdict = None, None
+    if polarizable_radii:
+        inner_table, inner_verdict = _inner_series(st, tasks, radii, polarizable_radii, tol_eV)
+        outer = tasks[:n_outer] + (tasks[-1:] if periodic_limit else [])
+        rows = [dict(rec.summary) for rec in (st.get(t.key) for t in outer) if rec is not None and rec.done]
+        if not rows:
+            raise InputError("No outer-radius result finished: " + "; ".join(failures))
     df = pd.DataFrame(rows)
     vac = _vacuum_row(rows[0])
     table = pd.concat([pd.DataFrame([vac]), df], ignore_index=True)
@@ -186,6 +257,8 @@ def radius_scan(
     cols = [c for c in SCAN_COLUMNS if c in table.columns] + [c for c in table.columns if c not in SCAN_COLUMNS]
     table = table[cols]
     tracked = [c for c in TRACKED if c in table.columns and table[c].notna().any()]
+    embedded = table[table.radius_A > 0]
+    tracked += [c for c in TRACKED_POLARIZATION if c in table.columns and embedded[c].notna().sum() >= 2]
     finite = table[np.isfinite(table.radius_A) & (table.radius_A > 0)]
     periodic = None
     per_rows = table[np.isinf(table.radius_A)]
@@ -199,7 +272,37 @@ def radius_scan(
     if not finite.converged.all():
         notes.append("some radii did not converge (converged=False rows); the verdict uses their NaN values")
     return ScanResult(table=table, verdict=verdict, tracked=tracked, molecule=int(molecule), frame=int(frame),
-                      method=method, tol_eV=tol_eV, periodic=periodic, report=report, notes=notes)
+                      method=method, tol_eV=tol_eV, periodic=periodic, report=report, notes=notes,
+                      polarizable_table=inner_table, polarizable_verdict=inner_verdict)
+
+
+def _inner_series(st: ResultStore, tasks: list, radii: list[float], polarizable_radii: list[float],
+                  tol_eV: float) -> tuple[pd.DataFrame | None, ConvergenceVerdict | None]:
+    """Table and verdict of the inner radii at the largest outer radius."""
+    r_out = max(radii)
+    rows = []
+    for t in tasks:
+        rec = st.get(t.key)
+        if t.kind != "periodic" and float(t.payload["radius_A"]) == r_out and rec is not None and rec.done:
+            rows.append(dict(rec.summary))
+    rows = [r for r in rows if r.get("polarizable_radius_A") in polarizable_radii]
+    if not rows:
+        return None, None
+    first = rows[0]
+    zero = {k: first.get(k) for k in ("frame", "molecule", "radius_A", "rule", "method_key")}
+    zero.update({"polarizable_radius_A": 0.0, "n_polarizable": 0, "kind": "fixed charges", "converged": True})
+    for q in ("S1", "T1", "IP", "EA"):
+        if np.isfinite(first.get(f"{q}_fixed_eV", np.nan)):
+            zero[f"{q}_eV"] = first[f"{q}_fixed_eV"]
+            zero[f"{q}_polarization_eV"] = 0.0
+    table = pd.concat([pd.DataFrame([zero]), pd.DataFrame(rows)], ignore_index=True)
+    table = table.sort_values("polarizable_radius_A", kind="stable").reset_index(drop=True)
+    pos = table[table.polarizable_radius_A > 0]
+    tracked = [c for c in TRACKED_POLARIZATION if c in table.columns and pos[c].notna().sum() >= 2]
+    if not tracked or len(pos) == 0:
+        return table, None
+    verdict = converged_radius(pos.polarizable_radius_A.to_numpy(), pos[tracked], tol=tol_eV)
+    return table, verdict
 
 
 def _vacuum_row(row: dict) -> dict:

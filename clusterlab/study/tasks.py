@@ -21,7 +21,7 @@ import numpy as np
 
 from ..versions import __version__
 from ..errors import InputError
-from ..film import Film, film_from_spec, remember_film
+from ..film import Film, check_polarizable_radius, film_from_spec, remember_film
 from ..qm.method import Method
 from ..runner import RunReport, Task, run_tasks
 from ..store import ResultStore, task_key
@@ -46,18 +46,25 @@ def cluster_task(
     rule: str = "atom",
     qm_shell_A: float = 0.0,
     kind: str = "excitations",
+    polarizable_radius_A: float | None = None,
 ) -> Task:
     """Describe one cluster calculation as a :class:`~clusterlab.runner.Task`.
 
     The key hashes the film content, frame, molecule, radius, rule, QM shell,
-    method and clusterlab version, so a re-run finds results it already has.
-    ``kind="periodic"`` is the Ewald-embedded limit (radius ∞).
+    method and clusterlab version (and the polarizable radius, when there is
+    one), so a re-run finds results it already has. ``kind="periodic"`` is
+    the Ewald-embedded limit (radius ∞).
+
+    ``polarizable_radius_A`` is the inner radius of a two-layer environment
+    (only with ``method.environment == "polarizable"``); None there means
+    ``min(radius_A, DEFAULT_POLARIZABLE_RADIUS_A)``.
     """
     if kind not in KINDS:
         raise InputError(f"kind={kind!r} is not valid; use one of {KINDS}.")
     molecule = film.check_molecule(molecule)
     frame = film.check_frame(frame)
     radius = math.inf if kind == "periodic" else float(radius_A)
+    pol_r = polarizable_radius(radius, polarizable_radius_A, method, kind)
     remember_film(film)
     resname = str(film.molecule_resnames[molecule])
     payload = {
@@ -65,9 +72,12 @@ def cluster_task(
         "radius_A": "inf" if math.isinf(radius) else radius, "rule": rule,
         "qm_shell_A": float(qm_shell_A), "method": method.to_dict(), "kind": kind, "resname": resname,
     }
+    extra = {}
+    if pol_r is not None:
+        payload["polarizable_radius_A"] = extra["polarizable_radius_A"] = pol_r
     key = task_key(film_id=film.film_id, frame=frame, molecule=molecule,
                    radius_A=payload["radius_A"], rule=rule, qm_shell_A=float(qm_shell_A),
-                   method_key=method.key(), kind=kind, version=__version__)
+                   method_key=method.key(), kind=kind, version=__version__, **extra)
     return Task(key=key, kind=kind, payload=payload)
 
 
@@ -86,6 +96,41 @@ def check_film_method(film: Film, method: Method) -> None:
     if not isinstance(method, Method):
         raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__} ({method!r}).")
     check_method(method, sorted({str(s) for s in film.symbols}))
+
+
+#: Inner (polarizable) radius, Å, of a polarizable method when none is given.
+#: Measured on demo molecule 0 (bench/bench_polarizable.py, B3LYP/6-31G, outer
+#: radius 10 Å; bench/results/bench_polarizable.txt): from 6 to 8 Å the
+#: polarization contributions to S1, T1 and IP changed by 4, 0 and 5 meV
+#: (-0.089, -0.006, -0.718 eV at 8 Å, 672 dipoles), the polarizable part cost
+#: 1.7x more than at 6 Å. EA had not converged (+0.53 -> +0.65 eV: the 6-31G
+#: anion is unbound and its diffuse electron follows the dipoles); scan the
+#: inner radius (radius_scan(..., polarizable_radii=)) before trusting EA.
+DEFAULT_POLARIZABLE_RADIUS_A = 8.0
+
+
+def polarizable_radius(radius_A: float, polarizable_radius_A: float | None, method: Method,
+                       kind: str = "excitations") -> float | None:
+    """The inner radius a task carves with (checked once, here), or None for
+    a fixed-charge method.
+
+    Raises
+    ------
+    InputError
+        An inner radius with a fixed-charge method or the periodic limit;
+        :class:`~clusterlab.errors.CarvingError` (an InputError) for one
+        that is not a number or not between 0 and ``radius_A``.
+    """
+    if not method.is_polarizable:
+        if polarizable_radius_A is not None:
+            raise InputError(f"polarizable_radius_A={polarizable_radius_A!r} needs "
+                             "Method(environment='polarizable'); this method has fixed charges.")
+        return None
+    if kind == "periodic":
+        raise InputError("the periodic (Ewald) limit takes fixed charges only; use a fixed-charge method for it.")
+    if polarizable_radius_A is None:
+        return float(min(radius_A, DEFAULT_POLARIZABLE_RADIUS_A))
+    return check_polarizable_radius(polarizable_radius_A, radius_A)
 
 
 def run_cluster_tasks(tasks: list[Task], store: ResultStore, *, desc: str, on_result: Any = None,
@@ -137,7 +182,8 @@ def run_cluster_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
         res = periodic_excitations(cluster, method, vacuum=True, guess=prev)
     else:
         cluster = film.carve(mol, float(payload["radius_A"]), frame=frame, rule=payload["rule"],
-                             qm_shell=float(payload["qm_shell_A"]))
+                             qm_shell=float(payload["qm_shell_A"]),
+                             polarizable_radius=payload.get("polarizable_radius_A"))
         ws = prev.warm_start if prev is not None else None
         if ws is not None and ws.fits(cluster) and prev.scf_converged and ws.vacuum is not None:
             res = excitations(cluster, method, vacuum=prev, guess=prev)
@@ -159,5 +205,7 @@ def run_cluster_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
         "method_key": method.key(), "kind": kind, "wall_s": float(res.meta.get("timings_s", {}).get("total", np.nan)),
         "pid": os.getpid(),
     }
+    if method.is_polarizable:
+        summary["environment"] = method.environment
     summary.update(res.summary())
     return res.to_json(), summary
