@@ -105,7 +105,7 @@ def test_fits_take_a_method_and_no_qm_settings_of_their_own():
     """The Method is the one source of QM settings: an "xc/basis" string is named
     with its type, and QM settings among the fit options are refused (before any QM)."""
     film = _two_shape_water_film()
-    with pytest.raises(InputError, match="fit_state_charges needs a clusterlab.Method.*of type str"):
+    with pytest.raises(InputError, match="fit_state_charges needs a clusterlab.Method.*got str"):
         fit_state_charges(film, "hf/sto-3g")
     with pytest.raises(InputError, match=r"\['grid_level'\] are QM settings"):
         fit_state_charges(film, HF, grid_level=1)

@@ -235,7 +235,7 @@ def test_s1_transition_charges_forbidden_band(formaldehyde_states):
 
 
 def test_state_charges_take_a_method_only():
-    with pytest.raises(InputError, match="must be a clusterlab.Method; got str"):
+    with pytest.raises(InputError, match="state_charges needs a clusterlab.Method.*got str"):
         state_charges(FORM_SYM, FORM_POS, "hf/sto-3g")
     with pytest.raises(InputError, match="unknown state"):
         state_charges(FORM_SYM, FORM_POS, HF_631G, states=("S2",))

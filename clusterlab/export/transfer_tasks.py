@@ -22,7 +22,7 @@ import pandas as pd
 
 from ..errors import InputError
 from ..geometry import minimum_image
-from ..qm.method import Method
+from ..qm.method import Method, require_method
 from ..versions import __version__
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -98,8 +98,7 @@ def transfer_task(
         embed: float | None = r
     else:
         embed = None
-    if not isinstance(method, Method):
-        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__} ({method!r}).")
+    require_method(method, "transfer_task")
     remember_film(film)
     payload = {"film": film.spec(), "frame": f, "i": a, "j": b, "method": method.to_dict(),
                "embed_radius_A": embed, "kind": TRANSFER_KIND}

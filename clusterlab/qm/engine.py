@@ -47,7 +47,7 @@ from .calc import (
 )
 from .following import assign_states, transition_overlaps
 from .induction import induced_dipole_options
-from .method import Method
+from .method import Method, require_method
 from .results import NAN, ChargedResult, ExcitationResult, ExcitedState
 
 FloatArray = npt.NDArray[np.float64]
@@ -177,9 +177,7 @@ def _validate(cluster: Cluster, method: Method) -> None:
     if not isinstance(cluster, Cluster):
         raise InputError(f"cluster must be a clusterlab.Cluster; got {type(cluster).__name__}. "
                          "Build one with Cluster.from_arrays(...).")
-    if not isinstance(method, Method):
-        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__}. "
-                         f"Try Method.preset(name) with one of {list(Method.presets())}.")
+    require_method(method, "the engine")
     nel = n_electrons(cluster.qm_symbols, cluster.qm_charge)
     if nel % 2:
         raise InputError(f"The QM region has {nel} electrons (qm_charge={cluster.qm_charge}); excited states "

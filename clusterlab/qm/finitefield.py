@@ -14,7 +14,7 @@ from ..electrostatics.stark import FIELD_DIRECTIONS, StarkFit, uniform_field_cha
 from ..errors import InputError
 from ..units import COULOMB_EV_A, DEBYE_E_A
 from .engine import excitations
-from .method import Method
+from .method import require_method
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -73,8 +73,7 @@ def differential_polarizability(
     InputError
         Unknown state, a state the method does not compute, or bad steps.
     """
-    if not isinstance(method, Method):
-        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__}.")
+    require_method(method, "differential_polarizability")
     states = tuple(states)
     bad = [s for s in states if s not in ("S1", "T1")]
     if bad or not states:

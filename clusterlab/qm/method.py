@@ -318,3 +318,28 @@ class Method:
                 f"{self.excited.upper()} {self.n_singlets}S+{self.n_triplets}T"
                 f"{', ΔSCF IP/EA' if self.charged_states else ''}, charge width {self.charge_smearing_A:g} Å"
                 f"{', polarizable environment' if self.is_polarizable else ''}")
+
+
+def require_method(method: Any, who: str) -> "Method":
+    """``method`` after checking it is a :class:`Method`: the one check every
+    calculation entry point makes (a Method is the only source of QM settings).
+
+    Raises
+    ------
+    InputError
+        Anything else (an ``"xc/basis"`` string included), named with its type.
+
+    Examples
+    --------
+    >>> require_method("b3lyp/6-31g", "state_charges")  # doctest: +IGNORE_EXCEPTION_DETAIL
+    Traceback (most recent call last):
+    InputError: state_charges needs a clusterlab.Method ...; got str ('b3lyp/6-31g').
+    """
+    if not isinstance(method, Method):
+        text = repr(method)
+        text = text if len(text) <= 80 else text[:77] + "..."
+        raise InputError(f"{who} needs a clusterlab.Method (the only source of its QM settings); got "
+                         f"{type(method).__name__} ({text}). Use e.g. Method.preset('fast-refined') or "
+                         "Method(xc='b3lyp', basis='6-31g').")
+    return method
+

@@ -43,7 +43,7 @@ from ..units import AU_DIPOLE_TO_DEBYE, BOHR_A, DEBYE_E_A, HARTREE_TO_EV
 from ..versions import software_versions
 from .calc import VACUUM, check_method, calculate, ion_states, n_electrons, omp_threads
 from .esp import esp_on_points, transition_density_ao
-from .method import Method
+from .method import Method, require_method
 
 FloatArray = npt.NDArray[np.float64]
 TRANSITION_LABEL = "S0->S1"
@@ -214,9 +214,7 @@ def state_charges(
     ConvergenceError
         Only with ``raise_on_fail=True``.
     """
-    if not isinstance(method, Method):
-        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__} ({method!r}). "
-                         "Use e.g. Method.preset('fast-refined') or Method(xc='b3lyp', basis='6-31g').")
+    require_method(method, "state_charges")
     bad = [s for s in states if s not in KNOWN_STATES]
     if bad:
         raise InputError(f"unknown state(s) {bad}; valid states are {list(KNOWN_STATES)}.")

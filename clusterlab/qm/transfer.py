@@ -37,7 +37,7 @@ from ..errors import ConvergenceError, InputError
 from ..units import HARTREE_TO_EV
 from ..versions import software_versions
 from .calc import VACUUM, check_method, Embedding, build_molecule, make_scf, n_electrons, omp_threads, run_scf
-from .method import Method
+from .method import Method, require_method
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -227,8 +227,7 @@ def transfer_integrals(
 
     pa = _check_molecule("pos_A", symbols_A, pos_A)
     pb = _check_molecule("pos_B", symbols_B, pos_B)
-    if not isinstance(method, Method):
-        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__} ({method!r}).")
+    require_method(method, "transfer_integrals")
     if env_positions is None:
         if env_charges is not None:
             raise InputError("env_charges given without env_positions.")

@@ -37,7 +37,7 @@ from ..electrostatics.pairsum import environment_potential
 from ..errors import InputError
 from ..progress import progress_bar
 from ..qm.finitefield import differential_polarizability
-from ..qm.method import Method
+from ..qm.method import Method, require_method
 from ..qm.statecharges import state_charges
 from .filmmap import SHIFT_STATES, check_radius_A, check_rule, frame_families, molecule_net_charge
 from .jsonio import json_of_kind, table_from_dict, table_to_dict
@@ -52,20 +52,6 @@ ENGINE_SETTINGS = ("grid_level", "density_fit", "conv_tol", "max_cycle")
 
 __all__ = ["fit_state_charges", "add_field_response", "film_equivalence_classes", "ground_charge_source",
            "conformer_spread", "ConformerSpread"]
-
-
-def check_method(method: Any, who: str) -> Method:
-    """``method`` after checking it is a :class:`clusterlab.Method`.
-
-    Raises
-    ------
-    InputError
-        Anything else (an ``"xc/basis"`` string included), named with its type.
-    """
-    if not isinstance(method, Method):
-        raise InputError(f"{who} needs a clusterlab.Method (the only source of its QM settings); got {method!r} "
-                         f"of type {type(method).__name__}. Use e.g. clusterlab.Method(xc='b3lyp', basis='6-31g').")
-    return method
 
 
 def _check_fit_options(fit_kw: Mapping[str, Any]) -> None:
@@ -139,7 +125,7 @@ def fit_state_charges(film: "Film", method: Method, *, resnames: Sequence[str] |
         ``method`` not a Method, a QM setting among ``fit_kw``, a resname the
         film does not have, or ``n_conformers < 1``.
     """
-    check_method(method, "fit_state_charges")
+    require_method(method, "fit_state_charges")
     _check_fit_options(fit_kw)
     names = np.asarray(film.molecule_resnames)
     wanted = list(dict.fromkeys(names.tolist())) if resnames is None else [str(r) for r in resnames]
@@ -228,7 +214,7 @@ def add_field_response(charges: StateChargeSet, film: "Film", method: Method, *,
         (sets made by :meth:`StateChargeSet.from_arrays`), or references whose
         atom count differs from the film's molecules of that name.
     """
-    check_method(method, "add_field_response")
+    require_method(method, "add_field_response")
     out = copy.deepcopy(charges)
     todo = sum(1 for refs in out.conformers.values() for ref in refs if refit or not ref.has_response(states))
     bar = progress_bar(todo * (1 + 12 * len(steps_V_A)), desc="finite fields", enabled=progress, unit="calc")
@@ -401,7 +387,7 @@ def conformer_spread(
     InputError
         ``method`` not a Method, unknown residue name or a bad state.
     """
-    check_method(method, "conformer_spread")
+    require_method(method, "conformer_spread")
     _check_fit_options(fit_kw)
     res = resname if resname is not None else charges.resnames[0]
     names = np.asarray(film.molecule_resnames)

@@ -121,11 +121,11 @@ from ..electrostatics.stark import stark_energy_eV
 from ..electrostatics.thole import atomic_polarizabilities, solve_induced_dipoles
 from ..errors import ChargeError, InputError
 from ..progress import progress_bar
-from ..qm.method import Method
+from ..qm.method import Method, require_method
 from ..store import task_key
 from ..units import COULOMB_EV_A, DEBYE_E_A
 from ..versions import software_versions
-from .chargefits import add_field_response, check_method, fit_state_charges
+from .chargefits import add_field_response, fit_state_charges
 from .filmmap import (
     CHARGED_STATES,
     NEUTRAL_STATES,
@@ -759,7 +759,7 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
         ``method`` not a :class:`~clusterlab.Method`, or response states other
         than S1 and T1.
     """
-    check_method(method, "run_film_model")
+    require_method(method, "run_film_model")
     response_states = [str(s) for s in response_states]
     bad = [s for s in response_states if s not in NEUTRAL_STATES]
     if response and (bad or not response_states):

@@ -24,7 +24,7 @@ import pandas as pd
 
 from ..errors import InputError, ProvenanceError
 from ..film import Film
-from ..qm.method import Method
+from ..qm.method import Method, require_method
 from ..ranges import is_id_text, parse_frames, parse_ids, parse_radii
 from ..runner import RunReport
 from ..stats import conformational_environmental, disorder_stats, spatial_correlation, static_dynamic
@@ -366,8 +366,7 @@ def sample_sites(
     -------
     SiteSample
     """
-    if not isinstance(method, Method):
-        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__}.")
+    require_method(method, "sample_sites")
     ids = choose_molecules(film, molecules, n=n, seed=seed)
     fr = choose_frames(film, frames)
     radii = parse_radii(radius)

@@ -29,7 +29,7 @@ import pandas as pd
 
 from ..errors import InputError
 from ..film import Film
-from ..qm.method import Method
+from ..qm.method import Method, require_method
 from ..runner import RunReport
 from ..stats import ConvergenceVerdict, converged_radius
 from ..store import ResultStore
@@ -222,8 +222,7 @@ def radius_scan(
     -------
     ScanResult
     """
-    if not isinstance(method, Method):
-        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__}.")
+    require_method(method, "radius_scan")
     radii = _check_radii(radii)
     check_film_method(film, method)
     if polarizable_radii is not None:

@@ -22,7 +22,7 @@ import numpy as np
 from ..versions import __version__
 from ..errors import InputError
 from ..film import Film, check_polarizable_radius, film_from_spec, remember_film
-from ..qm.method import Method
+from ..qm.method import Method, require_method
 from ..runner import RunReport, Task, run_tasks
 from ..store import ResultStore, task_key
 
@@ -93,8 +93,7 @@ def check_film_method(film: Film, method: Method) -> None:
     """
     from ..qm.calc import check_method
 
-    if not isinstance(method, Method):
-        raise InputError(f"method must be a clusterlab.Method; got {type(method).__name__} ({method!r}).")
+    require_method(method, "a study")
     check_method(method, sorted({str(s) for s in film.symbols}))
 
 
