@@ -31,6 +31,7 @@ machinery; the layer test (``tests/test_layers.py``) keeps it so.
 from __future__ import annotations
 
 import contextlib
+import functools
 import logging
 import time
 from dataclasses import dataclass, field
@@ -160,37 +161,46 @@ def n_electrons(symbols: Sequence[str], charge: int) -> int:
         raise InputError(f"unknown element symbol in {list(symbols)!r}: {exc}") from None
 
 
+@functools.lru_cache(maxsize=None)
+def _xc_known(xc: str) -> bool:
+    from pyscf.dft import libxc
+
+    try:
+        libxc.parse_xc(xc)
+    except Exception:  # noqa: BLE001 - PySCF raises KeyError/ValueError for unknown names
+        return False
+    return True
+
+
+@functools.lru_cache(maxsize=None)
+def _basis_covers(basis: str, element: str) -> bool:
+    import warnings as _warnings
+
+    from pyscf import gto
+
+    try:
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore")  # PySCF suggests installing basis-set-exchange
+            return bool(gto.basis.load(basis, element))
+    except Exception:  # noqa: BLE001 - unknown basis name (KeyError) or element (BasisNotFoundError)
+        return False
+
+
 def check_method(method: Method, symbols: Sequence[str]) -> None:
     """Check, before any calculation runs, that PySCF knows ``method``'s
-    functional and has its basis for every element of ``symbols``.
+    functional and has its basis for every element of ``symbols`` (answers
+    are cached per functional and per basis/element: the engine asks before
+    every calculation, the finite fields 25-50 times per reference).
 
     Raises
     ------
     InputError
         Naming the functional, or the basis and the elements it lacks.
     """
-    import warnings as _warnings
-
-    from pyscf import gto
-
-    if not method.is_hf:
-        from pyscf.dft import libxc
-
-        try:
-            libxc.parse_xc(method.xc)
-        except Exception:  # noqa: BLE001 - PySCF raises KeyError/ValueError for unknown names
-            raise InputError(f"functional xc={method.xc!r} is not known to PySCF (libxc); use e.g. 'b3lyp', "
-                             "'camb3lyp', 'pbe0', 'wb97x' or 'hf'.") from None
-    missing = []
-    for el in sorted(set(map(str, symbols))):
-        try:
-            with _warnings.catch_warnings():
-                _warnings.simplefilter("ignore")  # PySCF suggests installing basis-set-exchange
-                ok = bool(gto.basis.load(method.basis, el))
-        except Exception:  # noqa: BLE001 - unknown basis name (KeyError) or element (BasisNotFoundError)
-            ok = False
-        if not ok:
-            missing.append(el)
+    if not method.is_hf and not _xc_known(method.xc):
+        raise InputError(f"functional xc={method.xc!r} is not known to PySCF (libxc); use e.g. 'b3lyp', "
+                         "'camb3lyp', 'pbe0', 'wb97x' or 'hf'.")
+    missing = [el for el in sorted(set(map(str, symbols))) if not _basis_covers(method.basis, el)]
     if missing:
         raise InputError(f"basis={method.basis!r} is not available in PySCF for element(s) {missing}; check the "
                          "spelling (e.g. '6-31g', 'def2-svp', 'cc-pvdz') or pick a basis that covers them.")

@@ -39,9 +39,9 @@ import pandas as pd
 from ..electrostatics.chargeset import KNOWN_STATES
 from ..electrostatics.espfit import Restraint, esp_rrms, fit_esp_charges, fit_points
 from ..errors import ConvergenceError, InputError
-from ..units import AU_DIPOLE_TO_DEBYE, BOHR_A, DEBYE_E_A, HARTREE_TO_EV
+from ..units import AU_DIPOLE_TO_DEBYE, DEBYE_E_A, HARTREE_TO_EV
 from ..versions import software_versions
-from .calc import VACUUM, check_method, calculate, ion_states, n_electrons, omp_threads
+from .calc import VACUUM, calculate, check_method, dipole_D, ion_states, n_electrons, omp_threads
 from .esp import esp_on_points, transition_density_ao
 from .method import Method, require_method
 
@@ -247,11 +247,6 @@ def state_charges(
     mol = gs.mol
     z = mol.atom_charges().astype(float)
     centre_A = (z @ pos) / z.sum()
-    with mol.with_common_orig(centre_A / BOHR_A):
-        r_ints = mol.intor_symmetric("int1e_r", comp=3)
-
-    def qm_dipole_D(dm: FloatArray) -> FloatArray:
-        return (-np.einsum("xij,ji->x", r_ints, dm) + z @ ((pos - centre_A) / BOHR_A)) * AU_DIPOLE_TO_DEBYE
 
     dm0 = gs.dm
     e0 = float(gs.energy_Eh)
@@ -286,7 +281,7 @@ def state_charges(
         q = fit_esp_charges(syms, pos, pts, v, qtot[st], restraint=restraint, equivalent=equivalent)
         charges[st] = q
         dip_fit[st] = (q @ (pos - centre_A)) / DEBYE_E_A
-        dip_qm[st] = qm_dipole_D(dms[st])
+        dip_qm[st] = np.asarray(dipole_D(mol, dms[st]))  # about the centre of nuclear charge
         rrms[st] = esp_rrms(pos, q, pts, v)
 
     tq = tfit = tqm = None
