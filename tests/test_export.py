@@ -464,3 +464,44 @@ def test_export_study_reads_back_as_written(water_film, model_table, charge_set,
     assert [m["kind"] for m in back.metadata["models"]] == ["qm", "electrostatic-model"]
     model_entry = back.metadata["models"][1]
     assert model_entry["radius_A"] == 6.0 and model_entry["rule"] == model_table.options["rule"]
+
+
+# ---------------------------------------------------------------- polarizable QM
+def test_polarizable_store_exports_polarization_columns_and_both_radii(water_film, tmp_path):
+    """A store of polarizable results (HF/STO-3G waters, the smallest set the polarizable tests use)
+    exports, per site, the polarization contributions the store holds, and names the embedding
+    kind with both radii in the source tags and the sidecar; a fixed-charge export has none of it."""
+    from clusterlab import Method, ResultStore
+    from clusterlab.study.sample import SiteSample
+    from clusterlab.study.tasks import cluster_task, run_cluster_tasks
+
+    m = Method(xc="hf", basis="sto-3g", n_singlets=1, n_triplets=1, charged_states=True,
+               charge_smearing_A=0.0, environment="polarizable")
+    st = ResultStore(tmp_path / "pol.sqlite")
+    tasks = [cluster_task(water_film, mol, 4.5, m, polarizable_radius_A=3.0) for mol in (0, 1)]
+    run_cluster_tasks(tasks, st, desc="pol", runner="serial", progress=False)
+    stored = st.to_frame().set_index("molecule").sort_index()
+    assert (stored.status == "done").all() and list(stored.index) == [0, 1]
+    sample = SiteSample.from_store(st, film=water_film)
+    export_study(water_film, tmp_path / "out", sample=sample, cutoff_A=4.5)
+    back = read_export(tmp_path / "out")
+    s = back.sites[back.sites.frame == 0].set_index("molecule")
+    for q in ("S1", "T1", "IP", "EA"):
+        got = s.loc[[0, 1], f"{q}_polarization_qm_eV"].to_numpy()
+        assert np.array_equal(got, stored[f"{q}_polarization_eV"].to_numpy())  # the stored numbers, unchanged
+        assert np.isfinite(got).all() and s.drop([0, 1])[f"{q}_polarization_qm_eV"].isna().all()
+        assert back.metadata["columns"]["sites"][f"{q}_polarization_qm_eV"]["unit"] == "eV"
+    assert (stored.IP_polarization_eV < 0).all() and (stored.EA_polarization_eV > 0).all()
+    assert list(s.loc[[0, 1], "qm_polarizable_radius_A"]) == [3.0, 3.0]
+    tag = "qm:R=4.5A:polarizable=3A:" + m.key()[:10]
+    assert (s.loc[[0, 1], "source_S1"] == tag).all() and (s.loc[[0, 1], "source_EA"] == tag).all()
+    assert back.metadata["radius_A"] == {"qm": [4.5], "qm_polarizable": [3.0]}
+    assert back.metadata["models"] == [{"label": tag, "kind": "qm", "environment": "polarizable",
+                                        "radius_A": 4.5, "polarizable_radius_A": 3.0}]
+    assert back.metadata["method"]["dict"]["environment"] == "polarizable"
+    assert column_info("IP_polarization_qm_eV")[1].startswith("polarization contribution to IP_qm_eV")
+    assert back.metadata["columns"]["sites"]["qm_polarizable_radius_A"]["unit"] == "Å"
+    # fixed-charge QM exports as before: no polarization columns, no inner radius, plain tags
+    fixed = site_table(water_film, qm=_qm_sample())
+    assert not [c for c in fixed.columns if "polariz" in c]
+    assert fixed.attrs["sources"] == [{"label": "qm:R=8A:" + "ab" * 5, "kind": "qm"}]

@@ -85,7 +85,9 @@ def _columns_doc(df: pd.DataFrame) -> dict[str, dict[str, str]]:
 
 _LIMITATIONS = [
     "QM site energies: one embedded cluster per site with fixed point charges of the environment; no "
-    "environment polarization unless the electrostatic model's polarization term is used (ions only).",
+    "environment polarization unless the QM method is polarizable (induced dipoles on the molecules within the "
+    "inner radius only: source tags 'qm:R=<outer>A:polarizable=<inner>A:...', <Q>_polarization_qm_eV columns; "
+    "never in the periodic limit) or the electrostatic model's polarization term is used (ions only).",
     "Electrostatic model: first-order electrostatics of state-difference charges fitted on one reference copy "
     "per species (no refit per conformation); neutral excitations are not polarized; no intramolecular "
     "(conformational) change of the vacuum energy unless vacuum values come from QM per site.",
@@ -130,6 +132,10 @@ def export_metadata(
     -------
     dict
         JSON-able; pass it to :func:`write_export` as ``metadata``.
+        ``radius_A`` holds ``qm`` (the QM radii, outer radii of a polarizable
+        method), ``qm_polarizable`` (the inner radii; only for a polarizable
+        QM method) and ``model``; ``models`` the sources, a polarizable QM
+        one with ``environment``, ``radius_A`` and ``polarizable_radius_A``.
     """
     if frames is None:
         frames = sorted({int(f) for f in sites["frame"]}) if sites is not None and "frame" in sites else []
@@ -153,6 +159,8 @@ def export_metadata(
     if sites is not None and "qm_radius_A" in sites:
         r = sorted({float(x) for x in sites["qm_radius_A"].dropna()})
         radius["qm"] = r
+    if sites is not None and "qm_polarizable_radius_A" in sites:  # polarizable QM only
+        radius["qm_polarizable"] = sorted({float(x) for x in sites["qm_polarizable_radius_A"].dropna()})
     for s in sources:
         if s.get("kind") == "electrostatic-model":
             radius["model"] = s.get("radius_A")

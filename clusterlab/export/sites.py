@@ -80,7 +80,11 @@ _COLUMNS: dict[str, tuple[str, str]] = {
     "z_unwrapped_A": ("Å", "centroid z, continuous over frames"),
     "dEST_eV": ("eV", "S1_eV - T1_eV"),
     "S1_osc": ("", "oscillator strength of S1 (QM)"),
-    "qm_radius_A": ("Å", "radius of the QM cluster calculation used for the QM columns (inf = periodic limit)"),
+    "qm_radius_A": ("Å", "radius of the QM cluster calculation used for the QM columns (inf = periodic limit); "
+                         "with a polarizable QM method the outer radius (fixed charges out to it)"),
+    "qm_polarizable_radius_A": ("Å", "inner (polarizable) radius of the QM calculation: environment molecules "
+                                     "within it carried induced dipoles (only in exports of a polarizable QM "
+                                     "method; NaN where the site has no QM row)"),
     "qm_method_key": ("", "SHA-256 key of the QM method (see the sidecar's method entry)"),
     "qm_converged": ("", "all SCF/response steps of the QM calculation converged (False also where the site has no QM row: see qm_radius_A)"),
     "unconverged": ("", "True if any of the row's chosen values is flagged unconverged_<Q>"),
@@ -146,13 +150,19 @@ def column_info(name: str) -> tuple[str, str]:
             (f"{q}_qm_eV", "eV", f"{word} from the embedded QM calculation"),
             (f"{q}_shift_qm_eV", "eV", f"environment shift of {q} from the embedded QM calculation"),
             (f"{q}_vacuum_eV", "eV", f"{word} of the same molecule geometry without environment (QM)"),
+            (f"{q}_polarization_qm_eV", "eV", f"polarization contribution to {q}_qm_eV: the polarizable QM value "
+                                             "minus the same cluster with fixed charges only (only in exports of a "
+                                             "polarizable QM method; NaN where the site has no QM row or the "
+                                             "method skipped the fixed-charge reference)"),
             (f"{q}_model_eV", "eV", f"{word} from the electrostatic model: vacuum value of the species + model shift"),
             (f"{q}_shift_model_eV", "eV", f"environment shift of {q} from the electrostatic model"),
             (f"unconverged_{q}", "", f"True if {q}_eV comes from a calculation that did not converge"),
             (f"extrapolated_{q}", "", f"True if {q}_eV is not a converged-radius QM value (it comes from the "
                                       "electrostatic model, or its QM radius is below the scan verdict's "
                                       "converged radius)"),
-            (f"source_{q}", "", f"which model produced {q}_eV: 'qm:R=<radius>A:<method key prefix>', "
+            (f"source_{q}", "", f"which model produced {q}_eV: 'qm:R=<radius>A:<method key prefix>' (fixed "
+                                "charges), 'qm:R=<outer radius>A:polarizable=<inner radius>A:<method key prefix>' "
+                                "(induced dipoles within the inner radius), "
                                 f"'electrostatic-model:R=<radius>A:<kind>' or '{NO_SOURCE}'"),
         )
         for col, unit, meaning in per_quantity:
@@ -243,6 +253,11 @@ def _check_one_film_one_method(t: pd.DataFrame, film: "Film", sample_film_id: st
                                   + "); export one method (SiteSample.from_store(..., method_key=...)).")
 
 
+def _is_polarizable(t: pd.DataFrame) -> bool:
+    """QM rows of a polarizable method carry their inner radius."""
+    return "polarizable_radius_A" in t.columns and bool(t["polarizable_radius_A"].notna().any())
+
+
 def _pick_radius(t: pd.DataFrame, qm_radius_A: float | None) -> pd.DataFrame:
     if qm_radius_A is not None:
         sel = t[np.isclose(t["radius_A"], float(qm_radius_A)) | (np.isinf(t["radius_A"]) & math.isinf(qm_radius_A))]
@@ -250,8 +265,10 @@ def _pick_radius(t: pd.DataFrame, qm_radius_A: float | None) -> pd.DataFrame:
             raise InputError(f"the QM table has no rows at radius {qm_radius_A!r} Å; it has radii "
                              f"{sorted(set(t['radius_A'].tolist()))}.")
         t = sel
-    # largest radius per site (the periodic limit, inf, counts as largest)
-    t = t.sort_values(["frame", "molecule", "radius_A"], kind="stable")
+    # largest radius per site (the periodic limit, inf, counts as largest); of several inner
+    # (polarizable) radii at that radius, the largest
+    order = ["frame", "molecule", "radius_A"] + (["polarizable_radius_A"] if _is_polarizable(t) else [])
+    t = t.sort_values(order, kind="stable")
     return t.groupby(["frame", "molecule"], as_index=False, sort=True).tail(1)
 
 
@@ -411,7 +428,10 @@ def site_table(
         that any input has: ``Q_eV, Q_shift_eV, source_Q`` (the chosen value:
         QM when present and finite, else the model), ``Q_qm_eV,
         Q_shift_qm_eV, Q_vacuum_eV`` (QM), ``Q_shift_model_eV`` and
-        ``Q_model_eV`` (model); ``dEST_eV``, ``S1_osc``, ``qm_radius_A``,
+        ``Q_model_eV`` (model); with a polarizable QM method also
+        ``Q_polarization_qm_eV`` (polarizable minus fixed charges, same
+        cluster) and ``qm_polarizable_radius_A`` (absent for fixed-charge
+        QM); ``dEST_eV``, ``S1_osc``, ``qm_radius_A``,
         ``qm_method_key``, ``qm_converged``, ``model_converged``, the
         per-quantity flags ``unconverged_Q`` (the value's calculation did not
         converge) and ``extrapolated_Q`` (the value comes from the model, or
@@ -429,6 +449,10 @@ def site_table(
     -----
     When both QM and the model give a value for a site, both are kept (the
     ``_qm_`` and ``_model_`` columns) and the QM one is chosen for ``Q_eV``.
+    With several inner (polarizable) radii at the chosen QM radius the
+    largest is used. The source label of a polarizable QM value names both
+    radii (``qm:R=10A:polarizable=6A:<key>``) and its ``attrs["sources"]``
+    entry holds ``environment``, ``radius_A`` and ``polarizable_radius_A``.
     Unwrapped centroids: see :func:`unwrapped_centroids`.
     """
     qt = _qm_frame(qm)
@@ -466,8 +490,11 @@ def site_table(
 
     # ---- QM columns
     has_qm = qt is not None and len(qt) > 0
+    polarizable = has_qm and _is_polarizable(qt)
     if has_qm:
         keep = {"radius_A": "qm_radius_A"}
+        if polarizable:
+            keep["polarizable_radius_A"] = "qm_polarizable_radius_A"
         if "method_key" in qt.columns:
             keep["method_key"] = "qm_method_key"
         if "converged" in qt.columns:
@@ -477,6 +504,8 @@ def site_table(
                              (f"{q}_vacuum_eV", f"{q}_vacuum_eV")):
                 if src in qt.columns:
                     keep[src] = dst
+            if polarizable and f"{q}_polarization_eV" in qt.columns:
+                keep[f"{q}_polarization_eV"] = f"{q}_polarization_qm_eV"
         if "S1_osc" in qt.columns:
             keep["S1_osc"] = "S1_osc"
         sub = qt[["frame", "molecule", *keep]].rename(columns=keep)
@@ -486,13 +515,21 @@ def site_table(
                 out[col] = pd.to_numeric(out[col], errors="coerce").astype(float)
         mk = out["qm_method_key"].fillna("").astype(str) if "qm_method_key" in out else pd.Series("", index=out.index)
         rad = out["qm_radius_A"]
-        qm_label = np.where(rad.notna(), "qm:R=" + rad.map(lambda r: "inf" if np.isinf(r) else f"{r:g}A")
-                            + ":" + mk.str[:10], NO_SOURCE)
+        tag = "qm:R=" + rad.map(lambda r: "inf" if np.isinf(r) else f"{r:g}A")
+        if polarizable:
+            inner = out["qm_polarizable_radius_A"]
+            tag = tag + np.where(inner.notna(), ":polarizable=" + inner.map(lambda r: f"{r:g}A"), "")
+        qm_label = np.where(rad.notna(), tag + ":" + mk.str[:10], NO_SOURCE)
         if "qm_converged" in out:
             qc = out["qm_converged"]
             out["qm_converged"] = qc.where(qc.notna(), False).astype(bool)
         for lab in sorted(set(qm_label) - {NO_SOURCE}):
-            sources.append({"label": str(lab), "kind": "qm"})
+            entry: dict[str, Any] = {"label": str(lab), "kind": "qm"}
+            if polarizable:  # the embedding kind and both radii (fixed-charge entries stay as they were)
+                row = out.iloc[int(np.flatnonzero(qm_label == lab)[0])]
+                entry.update(environment="polarizable", radius_A=float(row["qm_radius_A"]),
+                             polarizable_radius_A=float(row["qm_polarizable_radius_A"]))
+            sources.append(entry)
     else:
         qm_label = np.full(len(out), NO_SOURCE, dtype=object)
 
