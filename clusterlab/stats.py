@@ -662,6 +662,7 @@ def converged_radius(
     *,
     tol: float = 0.010,
     reference: float | Mapping[str, float] | pd.Series | None = None,
+    radius_label: str | None = None,
 ) -> ConvergenceVerdict:
     """Smallest cluster radius from which a quantity stays converged.
 
@@ -684,6 +685,10 @@ def converged_radius(
     reference : float, mapping or Series, optional
         Periodic (Ewald) limit: a number for one quantity, or a value per
         column name for a table.
+    radius_label : str, optional
+        Which radius ``radii`` are, named in the message (e.g. ``"outer
+        radius"``, ``"inner (polarizable) radius"``); default: the message
+        says only the radius in Å.
 
     Returns
     -------
@@ -706,6 +711,7 @@ def converged_radius(
     10.0
     """
     r = _as_1d_float(radii, "radii")
+    named = "" if radius_label is None else f"{radius_label} "
     tol = float(tol)
     if not tol > 0:
         raise InputError(f"tol={tol!r} is invalid; use a positive tolerance in eV (e.g. 0.010)")
@@ -775,13 +781,13 @@ def converged_radius(
         d = info[slow]
         if periodic:
             detail = (
-                f"{_pretty(slow)} at {_fmt_r(d['r'][-1])} is {1e3 * d['dev'][-1]:.0f} meV from the "
+                f"{_pretty(slow)} at {named}{_fmt_r(d['r'][-1])} is {1e3 * d['dev'][-1]:.0f} meV from the "
                 f"periodic limit, tolerance {1e3 * tol:g} meV"
             )
         else:
             detail = (
                 f"{_pretty(slow)} still changes by {1e3 * abs(d['y'][-1] - d['y'][-2]):.0f} meV between "
-                f"{d['r'][-2]:g} and {_fmt_r(d['r'][-1])}, tolerance {1e3 * tol:g} meV"
+                f"{named}{d['r'][-2]:g} and {_fmt_r(d['r'][-1])}, tolerance {1e3 * tol:g} meV"
             )
         return ConvergenceVerdict(
             converged=False,
@@ -805,7 +811,7 @@ def converged_radius(
         reference=ref_out,
         reference_kind=kind,
         max_deviation_after=max_dev,
-        message=f"{who} converged to within {1e3 * tol:g} meV of {target} from {_fmt_r(radius)} on",
+        message=f"{who} converged to within {1e3 * tol:g} meV of {target} from {named}{_fmt_r(radius)} on",
         quantity=slow,
         tol=tol,
         radius_by_quantity=radius_by,

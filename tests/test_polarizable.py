@@ -11,6 +11,8 @@ Chem. A 109, 8001 (2005); Renge, J. Phys. Chem. A 113, 10678 (2009)).
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pytest
 
@@ -311,6 +313,12 @@ def test_scan_covers_outer_and_inner_radius(tmp_path):
     assert list(inner.polarizable_radius_A) == [0.0, 2.0, 4.0, 6.0] and set(inner.radius_A) == {6.0}
     assert inner.S1_polarization_eV.iloc[0] == 0.0 and inner.n_polarizable.is_monotonic_increasing
     assert scan.polarizable_verdict is not None and "inner (polarizable) radius" in scan.message
+    # each verdict names the radius it judges, and the converged radius with it
+    for v, label in ((scan.verdict, "outer radius"), (scan.polarizable_verdict, "inner (polarizable) radius")):
+        assert f"{label} " in v.message and v.message in scan.message
+        if v.converged:
+            assert f"from {label} {v.radius_A:g} Å on" in v.message
+    assert "(at outer radius 6 Å)" in scan.message
     # the inner radius enters the task key; a fixed-charge task keeps its old key and refuses one
     k3 = cluster_task(film, 0, 6.0, m, polarizable_radius_A=3.0).key
     assert k3 != cluster_task(film, 0, 6.0, m, polarizable_radius_A=4.0).key
@@ -377,3 +385,39 @@ def test_acetone_n_pi_star_blue_shift_in_polarizable_water():
     assert r.converged and s1.osc_strength < 1e-2  # the dark n->pi* state
     assert 0.03 <= s1.shift_eV <= 0.33
     assert 0 < s1.polarization_eV < s1.shift_eV
+
+
+# ------------------------------------------------- periodic limit: refused
+def test_periodic_embedding_with_induced_dipoles_is_refused_everywhere(tmp_path):
+    """The Ewald sum makes the charges periodic, the induced dipoles are not: every door to a
+    periodic embedding refuses a polarizable method with one message that names both options and
+    what works instead, before anything is computed."""
+    from clusterlab.qm.periodic import periodic_excitations
+    from clusterlab.study.scan import radius_scan
+    from clusterlab.study.tasks import cluster_task
+
+    pol = HF_MIN.replace(environment="polarizable")
+    def refused(where):
+        return (re.escape(where) + r" \(a periodic Ewald embedding\) cannot be combined with "
+                r"environment='polarizable': .*not periodic.*polarizable_radius=.*environment='charges'")
+
+    h2 = Cluster(["H", "H"], [[0, 0, 0], [0.74, 0, 0]], [[4, 0, 0]], [0.1], env_molecules=[0], env_symbols=["O"],
+                 env_polarizable=[True], box=[10.0, 10.0, 10.0, 90.0, 90.0, 90.0])
+    with pytest.raises(InputError, match=refused("periodic_excitations")):
+        periodic_excitations(h2, pol)
+    ewald = Embedding([[4, 0, 0]], [0.1], {"lattice_A": np.eye(3) * 10, "rcut_ewald_A": 5.0, "rcut_hcore_A": 5.0})
+    mol = build_molecule(["H", "H"], [[0, 0, 0], [0.74, 0, 0]], pol)
+    with pytest.raises(InputError, match=refused("make_scf with Embedding(periodic=...)")):
+        make_scf(mol, pol, ewald)
+    u, _ = build_water_universe(lattice_centres(3, 0.1, np.random.default_rng(0)), np.array([12.0] * 3 + [90.0] * 3))
+    film = film_from_universe(u)
+    store = tmp_path / "never.sqlite"
+    with pytest.raises(InputError, match=refused("radius_scan(periodic_limit=True)")):
+        radius_scan(film, 0, [4.0], pol, periodic_limit=True, store=str(store), progress=False)
+    assert not store.exists()  # refused before the store was opened
+    with pytest.raises(InputError, match=refused("cluster_task(kind='periodic')")):
+        cluster_task(film, 0, 6.0, pol, kind="periodic")
+    with pytest.raises(InputError, match="polarizabilities_A3 > 0: the Ewald sum"):
+        Embedding([[1, 0, 0]], [0.1], {"lattice_A": np.eye(3)}, polarizabilities_A3=[1.0], groups=[0])
+    # the fixed-charge method still builds its periodic SCF
+    assert make_scf(build_molecule(["H", "H"], [[0, 0, 0], [0.74, 0, 0]], HF_MIN), HF_MIN, ewald) is not None

@@ -438,6 +438,17 @@ def test_unsorted_and_nan():
     assert out.converged and "T1 shift" in out.message
 
 
+def test_converged_radius_names_the_radius_it_judges():
+    v = 0.25 - 40.0 / R**3
+    plain = converged_radius(R, v, tol=0.01)
+    named = converged_radius(R, v, tol=0.01, radius_label="inner (polarizable) radius")
+    assert (named.converged, named.radius_A) == (plain.converged, plain.radius_A) and plain.converged
+    assert named.message == plain.message.replace(f"from {plain.radius_A:g} Å", f"from inner (polarizable) "
+                                                  f"radius {plain.radius_A:g} Å")
+    stuck = converged_radius(R, 0.25 - 4000.0 / R**3, tol=0.001, radius_label="outer radius")
+    assert not stuck.converged and f"between outer radius {R[-2]:g} and {R[-1]:g} Å" in stuck.message
+
+
 def test_converged_radius_errors():
     with pytest.raises(InputError, match="radii has 3 entries but values has 2"):
         converged_radius([1.0, 2.0, 3.0], [0.1, 0.2])

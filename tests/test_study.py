@@ -67,6 +67,23 @@ def test_radius_scan_table_store_and_resume(film, tmp_path):
     assert fig.axes
 
 
+def test_radius_scan_without_triplets_judges_what_was_computed(film, tmp_path):
+    """n_triplets=0: T1 is NaN at every radius, so the verdict leaves T1 and dEST out (it used to
+    fail on the vacuum row's T1 shift of 0.0) and equals the detector's verdict on S1 alone."""
+    from clusterlab import converged_radius
+
+    m = METHOD.replace(n_singlets=1, n_triplets=0)
+    res = radius_scan(film, 4, [3.0, 4.5], m, store=tmp_path / "s.sqlite", progress=False)
+    t = res.table
+    assert list(t.radius_A) == [0.0, 3.0, 4.5] and t.S1_shift_eV.iloc[0] == 0.0
+    assert t.T1_shift_eV.isna().all() and t.T1_eV.isna().all() and t.dEST_eV.isna().all()
+    assert "T1_shift_eV" not in res.tracked and "dEST_eV" not in res.tracked and "S1_shift_eV" in res.tracked
+    finite = t[t.radius_A > 0]
+    v = converged_radius(finite.radius_A.to_numpy(), finite[res.tracked], tol=0.010)
+    assert (v.converged, v.radius_A, v.message) == (res.verdict.converged, res.verdict.radius_A, res.message)
+    assert "outer radius" not in res.message  # fixed charges: one radius, no layer named
+
+
 def test_radius_scan_bad_input(film):
     with pytest.raises(InputError, match="positive and finite"):
         radius_scan(film, 0, [-1.0], METHOD, progress=False)

@@ -45,7 +45,7 @@ from ..units import AU_DIPOLE_TO_DEBYE
 from . import ct as _ct
 from .following import rotate_amplitudes
 from .induction import attach_induced_dipoles, has_induced_dipoles
-from .method import Method
+from .method import PERIODIC_POLARIZABLE_ALTERNATIVE, Method, check_periodic_environment
 from .response import ResponseStates, subspace_refine
 
 FloatArray = npt.NDArray[np.float64]
@@ -111,8 +111,8 @@ class Embedding:
                 raise InputError(f"polarizable sites need a molecule copy per site (groups): got {len(grp)} for "
                                  f"{len(q)} sites.")
             if np.any(alpha > 0) and self.periodic is not None:
-                raise InputError("the periodic (Ewald) embedding takes fixed charges only; polarizable sites "
-                                 "need a finite cluster.")
+                raise InputError("an Embedding with periodic= (Ewald) cannot have polarizabilities_A3 > 0: "
+                                 f"{PERIODIC_POLARIZABLE_ALTERNATIVE}.")
         object.__setattr__(self, "positions_A", pos)
         object.__setattr__(self, "charges_e", q)
         object.__setattr__(self, "polarizabilities_A3", alpha)
@@ -232,8 +232,18 @@ def build_molecule(symbols: Sequence[str], positions_A: npt.ArrayLike, method: M
 
 
 def make_scf(mol, method: Method, embedding: Embedding = VACUUM, *, unrestricted: bool = False):
-    """The SCF object of ``method`` on ``mol`` in ``embedding`` (not run)."""
+    """The SCF object of ``method`` on ``mol`` in ``embedding`` (not run).
+
+    Raises
+    ------
+    InputError
+        A periodic (Ewald) ``embedding`` with a polarizable ``method``
+        (:func:`~clusterlab.qm.method.check_periodic_environment`).
+    """
     from pyscf import dft, scf
+
+    if embedding.periodic is not None:
+        check_periodic_environment(method, "make_scf with Embedding(periodic=...)")
 
     if method.is_hf:
         mf = scf.UHF(mol) if unrestricted else scf.RHF(mol)

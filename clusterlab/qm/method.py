@@ -343,3 +343,39 @@ def require_method(method: Any, who: str) -> "Method":
                          "Method(xc='b3lyp', basis='6-31g').")
     return method
 
+
+
+#: What works instead of a periodic embedding with induced dipoles (the one wording of the refusal).
+PERIODIC_POLARIZABLE_ALTERNATIVE = (
+    "the Ewald sum makes the fixed charges periodic, but the induced dipoles are solved in one finite cluster "
+    "and are not periodic. Compute the polarization in a finite two-layer cluster (Film.carve(..., "
+    "polarizable_radius=), radius_scan(..., polarizable_radii=)) and the periodic limit with the same method "
+    "and fixed charges (method.replace(environment='charges'))")
+
+
+def check_periodic_environment(method: "Method", where: str) -> None:
+    """Refuse a periodic (Ewald) embedding for a method with induced dipoles.
+
+    Parameters
+    ----------
+    method : Method
+    where : str
+        The periodic option or call being refused, named in the message
+        (e.g. ``"radius_scan(periodic_limit=True)"``).
+
+    Raises
+    ------
+    InputError
+        When ``method.environment == "polarizable"``: the message names both
+        options and what to use instead.
+
+    Examples
+    --------
+    >>> check_periodic_environment(Method(environment="polarizable"), "periodic_excitations")
+    ... # doctest: +IGNORE_EXCEPTION_DETAIL
+    Traceback (most recent call last):
+    InputError: periodic_excitations (a periodic Ewald embedding) cannot be combined with ...
+    """
+    if method.is_polarizable:
+        raise InputError(f"{where} (a periodic Ewald embedding) cannot be combined with "
+                         f"environment='polarizable': {PERIODIC_POLARIZABLE_ALTERNATIVE}.")

@@ -30,7 +30,7 @@ from ..cluster import Cluster
 from ..errors import InputError
 from .calc import Embedding
 from .engine import _excitations
-from .method import Method
+from .method import Method, check_periodic_environment
 from .results import ExcitationResult
 
 FloatArray = npt.NDArray[np.float64]
@@ -119,7 +119,15 @@ def periodic_excitations(cluster: Cluster, method: Method, *, vacuum: bool = Tru
     Returns
     -------
     ExcitationResult with ``radius_A = inf`` and ``periodic = True``.
+
+    Raises
+    ------
+    InputError
+        A box that is not orthorhombic or too small for the QM region, and a
+        polarizable ``method`` (the induced dipoles are not periodic; the
+        message says what to use instead).
     """
+    check_periodic_environment(method, "periodic_excitations")
     lengths = _orthorhombic_lengths(cluster.box)
     lat = np.diag(lengths)
     centre = cluster.qm_positions.mean(axis=0)

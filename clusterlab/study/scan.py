@@ -11,7 +11,9 @@ environment does not polarise in response to the QM region. With
 ``Method(environment="polarizable")`` the clusters have two layers
 (polarizable molecules within the inner radius, fixed charges beyond): the
 scan can grow the outer radius at a given inner radius and/or the inner
-radius at the largest outer radius, and the verdict covers both. There is no
+radius at the largest outer radius, and the verdict covers both (each names
+its radius). The periodic limit is refused for a polarizable method (the
+induced dipoles are not periodic). There is no
 exchange repulsion or dispersion, so the shifts are model estimates.
 """
 
@@ -29,7 +31,7 @@ import pandas as pd
 
 from ..errors import InputError
 from ..film import Film
-from ..qm.method import Method, require_method
+from ..qm.method import Method, check_periodic_environment, require_method
 from ..runner import RunReport
 from ..stats import ConvergenceVerdict, converged_radius
 from ..store import ResultStore
@@ -40,6 +42,10 @@ TRACKED = ("S1_shift_eV", "T1_shift_eV", "dEST_eV", "S1_followed_shift_eV", "IP_
 
 #: the polarization contributions a polarizable scan also tracks
 TRACKED_POLARIZATION = ("S1_polarization_eV", "T1_polarization_eV", "IP_polarization_eV", "EA_polarization_eV")
+
+#: how the verdicts of a polarizable scan name the radius they judge
+OUTER_LABEL = "outer radius"
+INNER_LABEL = "inner (polarizable) radius"
 
 SCAN_COLUMNS = ("radius_A", "n_env_molecules", "n_charges", "net_env_charge", "S1_eV", "S1_shift_eV",
                 "S1_osc", "S1_followed_shift_eV", "S1_follow_overlap", "T1_eV", "T1_shift_eV", "dEST_eV",
@@ -124,7 +130,8 @@ class ScanResult:
         """The verdict in words, both radii when both were scanned."""
         if self.polarizable_verdict is None:
             return self.verdict.message
-        return f"outer radius: {self.verdict.message}; inner (polarizable) radius: {self.polarizable_verdict.message}"
+        r_out = float(self.polarizable_table["radius_A"].max()) if self.polarizable_table is not None else math.nan
+        return f"{self.verdict.message}; {self.polarizable_verdict.message} (at outer radius {r_out:g} Å)"
 
     def plot(self, **kw: Any):
         """Shift vs radius with the tolerance band (see :func:`plot_convergence`)."""
@@ -197,7 +204,11 @@ def radius_scan(
     qm_shell : float, Å
     periodic_limit : bool
         Also compute the Ewald-embedded limit (orthorhombic boxes); the
-        verdict is then judged against it.
+        verdict is then judged against it. Fixed-charge methods only: with
+        ``Method(environment="polarizable")`` it is refused (InputError)
+        before anything runs, since the induced dipoles are not periodic; scan
+        the polarizable method without it and run the periodic limit in a
+        second scan with ``method.replace(environment="charges")``.
     polarizable_radius : float, Å, optional
         With a polarizable method: the inner radius of the outer-radius
         series (at each radius ``min(polarizable_radius, R)``; default
@@ -221,8 +232,20 @@ def radius_scan(
     Returns
     -------
     ScanResult
+        With a polarizable method both verdicts name the radius they judge
+        (``"outer radius"``, ``"inner (polarizable) radius"``) and
+        ``ScanResult.message`` joins them.
+
+    Raises
+    ------
+    InputError
+        Bad radii, a method PySCF cannot run on the film, ``polarizable_radii``
+        with a fixed-charge method, ``periodic_limit=True`` with a polarizable
+        method, or a scan that produced no result.
     """
     require_method(method, "radius_scan")
+    if periodic_limit:
+        check_periodic_environment(method, "radius_scan(periodic_limit=True)")
     radii = _check_radii(radii)
     check_film_method(film, method)
     if polarizable_radii is not None:
@@ -255,8 +278,10 @@ def radius_scan(
     table = table.sort_values("radius_A", kind="stable").reset_index(drop=True)
     cols = [c for c in SCAN_COLUMNS if c in table.columns] + [c for c in table.columns if c not in SCAN_COLUMNS]
     table = table[cols]
-    tracked = [c for c in TRACKED if c in table.columns and table[c].notna().any()]
+    # judged on the embedded rows only: the vacuum row's 0.0 shift says nothing about a quantity the
+    # method did not compute (T1 with n_triplets=0 has NaN at every radius)
     embedded = table[table.radius_A > 0]
+    tracked = [c for c in TRACKED if c in table.columns and embedded[c].notna().any()]
     tracked += [c for c in TRACKED_POLARIZATION if c in table.columns and embedded[c].notna().sum() >= 2]
     finite = table[np.isfinite(table.radius_A) & (table.radius_A > 0)]
     periodic = None
@@ -266,8 +291,12 @@ def radius_scan(
     if len(finite) == 0:
         raise InputError("No finite-radius result to judge convergence on: " + "; ".join(failures))
     ref = None if periodic is None else pd.Series(periodic)
-    verdict = converged_radius(finite.radius_A.to_numpy(), finite[tracked], tol=tol_eV, reference=ref)
+    verdict = converged_radius(finite.radius_A.to_numpy(), finite[tracked], tol=tol_eV, reference=ref,
+                               radius_label=OUTER_LABEL if method.is_polarizable else None)
     notes = list(failures)
+    if polarizable_radii and inner_verdict is None:
+        notes.append("the inner-radius series has fewer than two finite polarization contributions; no verdict "
+                     "on the inner radius")
     if not finite.converged.all():
         notes.append("some radii did not converge (converged=False rows); the verdict uses their NaN values")
     return ScanResult(table=table, verdict=verdict, tracked=tracked, molecule=int(molecule), frame=int(frame),
@@ -300,7 +329,8 @@ def _inner_series(st: ResultStore, tasks: list, radii: list[float], polarizable_
     tracked = [c for c in TRACKED_POLARIZATION if c in table.columns and pos[c].notna().sum() >= 2]
     if not tracked or len(pos) == 0:
         return table, None
-    verdict = converged_radius(pos.polarizable_radius_A.to_numpy(), pos[tracked], tol=tol_eV)
+    verdict = converged_radius(pos.polarizable_radius_A.to_numpy(), pos[tracked], tol=tol_eV,
+                               radius_label=INNER_LABEL)
     return table, verdict
 
 
@@ -311,9 +341,10 @@ def _vacuum_row(row: dict) -> dict:
     out.update({"radius_A": 0.0, "n_env_molecules": 0, "n_charges": 0, "net_env_charge": 0.0,
                 "kind": "vacuum", "converged": True})
     for q in ("S1", "T1", "IP", "EA"):
-        if f"{q}_vacuum_eV" in row:
-            out[f"{q}_eV"] = row[f"{q}_vacuum_eV"]
-            out[f"{q}_vacuum_eV"] = row[f"{q}_vacuum_eV"]
+        vac = row.get(f"{q}_vacuum_eV")
+        if vac is not None and np.isfinite(vac):  # a state the method did not compute has no vacuum row value
+            out[f"{q}_eV"] = vac
+            out[f"{q}_vacuum_eV"] = vac
             out[f"{q}_shift_eV"] = 0.0
     if "dEST_vacuum_eV" in row:
         out["dEST_eV"] = row["dEST_vacuum_eV"]

@@ -22,7 +22,7 @@ import numpy as np
 from ..versions import __version__
 from ..errors import InputError
 from ..film import Film, check_polarizable_radius, film_from_spec, remember_film
-from ..qm.method import Method, require_method
+from ..qm.method import Method, check_periodic_environment, require_method
 from ..runner import RunReport, Task, run_tasks
 from ..store import ResultStore, task_key
 
@@ -116,7 +116,9 @@ def polarizable_radius(radius_A: float, polarizable_radius_A: float | None, meth
     Raises
     ------
     InputError
-        An inner radius with a fixed-charge method or the periodic limit;
+        An inner radius with a fixed-charge method, a polarizable method
+        with the periodic limit (``kind="periodic"``: the induced dipoles are
+        not periodic);
         :class:`~clusterlab.errors.CarvingError` (an InputError) for one
         that is not a number or not between 0 and ``radius_A``.
     """
@@ -126,7 +128,7 @@ def polarizable_radius(radius_A: float, polarizable_radius_A: float | None, meth
                              "Method(environment='polarizable'); this method has fixed charges.")
         return None
     if kind == "periodic":
-        raise InputError("the periodic (Ewald) limit takes fixed charges only; use a fixed-charge method for it.")
+        check_periodic_environment(method, "cluster_task(kind='periodic')")
     if polarizable_radius_A is None:
         return float(min(radius_A, DEFAULT_POLARIZABLE_RADIUS_A))
     return check_polarizable_radius(polarizable_radius_A, radius_A)
