@@ -501,6 +501,17 @@ def test_polarizable_store_exports_polarization_columns_and_both_radii(water_fil
     assert back.metadata["method"]["dict"]["environment"] == "polarizable"
     assert column_info("IP_polarization_qm_eV")[1].startswith("polarization contribution to IP_qm_eV")
     assert back.metadata["columns"]["sites"]["qm_polarizable_radius_A"]["unit"] == "Å"
+    # the verdict of a polarizable scan judges the inner radius too: 3 Å is below an inner verdict of 4 Å
+    outer_ok = {"converged": True, "radius_A": 4.5}
+    assert not site_table(water_film, qm=sample, verdict=outer_ok).extrapolated_S1.any()
+    both = site_table(water_film, qm=sample,
+                      verdict={**outer_ok, "polarizable_converged": True, "polarizable_radius_A": 4.0})
+    on_qm = both.source_S1 == tag
+    assert both[on_qm].extrapolated_S1.all() and not both[~on_qm].extrapolated_S1.any()
+    assert both.attrs["verdict"] == {**outer_ok, "polarizable_converged": True, "polarizable_radius_A": 4.0}
+    inner_ok = site_table(water_film, qm=sample,
+                          verdict={**outer_ok, "polarizable_converged": True, "polarizable_radius_A": 3.0})
+    assert not inner_ok.extrapolated_S1.any()
     # fixed-charge QM exports as before: no polarization columns, no inner radius, plain tags
     fixed = site_table(water_film, qm=_qm_sample())
     assert not [c for c in fixed.columns if "polariz" in c]

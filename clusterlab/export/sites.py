@@ -158,8 +158,8 @@ def column_info(name: str) -> tuple[str, str]:
             (f"{q}_shift_model_eV", "eV", f"environment shift of {q} from the electrostatic model"),
             (f"unconverged_{q}", "", f"True if {q}_eV comes from a calculation that did not converge"),
             (f"extrapolated_{q}", "", f"True if {q}_eV is not a converged-radius QM value (it comes from the "
-                                      "electrostatic model, or its QM radius is below the scan verdict's "
-                                      "converged radius)"),
+                                      "electrostatic model, or its QM radius, or with a polarizable method "
+                                      "its inner radius, is below the scan verdict's converged radius)"),
             (f"source_{q}", "", f"which model produced {q}_eV: 'qm:R=<radius>A:<method key prefix>' (fixed "
                                 "charges), 'qm:R=<outer radius>A:polarizable=<inner radius>A:<method key prefix>' "
                                 "(induced dipoles within the inner radius), "
@@ -285,6 +285,19 @@ def _verdict_radius(verdict: Any) -> tuple[bool, float | None]:
     return conv, (None if r is None else float(r))
 
 
+def _inner_verdict_radius(verdict: Any) -> tuple[bool, float | None] | None:
+    """``(converged, inner radius_A)`` of a polarizable scan's inner-radius verdict (a ScanResult's
+    ``polarizable_verdict``, or a mapping's ``polarizable_converged`` / ``polarizable_radius_A``);
+    None when the verdict has none."""
+    if isinstance(verdict, Mapping):
+        if "polarizable_converged" not in verdict:
+            return None
+        r = verdict.get("polarizable_radius_A")
+        return bool(verdict["polarizable_converged"]), (None if r is None else float(r))
+    inner = getattr(verdict, "polarizable_verdict", None)
+    return None if inner is None else _verdict_radius(inner)
+
+
 def _vacuum_table(vacuum_eV: Any) -> dict[str, dict[str, float]]:
     """Per-species vacuum values {resname: {quantity: eV}} from a mapping or a StateChargeSet."""
     if vacuum_eV is None:
@@ -405,7 +418,9 @@ def site_table(
     verdict : ConvergenceVerdict, ScanResult or mapping, optional
         Radius-convergence verdict of a scan: QM values at a radius below its
         converged radius (or any QM value when it did not converge) are
-        flagged ``extrapolated``.
+        flagged ``extrapolated``. With a polarizable QM method the inner
+        radius is judged as well, by a ScanResult's ``polarizable_verdict``
+        or a mapping's ``polarizable_converged`` and ``polarizable_radius_A``.
     vacuum_eV : mapping or StateChargeSet, optional
         Vacuum values per species, ``{resname: {"S1": eV, "T1": eV, "IP": eV,
         "EA": eV}}``, or a state-charge set (its reference fits' energies).
@@ -601,6 +616,12 @@ def site_table(
             below = has_r & ~np.isinf(rad)  # the periodic limit is its own reference
         else:
             below = has_r & (rad < r_conv - 1e-9)
+    inner_verdict = _inner_verdict_radius(verdict) if verdict is not None and polarizable else None
+    if inner_verdict is not None:  # a polarizable scan's verdict covers the inner radius too
+        conv_in, r_in = inner_verdict
+        inner = out["qm_polarizable_radius_A"].to_numpy(dtype=float)
+        has_in = ~np.isnan(inner)
+        below |= has_in & ((inner < r_in - 1e-9) if conv_in and r_in is not None else True)
     unconv = np.zeros(n_rows, dtype=bool)
     extrap = np.zeros(n_rows, dtype=bool)
     for q in present:
@@ -621,6 +642,10 @@ def site_table(
     if verdict is not None:
         conv, r_conv = _verdict_radius(verdict)
         out.attrs["verdict"] = {"converged": conv, "radius_A": r_conv}
+        inner_verdict = _inner_verdict_radius(verdict)
+        if inner_verdict is not None:
+            out.attrs["verdict"].update(polarizable_converged=inner_verdict[0],
+                                        polarizable_radius_A=inner_verdict[1])
     return out
 
 

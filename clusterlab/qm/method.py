@@ -344,7 +344,6 @@ def require_method(method: Any, who: str) -> "Method":
     return method
 
 
-
 #: What works instead of a periodic embedding with induced dipoles (the one wording of the refusal).
 PERIODIC_POLARIZABLE_ALTERNATIVE = (
     "the Ewald sum makes the fixed charges periodic, but the induced dipoles are solved in one finite cluster "

@@ -130,7 +130,7 @@ class ScanResult:
         """The verdict in words, both radii when both were scanned."""
         if self.polarizable_verdict is None:
             return self.verdict.message
-        r_out = float(self.polarizable_table["radius_A"].max()) if self.polarizable_table is not None else math.nan
+        r_out = float(self.polarizable_table["radius_A"].max())  # the inner series' one outer radius
         return f"{self.verdict.message}; {self.polarizable_verdict.message} (at outer radius {r_out:g} Å)"
 
     def plot(self, **kw: Any):
