@@ -18,6 +18,7 @@ from clusterlab.geometry import dihedral_deg
 from clusterlab.qm.results import ExcitationResult, ExcitedState
 from clusterlab.report import ReportWriter, doped_section
 from clusterlab.stats import mean_offset, periodic_fit
+from clusterlab.store import ResultStore, task_key
 from clusterlab.study import SiteSample
 from clusterlab.study.doped import (ConfinementResult, HostGuestOverview, MissingNeighboursError, SpeciesEnergies,
                                     StateOrderResult, TorsionResult, dest_torsion, host_guest_overview,
@@ -119,6 +120,8 @@ def test_species_energies_bad_input(film):
         species_energies(t.drop(columns="species"))
     with pytest.raises(InputError, match="more than once"):
         species_energies(pd.concat([t, t]))
+    with pytest.raises(InputError, match="needs a SiteSample or a site table"):
+        species_energies([1, 2])
     with pytest.raises(InputError, match="at least 2 finite values"):
         mean_offset([1.0], [1.0, 2.0])
 
@@ -346,7 +349,7 @@ def test_old_result_json_without_vacuum_ct_distance_loads():
     assert "vacuum_ct_distance_A" in back.to_frame().columns
 
 
-def test_real_calculation_keeps_the_vacuum_ct_distance():
+def test_real_calculation_keeps_the_vacuum_ct_distance(tmp_path):
     water = TIP3P_XYZ - TIP3P_XYZ.mean(0)
     method = Method(xc="hf", basis="sto-3g", n_singlets=2, n_triplets=2, density_fit=False)
     vac_only = excitations(Cluster.from_arrays(["O", "H", "H"], water), method)
@@ -364,6 +367,18 @@ def test_real_calculation_keeps_the_vacuum_ct_distance():
     assert back.to_json() == emb.to_json()
     res = state_order(state_table([emb]))
     assert res.summary()["n_sites"] == 1 and res.sites["S1_character"].iloc[0] in ("CT", "local")
+    # the same rows come back from a result store
+    path = tmp_path / "s.sqlite"
+    with ResultStore(path) as st:
+        k = task_key(frame=0, molecule=0, radius_A=emb.radius_A, kind="excitations")
+        st.put(k, {"kind": "excitations"}, emb.to_json(),
+               {"frame": 0, "molecule": 0, "radius_A": emb.radius_A, **emb.summary()})
+    rows = state_table(path)
+    expect = emb.to_frame()
+    expect = expect[expect["kind"].isin(["singlet", "triplet"])].reset_index(drop=True)
+    pd.testing.assert_frame_equal(rows, expect)
+    with pytest.raises(InputError, match="needs ExcitationResult"):
+        state_table([1])
 
 
 # ----------------------------------------------------------- overview/report

@@ -47,6 +47,7 @@ from ..geometry import dihedral_deg
 from ..qm.results import ExcitationResult
 from ..stats import conformational_environmental, disorder_stats, mean_offset, periodic_fit
 from ..store import ResultStore
+from .filmmodel import FilmModelResult
 from .jsonio import json_of_kind, table_from_dict, table_to_dict
 from .sample import SiteSample, site_table
 
@@ -83,7 +84,7 @@ def _sites(sites: Any, *, radius_A: float | None, film: Film | None, what: str) 
         df = sites.at(radius_A) if len(sites.table) else sites.table
     elif isinstance(sites, pd.DataFrame):
         df = SiteSample(table=sites).at(radius_A) if "radius_A" in sites.columns and len(sites) else sites
-    elif hasattr(sites, "charges") and hasattr(sites, "table"):
+    elif isinstance(sites, FilmModelResult):
         raise InputError(f"{what}: a film model result holds environment shifts only; give absolute site "
                          "energies, e.g. clusterlab.export.sites.site_table(film, model=result, vacuum_eV=...).")
     else:
