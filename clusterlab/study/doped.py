@@ -43,7 +43,7 @@ import pandas as pd
 
 from ..errors import InputError
 from ..film import Film
-from ..geometry import dihedral_deg
+from ..geometry import box_vectors, dihedral_deg, perpendicular_widths
 from ..qm.results import ExcitationResult
 from ..stats import conformational_environmental, disorder_stats, mean_offset, periodic_fit
 from ..store import ResultStore
@@ -497,8 +497,6 @@ def triplet_confinement(film: Film, sites: Any, *, cutoff_A: float, host: str | 
 
 
 def _min_width_A(box: Any) -> float:
-    from ..geometry import box_vectors, perpendicular_widths
-
     return float(perpendicular_widths(box_vectors(box)).min())
 
 
