@@ -37,8 +37,32 @@ from .stats import (
     static_dynamic,
 )
 from .store import ResultStore
-from .study import SiteSample, ScanResult, radius_scan, sample_sites
-from .study.plots import plot_convergence, plot_correlation, plot_growth, plot_histogram, plot_parity
+from .study import (
+    ConfinementResult,
+    HostGuestOverview,
+    ScanResult,
+    SiteSample,
+    SpeciesEnergies,
+    StateOrderResult,
+    TorsionResult,
+    dest_torsion,
+    host_guest_overview,
+    radius_scan,
+    sample_sites,
+    species_energies,
+    state_order,
+    state_table,
+    torsion_table,
+    triplet_confinement,
+)
+from .study.plots import (
+    plot_convergence,
+    plot_correlation,
+    plot_growth,
+    plot_histogram,
+    plot_parity,
+    plot_torsion,
+)
 from .errors import (
     CalculationError,
     CarvingError,
@@ -86,6 +110,19 @@ __all__ = [
     "plot_growth",
     "plot_correlation",
     "plot_parity",
+    "plot_torsion",
+    "species_energies",
+    "SpeciesEnergies",
+    "triplet_confinement",
+    "ConfinementResult",
+    "torsion_table",
+    "dest_torsion",
+    "TorsionResult",
+    "state_table",
+    "state_order",
+    "StateOrderResult",
+    "host_guest_overview",
+    "HostGuestOverview",
     "ClusterlabError",
     "InputError",
     "ProvenanceError",

@@ -91,7 +91,8 @@ class Film:
     molecules : pandas.DataFrame
         One row per molecule: ``molecule`` (0-based id), ``resname``,
         ``resid``, ``n_atoms``, ``charge`` (net, e; NaN when no charges are
-        available), ``formula`` (Hill order).
+        available), ``formula`` (Hill order), ``species`` (the molecule's
+        kind; today its resname).
     molecule_kind : {"fragments", "residues"}
         How molecules were defined.
     symbols : ndarray of str, (n_atoms,)
@@ -329,6 +330,7 @@ class Film:
         return pd.DataFrame({
             "molecule": np.arange(n_mol), "resname": resnames, "resid": resids,
             "n_atoms": self.index.sizes(), "charge": net, "formula": formulas,
+            "species": resnames,
         })
 
     def select(self, selection: str | Sequence[int] | None = None) -> npt.NDArray[np.int64]:

@@ -223,3 +223,51 @@ def unwrap_over_frames(
         else:
             out[f] = out[f - 1] + minimum_image(p[f] - p[f - 1], boxes[f])
     return out
+
+
+def dihedral_deg(p0_A: npt.ArrayLike, p1_A: npt.ArrayLike, p2_A: npt.ArrayLike, p3_A: npt.ArrayLike) -> FloatArray:
+    """Dihedral angle of the atom chains p0-p1-p2-p3, degrees in (-180, 180].
+
+    IUPAC sign convention (IUPAC Gold Book, "torsion angle"): looking along
+    p1 -> p2, positive when the bond p2-p3 is turned clockwise from p1-p0.
+    Computed as ``atan2(|b2| b1·(b2×b3), (b1×b2)·(b2×b3))`` with
+    ``b1 = p1 - p0``, ``b2 = p2 - p1``, ``b3 = p3 - p2`` (Blondel & Karplus,
+    J. Comput. Chem. 17, 1132 (1996)). The points are taken as they are (whole
+    molecules): no periodic images.
+
+    Parameters
+    ----------
+    p0_A, p1_A, p2_A, p3_A : array_like, shape (n, 3) or (3,), Å
+
+    Returns
+    -------
+    ndarray, shape (n,), degrees
+
+    Raises
+    ------
+    InputError
+        For mismatched shapes, non-finite points, or a chain with a zero bond
+        or three collinear points (the angle is undefined).
+
+    Examples
+    --------
+    >>> dihedral_deg([1, 0, 0], [0, 0, 0], [0, 0, 1], [0, 1, 1]).round(6).tolist()
+    [90.0]
+    """
+    pts = [np.atleast_2d(np.asarray(p, dtype=np.float64)) for p in (p0_A, p1_A, p2_A, p3_A)]
+    shape = pts[0].shape
+    if len(shape) != 2 or shape[1] != 3 or any(p.shape != shape for p in pts):
+        raise InputError(f"dihedral_deg needs four arrays of shape (n, 3); got {[p.shape for p in pts]}.")
+    if not all(np.all(np.isfinite(p)) for p in pts):
+        raise InputError("dihedral_deg: the points must be finite.")
+    b1, b2, b3 = pts[1] - pts[0], pts[2] - pts[1], pts[3] - pts[2]
+    n1, n2 = np.cross(b1, b2), np.cross(b2, b3)
+    scale = np.linalg.norm(b1, axis=1) * np.linalg.norm(b2, axis=1) ** 2 * np.linalg.norm(b3, axis=1)
+    degenerate = (np.linalg.norm(n1, axis=1) * np.linalg.norm(n2, axis=1)) <= 1e-12 * np.maximum(scale, 1e-300)
+    if np.any(degenerate):
+        raise InputError(f"dihedral_deg: chain(s) {np.flatnonzero(degenerate)[:10].tolist()} have a zero bond or "
+                         "three collinear points; their dihedral angle is undefined.")
+    y = np.linalg.norm(b2, axis=1) * np.einsum("ij,ij->i", b1, n2)
+    x = np.einsum("ij,ij->i", n1, n2)
+    out = np.degrees(np.arctan2(y, x))
+    return np.where(out <= -180.0, out + 360.0, out)

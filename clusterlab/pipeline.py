@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 from .film import Film, load_film
-from .report import ReportWriter, model_section, sample_section, scan_section
+from .report import ReportWriter, doped_section, model_section, sample_section, scan_section
 from .store import ResultStore
 from .studyfile import method_from_study, xc_basis
 
@@ -106,6 +106,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
             rep.text("Failed sites: " + "; ".join(outcome.sample.failures[:10]))
         if len(outcome.sample.table):
             stats = sample_section(rep, outcome.sample, list(s["quantities"]))
+            doped_section(rep, film, outcome.sample, states=store)  # nothing for a one-species film
             for r in stats.itertuples(index=False):
                 echo(f"  {r.quantity}: mean {r.mean_eV:.3f} eV, σ {r.sigma_eV * 1e3:.0f} meV "
                      f"[{r.sigma_lo_eV * 1e3:.0f}, {r.sigma_hi_eV * 1e3:.0f}] (95 % CI), n={r.n}")

@@ -192,3 +192,62 @@ def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None 
 def write_lines(rep: ReportWriter, title: str, lines: list[str]) -> None:
     rep.section(title)
     rep.text("\n".join(f"- {x}" for x in lines))
+
+
+
+def doped_section(rep: ReportWriter, film: Any, sites: Any, *, states: Any = None,
+                  torsion_atoms: dict[str, Any] | None = None, cutoff_A: float | None = None,
+                  n_boot: int = 2000) -> Any:
+    """Host:guest section: per-species table, trap depths, triplet confinement,
+    ΔEST against the torsion and the state order, as far as the data go.
+
+    A formatting layer over :func:`clusterlab.study.doped.host_guest_overview`
+    (the arguments are its own). Writes nothing and returns None for a film
+    of one species; else returns the overview.
+    """
+    from .study.doped import host_guest_overview
+    from .study.plots import plot_torsion
+
+    try:
+        ov = host_guest_overview(film, sites, cutoff_A=cutoff_A, torsion_atoms=torsion_atoms, states=states,
+                                 n_boot=n_boot)
+    except InputError as exc:
+        rep.section("Host:guest film", f"(not shown: {exc})")
+        return None
+    if ov is None:
+        return None
+    se = ov.species
+    counts = film.molecules["species"].astype(str).value_counts()
+    rep.section(f"Host:guest film (host {se.host}, {counts.get(se.host, 0)} molecules; guest {se.guest}, "
+                f"{counts.get(se.guest, 0)} molecules)",
+                "Per-species site energies (95 % bootstrap intervals). Trap depths: hole = IP_host − IP_guest, "
+                "electron = EA_guest − EA_host (IP = E(cation) − E(neutral), EA = E(neutral) − E(anion)); "
+                "positive = the guest traps that carrier. Vertical energies of the embedding model.")
+    rep.table(se.stats, ["species", "quantity", "n", "mean_eV", "sigma_eV", "sigma_lo_eV", "sigma_hi_eV"])
+    if len(se.traps):
+        rep.table(se.traps, ["carrier", "definition", "depth_eV", "depth_lo_eV", "depth_hi_eV", "spread_eV",
+                             "n_host", "n_guest"])
+    else:
+        rep.text("(no trap depths: the sites have no IP/EA values of both species)")
+    if ov.confinement is not None:
+        s = ov.confinement.summary()
+        rep.text(f"Triplet confinement: {_fmt(100 * s['confined_fraction'], 1)} % of {s['n_guest_sites']} guest "
+                 f"sites have T1 below every host neighbour within {s['cutoff_A']:.2f} Å (margin "
+                 f"T1_host,min − T1_guest: mean {_fmt(s['margin_mean_eV'])} eV, σ {_fmt(s['margin_sigma_eV'])} eV, "
+                 f"min {_fmt(s['margin_min_eV'])} eV).")
+    if ov.torsion is not None:
+        rep.table(ov.torsion.fits, ["species", "n", "var_dEST_eV2", "torsion_fraction", "sigma_torsion_eV",
+                                    "conformational_fraction"], nd=4)
+        rep.figure(plot_torsion(ov.torsion), "dest_torsion.png", "ΔEST and hole–electron distance vs torsion")
+    if ov.state_order is not None:
+        so = ov.state_order
+        s = so.summary()
+        rep.text(f"State order (CT when the hole–electron distance exceeds {so.threshold_A:g} Å): S1 changes "
+                 f"character between vacuum and embedding at {s['n_S1_reordered']} of {s['n_sites']} sites, "
+                 f"T1 at {s['n_T1_reordered']}.")
+        if len(so.flagged()):
+            rep.table(so.flagged().head(20), ["frame", "molecule", "species", "S1_vacuum_character", "S1_character",
+                                              "T1_vacuum_character", "T1_character"])
+    if ov.notes:
+        rep.text("Notes: " + "; ".join(ov.notes) + ".")
+    return ov

@@ -32,6 +32,8 @@ __all__ = [
     "spatial_correlation",
     "converged_radius",
     "ConvergenceVerdict",
+    "mean_offset",
+    "periodic_fit",
 ]
 
 #: Above this sample size the normality test switches from Shapiro-Wilk to
@@ -817,3 +819,149 @@ def converged_radius(
         radius_by_quantity=radius_by,
     )
 
+
+
+# --------------------------------------------------------------------------
+# 5. two-sample offsets and fits against an angle
+# --------------------------------------------------------------------------
+def mean_offset(
+    first: npt.ArrayLike,
+    second: npt.ArrayLike,
+    *,
+    n_boot: int = 2000,
+    seed: int | np.random.Generator | None = None,
+    confidence: float = 0.95,
+) -> pd.Series:
+    """Offset ``mean(first) - mean(second)`` of two independent samples, with
+    its spread and a bootstrap interval.
+
+    Parameters
+    ----------
+    first, second : array_like, shape (n,) and (m,), energy
+        The two samples (e.g. host and guest site energies). NaN values are
+        dropped.
+    n_boot : int, default 2000
+        Bootstrap resamples; each sample is resampled on its own (stratified
+        bootstrap: the two samples are independent).
+    seed : int, numpy.random.Generator or None
+    confidence : float, default 0.95
+
+    Returns
+    -------
+    pandas.Series
+        ``offset`` (difference of the means), ``offset_lo``, ``offset_hi``
+        (percentile bootstrap interval), ``spread`` = sqrt(σ1² + σ2²) (ddof=1):
+        the standard deviation of the difference between a random member of
+        ``first`` and a random member of ``second``, ``n_first``,
+        ``n_second``, ``confidence``, ``n_boot``. Unit of the input.
+
+    Raises
+    ------
+    InputError
+        If either sample has fewer than 2 finite values, or ``n_boot`` or
+        ``confidence`` is invalid.
+
+    Examples
+    --------
+    >>> s = mean_offset([5.0, 5.0, 5.0], [4.7, 4.7], seed=0)
+    >>> round(float(s["offset"]), 12), round(float(s["offset_lo"]), 12)
+    (0.3, 0.3)
+    """
+    a = _as_1d_float(first, "first")
+    b = _as_1d_float(second, "second")
+    a, b = a[np.isfinite(a)], b[np.isfinite(b)]
+    confidence = _check_confidence(confidence)
+    if isinstance(n_boot, (bool, np.bool_)) or not isinstance(n_boot, (int, np.integer)) or n_boot < 100:
+        raise InputError(f"n_boot={n_boot!r} is invalid; use an integer of at least 100 (default 2000)")
+    if a.size < 2 or b.size < 2:
+        raise InputError(f"mean_offset needs at least 2 finite values in each sample; got {a.size} and {b.size}")
+    rng = np.random.default_rng(seed)
+    boot = np.empty(int(n_boot))
+    rows = max(1, _BOOT_BLOCK // max(a.size, b.size))
+    for start in range(0, int(n_boot), rows):
+        k = min(rows, int(n_boot) - start)
+        boot[start:start + k] = (a[rng.integers(0, a.size, size=(k, a.size))].mean(axis=1)
+                                 - b[rng.integers(0, b.size, size=(k, b.size))].mean(axis=1))
+    alpha = 0.5 * (1.0 - confidence)
+    lo, hi = np.quantile(boot, [alpha, 1.0 - alpha])
+    offset = float(a.mean() - b.mean())
+    if np.ptp(boot) <= 1e-12 * max(1.0, abs(offset)):  # constant samples: the interval is the value
+        lo = hi = offset
+    return pd.Series({
+        "offset": offset, "offset_lo": float(lo), "offset_hi": float(hi),
+        "spread": math.sqrt(float(np.var(a, ddof=1)) + float(np.var(b, ddof=1))),
+        "n_first": int(a.size), "n_second": int(b.size), "confidence": confidence, "n_boot": int(n_boot),
+    }, dtype=object)
+
+
+def periodic_fit(
+    angle_deg: npt.ArrayLike,
+    values: npt.ArrayLike,
+    *,
+    n_harmonics: int = 2,
+) -> pd.Series:
+    """Least-squares Fourier series of ``values`` in an angle, and the fraction
+    of their variance it explains.
+
+    ``y(θ) = c0 + Σ_k (a_k cos kθ + b_k sin kθ)``, k = 1..``n_harmonics``: a
+    smooth, periodic function of a torsion. The explained fraction
+    R² = 1 - SS_res/SS_tot is the part of the variance of ``values`` that a
+    smooth dependence on the angle accounts for; ``r2_adjusted`` corrects it
+    for the number of fitted terms p: 1 - (1 - R²)(n - 1)/(n - p), an
+    (almost) unbiased estimate of the population fraction.
+
+    Parameters
+    ----------
+    angle_deg : array_like, shape (n,), degrees
+    values : array_like, shape (n,)
+        Rows with NaN in either are dropped.
+    n_harmonics : int, default 2
+
+    Returns
+    -------
+    pandas.Series
+        ``n``, ``n_harmonics``, ``variance`` (ddof=1, unit² of values),
+        ``r2``, ``r2_adjusted``, ``explained_variance`` (r2_adjusted ×
+        variance, floored at 0), ``residual_sigma`` (ddof = n - p),
+        ``coefficients`` (list: c0, a1, b1, a2, b2, ...).
+
+    Raises
+    ------
+    InputError
+        On mismatched shapes, a bad ``n_harmonics``, or too few rows
+        (at least 2 n_harmonics + 3).
+
+    Examples
+    --------
+    >>> th = np.linspace(0.0, 360.0, 24, endpoint=False)
+    >>> round(float(periodic_fit(th, np.cos(np.radians(2 * th)))["r2"]), 12)
+    1.0
+    """
+    th = _as_1d_float(angle_deg, "angle_deg")
+    y = _as_1d_float(values)
+    if th.size != y.size:
+        raise InputError(f"angle_deg has {th.size} values but values has {y.size}; give one angle per value")
+    if isinstance(n_harmonics, (bool, np.bool_)) or not isinstance(n_harmonics, (int, np.integer)) or n_harmonics < 1:
+        raise InputError(f"n_harmonics={n_harmonics!r} is invalid; use a positive integer (default 2)")
+    ok = np.isfinite(th) & np.isfinite(y)
+    th, y = np.radians(th[ok]), y[ok]
+    p = 2 * int(n_harmonics) + 1
+    n = y.size
+    if n < p + 2:
+        raise InputError(f"periodic_fit with {n_harmonics} harmonic(s) needs at least {p + 2} complete rows; got {n}")
+    cols = [np.ones(n)]
+    for k in range(1, int(n_harmonics) + 1):
+        cols += [np.cos(k * th), np.sin(k * th)]
+    design = np.column_stack(cols)
+    coef, *_ = np.linalg.lstsq(design, y, rcond=None)
+    res = y - design @ coef
+    ss_res = float(res @ res)
+    ss_tot = float(np.sum((y - y.mean()) ** 2))
+    var = ss_tot / (n - 1)
+    r2 = 1.0 - ss_res / ss_tot if ss_tot > 0 else float("nan")
+    r2_adj = 1.0 - (1.0 - r2) * (n - 1) / (n - p) if ss_tot > 0 else float("nan")
+    return pd.Series({
+        "n": int(n), "n_harmonics": int(n_harmonics), "variance": var, "r2": r2, "r2_adjusted": r2_adj,
+        "explained_variance": max(r2_adj, 0.0) * var if ss_tot > 0 else float("nan"),
+        "residual_sigma": math.sqrt(ss_res / (n - p)), "coefficients": [float(c) for c in coef],
+    }, dtype=object)

@@ -464,6 +464,46 @@ def test_disorder_errors_reach_the_output(film, tmp_path, monkeypatch):
         DisorderPanel(film, show_view=False).export(tmp_path / "e.csv")
 
 
+def _host_guest_film(guests=(0, 21)):
+    """The 4x4x4 water lattice (4 Å spacing) with resname GST at ``guests`` and HST elsewhere."""
+    u, _ = build_water_universe(lattice_centres(4, 0.0, np.random.default_rng(0)), BOX, seed=1)
+    names = np.array(["HST"] * 64, dtype=object)
+    names[list(guests)] = "GST"
+    u.residues.resnames = names
+    return film_from_universe(u)
+
+
+def test_disorder_host_guest_tab_shows_the_library_overview(tmp_path):
+    from clusterlab.study.doped import host_guest_overview
+
+    film2 = _host_guest_film()
+    guest = film2.molecules["species"].to_numpy() == "GST"
+    rng = np.random.default_rng(8)
+    t1 = np.full(64, 3.0)
+    t1[48], t1[0], t1[21] = 2.70, 2.75, 2.80  # guest 0 sees 48 across the box face; guest 21 is confined
+    df = pd.DataFrame({"frame": 0, "molecule": np.arange(64), "radius_A": 8.0, "converged": True,
+                       "S1_eV": 3.2 + rng.normal(0, 0.03, 64), "T1_eV": t1,
+                       "IP_eV": np.where(guest, 5.7, 6.0), "EA_eV": np.where(guest, 2.6, 2.5)})
+    dp = DisorderPanel(film2, show_view=False, neighbour_cutoff_A=4.5)
+    assert dp.tabs.get_title(5) == "host:guest" and len(dp.tabs.children) == 6
+    dp.load(df)
+    assert dp.error == "", dp.errors.outputs
+    # what the tab shows is the library's overview of the shown sites
+    ref = host_guest_overview(film2, df, cutoff_A=4.5, seed=0)
+    assert dp.overview.to_json() == ref.to_json()
+    assert dp.overview.species.trap_depth_eV("hole") == pytest.approx(0.3, abs=1e-12)
+    assert dp.overview.confinement.fraction == 0.5
+    assert "trap depths" in dp.doped_html.value and "50.0 % of 2 guest sites" in dp.doped_html.value
+    assert dp.torsion_plot.value == b""  # no torsion atoms given
+
+
+def test_disorder_one_species_film_has_no_host_guest_tab(film):
+    dp = DisorderPanel(film, show_view=False)
+    assert len(dp.tabs.children) == 5 and dp.doped_html is None
+    dp.load(pd.DataFrame({"frame": 0, "molecule": np.arange(8), "radius_A": 8.0, "S1_eV": np.linspace(3, 3.1, 8)}))
+    assert dp.error == "" and dp.overview is None
+
+
 # ------------------------------------------------------- the real library
 def test_panels_run_the_real_library(film, tmp_path):
     """Default scan/sample functions on a tiny water film (B3LYP/STO-3G, 1+1 states)."""

@@ -150,6 +150,9 @@ def _states_to_records(emb: Calculation, vac: Calculation | None,
             if vrs is not None and i < vrs.n_states:
                 rec.vacuum_eV = float(vrs.energies_Eh[i] * HARTREE_TO_EV)
                 rec.shift_eV = rec.energy_eV - rec.vacuum_eV
+                vct = vac.ct.get(kind)
+                if vct is not None and i < len(vct[0]):
+                    rec.vacuum_ct_distance_A = float(vct[0][i])
                 rec.converged = rec.converged and bool(vrs.converged[i])
             if match is not None and match[i] >= 0:
                 j = int(match[i])

@@ -42,6 +42,9 @@ class ExcitedState:
         Hole-electron centroid distance (Head-Gordon et al. 1995 densities).
     ct_lambda : float
         Peach et al. (2008) orbital-overlap diagnostic.
+    vacuum_ct_distance_A : float
+        ``ct_distance_A`` of the same-index state in vacuum (nan without a
+        vacuum calculation, and in results written before it was kept).
     converged : bool
     followed_vacuum_state : str
         Vacuum state matched to this one by transition-density overlap.
@@ -70,6 +73,7 @@ class ExcitedState:
     followed_shift_eV: float = NAN
     fixed_charges_eV: float = NAN
     polarization_eV: float = NAN
+    vacuum_ct_distance_A: float = NAN
 
 
 #: Extra columns of the tables of a polarizable result.
@@ -296,6 +300,8 @@ class ExcitationResult:
             "T1_shift_eV": g(t1, "shift_eV"),
             "dEST_eV": self.delta_est_eV,
             "dEST_vacuum_eV": (s1.vacuum_eV - t1.vacuum_eV) if (s1 and t1) else NAN,
+            "S1_ct_distance_A": g(s1, "ct_distance_A"), "S1_vacuum_ct_distance_A": g(s1, "vacuum_ct_distance_A"),
+            "T1_ct_distance_A": g(t1, "ct_distance_A"), "T1_vacuum_ct_distance_A": g(t1, "vacuum_ct_distance_A"),
             "S1_followed_eV": g(fs1, "energy_eV"), "S1_followed_shift_eV": g(fs1, "followed_shift_eV"),
             "S1_follow_overlap": g(fs1, "follow_overlap"),
             "scf_energy_Eh": self.scf_energy_Eh,
@@ -327,7 +333,7 @@ class ExcitationResult:
             rows.append({**base, **d, "mu_x_D": mu[0], "mu_y_D": mu[1], "mu_z_D": mu[2]})
         cols = ["frame", "molecule", "radius_A", "n_charges", "state", "kind", "energy_eV", "vacuum_eV",
                 "shift_eV", "osc_strength", "converged", "followed_vacuum_state", "follow_overlap",
-                "followed_shift_eV", "ct_distance_A", "ct_lambda", "pairs", "mu_x_D", "mu_y_D", "mu_z_D"]
+                "followed_shift_eV", "ct_distance_A", "vacuum_ct_distance_A", "ct_lambda", "pairs", "mu_x_D", "mu_y_D", "mu_z_D"]
         if self.environment == "polarizable":
             cols += list(POLARIZATION_COLUMNS)
             cols.insert(cols.index("radius_A") + 1, "polarizable_radius_A")

@@ -32,6 +32,7 @@ __all__ = [
     "plot_growth",
     "plot_correlation",
     "plot_parity",
+    "plot_torsion",
 ]
 
 #: Colour-blind-safe colours (Okabe & Ito 2008), in the order used.
@@ -372,3 +373,48 @@ def plot_parity(
     ax.legend(fontsize="small", loc="lower right")
     return fig
 
+
+
+def plot_torsion(result, *, species: str | None = None) -> Figure:
+    """ΔEST and the hole-electron distance of each copy against its torsion.
+
+    Parameters
+    ----------
+    result : clusterlab.study.doped.TorsionResult
+    species : str, optional
+        One species (default: every species of the result, one colour each).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Top: ΔEST (meV) per copy with the fitted smooth curve; bottom (when
+        the result has them): the S1 and T1 hole-electron distances (Å).
+    """
+    t = result.table
+    _need(t, ["species", "torsion_deg", "dEST_eV"], "plot_torsion")
+    names = sorted(t["species"].unique()) if species is None else [species]
+    if species is not None and species not in set(t["species"]):
+        raise InputError(f"species={species!r} is not in the result; it has {sorted(t['species'].unique())}")
+    ct_cols = [c for c in ("S1_ct_distance_A", "T1_ct_distance_A") if c in t.columns and t[c].notna().any()]
+    fig = Figure(figsize=(5.4, 5.6 if ct_cols else 3.6), layout="constrained")
+    axes = fig.subplots(2 if ct_cols else 1, 1, sharex=True, squeeze=False)[:, 0]
+    for i, sp in enumerate(names):
+        sub = t[t["species"] == sp]
+        colour = PALETTE[i % len(PALETTE)]
+        axes[0].scatter(sub["torsion_deg"], 1e3 * sub["dEST_eV"].astype(float), s=14, color=colour,
+                        label=f"{sp} (n={len(sub)})")
+        if sp in set(result.fits["species"]):
+            th, y = result.curve(sp)
+            frac = float(result.fits.loc[result.fits["species"] == sp, "torsion_fraction"].iloc[0])
+            axes[0].plot(th, 1e3 * y, color=colour, lw=1.2, label=f"{sp} fit: {100 * frac:.0f} % of var")
+        for c, marker in zip(ct_cols, ("o", "^")):
+            axes[1].scatter(sub["torsion_deg"], sub[c].astype(float), s=14, color=colour, marker=marker,
+                            label=f"{sp} {c.split('_')[0]}")
+    axes[0].set_ylabel("ΔEST = S1 − T1 (meV)")
+    axes[0].legend(fontsize="small")
+    if ct_cols:
+        axes[1].set_ylabel("hole–electron distance (Å)")
+        axes[1].legend(fontsize="small")
+    axes[-1].set_xlabel("torsion (degrees)")
+    axes[-1].set_xlim(-180, 180)
+    return fig

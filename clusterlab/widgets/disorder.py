@@ -6,8 +6,10 @@ A thin layer over :func:`clusterlab.sample_sites`,
 :mod:`clusterlab.study.plots`: it gathers settings, runs the sample in a
 worker thread, and draws what the library computes (histogram with the
 Gaussian fit and confidence intervals, mean and σ against radius, site
-energies on the 3D film, the spatial correlation). Export writes the
-table as CSV.
+energies on the 3D film, the spatial correlation). For a film of two or more
+species a "host:guest" tab shows :func:`clusterlab.study.doped.host_guest_overview`
+(per-species table, trap depths, triplet confinement, ΔEST against the
+torsion, state order). Export writes the table as CSV.
 """
 
 from __future__ import annotations
@@ -17,7 +19,7 @@ import os
 import threading
 import time
 import traceback
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import ipywidgets as widgets
@@ -30,7 +32,8 @@ from ..errors import InputError
 from ..ranges import parse_frames, parse_radii
 from ..stats import disorder_stats, spatial_correlation
 from ..store import ResultStore
-from ..study.plots import plot_correlation, plot_growth, plot_histogram
+from ..study.doped import host_guest_overview, n_species
+from ..study.plots import plot_correlation, plot_growth, plot_histogram, plot_torsion
 from ..study.sample import CENTROID_COLUMNS, SiteSample, choose_molecules, sample_sites, site_table
 from ..export import export_study
 from ._controls import Radii, format_radii, link_radii
@@ -65,6 +68,12 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         Seed of the molecule subset and the bootstrap intervals.
     show_view : bool, default True
         Build the 3D site-energy view.
+    torsion_atoms : mapping species -> 4 ints, optional
+        Atoms (indices within the molecule) of the donor-acceptor torsion for
+        the host:guest tab (see :func:`clusterlab.study.doped.dest_torsion`).
+    neighbour_cutoff_A : float, optional
+        Host-neighbour distance of the triplet confinement (default: the
+        library's, capped at half the box).
 
     Traits
     ------
@@ -87,6 +96,11 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
     errors : ipywidgets.Output
     hist_plot, growth_plot, corr_plot : ipywidgets.Image
     view : nglview.NGLWidget or None
+    overview : HostGuestOverview or None
+        What the host:guest tab shows (None for a one-species film).
+    doped_html : ipywidgets.HTML or None
+        The host:guest tab's tables (None for a one-species film).
+    torsion_plot : ipywidgets.Image or None
     """
 
     radii_A = Radii((10.0,))
@@ -98,8 +112,14 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
                  radii_A: Sequence[float] = (10.0,), preset: str = "draft", basis: str = "",
                  n_singlets: int | None = None, n_triplets: int | None = None,
                  store: str = "clusterlab_sites.sqlite", runner: str = "serial", seed: int = 0,
-                 show_view: bool = True, **kwargs: Any) -> None:
+                 show_view: bool = True, torsion_atoms: Mapping[str, Sequence[int]] | None = None,
+                 neighbour_cutoff_A: float | None = None, **kwargs: Any) -> None:
         self.film = film
+        self.torsion_atoms = dict(torsion_atoms) if torsion_atoms else None
+        self.neighbour_cutoff_A = neighbour_cutoff_A
+        self.overview: Any = None
+        #: where the per-state data of the shown sites are (a store path), for the state order
+        self.states_source: Any = None
         self.data = pd.DataFrame()
         self.rows: list[dict] = []
         self.result: Any = None
@@ -175,14 +195,23 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self.view._set_size("100%", "420px")
             scene.append(self.view)
 
-        self.tabs = widgets.Tab(children=[
+        tabs: list[widgets.Widget] = [
             widgets.HBox([self.hist_plot, self.stats_html]),
             widgets.VBox([self.growth_note, self.growth_plot]),
             widgets.VBox(scene),
             widgets.VBox([self.corr_note, self.corr_plot]),
             self.table_html,
-        ])
-        for i, t in enumerate(["histogram", "σ and mean vs radius", "on the film", "spatial correlation", "table"]):
+        ]
+        titles = ["histogram", "σ and mean vs radius", "on the film", "spatial correlation", "table"]
+        self.doped_html: widgets.HTML | None = None
+        self.torsion_plot: widgets.Image | None = None
+        if n_species(film) >= 2:
+            self.doped_html = widgets.HTML()
+            self.torsion_plot = widgets.Image(format="png", layout=w(max_width="560px"))
+            tabs.append(widgets.VBox([self.doped_html, self.torsion_plot]))
+            titles.append("host:guest")
+        self.tabs = widgets.Tab(children=tabs)
+        for i, t in enumerate(titles):
             self.tabs.set_title(i, t)
 
         self.run_button.on_click(self._on_run_click)
@@ -284,6 +313,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
                 self._fail(exc)
         else:
             table = getattr(res, "table", None)
+            self.states_source = s["store"]
             if isinstance(table, pd.DataFrame) and len(table):
                 self.set_data(table)
             elif self.rows:
@@ -331,6 +361,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             else:
                 path = os.fspath(source) if source is not None else self.store.value.strip()
                 df = site_table(path, film=self.film)
+                self.states_source = path
             self.set_data(df)
             self._set_status(f"loaded {len(df)} site energies", "ok")
         except Exception as exc:  # noqa: BLE001
@@ -390,7 +421,10 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             return
         sub = self._subset()
         vals = pd.to_numeric(sub[q], errors="coerce").to_numpy(dtype=float)
-        for step in (self._draw_histogram, self._draw_growth, self._draw_correlation):
+        steps = [self._draw_histogram, self._draw_growth, self._draw_correlation]
+        if self.doped_html is not None:
+            steps.append(self._draw_doped)
+        for step in steps:
             try:
                 step(q, sub, vals)
             except Exception as exc:  # noqa: BLE001 - one failed plot must not hide the others
@@ -446,6 +480,33 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.corr_note.value = (f"<span>{html.escape(q)}, {int(ok.sum())} sites; bins with at least "
                                 f"{self.min_pairs} pairs drawn</span>")
         self.corr_plot.value = _style.figure_png(plot_correlation(self.correlation, min_pairs=self.min_pairs))
+
+    def _draw_doped(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
+        """The host:guest tab: formats :func:`clusterlab.study.doped.host_guest_overview` of the shown sites."""
+        if self.doped_html is None or self.torsion_plot is None:  # a one-species film has no such tab
+            return
+        self.overview = host_guest_overview(self.film, sub, cutoff_A=self.neighbour_cutoff_A,
+                                            torsion_atoms=self.torsion_atoms, states=self.states_source,
+                                            seed=int(self.seed.value))
+        ov = self.overview
+        parts = [f"<b>host {html.escape(ov.species.host)}, guest {html.escape(ov.species.guest)}</b>",
+                 frame_html(ov.species.stats)]
+        if len(ov.species.traps):
+            parts += ["<b>trap depths</b> (hole = IP_host − IP_guest, electron = EA_guest − EA_host; "
+                      "positive: the guest traps)", frame_html(ov.species.traps)]
+        if ov.confinement is not None:
+            c = ov.confinement.summary()
+            parts.append(f'<div class="clusterlab-confinement">triplet confinement: '
+                         f'{100 * c["confined_fraction"]:.1f} % of {c["n_guest_sites"]} guest sites below every '
+                         f'host neighbour within {c["cutoff_A"]:.2f} Å (mean margin {c["margin_mean_eV"]:.3f} eV)'
+                         '</div>')
+        if ov.state_order is not None:
+            so = ov.state_order.summary()
+            parts.append(f"state order: S1 changes character at {so['n_S1_reordered']} of {so['n_sites']} sites, "
+                         f"T1 at {so['n_T1_reordered']}")
+        parts += [f"<i>{html.escape(n)}</i>" for n in ov.notes]
+        self.doped_html.value = _TABLE_CSS + "<br>".join(parts)
+        self.torsion_plot.value = _style.figure_png(plot_torsion(ov.torsion)) if ov.torsion is not None else b""
 
     # ------------------------------------------------------------- scene
     def _draw_film_scene(self) -> None:
