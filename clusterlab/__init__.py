@@ -16,7 +16,7 @@ _choose_pyscf_kernel()
 
 from .charges import ChargeSource, MoleculeTypeCharges, TableCharges, TopologyCharges
 from .cluster import Cluster
-from .film import Film, film_from_universe, load_film
+from .film import Film, MixedSpeciesWarning, film_from_universe, load_film
 from .qm import (
     ChargedResult,
     EmbeddingWarning,
@@ -33,11 +33,12 @@ from .stats import (
     conformational_environmental,
     converged_radius,
     disorder_stats,
+    grouped_disorder_stats,
     spatial_correlation,
     static_dynamic,
 )
 from .store import ResultStore
-from .study import SiteSample, ScanResult, radius_scan, sample_sites
+from .study import SiteSample, ScanResult, pick_species_molecule, radius_scan, sample_sites
 from .study.plots import plot_convergence, plot_correlation, plot_growth, plot_histogram, plot_parity
 from .errors import (
     CalculationError,
@@ -57,6 +58,7 @@ __all__ = [
     "Film",
     "load_film",
     "film_from_universe",
+    "MixedSpeciesWarning",
     "ChargeSource",
     "TopologyCharges",
     "TableCharges",
@@ -72,11 +74,13 @@ __all__ = [
     "ChargedResult",
     "EmbeddingWarning",
     "radius_scan",
+    "pick_species_molecule",
     "ScanResult",
     "sample_sites",
     "SiteSample",
     "ResultStore",
     "disorder_stats",
+    "grouped_disorder_stats",
     "static_dynamic",
     "conformational_environmental",
     "spatial_correlation",

@@ -385,8 +385,9 @@ class Film:
         out = list(dict.fromkeys(str(n).strip() for n in names))
         missing = [n for n in out if n not in present]
         if missing:
-            raise InputError(f"species {', '.join(map(repr, missing))} matches no molecule of the film "
-                             f"{self.topology_path!r}; it has {self._species_list()}.")
+            raise InputError(f"the film {self.topology_path!r} has no molecules named "
+                             f"{', '.join(map(repr, missing))} (no molecule of that species); its species are "
+                             f"{self._species_list()}.")
         return out
 
     def species_formula(self, species: str) -> str:
