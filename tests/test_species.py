@@ -245,3 +245,206 @@ def test_mixed_dipole_lattice_correlation(mixed_lattice):
             tail = 4 * np.pi / RC
             c_inf = (c[k] * s_sphere + tail) / (s_sphere + tail)
             assert c_inf == pytest.approx(0.74 / r, rel=0.15), r
+
+
+# ------------------------------------------------------------ studies and front ends
+def test_choose_molecules_and_scan_molecule_by_species(doped):
+    from clusterlab.study import choose_molecules, pick_species_molecule
+    from clusterlab.study.scan import scan_molecule
+
+    film, names = doped
+    gst = np.flatnonzero(names == "GST")
+    assert choose_molecules(film, "species:GST").tolist() == gst.tolist()
+    assert choose_molecules(film, "all", species="GST").tolist() == gst.tolist()
+    some = choose_molecules(film, "all", species="GST", n=3, seed=1)
+    assert len(some) == 3 and set(some) <= set(gst)
+    with pytest.raises(InputError, match="no molecules named 'XYZ'"):
+        choose_molecules(film, "all", species="XYZ")
+    # the scan: the species' molecule nearest the box centre, or a seeded draw
+    geo = film.frame_geometry(0)
+    d = np.linalg.norm(geo.centroids_A[gst] - 15.0, axis=1)
+    assert pick_species_molecule(film, "GST") == gst[np.argmin(d)]
+    assert names[pick_species_molecule(film, "HST")] == "HST"
+    assert pick_species_molecule(film, "GST", seed=5) == pick_species_molecule(film, "GST", seed=5)
+    assert pick_species_molecule(film, "GST", seed=5) in gst
+    assert scan_molecule(film, "species:GST") == gst[np.argmin(d)] and scan_molecule(film, 3) == 3
+    with pytest.raises(InputError, match="one molecule"):
+        scan_molecule(film, "species:HST,GST")
+    with pytest.raises(InputError, match="species:NAME"):
+        scan_molecule(film, "resname GST")
+
+
+def test_site_tables_and_stats_carry_species(doped, tmp_path):
+    from clusterlab import Method, ResultStore
+    from clusterlab.store import task_key
+    from clusterlab.study import SiteSample, cluster_task, site_table
+
+    film, names = doped
+    task = cluster_task(film, 4, 6.0, Method.preset("draft", basis="sto-3g"))
+    assert task.payload["species"] == names[4]
+    path = tmp_path / "sites.sqlite"
+    rng = np.random.default_rng(0)
+    s1 = np.where(names == "GST", 2.0, 3.0) + rng.normal(0, np.where(names == "GST", 0.1, 0.02))
+    with ResultStore(path) as st:
+        for m in range(film.n_molecules):
+            k = task_key(film_id=film.film_id, frame=0, molecule=m, radius_A=5.0, kind="excitations")
+            summary = {"frame": 0, "molecule": m, "radius_A": 5.0, "S1_eV": float(s1[m]), "converged": True}
+            if m % 2:  # older records without species get it from the film
+                summary["species"] = str(names[m])
+            st.put(k, {"kind": "excitations", "payload": {"film": {"film_id": film.film_id}}}, "{}", summary)
+    t = site_table(path, film=film).sort_values("molecule")
+    assert t["species"].tolist() == names.tolist()
+    sample = SiteSample.from_store(path, film=film)
+    per = sample.stats("S1_eV", by="species", n_boot=200, seed=0).set_index("species")
+    for sp in ("HST", "GST"):
+        vals = s1[names == sp]
+        assert per.loc[sp, "n"] == vals.size
+        assert per.loc[sp, "sigma"] == pytest.approx(np.std(vals, ddof=1), rel=1e-12)
+        assert per.loc[sp, "mean"] == pytest.approx(vals.mean(), rel=1e-12)
+        assert per.loc[sp, "sigma_lo"] < per.loc[sp, "sigma"] < per.loc[sp, "sigma_hi"]
+    with pytest.raises(InputError, match="by='colour'"):
+        sample.stats("S1_eV", by="colour")
+
+
+def test_grouped_stats_keep_small_groups():
+    from clusterlab.stats import disorder_stats, grouped_disorder_stats
+
+    rng = np.random.default_rng(3)
+    v = rng.normal(0, 1, 30)
+    g = ["A"] * 28 + ["B"] * 2
+    t = grouped_disorder_stats(v, g, name="species", n_boot=200, seed=1)
+    assert t["species"].tolist() == ["A", "B"]
+    assert t.loc[0, "sigma"] == disorder_stats(v[:28], n_boot=200, seed=1)["sigma"]
+    assert t.loc[1, "n"] == 2 and np.isnan(t.loc[1, "sigma"])
+    with pytest.raises(InputError, match="one label per value"):
+        grouped_disorder_stats(v, g[:5])
+
+
+def test_study_file_species_keys(tmp_path):
+    from clusterlab.errors import StudyFileError
+    from clusterlab.studyfile import load_study, parse_override
+
+    p = tmp_path / "study.toml"
+    p.write_text("[film]\ntopology='x.pqr'\n[scan]\nspecies='GST'\n"
+                 "[sample]\nmolecules='species:GST'\nspecies=['GST', 'HST']\n")
+    st = load_study(p)
+    assert st["scan"]["species"] == "GST" and st["scan"]["molecule"] is None
+    assert st["sample"]["molecules"] == "species:GST" and st["sample"]["species"] == ["GST", "HST"]
+    st = load_study(p, {("sample", "species"): parse_override("sample", "species", "GST")})
+    assert st["sample"]["species"] == "GST"
+    p.write_text("[film]\ntopology='x.pqr'\n[sample]\nmolecules='species:'\n")
+    with pytest.raises(StudyFileError, match=r"\[sample\] molecules.*species selection 'species:'"):
+        load_study(p)
+    p.write_text("[film]\ntopology='x.pqr'\n[sample]\nspecies='HST GST'\n")
+    with pytest.raises(StudyFileError, match=r"\[sample\] species.*'HST GST'"):
+        load_study(p)
+
+
+def test_cli_has_species_flags():
+    from clusterlab.cli import _parser
+
+    args = _parser().parse_args(["run", "study.toml", "--sample-species", "GST", "--scan-species", "GST"])
+    assert args.set__sample__species == "GST" and args.set__scan__species == "GST"
+
+
+def test_widgets_choose_by_species(doped):
+    from clusterlab.widgets import DisorderPanel, FilmExplorer, ShiftScanPanel
+    from clusterlab.study import pick_species_molecule
+
+    film, names = doped
+    gst = np.flatnonzero(names == "GST").tolist()
+    ex = FilmExplorer(film, molecule=int(np.flatnonzero(names == "HST")[0]), radius_A=6.0, show_view=False)
+    assert [v for v, _ in ex.species_picker.options][0] == "all species"
+    ex.species_picker.value = "GST"
+    assert [v for _, v in ex.molecule_picker.options] == gst
+    assert ex.molecule in gst and names[ex.cluster.center] == "GST"
+    assert ex.find_molecules("species:GST").tolist() == gst
+    dp = DisorderPanel(film, show_view=False)
+    dp.species.value = "GST"
+    assert dp.selected_molecules().tolist() == gst
+    dp.n_molecules.value = 2
+    assert set(dp.selected_molecules()) <= set(gst)
+    panel = ShiftScanPanel(film)
+    panel.species.value = "GST"
+    assert panel.molecule_id == pick_species_molecule(film, "GST") and panel.molecule.value == panel.molecule_id
+
+
+def test_film_model_one_charge_set_per_species(doped):
+    from clusterlab.electrostatics.chargeset import StateChargeSet
+    from clusterlab.study.chargefits import fit_state_charges
+    from clusterlab.study.filmmodel import FilmModel
+
+    film, names = doped
+    both = cation_charge_set([HOST, GUEST])
+    assert both.species == ["GST", "HST"]
+    t = FilmModel(film, both, radius_A=12.0, states=("cation",)).run(progress=False).table
+    assert t["species"].tolist() == np.tile(names, 2).tolist() and t["cation_shift_eV"].notna().all()
+    # each species takes its own set: the guest's differs from the host's, so swapping them changes its rows
+    swapped = StateChargeSet.from_arrays({"HST": both.charges_e["GST"], "GST": both.charges_e["HST"]})
+    t2 = FilmModel(film, swapped, radius_A=12.0, states=("cation",), environment="fitted").run(progress=False).table
+    t3 = FilmModel(film, both, radius_A=12.0, states=("cation",), environment="fitted").run(progress=False).table
+    assert not np.allclose(t2["cation_shift_eV"], t3["cation_shift_eV"])
+    np.testing.assert_allclose(t3["cation_shift_eV"], t["cation_shift_eV"], rtol=1e-6)  # fitted S0 = film charges
+    # a species missing from the set: its rows are NaN, the others unchanged
+    host_only = StateChargeSet.from_arrays({"HST": both.charges_e["HST"]})
+    t4 = FilmModel(film, host_only, radius_A=12.0, states=("cation",)).run(progress=False).table
+    guest = t4["species"] == "GST"
+    assert t4.loc[guest, "cation_shift_eV"].isna().all()
+    np.testing.assert_allclose(t4.loc[~guest, "cation_shift_eV"], t.loc[~guest, "cation_shift_eV"])
+    # the fits name the species asked for before any QM runs
+    from clusterlab import Method
+
+    with pytest.raises(InputError, match="no molecules named 'XYZ'"):
+        fit_state_charges(film, Method.preset("draft", basis="sto-3g"), species=["XYZ"])
+    with pytest.raises(InputError, match="not both"):
+        fit_state_charges(film, Method.preset("draft", basis="sto-3g"), species=["GST"], resnames=["GST"])
+
+
+def test_mixed_species_film_is_refused_by_the_species_model():
+    from clusterlab.electrostatics.chargeset import StateChargeSet
+    from clusterlab.study.filmmodel import FilmModel
+
+    with pytest.warns(MixedSpeciesWarning):
+        film = film_from_universe(_mixed_residue_universe())
+    cset = StateChargeSet.from_arrays({"SYS": {"S0": [-0.8, 0.4, 0.4], "cation": [0.2, 0.4, 0.4]}})
+    with pytest.raises(FilmError, match="species 'SYS'.*2 compositions"):
+        FilmModel(film, cset, radius_A=8.0, states=("cation",))
+
+
+def test_export_species_and_pair_classes(doped):
+    from clusterlab.export import column_info, pair_classes, pair_table, site_table
+
+    film, names = doped
+    sites = site_table(film, frames=[0])
+    assert sites["species"].tolist() == names.tolist()
+    pairs = pair_table(film, 0, 10.5)
+    assert len(pairs) == 27 * 3  # each site's +x, +y, +z neighbour once (periodic 3^3 lattice)
+    i, j = pairs["i"].to_numpy(), pairs["j"].to_numpy()
+    assert (pairs["species_i"] == names[i]).all() and (pairs["species_j"] == names[j]).all()
+    expect = ["-".join(sorted(p)) for p in zip(names[i], names[j])]
+    assert pairs["pair_class"].tolist() == expect
+    assert set(pairs["pair_class"]) == {"HST-HST", "GST-HST", "GST-GST"}
+    assert pair_classes(["HST"], ["GST"]).tolist() == ["GST-HST"]
+    for col in ("species", "species_i", "species_j", "pair_class"):
+        assert column_info(col)[1] != "(not documented)"
+
+
+def test_scan_by_species_and_stored_rows_carry_species(tmp_path):
+    """One real (HF/STO-3G-sized) calculation: the scan picks the species'
+    molecule, and the worker's stored summary carries the species."""
+    from clusterlab import Method, ResultStore, radius_scan
+    from clusterlab.study import site_table
+
+    from conftest import build_water_universe, lattice_centres
+
+    u, _ = build_water_universe(lattice_centres(2, 0.1, np.random.default_rng(0)), np.array([6.2] * 3 + [90.0] * 3))
+    film = film_from_universe(u)
+    method = Method.preset("draft", basis="sto-3g", n_singlets=1, n_triplets=1)
+    res = radius_scan(film, "species:WAT", [2.5, 3.0], method, store=tmp_path / "s.sqlite", progress=False)
+    from clusterlab.study import pick_species_molecule
+
+    assert res.molecule == pick_species_molecule(film, "WAT") and res.species == "WAT"
+    assert set(res.table["species"]) == {"WAT"} and "(WAT)" in repr(res)
+    with ResultStore(tmp_path / "s.sqlite", readonly=True) as st:
+        assert st.to_frame(kind="excitations")["species"].tolist() == ["WAT", "WAT"]
+    assert site_table(tmp_path / "s.sqlite")["species"].tolist() == ["WAT", "WAT"]
