@@ -129,7 +129,8 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         outcome.model = run_film_model(film, fit_method, radius_A=m["radius"], frames=m["frames"],
                                        polarization=m["polarization"], polarize_molecules=m["polarize_molecules"],
                                        reference_molecule=m["reference_molecule"], n_conformers=m["n_conformers"],
-                                       response=m["response"], progress=progress, store=store)
+                                       response=m["response"], progress=progress, store=store,
+                                       species=m["species"])
         outcome.timings_s["model"] = time.perf_counter() - t0
         model_section(rep, outcome.model)
 

@@ -117,6 +117,8 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "polarize_molecules": Setting((list, str), None, "molecule ids to polarize, a list or a text such as "
                                                          "'0-9' (default all; seconds each)"),
         "reference_molecule": Setting((int,), 0, "molecule whose geometry the state charges are fitted on"),
+        "species": Setting((str, list), None, "species to fit state charges for, each on its own reference "
+                                              "(default: every species of the film)"),
         "charges_method": Setting((str,), None, "'xc/basis' of the state-charge fit and finite fields (the study "
                                                 "method with this xc and basis; default: the study method)"),
         "n_conformers": Setting((int,), 1, "conformer references per molecule type (one QM fit each)"),

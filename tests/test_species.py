@@ -326,8 +326,9 @@ def test_study_file_species_keys(tmp_path):
 
     p = tmp_path / "study.toml"
     p.write_text("[film]\ntopology='x.pqr'\n[scan]\nspecies='GST'\n"
-                 "[sample]\nmolecules='species:GST'\nspecies=['GST', 'HST']\n")
+                 "[sample]\nmolecules='species:GST'\nspecies=['GST', 'HST']\n[model]\nspecies='GST'\n")
     st = load_study(p)
+    assert st["model"]["species"] == "GST"
     assert st["scan"]["species"] == "GST" and st["scan"]["molecule"] is None
     assert st["sample"]["molecules"] == "species:GST" and st["sample"]["species"] == ["GST", "HST"]
     st = load_study(p, {("sample", "species"): parse_override("sample", "species", "GST")})
@@ -429,6 +430,22 @@ def test_export_species_and_pair_classes(doped):
         assert column_info(col)[1] != "(not documented)"
 
 
+def test_export_files_carry_species_and_model_json_keeps_it(doped, tmp_path):
+    from clusterlab.export import export_study, read_export
+    from clusterlab.study.filmmodel import FilmModel, FilmModelResult
+
+    film, names = doped
+    model = FilmModel(film, cation_charge_set([HOST, GUEST]), radius_A=12.0, states=("cation",)).run(progress=False)
+    back = FilmModelResult.from_json(model.to_json())
+    assert back.table["species"].tolist() == model.table["species"].tolist() == np.tile(names, 2).tolist()
+    export_study(film, tmp_path / "exp", model=model, cutoff_A=10.5, frames=[0])
+    for prefer in ("parquet", "csv"):
+        sites, pairs, meta = read_export(tmp_path / "exp", prefer=prefer)
+        assert sites["species"].tolist() == names.tolist()
+        assert set(pairs["pair_class"]) == {"HST-HST", "GST-HST", "GST-GST"}
+    assert "pair_class" in meta["columns"]["pairs"] and "species" in meta["columns"]["sites"]
+
+
 def test_scan_by_species_and_stored_rows_carry_species(tmp_path):
     """One real (HF/STO-3G-sized) calculation: the scan picks the species'
     molecule, and the worker's stored summary carries the species."""
@@ -448,3 +465,34 @@ def test_scan_by_species_and_stored_rows_carry_species(tmp_path):
     with ResultStore(tmp_path / "s.sqlite", readonly=True) as st:
         assert st.to_frame(kind="excitations")["species"].tolist() == ["WAT", "WAT"]
     assert site_table(tmp_path / "s.sqlite")["species"].tolist() == ["WAT", "WAT"]
+
+
+def test_run_film_model_fits_every_species(monkeypatch):
+    """The study driver fits one reference per species (HF/STO-3G water under two
+    species names): the reference molecule for its own species, the first
+    molecule of the other; every row of both species gets a shift."""
+    from clusterlab.qm.method import Method
+    from clusterlab.study import chargefits
+    from clusterlab.study.filmmodel import run_film_model
+
+    from conftest import build_water_universe, lattice_centres
+
+    u, _ = build_water_universe(lattice_centres(2, 0.1, np.random.default_rng(0)), np.array([6.2] * 3 + [90.0] * 3))
+    u.residues.resnames = ["WAT", "SOL"] * 4
+    film = film_from_universe(u)
+    fitted_on = []
+    real = chargefits.state_charges
+
+    def counted(symbols, positions_A, *a, **k):
+        fitted_on.append(len(symbols))
+        return real(symbols, positions_A, *a, **k)
+
+    monkeypatch.setattr(chargefits, "state_charges", counted)
+    m = Method(xc="hf", basis="sto-3g", density_fit=False, grid_level=1, n_singlets=1, n_triplets=1, excited="tda")
+    res = run_film_model(film, m, radius_A=5.0, frames=[0], reference_molecule=3, progress=False)
+    assert len(fitted_on) == 2 and res.charges.species == ["SOL", "WAT"]
+    assert res.charges.reference["SOL"]["molecule"] == 3 and res.charges.reference["WAT"]["molecule"] == 0
+    assert res.options["fitted_species"] == ["SOL", "WAT"]
+    assert res.table.groupby("species")["cation_shift_eV"].count().to_dict() == {"SOL": 4, "WAT": 4}
+    only = run_film_model(film, m, radius_A=5.0, frames=[0], species=["WAT"], progress=False)
+    assert only.charges.species == ["WAT"] and only.table.loc[only.table.species == "SOL", "T1_shift_eV"].isna().all()

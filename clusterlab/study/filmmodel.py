@@ -730,7 +730,7 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
                    reference_molecule: int = 0, charges: StateChargeSet | None = None,
                    progress: bool = True, n_conformers: int = 1, response: bool = False,
                    symmetrize: bool = False, response_states: Sequence[str] = ("S1",),
-                   store: Any = None) -> FilmModelResult:
+                   store: Any = None, species: Sequence[str] | None = None) -> FilmModelResult:
     """Fit state charges on reference copies (unless given) and evaluate the
     film-wide model for S1, T1, cation and anion of every molecule and frame.
 
@@ -752,7 +752,10 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
     film this is what makes the S1 shifts follow embedded QM (README).
 
     The result's ``charges`` is the fitted set (transition charges included,
-    for excitonic couplings).
+    for excitonic couplings). Every species of ``species`` (default: every
+    species of the film, so host and guest of a doped film) gets its own
+    fits: ``reference_molecule`` is the first reference of its own species,
+    the first molecule of each other species that of its species.
 
     With a :class:`~clusterlab.store.ResultStore` as ``store``, the fitted set
     is saved in the store's metadata once the state charges are fitted and
@@ -775,11 +778,15 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
     save: Callable[[StateChargeSet], None] | None = None
     if store is not None:
         store.claim_film(film.film_id, topology=film.topology_path)
+    ref_species = str(film.molecule_species[film.check_molecule(reference_molecule)])
+    fitted = film.check_species(list(film.species.index) if species is None else species)
     if store is not None and charges is None:
+        # a one-species fit keeps the key it had before species were fitted apart
+        extra = {} if fitted == [ref_species] else {"species": fitted}
         slot = "film_model_charges:" + task_key(
             kind="film-model-charges", film_id=film.film_id, reference_molecule=int(reference_molecule),
             method=method.to_dict(), n_conformers=int(n_conformers), symmetrize=bool(symmetrize),
-            response_states=response_states if response else [])
+            response_states=response_states if response else [], **extra)
         def _save(cset: StateChargeSet) -> None:
             store.meta[slot] = cset.to_json()
 
@@ -787,8 +794,7 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
         if slot in store.meta:
             charges = StateChargeSet.from_json(store.meta[slot])
     if charges is None:
-        res = str(film.molecule_species[film.check_molecule(reference_molecule)])
-        charges = fit_state_charges(film, method, species=[res], molecules={res: reference_molecule},
+        charges = fit_state_charges(film, method, species=fitted, molecules={ref_species: reference_molecule},
                                     n_conformers=n_conformers, symmetrize=symmetrize, progress=progress)
         if save is not None:
             save(charges)
@@ -802,6 +808,7 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
     result = FilmModel(film, charges, radius_A=radius_A, field_response=response_states if response else ()
                        ).run(frames, progress=progress)
     result.options.update({"fit_method": method.to_dict(), "reference_molecule": int(reference_molecule),
+                           "fitted_species": list(charges.species),
                            "n_conformers": int(n_conformers), "symmetrize": bool(symmetrize)})
     if not polarization:
         return result
