@@ -16,7 +16,7 @@ _choose_pyscf_kernel()
 
 from .charges import ChargeSource, MoleculeTypeCharges, TableCharges, TopologyCharges
 from .cluster import Cluster
-from .film import Film, film_from_universe, load_film
+from .film import Film, MixedSpeciesWarning, film_from_universe, load_film
 from .qm import (
     ChargedResult,
     EmbeddingWarning,
@@ -33,6 +33,7 @@ from .stats import (
     conformational_environmental,
     converged_radius,
     disorder_stats,
+    grouped_disorder_stats,
     spatial_correlation,
     static_dynamic,
 )
@@ -47,6 +48,7 @@ from .study import (
     TorsionResult,
     dest_torsion,
     host_guest_overview,
+    pick_species_molecule,
     radius_scan,
     sample_sites,
     species_energies,
@@ -81,6 +83,7 @@ __all__ = [
     "Film",
     "load_film",
     "film_from_universe",
+    "MixedSpeciesWarning",
     "ChargeSource",
     "TopologyCharges",
     "TableCharges",
@@ -96,11 +99,13 @@ __all__ = [
     "ChargedResult",
     "EmbeddingWarning",
     "radius_scan",
+    "pick_species_molecule",
     "ScanResult",
     "sample_sites",
     "SiteSample",
     "ResultStore",
     "disorder_stats",
+    "grouped_disorder_stats",
     "static_dynamic",
     "conformational_environmental",
     "spatial_correlation",

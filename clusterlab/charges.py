@@ -107,6 +107,22 @@ def _read_charge_csv(path: str) -> list[dict[str, str]]:
     return rows
 
 
+def species_without_charges(film: "Film", missing_atoms: npt.ArrayLike) -> str:
+    """A sentence naming the species none of whose molecules got a charge
+    (every atom among ``missing_atoms``), or "" when there is none: a
+    charge table written for the host alone, say, in a doped film."""
+    miss = np.zeros(film.n_atoms, bool)
+    miss[np.asarray(missing_atoms, dtype=np.int64)] = True
+    mol_all = np.bincount(film.molecule_of_atom, weights=~miss, minlength=film.n_molecules) == 0
+    species = np.asarray(film.molecule_species)
+    empty = [str(sp) for sp in dict.fromkeys(species.tolist()) if mol_all[species == sp].all()]
+    if not empty:
+        return ""
+    n = {sp: int((species == sp).sum()) for sp in empty}
+    return ("No charges at all for species " + ", ".join(f"{sp!r} ({n[sp]} molecule(s))" for sp in empty)
+            + ". ")
+
+
 def _fill_by_molecule_type(film: "Film", table: Mapping[str, FloatArray], q: FloatArray, what: str) -> None:
     """Write per-residue-name charge vectors (molecule atom order) into ``q``."""
     for mol_id, resname in enumerate(film.molecule_resnames):
@@ -199,6 +215,7 @@ class TableCharges(ChargeSource):
                 f"atom {i} ({resnames[i]}:{names[i]})" for i in missing[:5]
             )
             raise ChargeError(
+                f"{species_without_charges(film, missing)}"
                 f"Charge table ({self.source}) has no charge for {missing.size} atom(s) of "
                 f"{film.topology_path!r}, e.g. {examples}. Add rows for these names."
             )
@@ -246,6 +263,7 @@ class MoleculeTypeCharges(ChargeSource):
         missing = np.flatnonzero(np.isnan(base))
         if missing.size:
             raise ChargeError(
+                f"{species_without_charges(film, missing)}"
                 f"{self.label} charges cover residue names {sorted(self.charges)}, but "
                 f"{missing.size} atom(s) belong to other residues and no fallback source was given."
             )

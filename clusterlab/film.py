@@ -22,10 +22,11 @@ import numpy.typing as npt
 import pandas as pd
 
 from .carve import MoleculeIndex, select_images
-from .charges import ChargeSource, as_charge_source
+from .charges import ChargeSource, as_charge_source, species_without_charges
 from .cluster import Cluster
-from .errors import CarvingError, ChargeError, FilmError
+from .errors import CarvingError, ChargeError, FilmError, InputError
 from .geometry import box_vectors, make_whole, minimum_image, perpendicular_widths, wrap_molecules
+from .ranges import parse_species
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -70,6 +71,11 @@ def _guess_from_name(name: str) -> str | None:
     return sym if sym in _KNOWN else None
 
 
+class MixedSpeciesWarning(UserWarning):
+    """Warned when one residue holds molecules (bonded fragments) of
+    different compositions: they all carry the residue's species name."""
+
+
 @dataclass(frozen=True)
 class FrameGeometry:
     """One frame with whole molecules whose centroids lie in the primary cell."""
@@ -91,8 +97,10 @@ class Film:
     molecules : pandas.DataFrame
         One row per molecule: ``molecule`` (0-based id), ``resname``,
         ``resid``, ``n_atoms``, ``charge`` (net, e; NaN when no charges are
-        available), ``formula`` (Hill order), ``species`` (the molecule's
-        kind; today its resname).
+        available), ``formula`` (Hill order), ``species`` (str: the molecular
+        species, today the residue name; see :attr:`species`).
+    molecule_species : ndarray of str, (n_molecules,)
+        The ``species`` column as an array.
     molecule_kind : {"fragments", "residues"}
         How molecules were defined.
     symbols : ndarray of str, (n_atoms,)
@@ -133,8 +141,12 @@ class Film:
         first = self.index.atoms[self.index.offsets[:-1]]
         #: residue name of each molecule (of its first atom)
         self.molecule_resnames = np.asarray(atoms.resnames).astype(str)[first]
+        #: species of each molecule: its residue name (a loader that finds no
+        #: meaningful residue names writes a composition name into them)
+        self.molecule_species = self.molecule_resnames.copy()
         self.symbols, self.guessed_elements = self._resolve_elements()
         self.molecules = self._molecule_table()
+        self._warn_mixed_residues()
 
     # ------------------------------------------------------------ basic facts
     @property
@@ -247,9 +259,9 @@ class Film:
             lines.append("box: {:.2f} x {:.2f} x {:.2f} Å, angles {:.1f} {:.1f} {:.1f}°".format(*b))
         else:
             lines.append("box: none (only non-periodic carving is possible)")
-        species = self.molecules.groupby(["resname", "formula"]).size()
-        for (res, formula), n in species.items():
-            lines.append(f"  {n:6d} x {res} ({formula})")
+        species = self.molecules.groupby(["species", "formula"], sort=False).size()
+        for (name, formula), n in species.items():
+            lines.append(f"  {n:6d} x {name} ({formula})")
         lines.append(f"charges: {self.charge_source.describe()}"
                      + ("" if self.charges_available else " - NOT AVAILABLE"))
         if len(self.guessed_elements):
@@ -330,15 +342,138 @@ class Film:
         return pd.DataFrame({
             "molecule": np.arange(n_mol), "resname": resnames, "resid": resids,
             "n_atoms": self.index.sizes(), "charge": net, "formula": formulas,
-            "species": resnames,
+            "species": self.molecule_species,
         })
 
-    def select(self, selection: str | Sequence[int] | None = None) -> npt.NDArray[np.int64]:
-        """Molecule ids from an MDAnalysis selection string (e.g. ``"resname HST"``),
-        an explicit list of ids, or None (all). A molecule is selected when any
-        of its atoms is."""
+    # ------------------------------------------------------------- species
+    @property
+    def species(self) -> pd.Series:
+        """Molecule count of each species, in the order species first appear
+        among the molecules (index: species name, str).
+
+        >>> film.species  # doctest: +SKIP
+        HST    240
+        GST     16
+        Name: n_molecules, dtype: int64
+        """
+        names = pd.Series(self.molecule_species, dtype=object)
+        counts = names.value_counts(sort=False)
+        order = list(dict.fromkeys(names.tolist()))
+        out = counts.reindex(order).astype(np.int64)
+        out.index.name = "species"
+        out.name = "n_molecules"
+        return out
+
+    def _species_list(self) -> str:
+        return ", ".join(f"{k} ({n})" for k, n in self.species.items())
+
+    def check_species(self, species: Any) -> list[str]:
+        """``species`` (a name or a list of names) as a list of names the film has.
+
+        Raises
+        ------
+        InputError
+            Not text, empty, or a name no molecule carries; the message lists
+            the species present with their counts.
+        """
+        names = [species] if isinstance(species, str) else species
+        if not isinstance(names, (list, tuple, np.ndarray, pd.Index, pd.Series)) or not len(names) or \
+                not all(isinstance(n, (str, np.str_)) and n.strip() for n in names):
+            raise InputError(f"species={species!r} must be a species name or a list of names; the film "
+                             f"{self.topology_path!r} has {self._species_list()}.")
+        present = set(self.molecule_species.tolist())
+        out = list(dict.fromkeys(str(n).strip() for n in names))
+        missing = [n for n in out if n not in present]
+        if missing:
+            raise InputError(f"the film {self.topology_path!r} has no molecules named "
+                             f"{', '.join(map(repr, missing))} (no molecule of that species); its species are "
+                             f"{self._species_list()}.")
+        return out
+
+    def species_formula(self, species: str) -> str:
+        """The one composition (Hill formula) of the molecules of ``species``.
+
+        Per-species model parameters (state charges, responses) describe one
+        composition; this is where that is checked.
+
+        Raises
+        ------
+        InputError
+            An unknown species (:meth:`check_species`).
+        FilmError
+            Molecules of the species with different compositions (the message
+            names the compositions and a residue of each).
+        """
+        name = self.check_species(species)[0]
+        rows = self.molecules[self.molecules["species"] == name]
+        forms = rows.groupby("formula", sort=False)["resid"].agg(["size", "first"])
+        if len(forms) > 1:
+            parts = ", ".join(f"{f} x{int(r['size'])} (e.g. residue {r['first']})" for f, r in forms.iterrows())
+            raise FilmError(f"species {name!r} of {self.topology_path!r} holds molecules of {len(forms)} "
+                            f"compositions: {parts}. One set of per-species parameters cannot describe them; "
+                            "give the molecules distinct residue names (species).")
+        return str(forms.index[0])
+
+    def _warn_mixed_residues(self) -> None:
+        """Warn about residues whose molecules (bonded fragments) have different
+        compositions: the film stays usable (carving and QM work per molecule
+        and atom), but all of them carry the residue's one species name."""
+        if self.molecule_kind != "fragments" or self.n_molecules < 2:
+            return
+        first = self.index.atoms[self.index.offsets[:-1]]
+        resindex = np.asarray(self.universe.atoms.resindices)[first]
+        table = pd.DataFrame({"res": resindex, "formula": self.molecules["formula"].to_numpy(),
+                              "resname": self.molecule_resnames, "resid": self.molecules["resid"].to_numpy()})
+        n_forms = table.groupby("res")["formula"].nunique()
+        mixed = n_forms[n_forms > 1].index
+        if not len(mixed):
+            return
+        ex = []
+        for r in mixed[:5]:
+            g = table[table.res == r]
+            forms = ", ".join(f"{f} x{n}" for f, n in g["formula"].value_counts(sort=False).items())
+            ex.append(f"residue {g.resname.iloc[0]} {g.resid.iloc[0]} ({forms})")
+        warnings.warn(
+            f"{self.topology_path}: {len(mixed)} residue(s) hold molecules of different compositions (mixed "
+            f"species in one residue): {'; '.join(ex)}{' ...' if len(mixed) > 5 else ''}. They all get the "
+            "residue name as species, so per-species statistics lump them, and per-species charge fits "
+            "refuse them; give each composition its own residue name.",
+            MixedSpeciesWarning, stacklevel=4)
+
+    def select(self, selection: str | Sequence[int] | None = None, *,
+               species: str | Sequence[str] | None = None) -> npt.NDArray[np.int64]:
+        """Molecule ids (ascending for text selections) of a selection.
+
+        Parameters
+        ----------
+        selection : str, sequence of int or None
+            A species text ``"species:GST"`` or ``"species:HST,GST"`` (see
+            :func:`clusterlab.ranges.parse_species`), an MDAnalysis selection
+            string (e.g. ``"resname HST"``; a molecule is selected when any of
+            its atoms is), an explicit list of ids, or None / ``"all"`` (all).
+        species : str or sequence of str, optional
+            Only molecules of these species (combined with ``selection``:
+            the molecules in both).
+
+        Raises
+        ------
+        InputError
+            A species no molecule carries (the message lists the species
+            present); :class:`~clusterlab.errors.CarvingError` for a bad
+            selection string, a selection that matches nothing, or bad ids.
+        """
+        if species is not None:
+            ids = self.select(selection)
+            keep = np.isin(self.molecule_species[ids], self.check_species(species))
+            if not keep.any():
+                raise InputError(f"selection {selection!r} holds no molecule of species {species!r}; "
+                                 f"the film has {self._species_list()}.")
+            return ids[keep]
         if selection is None or (isinstance(selection, str) and selection.strip() == "all"):
             return np.arange(self.n_molecules)
+        names = parse_species(selection) if isinstance(selection, str) else None
+        if names is not None:
+            return np.flatnonzero(np.isin(self.molecule_species, self.check_species(names))).astype(np.int64)
         if isinstance(selection, str):
             try:
                 ag = self.universe.select_atoms(selection)
@@ -346,7 +481,8 @@ class Film:
                 raise CarvingError(f"selection {selection!r} is invalid: {exc}") from exc
             ids = np.unique(self.molecule_of_atom[ag.indices])
             if ids.size == 0:
-                raise CarvingError(f"selection {selection!r} matches no atoms in {self.topology_path!r}.")
+                raise CarvingError(f"selection {selection!r} matches no atoms in {self.topology_path!r}; "
+                                   f"the film has species {self._species_list()}.")
             return ids
         if isinstance(selection, (int, np.integer)):
             raise CarvingError(f"selection {selection!r} must be a selection string, a list of molecule ids or None.")
@@ -387,7 +523,8 @@ class Film:
             if nonfinite.size:
                 names = np.asarray(self.universe.atoms.names).astype(str)
                 ex = ", ".join(f"atom {i} ({names[i]}) {q[i]!r}" for i in nonfinite[:5])
-                raise ChargeError(f"{nonfinite.size} atom charge(s) of {self.topology_path!r} are not finite "
+                raise ChargeError(f"{species_without_charges(self, nonfinite)}"
+                                  f"{nonfinite.size} atom charge(s) of {self.topology_path!r} are not finite "
                                   f"({self.charge_source.describe()}): {ex}.")
             net = np.bincount(self.molecule_of_atom, weights=q, minlength=self.n_molecules)
             bad = np.flatnonzero(np.abs(net - np.round(net)) > CHARGE_INTEGER_TOL)

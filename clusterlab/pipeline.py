@@ -78,13 +78,16 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
     echo(f"method: {method.describe()}")
     rkw = _runner_kwargs(study)
 
-    if "scan" in present and study["scan"]["molecule"] is not None:
+    if "scan" in present and (study["scan"]["molecule"] is not None or study["scan"]["species"]):
         from .study.scan import radius_scan
 
         s = study["scan"]
         t0 = time.perf_counter()
-        echo(f"radius scan of molecule {s['molecule']} at radii {s['radii']} Å ...")
-        outcome.scan = radius_scan(film, s["molecule"], s["radii"], method, frame=s["frame"], rule=s["rule"],
+        molecule = s["molecule"] if s["molecule"] is not None else f"species:{s['species']}"
+        if s["molecule"] is not None and s["species"]:
+            film.select([s["molecule"]], species=s["species"])  # the molecule must be of that species
+        echo(f"radius scan of molecule {molecule} at radii {s['radii']} Å ...")
+        outcome.scan = radius_scan(film, molecule, s["radii"], method, frame=s["frame"], rule=s["rule"],
                                    qm_shell=s["qm_shell"], periodic_limit=s["periodic_limit"], tol_eV=s["tol_eV"],
                                    store=store, runner="serial", progress=progress)
         outcome.timings_s["scan"] = time.perf_counter() - t0
@@ -96,10 +99,12 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
 
         s = study["sample"]
         t0 = time.perf_counter()
-        echo(f"site-energy sample (molecules {s['molecules']!r}, n={s['n']}, frames {s['frames']}, "
+        only = f", species {s['species']!r}" if s["species"] else ""
+        echo(f"site-energy sample (molecules {s['molecules']!r}{only}, n={s['n']}, frames {s['frames']}, "
              f"radius {s['radius']} Å) ...")
         outcome.sample = sample_sites(film, s["molecules"], s["frames"], s["radius"], method, store=store,
-                                      n=s["n"], seed=s["seed"], rule=s["rule"], progress=progress, **rkw)
+                                      n=s["n"], seed=s["seed"], species=s["species"], rule=s["rule"],
+                                      progress=progress, **rkw)
         outcome.timings_s["sample"] = time.perf_counter() - t0
         echo(f"  {outcome.sample.report}")
         if outcome.sample.failures:
@@ -125,7 +130,8 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         outcome.model = run_film_model(film, fit_method, radius_A=m["radius"], frames=m["frames"],
                                        polarization=m["polarization"], polarize_molecules=m["polarize_molecules"],
                                        reference_molecule=m["reference_molecule"], n_conformers=m["n_conformers"],
-                                       response=m["response"], progress=progress, store=store)
+                                       response=m["response"], progress=progress, store=store,
+                                       species=m["species"])
         outcome.timings_s["model"] = time.perf_counter() - t0
         model_section(rep, outcome.model)
 

@@ -24,6 +24,11 @@ radii (Å, positive numbers)
                             on the step grid (within 1e-9 of a step), and a
                             radius range always needs its step
 
+species (molecule selections only)
+    ``species:GST``         every molecule of species GST (the prefix is
+                            case-insensitive, names are not)
+    ``species:HST,GST``     several species; spaces after commas are allowed
+
 Every function also takes values that are already parsed (an int, a list or
 an array of them, ``None`` for all; for frames also a Python ``slice``, which
 keeps Python's own rules), so a caller can pass either.
@@ -55,6 +60,8 @@ Examples
 [0.1, 0.2, 0.3]
 >>> parse_radii("12, 6 9")
 [6.0, 9.0, 12.0]
+>>> parse_species("species:HST, GST")
+['HST', 'GST']
 >>> parse_frames("5-12", 10)
 Traceback (most recent call last):
 ...
@@ -74,8 +81,8 @@ import numpy.typing as npt
 
 from .errors import InputError
 
-__all__ = ["parse_ids", "parse_frames", "parse_radii", "is_id_text", "RepeatedValueWarning",
-           "ID_GRAMMAR", "FRAME_GRAMMAR", "RADIUS_GRAMMAR"]
+__all__ = ["parse_ids", "parse_frames", "parse_radii", "parse_species", "is_id_text", "RepeatedValueWarning",
+           "ID_GRAMMAR", "FRAME_GRAMMAR", "RADIUS_GRAMMAR", "SPECIES_GRAMMAR", "SPECIES_PREFIX"]
 
 #: how the grammar is explained in error messages
 ID_GRAMMAR = ("Molecule ids are written 'all', '3', '0-10' (both ends included), '0-10:2' (a step) "
@@ -84,6 +91,12 @@ FRAME_GRAMMAR = ("Frames are written 'all', '3', '0-10' (both ends included), '0
                  "lists '1,4,9-12', and negative frames count from the end ('-1' is the last).")
 RADIUS_GRAMMAR = ("Radii (Å) are written as positive numbers '5,8,12' or ranges start-end:step such as "
                   "'5-12:1' (the end included when it lies on the step grid).")
+
+SPECIES_GRAMMAR = ("Molecules of given species are written 'species:GST' or 'species:HST,GST' "
+                   "(species names as in the film's molecules table).")
+
+#: the prefix of a species selection
+SPECIES_PREFIX = "species:"
 
 #: radii are compared and rounded to this many decimals (1e-6 Å, the precision of the store keys)
 RADIUS_DECIMALS = 6
@@ -358,3 +371,30 @@ def is_id_text(text: str) -> bool:
     (True, True, False)
     """
     return bool(_ID_TEXT.fullmatch(str(text)))
+
+
+def parse_species(text: Any) -> list[str] | None:
+    """The species names of a species selection ``"species:GST"`` or
+    ``"species:HST,GST"``; None when ``text`` is not one (ids, ``all`` or an
+    MDAnalysis selection). Whether the film has these species is checked by
+    :meth:`clusterlab.Film.check_species`.
+
+    Raises
+    ------
+    clusterlab.errors.InputError
+        The prefix without a name, or an empty name between commas.
+
+    >>> parse_species("species:GST"), parse_species("resname GST")
+    (['GST'], None)
+    """
+    if not isinstance(text, str):
+        return None
+    t = text.strip()
+    if not t.lower().startswith(SPECIES_PREFIX):
+        return None
+    body = t[len(SPECIES_PREFIX):]
+    names = [n.strip() for n in body.split(",")]
+    if not body.strip() or any(not n or re.search(r"\s", n) for n in names):
+        raise InputError(f"species selection {text!r} is not valid: give one or more species names after "
+                         f"{SPECIES_PREFIX!r}, separated by commas. {SPECIES_GRAMMAR}")
+    return _dedupe(names, "species", text, 2)

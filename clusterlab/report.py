@@ -92,7 +92,8 @@ class ReportWriter:
 
 def scan_section(rep: ReportWriter, scan) -> None:
     """Radius-scan table, verdict and convergence plot."""
-    rep.section(f"Radius scan of molecule {scan.molecule} (frame {scan.frame})",
+    species = f", species {scan.species}" if getattr(scan, "species", None) else ""
+    rep.section(f"Radius scan of molecule {scan.molecule}{species} (frame {scan.frame})",
                 f"Method: {scan.method.describe()}. **Verdict:** {scan.verdict.message}.")
     rep.table(scan.table, ["radius_A", "n_env_molecules", "n_charges", "S1_eV", "S1_shift_eV", "T1_eV",
                            "T1_shift_eV", "dEST_eV", "IP_shift_eV", "EA_shift_eV"])
@@ -123,6 +124,13 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
     if len(stats):
         rep.text(f"σ intervals: {int(100 * 0.95)} % bootstrap (BCa) confidence intervals.")
         rep.table(stats, list(stats.columns))
+        if "species" in t.columns and t["species"].nunique() > 1:
+            per = pd.concat([sample.stats(q, by="species", n_boot=n_boot, seed=0).assign(quantity=q)
+                             for q in stats.quantity], ignore_index=True)
+            per = per.rename(columns={"mean": "mean_eV", "sigma": "sigma_eV", "sigma_lo": "sigma_lo_eV",
+                                      "sigma_hi": "sigma_hi_eV"})
+            rep.text("Per species:")
+            rep.table(per, ["quantity", "species", "n", "mean_eV", "sigma_eV", "sigma_lo_eV", "sigma_hi_eV"])
         q0 = stats.quantity.iloc[0]
         rep.figure(plot_histogram(t[q0].to_numpy(dtype=float), label=q0.replace("_eV", "")),
                    f"histogram_{q0}.png", f"Distribution of {q0} with the Gaussian fit")

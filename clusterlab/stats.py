@@ -27,6 +27,7 @@ from .geometry import box_vectors, perpendicular_widths
 
 __all__ = [
     "disorder_stats",
+    "grouped_disorder_stats",
     "static_dynamic",
     "conformational_environmental",
     "spatial_correlation",
@@ -250,6 +251,62 @@ def disorder_stats(
     }
     name = values.name if isinstance(values, pd.Series) else None
     return pd.Series(out, name=name, dtype=object)
+
+
+def grouped_disorder_stats(
+    values: npt.ArrayLike | pd.Series,
+    groups: npt.ArrayLike | pd.Series,
+    *,
+    name: str = "group",
+    **kw: Any,
+) -> pd.DataFrame:
+    """:func:`disorder_stats` of each group of values (e.g. per molecular species).
+
+    Parameters
+    ----------
+    values : array_like, shape (n,), energy
+    groups : array_like, shape (n,)
+        Group label of each value (e.g. the ``species`` column of a site table).
+    name : str, default "group"
+        Name of the label column of the result.
+    **kw
+        Passed to :func:`disorder_stats` (``n_boot``, ``seed``, ``confidence``,
+        ``method``); every group gets the same seed.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per group, in the order groups first appear: the label
+        column ``name``, then the fields of :func:`disorder_stats`. A group
+        with fewer than 3 finite values keeps its row with ``n``,
+        ``n_dropped`` and NaN statistics.
+
+    Raises
+    ------
+    InputError
+        Values and groups of different lengths, or an invalid option.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> t = grouped_disorder_stats(rng.normal(0, [0.1] * 50 + [0.2] * 50), ["H"] * 50 + ["G"] * 50,
+    ...                            name="species", seed=1)
+    >>> t["species"].tolist(), bool(t["sigma"].iloc[1] > t["sigma"].iloc[0])
+    (['H', 'G'], True)
+    """
+    arr = _as_1d_float(values)
+    labels = np.asarray(groups, dtype=object)
+    if labels.shape != arr.shape:
+        raise InputError(f"groups must hold one label per value ({arr.size}); got shape {labels.shape}")
+    rows = []
+    for g in dict.fromkeys(labels.tolist()):
+        x = arr[labels == g]
+        n_ok = int(np.isfinite(x).sum())
+        if n_ok < 3:
+            rows.append({name: g, "n": n_ok, "n_dropped": int(x.size - n_ok)})
+            continue
+        rows.append({name: g, **disorder_stats(x, **kw).to_dict()})
+    return pd.DataFrame(rows, columns=[name, *disorder_stats(np.arange(3.0), n_boot=100).index])
 
 
 # --------------------------------------------------------------------------

@@ -10,11 +10,12 @@ Example (every key optional except ``film.topology``)::
     preset = "draft"          # then any Method field, e.g. basis = "6-31g"
 
     [scan]
-    molecule = 0
+    molecule = 0              # or species = "GST": its molecule nearest the box centre
     radii = [6.0, 9.0, 12.0]
 
     [sample]
-    molecules = "all"         # or ids "0-99", a selection "resname GST", a list [0, 5]
+    molecules = "all"         # or ids "0-99", species "species:GST", a selection "resname GST", a list [0, 5]
+    species = "GST"           # optional: only molecules of these species (a name or a list)
     n = 12
     frames = "0-19:5"         # or a list [0, 10]; ranges include both ends
     radius = 12.0
@@ -40,7 +41,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from .errors import InputError, StudyFileError
-from .ranges import is_id_text, parse_frames, parse_ids, parse_radii
+from .ranges import SPECIES_GRAMMAR, is_id_text, parse_frames, parse_ids, parse_radii, parse_species
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -84,6 +85,8 @@ SCHEMA: dict[str, dict[str, Setting]] = {
     },
     "scan": {
         "molecule": Setting((int,), None, "molecule id of a radius scan (omit the section to skip the scan)"),
+        "species": Setting((str,), None, "species of the scanned molecule: without 'molecule', the molecule of "
+                                         "this species nearest the box centre"),
         "radii": Setting((list, str), [6.0, 9.0, 12.0, 15.0], "cut radii of the scan (Å): a list or a text "
                                                              "such as '6-15:3' (ends included)"),
         "frame": Setting((int,), 0, "frame of the scan"),
@@ -93,8 +96,10 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "tol_eV": Setting(_num(), 0.010, "convergence tolerance (eV)"),
     },
     "sample": {
-        "molecules": Setting((str, list), "all", "'all', ids such as '0-99, 120' (ends included), an MDAnalysis "
-                                                 "selection string, or a list of ids"),
+        "molecules": Setting((str, list), "all", "'all', ids such as '0-99, 120' (ends included), species such "
+                                                 "as 'species:GST', an MDAnalysis selection string, or a list of ids"),
+        "species": Setting((str, list), None, "only molecules of these species (a name or a list of names), e.g. "
+                                              "'GST' for a guest-only sample of a doped film"),
         "n": Setting((int,), None, "random sub-sample size (omit for all selected)"),
         "seed": Setting((int,), 0, "random seed of the sub-sample"),
         "frames": Setting((int, list, str), None, "frame, list of frames or a text such as '0-19:5' (ends "
@@ -112,6 +117,8 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "polarize_molecules": Setting((list, str), None, "molecule ids to polarize, a list or a text such as "
                                                          "'0-9' (default all; seconds each)"),
         "reference_molecule": Setting((int,), 0, "molecule whose geometry the state charges are fitted on"),
+        "species": Setting((str, list), None, "species to fit state charges for, each on its own reference "
+                                              "(default: every species of the film)"),
         "charges_method": Setting((str,), None, "'xc/basis' of the state-charge fit and finite fields (the study "
                                                 "method with this xc and basis; default: the study method)"),
         "n_conformers": Setting((int,), 1, "conformer references per molecule type (one QM fit each)"),
@@ -222,6 +229,15 @@ def _read_ranges(section: str, key: str, value: Any) -> Any:
         return parse_ids(value, None).tolist()
     if key == "molecules" and is_id_text(value) and not _is_all(value):
         return parse_ids(value, None).tolist()
+    if key == "molecules":
+        parse_species(value)  # a species text is checked here; the film checks the names later
+    if key == "species":
+        names = [value] if isinstance(value, str) else value
+        if not names or not all(isinstance(n, str) and n.strip() and not re.search(r"[\s,]", n.strip())
+                                for n in names):
+            raise InputError(f"species {value!r} must be a species name or a list of names (no spaces or "
+                             f"commas inside a name). {SPECIES_GRAMMAR}")
+        return value.strip() if isinstance(value, str) else [n.strip() for n in names]
     if key == "polarize_molecules":
         return None if _is_all(value) else parse_ids(value, None).tolist()
     return value

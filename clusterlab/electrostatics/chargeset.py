@@ -91,7 +91,12 @@ class ConformerCharges:
 
 @dataclass
 class StateChargeSet:
-    """Charges of S0, S1, T1, cation and anion per residue name.
+    """Charges of S0, S1, T1, cation and anion per molecular species.
+
+    Every mapping below is keyed by the species name (the ``species`` column
+    of a film's molecules table, which is the residue name); each species has
+    its own charges, references and responses. ``resname`` in the attribute
+    descriptions is that species name.
 
     Attributes
     ----------
@@ -233,7 +238,13 @@ class StateChargeSet:
     # --------------------------------------------------------------- access
     @property
     def resnames(self) -> list[str]:
+        """The species of the set, sorted (the keys of ``charges_e``)."""
         return sorted(self.charges_e)
+
+    @property
+    def species(self) -> list[str]:
+        """The species of the set, sorted: the same as :attr:`resnames`."""
+        return self.resnames
 
     def states_of(self, resname: str) -> tuple[str, ...]:
         return tuple(self.charges_e[resname])

@@ -21,7 +21,7 @@ Sign conventions follow :mod:`clusterlab.transport.rates`.
 from __future__ import annotations
 
 from .files import EXPORT_FORMAT, EXPORT_FORMAT_VERSION, ExportTables, export_metadata, read_export, write_export
-from .pairs import pair_table
+from .pairs import pair_classes, pair_table
 from .rates import graph_from_export, hopping_rates
 from .sites import (
     NO_SOURCE,
@@ -40,6 +40,7 @@ __all__ = [
     "export_study",
     "site_table",
     "pair_table",
+    "pair_classes",
     "hopping_rates",
     "graph_from_export",
     "write_export",

@@ -31,7 +31,23 @@ if TYPE_CHECKING:  # pragma: no cover
 
 FloatArray = npt.NDArray[np.float64]
 
-__all__ = ["pair_table"]
+__all__ = ["pair_table", "pair_classes"]
+
+
+def pair_classes(species_i: npt.ArrayLike, species_j: npt.ArrayLike) -> npt.NDArray[np.str_]:
+    """The class of each pair: its two species joined by ``-`` in sorted
+    order, so ``i -> j`` and ``j -> i`` share it.
+
+    >>> pair_classes(["HST", "GST", "GST"], ["HST", "HST", "GST"]).tolist()
+    ['HST-HST', 'GST-HST', 'GST-GST']
+    """
+    a = np.asarray(species_i).astype(str)
+    b = np.asarray(species_j).astype(str)
+    if a.shape != b.shape:
+        raise InputError(f"species_i and species_j must have the same shape; got {a.shape} and {b.shape}.")
+    swap = a > b
+    lo, hi = np.where(swap, b, a), np.where(swap, a, b)
+    return np.char.add(np.char.add(lo, "-"), hi)
 
 
 def _transition_charges_per_atom(film: "Film", transition_charges: Any) -> tuple[FloatArray, np.ndarray]:
@@ -40,7 +56,7 @@ def _transition_charges_per_atom(film: "Film", transition_charges: Any) -> tuple
     if not isinstance(tr, Mapping):
         raise InputError("transition_charges= must be a mapping {resname: charges (e) in atom order} or a "
                          f"StateChargeSet with transition charges; got {type(transition_charges).__name__}.")
-    names = np.asarray(film.molecule_resnames).astype(str)
+    names = np.asarray(film.molecule_species).astype(str)
     sizes = film.index.sizes()
     q = np.full(film.n_atoms, np.nan)
     covered = np.zeros(film.n_molecules, dtype=bool)
@@ -106,7 +122,8 @@ def pair_table(
     Returns
     -------
     pandas.DataFrame
-        ``frame, i, j, resname_i, resname_j, distance_A, dx_A, dy_A, dz_A,
+        ``frame, i, j, resname_i, resname_j, species_i, species_j,
+        pair_class`` (:func:`pair_classes`), ``distance_A, dx_A, dy_A, dz_A,
         min_atom_distance_A``; with transition charges or dipoles also
         ``mu_i_x_D ... mu_j_z_D, kappa, V_dipole_eV`` and (charges)
         ``V_charges_eV``, NaN for pairs with an uncovered molecule; with
@@ -127,11 +144,15 @@ def pair_table(
     t = neighbour_pairs(cent, cutoff_A, box=geo.box, criterion=criterion, atom_positions_A=pos,
                         atom_molecule=film.molecule_of_atom, with_min_atom_distance=True)
     names = np.asarray(film.molecule_resnames).astype(str)
+    species = np.asarray(film.molecule_species).astype(str)
     i, j = t["i"].to_numpy(), t["j"].to_numpy()
     d = t[["dx_A", "dy_A", "dz_A"]].to_numpy(dtype=float)
     t.insert(0, "frame", np.full(len(t), f, dtype=np.int64))
     t.insert(3, "resname_i", names[i])
     t.insert(4, "resname_j", names[j])
+    t.insert(5, "species_i", species[i])
+    t.insert(6, "species_j", species[j])
+    t.insert(7, "pair_class", pair_classes(species[i], species[j]))
     mu = None
     covered = None
     if transition_charges is not None:

@@ -71,7 +71,8 @@ _COLUMNS: dict[str, tuple[str, str]] = {
     "frame": ("", "trajectory frame index (0-based)"),
     "molecule": ("", "molecule id (0-based, order of the film's molecules table)"),
     "resname": ("", "residue name of the molecule"),
-    "species": ("", "molecule type (the residue name); sites of one species share model parameters"),
+    "species": ("", "molecular species of the site (film.molecules['species'], the residue name), e.g. host or "
+                    "guest of a doped film; sites of one species share model parameters"),
     "x_A": ("Å", "centroid x, whole molecule, wrapped into the primary cell"),
     "y_A": ("Å", "centroid y, whole molecule, wrapped into the primary cell"),
     "z_A": ("Å", "centroid z, whole molecule, wrapped into the primary cell"),
@@ -96,6 +97,10 @@ _COLUMNS: dict[str, tuple[str, str]] = {
     "j": ("", "molecule id of the second site of the pair"),
     "resname_i": ("", "residue name of i"),
     "resname_j": ("", "residue name of j"),
+    "species_i": ("", "species of i"),
+    "species_j": ("", "species of j"),
+    "pair_class": ("", "the two species joined by '-' in sorted order, e.g. 'HST-HST', 'GST-HST', 'GST-GST' "
+                       "(host-guest pairs of a doped film)"),
     "distance_A": ("Å", "minimum-image centroid-centroid distance"),
     "dx_A": ("Å", "minimum-image vector from centroid i to centroid j, x"),
     "dy_A": ("Å", "minimum-image vector from centroid i to centroid j, y"),
@@ -488,14 +493,15 @@ def site_table(
         raise InputError("no frames to export.")
     n_mol = film.n_molecules
     unwrapped = unwrapped_centroids(film, max(frame_list))
-    names = np.asarray(film.molecule_resnames).astype(str)
+    resnames = np.asarray(film.molecule_resnames).astype(str)
+    species = np.asarray(film.molecule_species).astype(str)
     parts = []
     for f in frame_list:
         geo = film.frame_geometry(f, periodic=film.has_box)
         c = np.asarray(geo.centroids_A, dtype=np.float64)
         parts.append(pd.DataFrame({
             "frame": np.full(n_mol, f, dtype=np.int64), "molecule": np.arange(n_mol, dtype=np.int64),
-            "resname": names, "species": names,
+            "resname": resnames, "species": species,
             "x_A": c[:, 0], "y_A": c[:, 1], "z_A": c[:, 2],
             "x_unwrapped_A": unwrapped[f, :, 0], "y_unwrapped_A": unwrapped[f, :, 1],
             "z_unwrapped_A": unwrapped[f, :, 2],

@@ -8,10 +8,10 @@ from .doped import (ConfinementResult, HostGuestOverview, SpeciesEnergies, State
                     triplet_confinement)
 from .filmmodel import FilmModel, FilmModelResult, film_site_energies, run_film_model
 from .sample import SiteSample, choose_frames, choose_molecules, sample_sites, site_table
-from .scan import ScanResult, radius_scan
+from .scan import ScanResult, pick_species_molecule, radius_scan
 from .tasks import TASK_FN, cluster_task, run_cluster_task
 
-__all__ = ["radius_scan", "ScanResult", "sample_sites", "SiteSample", "choose_molecules", "choose_frames",
+__all__ = ["radius_scan", "ScanResult", "pick_species_molecule", "sample_sites", "SiteSample", "choose_molecules", "choose_frames",
            "site_table",
            "cluster_task", "run_cluster_task", "TASK_FN", "fit_state_charges", "add_field_response",
            "conformer_spread", "ConformerSpread", "FilmModel", "FilmModelResult", "film_site_energies",

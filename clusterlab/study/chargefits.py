@@ -61,35 +61,51 @@ def _check_fit_options(fit_kw: Mapping[str, Any]) -> None:
                          "not from fit options.")
 
 
+def _wanted_species(film: "Film", species: Sequence[str] | None, resnames: Sequence[str] | None) -> list[str]:
+    """The species a fit covers (default: all of the film's), each checked to
+    exist and to have one composition."""
+    if species is not None and resnames is not None:
+        raise InputError("give species= or its former name resnames=, not both.")
+    asked = species if species is not None else resnames
+    wanted = list(film.species.index) if asked is None else film.check_species(
+        [asked] if isinstance(asked, str) else list(asked))
+    for sp in wanted:
+        film.species_formula(sp)
+    return [str(sp) for sp in wanted]
+
+
 def _type_molecule(film: "Film", res: str, molecule: int = -1) -> int:
-    """``molecule`` when it is a copy (>= 0), else the first molecule named ``res``."""
+    """``molecule`` when it is a copy (>= 0), else the first molecule of species ``res``."""
     if molecule >= 0:
         return int(molecule)
-    ids = np.flatnonzero(np.asarray(film.molecule_resnames) == res)
-    if ids.size == 0:
-        raise InputError(f"the film has no molecules named {res!r}; it has {sorted(set(film.molecule_resnames))}.")
-    return int(ids[0])
+    return int(film.select(species=film.check_species(res))[0])
 
 
-def fit_state_charges(film: "Film", method: Method, *, resnames: Sequence[str] | None = None,
-                      frame: int = 0, molecules: Mapping[str, int] | None = None,
+def fit_state_charges(film: "Film", method: Method, *, species: Sequence[str] | None = None,
+                      resnames: Sequence[str] | None = None, frame: int = 0,
+                      molecules: Mapping[str, int] | None = None,
                       states: Sequence[str] = KNOWN_STATES, transition: bool = True,
                       n_conformers: int = 1, conformer_frames: Sequence[int] | None = None,
                       min_conformer_rmsd_A: float = 0.25, conformer_medoids: bool = True,
                       symmetrize: bool = False, progress: bool = True, **fit_kw: Any) -> StateChargeSet:
-    """Fit state charges on reference copies of each molecule type.
+    """Fit state charges on reference copies of each molecular species.
+
+    The set is keyed by species (the ``species`` column of ``film.molecules``):
+    each species gets its own references, charges and (later) field responses.
 
     Parameters
     ----------
     film : Film
     method : clusterlab.Method
         QM method of every fit (TDA for S1/T1, ΔSCF for the ions).
+    species : sequence of str, optional
+        Species to fit (default: every species of the film).
     resnames : sequence of str, optional
-        Molecule types to fit (default: all residue names of the film).
+        The former name of ``species`` (species are residue names); give one of the two.
     frame : int
         Frame the (first) reference copies are taken from (whole, own geometry).
-    molecules : mapping resname -> molecule id, optional
-        Which copy is the first reference (default: the first molecule of each type).
+    molecules : mapping species -> molecule id, optional
+        Which copy is the first reference (default: the first molecule of each species).
     states, transition, **fit_kw
         Passed to :func:`~clusterlab.qm.statecharges.state_charges`
         (fit-point options such as ``grid``, ``points_A``, ``restraint``; the
@@ -122,13 +138,15 @@ def fit_state_charges(film: "Film", method: Method, *, resnames: Sequence[str] |
     Raises
     ------
     InputError
-        ``method`` not a Method, a QM setting among ``fit_kw``, a resname the
-        film does not have, or ``n_conformers < 1``.
+        ``method`` not a Method, a QM setting among ``fit_kw``, a species the
+        film does not have (the message lists the species), both ``species``
+        and ``resnames``, or ``n_conformers < 1``.
+    FilmError
+        A species whose molecules have several compositions.
     """
     require_method(method, "fit_state_charges")
     _check_fit_options(fit_kw)
-    names = np.asarray(film.molecule_resnames)
-    wanted = list(dict.fromkeys(names.tolist())) if resnames is None else [str(r) for r in resnames]
+    wanted = _wanted_species(film, species, resnames)
     if int(n_conformers) < 1:
         raise InputError(f"n_conformers must be at least 1; got {n_conformers!r}.")
     if "S0" not in states:
@@ -140,11 +158,13 @@ def fit_state_charges(film: "Film", method: Method, *, resnames: Sequence[str] |
     fits: dict[str, dict[str, Any]] = {}
     confs: dict[str, list[ConformerCharges]] = {}
     bar = progress_bar(None, desc="state-charge fits", enabled=progress, unit="reference")
+    names = np.asarray(film.molecule_species)
     for res in wanted:
         ids = np.flatnonzero(names == res)
-        if ids.size == 0:
-            raise InputError(f"the film has no molecules named {res!r}; it has {sorted(set(names))}.")
         mol0 = int(molecules[res]) if molecules and res in molecules else int(ids[0])
+        if molecules and res in molecules and names[film.check_molecule(mol0)] != res:
+            raise InputError(f"molecules={{{res!r}: {mol0}}}: molecule {mol0} is of species {names[mol0]!r}, "
+                             f"not {res!r}.")
         picks = [(int(frame), mol0)]
         if int(n_conformers) > 1:
             cand = [(f, int(m)) for f in frames for m in ids]
@@ -243,25 +263,26 @@ def add_field_response(charges: StateChargeSet, film: "Film", method: Method, *,
     return out
 
 
-def film_equivalence_classes(film: "Film", resnames: Sequence[str] | None = None) -> dict[str, IntArray]:
-    """Topological equivalence classes of the atoms of each molecule type
+def film_equivalence_classes(film: "Film", resnames: Sequence[str] | None = None, *,
+                             species: Sequence[str] | None = None) -> dict[str, IntArray]:
+    """Topological equivalence classes of the atoms of each species
     (:func:`~clusterlab.electrostatics.conformers.equivalence_classes` of its
     first molecule), from the film's bonds, or from interatomic distances in
-    frame 0 when the film has none.
+    frame 0 when the film has none. ``resnames`` is the former name of ``species``.
 
     Raises
     ------
     InputError
-        A resname the film does not have.
+        A species the film does not have.
+    FilmError
+        A species whose molecules have several compositions.
     """
-    names = np.asarray(film.molecule_resnames)
-    wanted = list(dict.fromkeys(names.tolist())) if resnames is None else [str(r) for r in resnames]
+    names = np.asarray(film.molecule_species)
+    wanted = _wanted_species(film, species, resnames)
     b = film.bonds
     out = {}
     for res in wanted:
         ids = np.flatnonzero(names == res)
-        if ids.size == 0:
-            raise InputError(f"the film has no molecules named {res!r}.")
         atoms = film.molecule_atoms(int(ids[0]))
         syms = list(film.symbols[atoms])
         if b is not None and len(b):
@@ -390,7 +411,7 @@ def conformer_spread(
     require_method(method, "conformer_spread")
     _check_fit_options(fit_kw)
     res = resname if resname is not None else charges.resnames[0]
-    names = np.asarray(film.molecule_resnames)
+    names = np.asarray(film.molecule_species)
     ids = np.flatnonzero(names == res)
     if ids.size == 0 or res not in charges.charges_e:
         raise InputError(f"residue {res!r} is not in both the film and the charge set.")

@@ -103,7 +103,7 @@ def frame_families(film: "Film", charges: StateChargeSet, positions_A: FloatArra
     ChargeError
         References whose atom count differs from the film's molecules of that name.
     """
-    names = np.asarray(film.molecule_resnames)
+    names = np.asarray(film.molecule_species)
     fam = np.full(film.n_molecules, -1, np.int64)
     rot = np.tile(np.eye(3), (film.n_molecules, 1, 1))
     rms = np.full(film.n_molecules, np.nan)

@@ -29,7 +29,7 @@ image that qualifies joins once, images of molecule i itself included.
 Charges
 -------
 State charges come from a :class:`~clusterlab.electrostatics.chargeset.StateChargeSet`
-(per residue name, ESP charges of S0, S1, T1, cation and anion, fitted on
+(per molecular species, i.e. the ``species`` column of ``film.molecules``, ESP charges of S0, S1, T1, cation and anion, fitted on
 reference copies by :func:`clusterlab.study.chargefits.fit_state_charges`).
 The environment's ground-state charges are the film's charge source
 (``environment="film"``, e.g. topology charges; what carving puts into
@@ -166,13 +166,14 @@ def environment_pairs(film: "Film", radius_A: float, *, frame: int = 0, rule: st
 def _difference_arrays(film: "Film", charges: StateChargeSet, states: Sequence[str]
                        ) -> tuple[dict[str, FloatArray], BoolArray]:
     """Per-atom ``q_X - q_S0`` for every state, and which molecules are covered."""
-    names = np.asarray(film.molecule_resnames)
+    names = np.asarray(film.molecule_species)
     covered = np.isin(names, list(charges.charges_e))
     out = {s: np.full(film.n_atoms, np.nan) for s in states}
     for res in charges.resnames:
         ids = np.flatnonzero(names == res)
         if ids.size == 0:
             continue
+        film.species_formula(res)  # one composition per species, or the set cannot fit it
         sizes = film.index.sizes()[ids]
         for s in states:
             dq = charges.difference(res, s)
@@ -188,7 +189,7 @@ def _difference_arrays(film: "Film", charges: StateChargeSet, states: Sequence[s
 def _family_overrides(film: "Film", charges: StateChargeSet, fams: FrameFamilies, states: Sequence[str],
                       dq: dict[str, FloatArray], q_env: FloatArray | None) -> None:
     """Put each copy's family charges into the per-atom arrays (in place)."""
-    names = np.asarray(film.molecule_resnames)
+    names = np.asarray(film.molecule_species)
     for res, refs in charges.conformers.items():
         ids = np.flatnonzero(names == res)
         if ids.size == 0 or len(refs) < 2:
@@ -208,7 +209,7 @@ def _reference_tensors(film: "Film", charges: StateChargeSet, fams: FrameFamilie
     """Per molecule type: the molecules of that type, ``pick(reference)`` of each
     molecule's conformer reference (stacked) and the rotation of each molecule from
     its reference's frame into the film."""
-    names = np.asarray(film.molecule_resnames)
+    names = np.asarray(film.molecule_species)
     for res, refs in charges.conformers.items():
         ids = np.flatnonzero(names == res)
         if ids.size == 0:
@@ -240,14 +241,15 @@ def _environment_charges(film: "Film", charges: StateChargeSet, environment: str
     if environment == "film":
         return np.asarray(film.charges, dtype=np.float64)
     base = np.array(film.charges, dtype=np.float64) if film.charges_available else np.full(film.n_atoms, np.nan)
-    names = np.asarray(film.molecule_resnames)
+    names = np.asarray(film.molecule_species)
     for res in charges.resnames:
         q0 = charges.charges_e[res]["S0"]
         for k in np.flatnonzero(names == res):
             base[film.index.of(int(k))] = q0
     if np.isnan(base).any():
-        raise ChargeError("environment='fitted' covers only the fitted residue names and the film "
-                          "has no charges for the others.")
+        missing = sorted(set(names[np.isnan(base[film.index.atoms[film.index.offsets[:-1]]])].tolist()))
+        raise ChargeError(f"environment='fitted' covers only the fitted species {charges.resnames} and the "
+                          f"film has no charges for the species {missing}.")
     return base
 
 
@@ -306,7 +308,11 @@ class FilmModel:
     ----------
     film : Film
     charges : StateChargeSet
-        State charges per residue name; molecules of other residue names get NaN.
+        State charges (and field responses) per species, keyed by the
+        species name (:attr:`Film.molecule_species`, today the residue name),
+        each species with its own conformer references; molecules of species
+        the set lacks get NaN. A species whose molecules have several
+        compositions is refused (:meth:`Film.species_formula`).
     radius_A : float, Å
         Environment radius with the semantics of :meth:`Film.carve`; radii
         beyond half the box include every qualifying periodic image once.
@@ -436,7 +442,8 @@ class FilmModel:
         self._dq0 = {s: np.nan_to_num(v) for s, v in dq.items()}
         self._q_env0 = _environment_charges(film, charges, environment)
         self._alpha = atomic_polarizabilities(list(film.symbols)) if self._pol_states else None
-        self._names = np.asarray(film.molecule_resnames)
+        self._names = np.asarray(film.molecule_species).astype(str)
+        self._resnames = np.asarray(film.molecule_resnames).astype(str)
 
     # ------------------------------------------------------------ description
     @property
@@ -492,7 +499,8 @@ class FilmModel:
         film, geo, fams, mols = self.film, inp.geo, inp.families, sel.molecules
         pot, pairs, covered = env.potential_V, env.pairs, self._covered[sel.molecules]
         col: dict[str, np.ndarray] = {
-            "frame": np.full(len(mols), geo.frame), "molecule": mols, "resname": self._names[mols],
+            "frame": np.full(len(mols), geo.frame), "molecule": mols, "resname": self._resnames[mols],
+            "species": self._names[mols],
             "x_A": geo.centroids_A[mols, 0], "y_A": geo.centroids_A[mols, 1], "z_A": geo.centroids_A[mols, 2],
             "n_env_molecules": np.bincount(pairs.center, minlength=film.n_molecules)[mols],
         }
@@ -568,7 +576,7 @@ class FilmModel:
         -------
         FilmModelResult
             ``table``: one row per (frame, molecule): ``frame, molecule,
-            resname, x_A, y_A, z_A`` (centroid, primary cell),
+            resname, species, x_A, y_A, z_A`` (centroid, primary cell),
             ``n_env_molecules`` (environment molecule images),
             ``<state>_shift_eV`` per state, ``IP_shift_eV`` / ``EA_shift_eV``
             when the ions are asked for (engine sign convention: EA =
@@ -722,7 +730,7 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
                    reference_molecule: int = 0, charges: StateChargeSet | None = None,
                    progress: bool = True, n_conformers: int = 1, response: bool = False,
                    symmetrize: bool = False, response_states: Sequence[str] = ("S1",),
-                   store: Any = None) -> FilmModelResult:
+                   store: Any = None, species: Sequence[str] | None = None) -> FilmModelResult:
     """Fit state charges on reference copies (unless given) and evaluate the
     film-wide model for S1, T1, cation and anion of every molecule and frame.
 
@@ -744,7 +752,10 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
     film this is what makes the S1 shifts follow embedded QM (README).
 
     The result's ``charges`` is the fitted set (transition charges included,
-    for excitonic couplings).
+    for excitonic couplings). Every species of ``species`` (default: every
+    species of the film, so host and guest of a doped film) gets its own
+    fits: ``reference_molecule`` is the first reference of its own species,
+    the first molecule of each other species that of its species.
 
     With a :class:`~clusterlab.store.ResultStore` as ``store``, the fitted set
     is saved in the store's metadata once the state charges are fitted and
@@ -767,11 +778,15 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
     save: Callable[[StateChargeSet], None] | None = None
     if store is not None:
         store.claim_film(film.film_id, topology=film.topology_path)
+    ref_species = str(film.molecule_species[film.check_molecule(reference_molecule)])
+    fitted = film.check_species(list(film.species.index) if species is None else species)
     if store is not None and charges is None:
+        # a one-species fit keeps the key it had before species were fitted apart
+        extra = {} if fitted == [ref_species] else {"species": fitted}
         slot = "film_model_charges:" + task_key(
             kind="film-model-charges", film_id=film.film_id, reference_molecule=int(reference_molecule),
             method=method.to_dict(), n_conformers=int(n_conformers), symmetrize=bool(symmetrize),
-            response_states=response_states if response else [])
+            response_states=response_states if response else [], **extra)
         def _save(cset: StateChargeSet) -> None:
             store.meta[slot] = cset.to_json()
 
@@ -779,8 +794,7 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
         if slot in store.meta:
             charges = StateChargeSet.from_json(store.meta[slot])
     if charges is None:
-        res = str(film.molecule_resnames[film.check_molecule(reference_molecule)])
-        charges = fit_state_charges(film, method, resnames=[res], molecules={res: reference_molecule},
+        charges = fit_state_charges(film, method, species=fitted, molecules={ref_species: reference_molecule},
                                     n_conformers=n_conformers, symmetrize=symmetrize, progress=progress)
         if save is not None:
             save(charges)
@@ -794,6 +808,7 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
     result = FilmModel(film, charges, radius_A=radius_A, field_response=response_states if response else ()
                        ).run(frames, progress=progress)
     result.options.update({"fit_method": method.to_dict(), "reference_molecule": int(reference_molecule),
+                           "fitted_species": list(charges.species),
                            "n_conformers": int(n_conformers), "symmetrize": bool(symmetrize)})
     if not polarization:
         return result

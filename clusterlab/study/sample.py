@@ -27,7 +27,8 @@ from ..film import Film
 from ..qm.method import Method, require_method
 from ..ranges import is_id_text, parse_frames, parse_ids, parse_radii
 from ..runner import RunReport
-from ..stats import conformational_environmental, disorder_stats, spatial_correlation, static_dynamic
+from ..stats import (conformational_environmental, disorder_stats, grouped_disorder_stats, spatial_correlation,
+                     static_dynamic)
 from ..store import ResultStore
 from .scan import open_store
 from .tasks import check_film_method, cluster_task, run_cluster_tasks
@@ -37,21 +38,25 @@ CENTROID_COLUMNS = ("centroid_x_A", "centroid_y_A", "centroid_z_A")
 
 
 def choose_molecules(film: Film, molecules: Any = "all", *, n: int | None = None,
-                     seed: int | None = None) -> np.ndarray:
+                     seed: int | None = None, species: str | Sequence[str] | None = None) -> np.ndarray:
     """Molecule ids for a sample.
 
     Parameters
     ----------
     molecules : "all", ids in the text grammar of :mod:`clusterlab.ranges`
-        (``"0-9, 20"``, ends included), an MDAnalysis selection string (e.g.
-        ``"resname GST"``), or a sequence of ids.
+        (``"0-9, 20"``, ends included), a species selection (``"species:GST"``),
+        an MDAnalysis selection string (e.g. ``"resname GST"``), or a sequence of ids.
     n : int, optional
         Draw ``n`` of them at random without replacement (reproducible by ``seed``).
+    species : str or sequence of str, optional
+        Keep only molecules of these species (before drawing ``n``): a
+        "guest only" sample of a doped film is ``species="GST"``.
 
     Raises
     ------
     InputError
-        A bad id text or id, an int instead of a list, or ``n`` larger than the selection.
+        A bad id text or id, an int instead of a list, a species no molecule
+        carries (the message lists the species), or ``n`` larger than the selection.
     """
     if isinstance(molecules, str):
         if is_id_text(molecules):
@@ -63,6 +68,8 @@ def choose_molecules(film: Film, molecules: Any = "all", *, n: int | None = None
                          "use n= for a random sample of that size.")
     else:
         ids = parse_ids(molecules, film.n_molecules)
+    if species is not None:
+        ids = film.select(np.asarray(ids).tolist(), species=species)
     if n is not None:
         if not isinstance(n, (int, np.integer)) or n < 1:
             raise InputError(f"n={n!r} must be a positive integer.")
@@ -95,8 +102,9 @@ def site_table(store: ResultStore | str | os.PathLike[str], *, film: Film | None
     and one method are read, never a mix: the film is ``film`` (its content
     id), else ``film_id``, else the only film of the store; the method is
     ``method_key``, else the only method of that film's records. With a
-    ``film``, ``resname`` and the molecule centroids (Å, from
-    :meth:`Film.frame_geometry`) are added when the records lack them.
+    ``film``, ``resname``, ``species`` and the molecule centroids (Å, from
+    :meth:`Film.frame_geometry`) are added when the records lack them
+    (without a film, records that lack ``species`` take their ``resname``).
     Hand-written records without a film id count as records of any film.
 
     Parameters
@@ -112,7 +120,8 @@ def site_table(store: ResultStore | str | os.PathLike[str], *, film: Film | None
     Returns
     -------
     pandas.DataFrame
-        :meth:`ResultStore.to_frame` columns, ``molecule`` and ``frame`` as int.
+        :meth:`ResultStore.to_frame` columns, ``molecule`` and ``frame`` as
+        int, ``species`` (str) when the records or the film tell it.
 
     Raises
     ------
@@ -143,6 +152,9 @@ def site_table(store: ResultStore | str | os.PathLike[str], *, film: Film | None
     if film is not None:
         if "resname" not in df.columns:
             df["resname"] = film.molecules["resname"].to_numpy()[df["molecule"].to_numpy()]
+        if "species" not in df.columns or df["species"].isna().any():
+            known = film.molecule_species[df["molecule"].to_numpy()]
+            df["species"] = df["species"].fillna(pd.Series(known, index=df.index)) if "species" in df else known
         if not all(c in df.columns for c in CENTROID_COLUMNS):
             cent = np.full((len(df), 3), np.nan)
             for f, idx in df.groupby("frame").indices.items():
@@ -150,6 +162,8 @@ def site_table(store: ResultStore | str | os.PathLike[str], *, film: Film | None
                 cent[idx] = geo.centroids_A[df["molecule"].to_numpy()[idx]]
             for k, c in enumerate(CENTROID_COLUMNS):
                 df[c] = cent[:, k]
+    if "species" not in df.columns and "resname" in df.columns:  # records from before species: the resname
+        df["species"] = df["resname"]
     return df.reset_index(drop=True)
 
 
@@ -234,7 +248,7 @@ class SiteSample:
     """A site-energy sample: tidy table plus statistics on it.
 
     ``table`` has one row per (frame, molecule, radius): ids, resname,
-    centroid (Å), the site energies and shifts (eV) of every computed state,
+    species, centroid (Å), the site energies and shifts (eV) of every computed state,
     ``converged``. ``film_id`` and ``method`` name the one film and the one
     method every row belongs to (None when not known, e.g. hand-written records).
     """
@@ -289,12 +303,29 @@ class SiteSample:
             radius_A = float(t.radius_A.max())
         return t[np.isclose(t.radius_A.astype(float), radius_A)]
 
-    def stats(self, quantity: str = "S1_eV", *, radius_A: float | None = None, **kw: Any) -> pd.Series:
-        """:func:`disorder_stats` of one column at one radius."""
+    def stats(self, quantity: str = "S1_eV", *, radius_A: float | None = None, by: str | None = None,
+              **kw: Any) -> pd.Series | pd.DataFrame:
+        """:func:`disorder_stats` of one column at one radius.
+
+        ``by="species"`` (or any other column of the table) gives one row per
+        value of that column instead (:func:`~clusterlab.stats.grouped_disorder_stats`):
+        the disorder of host and guest apart. ``**kw`` go to :func:`disorder_stats`.
+
+        Raises
+        ------
+        InputError
+            A quantity or ``by`` column the table does not have.
+        """
         df = self.at(radius_A)
         if quantity not in df.columns:
             raise InputError(f"{quantity!r} is not a column of the sample; columns: {sorted(df.columns)}.")
-        return disorder_stats(df[quantity].to_numpy(dtype=float), **kw)
+        if by is None:
+            return disorder_stats(df[quantity].to_numpy(dtype=float), **kw)
+        if by not in df.columns:
+            raise InputError(f"by={by!r} is not a column of the sample; use e.g. 'species' (columns: "
+                             f"{sorted(df.columns)}).")
+        return grouped_disorder_stats(df[quantity].to_numpy(dtype=float), df[by].astype(str).to_numpy(),
+                                      name=by, **kw)
 
     def growth(self, quantity: str = "S1_shift_eV", **kw: Any) -> pd.DataFrame:
         """Mean and σ of ``quantity`` at each radius with confidence intervals:
@@ -337,6 +368,7 @@ def sample_sites(
     store: ResultStore | str | None,
     n: int | None = None,
     seed: int | None = None,
+    species: str | Sequence[str] | None = None,
     rule: str = "atom",
     qm_shell: float = 0.0,
     runner: str = "processes",
@@ -350,7 +382,8 @@ def sample_sites(
     Parameters
     ----------
     film : Film
-    molecules : "all", id text, selection string, or list of ids (see :func:`choose_molecules`)
+    molecules : "all", id text, species text (``"species:GST"``), selection string, or list of
+        ids (see :func:`choose_molecules`)
     frames : None (all), frame text (``"0-19:5"``, see :mod:`clusterlab.ranges`), int, slice or list
     radius : float, sequence of float or radius text (``"6-12:3"``), Å
         One radius, or several for the growth of the statistics with the cluster.
@@ -358,6 +391,9 @@ def sample_sites(
     store : ResultStore or path
         Every result is stored as it arrives; a re-run skips what is there.
     n, seed : random sub-sample of the selected molecules
+    species : str or sequence of str, optional
+        Only molecules of these species (e.g. ``"GST"`` for a guest-only
+        sample of a doped film), before the sub-sample is drawn.
     runner : "processes" (default), "serial", "dask" or a Runner
     on_result : callable(dict), optional
         Called with each finished row.
@@ -367,7 +403,7 @@ def sample_sites(
     SiteSample
     """
     require_method(method, "sample_sites")
-    ids = choose_molecules(film, molecules, n=n, seed=seed)
+    ids = choose_molecules(film, molecules, n=n, seed=seed, species=species)
     fr = choose_frames(film, frames)
     radii = parse_radii(radius)
     check_film_method(film, method)

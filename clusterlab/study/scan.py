@@ -31,7 +31,9 @@ import pandas as pd
 
 from ..errors import InputError
 from ..film import Film
+from ..geometry import box_vectors
 from ..qm.method import Method, check_periodic_environment, require_method
+from ..ranges import SPECIES_GRAMMAR, parse_species
 from ..runner import RunReport
 from ..stats import ConvergenceVerdict, converged_radius
 from ..store import ResultStore
@@ -59,6 +61,58 @@ def open_store(store: ResultStore | str | os.PathLike[str] | None) -> ResultStor
     if store is None:
         return ResultStore(os.path.join(tempfile.mkdtemp(prefix="clusterlab-"), "results.sqlite"))
     return ResultStore(store)
+
+
+def pick_species_molecule(film: Film, species: str, *, frame: int = 0, seed: int | None = None) -> int:
+    """The molecule of ``species`` a radius scan is run on.
+
+    Without ``seed``: the molecule of that species whose centroid (frame
+    ``frame``, primary cell) lies nearest the centre of the box (of the
+    centroids' bounding box for a film without a box); equal distances go
+    to the lowest id. With ``seed``: one molecule of the species drawn at
+    random by ``numpy.random.default_rng(seed)``.
+
+    Raises
+    ------
+    InputError
+        A species no molecule carries (the message lists the species), or
+        several species.
+    """
+    names = film.check_species(species)
+    if len(names) != 1:
+        raise InputError(f"a radius scan runs on one molecule: give one species, not {names}.")
+    ids = film.select(species=names)
+    if seed is not None:
+        return int(np.random.default_rng(seed).choice(ids))
+    geo = film.frame_geometry(frame, periodic=film.has_box)
+    cent = geo.centroids_A
+    if geo.box is not None:
+        centre = 0.5 * box_vectors(geo.box).sum(axis=0)
+    else:
+        centre = 0.5 * (cent.min(axis=0) + cent.max(axis=0))
+    d = np.linalg.norm(cent[ids] - centre, axis=1)
+    return int(ids[np.argmin(np.round(d, 9))])
+
+
+def scan_molecule(film: Film, molecule: Any, *, frame: int = 0) -> int:
+    """``molecule`` of :func:`radius_scan` as an id: an id as it is, a species
+    text ``"species:GST"`` as :func:`pick_species_molecule` picks it.
+
+    Raises
+    ------
+    InputError
+        Text that is not a species selection, or an unknown species;
+        :class:`~clusterlab.errors.CarvingError` for a bad id.
+    """
+    if isinstance(molecule, str):
+        names = parse_species(molecule)
+        if names is None:
+            raise InputError(f"molecule={molecule!r}: give a molecule id or one species as 'species:NAME'. "
+                             f"{SPECIES_GRAMMAR}")
+        if len(names) != 1:
+            raise InputError(f"molecule={molecule!r}: a radius scan runs on one molecule; name one species.")
+        return pick_species_molecule(film, names[0], frame=frame)
+    return film.check_molecule(molecule)
 
 
 def _check_radii(radii: Sequence[float]) -> list[float]:
@@ -93,6 +147,8 @@ class ScanResult:
     periodic : dict or None
         The periodic-limit values of the tracked quantities.
     report : RunReport
+    species : str or None
+        Species of the scanned molecule.
     polarizable_table : pandas.DataFrame or None
         The inner-radius series of a polarizable scan (outer radius fixed at
         the largest of ``radii``): one row per inner radius, ascending, a
@@ -113,6 +169,7 @@ class ScanResult:
     notes: list[str] = field(default_factory=list)
     polarizable_table: pd.DataFrame | None = None
     polarizable_verdict: ConvergenceVerdict | None = None
+    species: str | None = None
 
     def to_frame(self) -> pd.DataFrame:
         return self.table.copy()
@@ -141,7 +198,8 @@ class ScanResult:
                                 states=kw.pop("states", None), tol_eV=self.tol_eV, periodic=self.periodic, **kw)
 
     def __repr__(self) -> str:
-        return f"<ScanResult molecule={self.molecule} frame={self.frame}: {self.message}>"
+        sp = f" ({self.species})" if self.species else ""
+        return f"<ScanResult molecule={self.molecule}{sp} frame={self.frame}: {self.message}>"
 
 
 def scan_tasks(film: Film, molecule: int, radii: Sequence[float], method: Method, *, frame: int = 0,
@@ -173,7 +231,7 @@ def scan_tasks(film: Film, molecule: int, radii: Sequence[float], method: Method
 
 def radius_scan(
     film: Film,
-    molecule: int,
+    molecule: int | str,
     radii: Sequence[float],
     method: Method,
     *,
@@ -196,7 +254,11 @@ def radius_scan(
     Parameters
     ----------
     film : Film
-    molecule : int
+    molecule : int or str
+        A molecule id, or one species as ``"species:GST"``: then the
+        molecule of that species nearest the box centre in ``frame``
+        (:func:`pick_species_molecule`; pass its ``seed=`` choice as an id
+        for a random one).
     radii : sequence of float, Å
     method : Method
     frame : int
@@ -246,6 +308,7 @@ def radius_scan(
     require_method(method, "radius_scan")
     if periodic_limit:
         check_periodic_environment(method, "radius_scan(periodic_limit=True)")
+    molecule = scan_molecule(film, molecule, frame=frame)
     radii = _check_radii(radii)
     check_film_method(film, method)
     if polarizable_radii is not None:
@@ -301,7 +364,8 @@ def radius_scan(
         notes.append("some radii did not converge (converged=False rows); the verdict uses their NaN values")
     return ScanResult(table=table, verdict=verdict, tracked=tracked, molecule=int(molecule), frame=int(frame),
                       method=method, tol_eV=tol_eV, periodic=periodic, report=report, notes=notes,
-                      polarizable_table=inner_table, polarizable_verdict=inner_verdict)
+                      polarizable_table=inner_table, polarizable_verdict=inner_verdict,
+                      species=str(film.molecule_species[int(molecule)]))
 
 
 def _inner_series(st: ResultStore, tasks: list, radii: list[float], polarizable_radii: list[float],
@@ -336,7 +400,7 @@ def _inner_series(st: ResultStore, tasks: list, radii: list[float], polarizable_
 
 def _vacuum_row(row: dict) -> dict:
     """The vacuum row from any embedded result of the same QM region."""
-    out = {k: row.get(k) for k in ("frame", "molecule", "resname", "rule", "qm_shell_A", "method_key",
+    out = {k: row.get(k) for k in ("frame", "molecule", "resname", "species", "rule", "qm_shell_A", "method_key",
                                     "centroid_x_A", "centroid_y_A", "centroid_z_A")}
     out.update({"radius_A": 0.0, "n_env_molecules": 0, "n_charges": 0, "net_env_charge": 0.0,
                 "kind": "vacuum", "converged": True})

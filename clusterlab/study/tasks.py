@@ -71,6 +71,7 @@ def cluster_task(
         "film": film.spec(), "frame": frame, "molecule": molecule,
         "radius_A": "inf" if math.isinf(radius) else radius, "rule": rule,
         "qm_shell_A": float(qm_shell_A), "method": method.to_dict(), "kind": kind, "resname": resname,
+        "species": str(film.molecule_species[molecule]),
     }
     extra = {}
     if pol_r is not None:
@@ -199,6 +200,7 @@ def run_cluster_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
     c = geo.centroids_A[mol]
     summary: dict[str, Any] = {
         "frame": frame, "molecule": mol, "resname": payload.get("resname", ""),
+        "species": payload.get("species", payload.get("resname", "")),
         "radius_A": cluster.radius_A, "rule": payload["rule"], "qm_shell_A": float(payload["qm_shell_A"]),
         "n_env_molecules": cluster.n_env_molecules, "n_charges": cluster.n_charges,
         "net_env_charge": cluster.net_env_charge, "n_qm_molecules": len(cluster.qm_molecules),

@@ -14,7 +14,18 @@ import traitlets
 from ..errors import InputError
 from ..ranges import parse_radii
 
-__all__ = ["Radii", "fit_control", "format_radii", "link_radii"]
+__all__ = ["Radii", "fit_control", "format_radii", "link_radii", "species_dropdown", "ALL_SPECIES"]
+
+#: the value of a species chooser that keeps every species
+ALL_SPECIES = ""
+
+
+def species_dropdown(film: Any, **kwargs: Any) -> widgets.Dropdown:
+    """A species chooser for ``film``: "all species", then each species with
+    its molecule count (values: :data:`ALL_SPECIES` or the species name)."""
+    options = [("all species", ALL_SPECIES)] + [(f"{name} ({n})", str(name)) for name, n in film.species.items()]
+    return widgets.Dropdown(options=options, value=ALL_SPECIES, description="species",
+                            layout=widgets.Layout(width="220px"), **kwargs)
 
 
 class Radii(traitlets.List):

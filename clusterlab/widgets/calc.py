@@ -24,8 +24,8 @@ from ..qm.method import Method
 from ..ranges import parse_radii
 from ..store import ResultStore
 from ..study.plots import plot_convergence
-from ..study.scan import radius_scan
-from ._controls import Radii, fit_control, format_radii, link_radii
+from ..study.scan import pick_species_molecule, radius_scan
+from ._controls import Radii, fit_control, format_radii, link_radii, species_dropdown
 from ._jobs import BackgroundJob
 from . import _style
 
@@ -218,6 +218,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
                                        description="runner", layout=widgets.Layout(width="200px"))
         self.molecule = widgets.BoundedIntText(value=molecule, min=0, max=max(film.n_molecules - 1, 0),
                                                description="molecule", layout=widgets.Layout(width="170px"))
+        self.species = species_dropdown(film)
         self.frame = widgets.BoundedIntText(value=frame, min=0, max=max(film.n_frames - 1, 0),
                                             description="frame", layout=widgets.Layout(width="170px"))
         self.rule = widgets.Dropdown(options=["atom", "centroid"], value="atom", description="rule",
@@ -244,6 +245,8 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
                                           ("qm_shell_A", "qm_shell_A", self.qm_shell)):
                 traitlets.dlink((explorer, source), (self, name))
                 control.disabled = True
+            self.species.disabled = True
+        self.species.observe(self._on_species, names="value")
 
         self.run_button.on_click(self._on_run_click)
         self.cancel_button.on_click(self._on_cancel_click)
@@ -251,7 +254,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         settings = widgets.VBox([
             self.method_controls,
             widgets.HBox([self.radii, self.tol, self.periodic_limit]),
-            widgets.HBox([self.molecule, self.frame, self.rule, self.qm_shell]),
+            widgets.HBox([self.species, self.molecule, self.frame, self.rule, self.qm_shell]),
             widgets.HBox([self.store, self.runner]),
             widgets.HBox([self.run_button, self.cancel_button, self.progress]),
             self.status,
@@ -260,6 +263,12 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
                                                        layout=widgets.Layout(overflow="auto", max_width="100%"))])
         super().__init__([settings, results, self.errors], **kwargs)
         self.add_class("clusterlab-scan-panel")
+
+    def _on_species(self, change: dict) -> None:
+        """A chosen species puts its molecule nearest the box centre into the
+        molecule box (:func:`clusterlab.study.scan.pick_species_molecule`)."""
+        if change["new"]:
+            self.molecule_id = pick_species_molecule(self.film, change["new"], frame=self.frame_index)
 
     # ------------------------------------------------------------ checks
     @traitlets.validate("molecule_id")

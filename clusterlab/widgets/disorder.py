@@ -36,7 +36,7 @@ from ..study.doped import host_guest_overview, n_species
 from ..study.plots import plot_correlation, plot_growth, plot_histogram, plot_torsion
 from ..study.sample import CENTROID_COLUMNS, SiteSample, choose_molecules, sample_sites, site_table
 from ..export import export_study
-from ._controls import Radii, format_radii, link_radii
+from ._controls import Radii, format_radii, link_radii, species_dropdown
 from ._jobs import BackgroundJob
 from . import _style
 from .calc import _TABLE_CSS, MethodControls, frame_html
@@ -144,6 +144,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         w = widgets.Layout
         self.molecules = widgets.Text(value=molecules, description="molecules",
                                       placeholder="all, ids 0-9, or a selection")
+        self.species = species_dropdown(film)
         self.n_molecules = widgets.BoundedIntText(value=n_molecules, min=0, max=max(film.n_molecules, 1),
                                                   description="random n", layout=w(width="170px"))
         self.frames = widgets.Text(value=frames, description="frames", placeholder="0 | 0, 10 | 0-19:5 | all",
@@ -227,7 +228,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.tabs.observe(self._on_tab, names="selected_index")
 
         settings = widgets.VBox([
-            widgets.HBox([self.molecules, self.n_molecules, self.seed]),
+            widgets.HBox([self.molecules, self.species, self.n_molecules, self.seed]),
             widgets.HBox([self.frames, self.radii]),
             self.method_controls,
             self.runner,
@@ -244,10 +245,10 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
 
     # ---------------------------------------------------------- settings
     def selected_molecules(self) -> npt.NDArray[np.int64]:
-        """Molecule ids of the current selection (random subset when asked;
-        :func:`clusterlab.study.choose_molecules`)."""
+        """Molecule ids of the current selection, of the species chosen in
+        :attr:`species` (random subset when asked; :func:`clusterlab.study.choose_molecules`)."""
         text = self.molecules.value.strip() or "all"
-        sel = choose_molecules(self.film, text)
+        sel = choose_molecules(self.film, text, species=self.species.value or None)
         n = int(self.n_molecules.value)
         if 0 < n < len(sel):
             sel = choose_molecules(self.film, sel, n=n, seed=int(self.seed.value))

@@ -19,7 +19,7 @@ import traitlets
 
 from ..ranges import is_id_text, parse_ids
 from . import _style
-from ._controls import fit_control
+from ._controls import fit_control, species_dropdown
 
 __all__ = ["FilmExplorer"]
 
@@ -123,6 +123,7 @@ class FilmExplorer(widgets.VBox):
         self.search = widgets.Text(
             value="", placeholder="id, residue name or selection", description="find",
             continuous_update=False, layout=widgets.Layout(width="260px"))
+        self.species_picker = species_dropdown(film)
         self.molecule_picker = widgets.Dropdown(
             options=self._options(np.arange(min(len(mols), MAX_LISTED))), description="molecule",
             layout=widgets.Layout(width="260px"))
@@ -149,7 +150,7 @@ class FilmExplorer(widgets.VBox):
         self.view: Any = None
 
         controls = widgets.VBox([
-            widgets.HBox([self.search, self.molecule_picker]),
+            widgets.HBox([self.search, self.species_picker, self.molecule_picker]),
             self.radius_slider, self.shell_slider, self.rule_toggle, self.frame_slider,
             widgets.HBox([self.periodic_box, self.click_box]),
         ])
@@ -175,6 +176,7 @@ class FilmExplorer(widgets.VBox):
         self.molecule_picker.observe(self._on_picker, names="value")
         self.observe(self._on_setting, names=["molecule", "radius_A", "qm_shell_A", "rule", "frame", "periodic"])
         self.search.observe(self._on_search, names="value")
+        self.species_picker.observe(self._on_species, names="value")
         self.refresh()
 
     # ------------------------------------------------------------- settings
@@ -231,17 +233,26 @@ class FilmExplorer(widgets.VBox):
     def find_molecules(self, text: str) -> npt.NDArray[np.int64]:
         """Molecule ids matching ``text``: ids in the grammar of
         :mod:`clusterlab.ranges` (``"7"``, ``"3-9, 12"``, ends included), a
-        residue name (case-insensitive) or an MDAnalysis selection string."""
+        residue name (case-insensitive), a species text (``"species:GST"``)
+        or an MDAnalysis selection string; only molecules of the species
+        chosen in :attr:`species_picker` (:meth:`clusterlab.Film.select`)."""
+        species = self.species_picker.value or None
         text = text.strip()
         if not text:
-            return np.arange(self.film.n_molecules)
-        if is_id_text(text):
-            return parse_ids(text, self.film.n_molecules)
-        names = self.film.molecules["resname"].astype(str).str.upper()
-        hit = np.flatnonzero(names.to_numpy() == text.upper())
-        if hit.size:
-            return hit.astype(np.int64)
-        return np.asarray(self.film.select(text), dtype=np.int64)
+            ids = np.arange(self.film.n_molecules)
+        elif is_id_text(text):
+            ids = parse_ids(text, self.film.n_molecules)
+        else:
+            names = self.film.molecules["resname"].astype(str).str.upper()
+            hit = np.flatnonzero(names.to_numpy() == text.upper())
+            ids = hit if hit.size else self.film.select(text)
+        if species is not None:
+            ids = self.film.select(np.asarray(ids).tolist(), species=species)
+        return np.asarray(ids, dtype=np.int64)
+
+    def _on_species(self, change: dict) -> None:
+        """List the molecules of the chosen species (of the current search)."""
+        self._on_search({"new": self.search.value})
 
     def _on_search(self, change: dict) -> None:
         with self.errors:
