@@ -45,7 +45,7 @@ from ..errors import InputError
 from ..film import Film
 from ..geometry import box_vectors, dihedral_deg, perpendicular_widths
 from ..qm.results import ExcitationResult
-from ..stats import conformational_environmental, disorder_stats, mean_offset, periodic_fit
+from ..stats import conformational_environmental, grouped_disorder_stats, mean_offset, periodic_fit
 from ..store import ResultStore
 from .filmmodel import FilmModelResult
 from .jsonio import json_of_kind, table_from_dict, table_to_dict
@@ -74,8 +74,8 @@ CT_DISTANCE_THRESHOLD_A = 2.0
 # shared helpers
 # ---------------------------------------------------------------------------
 def n_species(film: Film) -> int:
-    """Number of distinct species of a film (``film.molecules["species"]``)."""
-    return int(film.molecules["species"].nunique())
+    """Number of distinct species of a film (:attr:`Film.species`)."""
+    return int(len(film.species))
 
 
 def _sites(sites: Any, *, radius_A: float | None, film: Film | None, what: str) -> pd.DataFrame:
@@ -279,19 +279,15 @@ def species_energies(sites: Any, *, film: Film | None = None, host: str | None =
     r_used = float(df["radius_A"].iloc[0]) if "radius_A" in df.columns and len(df) else None
     qs = [q for q in quantities if q in df.columns]
     rows = []
-    for sp in sorted(df["species"].unique()):
-        sub = df[df["species"] == sp]
-        for q in qs:
-            vals = pd.to_numeric(sub[q], errors="coerce").to_numpy(dtype=float)
-            n = int(np.isfinite(vals).sum())
-            row: dict[str, Any] = {"species": sp, "quantity": q, "n": n}
-            keys = ("mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi")
-            if n >= 3:
-                s = disorder_stats(vals, n_boot=n_boot, seed=seed, confidence=confidence)
-                row.update({f"{k}_eV": float(s[k]) for k in keys})
-            else:
-                row.update({f"{k}_eV": float("nan") for k in keys})
-            rows.append(row)
+    keys = ("mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi")
+    for q in qs:
+        per = grouped_disorder_stats(pd.to_numeric(df[q], errors="coerce").to_numpy(dtype=float),
+                                     df["species"].to_numpy(), name="species", n_boot=n_boot, seed=seed,
+                                     confidence=confidence)
+        for _, g in per.iterrows():
+            rows.append({"species": g["species"], "quantity": q, "n": int(g["n"]),
+                         **{f"{k}_eV": float(g[k]) for k in keys}})
+    rows.sort(key=lambda r: (r["species"], qs.index(r["quantity"])))
     stats = pd.DataFrame(rows, columns=["species", "quantity", "n", "mean_eV", "mean_lo_eV", "mean_hi_eV",
                                         "sigma_eV", "sigma_lo_eV", "sigma_hi_eV"])
     traps = []
