@@ -354,6 +354,29 @@ def test_forbidden_n_pi_star_is_dark(formaldehyde_mf):
     assert np.all(stda_response(formaldehyde_mf, "triplet", 2).osc_strength == 0.0)
 
 
+def test_n_pi_star_triplet_equals_singlet(formaldehyde_mf):
+    """In the sTDA the singlet and triplet matrices differ only by
+    2 (ia|jb)' = 2 sum_AB q_A^ia q_B^jb gamma^K_AB (monopole approximation of the
+    exchange-type integral). For a planar molecule every atom's basis splits
+    into functions even and odd under the molecular plane, so the Löwdin
+    transition charges of a sigma->pi* or n->pi* excitation vanish atom by atom
+    (exact, by symmetry): formaldehyde's n->pi* S1 and T1 are then the same
+    number, and not only because the method has no triplet kernel."""
+    mf = formaldehyde_mf
+    nocc = int((mf.mo_occ > 0).sum())
+    c = stda._lowdin_coefficients(mf.mol, mf.mo_coeff)
+    q = stda.transition_charges(mf.mol, c[:, [nocc - 1]], c[:, [nocc]]).ravel()  # n (HOMO) -> pi* (LUMO)
+    assert np.abs(q).max() < 1e-12
+    s = stda_response(mf, "singlet", 3)
+    t = stda_response(mf, "triplet", 3)
+    assert s.osc_strength[0] < 1e-8  # the dark n->pi*
+    assert abs(s.energies_Eh[0] - t.energies_Eh[0]) < 1e-12
+    # the bright second singlet (9.13 eV in STO-3G) is another such transition and has its
+    # triplet twin; the triplet between them (8.49 eV, nonzero charges) has no singlet twin
+    assert s.osc_strength[1] > 1e-3 and abs(s.energies_Eh[1] - t.energies_Eh[2]) < 1e-12
+    assert np.abs(s.energies_Eh - t.energies_Eh[1]).min() > 0.1 / HARTREE_TO_EV
+
+
 def test_triplet_below_singlet(ethylene_mf):
     mf = ethylene_mf
     s = stda_response(mf, "singlet", 4, e_max_eV=1e5)
