@@ -58,3 +58,11 @@ class ConvergenceError(CalculationError):
 class GeometryError(CalculationError):
     """Raised when an environment point charge sits closer to a QM atom than
     the safety threshold (overlapping molecules, a carving bug)."""
+
+
+class MoleculeBoundaryWarning(UserWarning):
+    """Warned when a film's bonds and residues disagree about where molecules
+    end: a residue made of several bonded fragments, or one bonded fragment
+    spread over several residues. Molecules are the fragments then; the
+    warning names the residues, so that a missing bond or a residue numbering
+    slip does not pass unseen."""

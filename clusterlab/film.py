@@ -2,7 +2,12 @@
 
 :func:`load_film` reads any topology/trajectory pair MDAnalysis reads.
 Molecules are the Universe's bonded **fragments** when the topology has
-bonds, otherwise its **residues** (one molecule per residue).
+bonds, otherwise its **residues** (one molecule per residue); where the two
+disagree a :class:`~clusterlab.errors.MoleculeBoundaryWarning` names the
+residues. A topology without atom or residue names (a LAMMPS data file, for
+one) gets them from the elements: atoms are named by element and number
+within their residue (``C1``, ``H3``), and each molecule's residue name is its
+Hill formula (``C8H6S2``).
 """
 
 from __future__ import annotations
@@ -24,7 +29,7 @@ import pandas as pd
 from .carve import MoleculeIndex, select_images
 from .charges import ChargeSource, as_charge_source, species_without_charges
 from .cluster import Cluster
-from .errors import CarvingError, ChargeError, FilmError, InputError
+from .errors import CarvingError, ChargeError, FilmError, InputError, MoleculeBoundaryWarning
 from .geometry import box_vectors, make_whole, minimum_image, perpendicular_widths, wrap_molecules
 from .ranges import parse_species
 
@@ -58,6 +63,32 @@ def _element_from_mass(mass: float) -> str | None:
         return None
     sym, ref = min(_KNOWN.items(), key=lambda kv: abs(kv[1] - mass))
     return sym if abs(ref - mass) < 0.6 else None
+
+
+def hill_formula(symbols: Sequence[str]) -> str:
+    """Hill formula of a set of element symbols: C, then H, then the rest
+    alphabetically (all alphabetically when there is no carbon); a count of
+    one is not written.
+
+    >>> hill_formula(["S", "C", "H", "C", "H"])
+    'C2H2S'
+    >>> hill_formula(["O", "H", "H"])
+    'H2O'
+    """
+    els, cnt = np.unique(np.asarray(symbols, dtype=str), return_counts=True)
+    d = dict(zip(els.tolist(), cnt.tolist()))
+    lead = [k for k in ("C", "H") if k in d] if "C" in d else []
+    order = lead + sorted(k for k in d if k not in lead)
+    return "".join(f"{k}{d[k] if d[k] > 1 else ''}" for k in order)
+
+
+def _text_attr(atoms: Any, attr: str) -> npt.NDArray[np.str_] | None:
+    """A per-atom text attribute (``names``, ``resnames``, ``types``) as str,
+    or None when the topology does not have it or has only empty values."""
+    if not hasattr(atoms, attr):
+        return None
+    values = np.char.strip(np.asarray(getattr(atoms, attr)).astype(str))
+    return values if bool(np.any(values != "")) else None
 
 
 def _guess_from_name(name: str) -> str | None:
@@ -139,14 +170,19 @@ class Film:
         self.molecule_of_atom = mol_of_atom
         self.index = MoleculeIndex.from_molecule_of_atom(mol_of_atom)
         first = self.index.atoms[self.index.offsets[:-1]]
-        #: residue name of each molecule (of its first atom)
-        self.molecule_resnames = np.asarray(atoms.resnames).astype(str)[first]
-        #: species of each molecule: its residue name (a loader that finds no
-        #: meaningful residue names writes a composition name into them)
-        self.molecule_species = self.molecule_resnames.copy()
         self.symbols, self.guessed_elements = self._resolve_elements()
+        #: residue name of each molecule (of its first atom; its Hill formula
+        #: when the topology has no residue names)
+        self.molecule_resnames = (
+            np.array([hill_formula(self.symbols[self.index.of(i)]) for i in range(self.n_molecules)], dtype=str)
+            if self._name_unnamed() else np.asarray(atoms.resnames).astype(str)[first])
+        #: species of each molecule: its residue name (the Hill formula when
+        #: the topology has no residue names)
+        self.molecule_species = self.molecule_resnames.copy()
         self.molecules = self._molecule_table()
         self._warn_mixed_residues()
+        if has_bonds:
+            self._warn_boundaries()
 
     # ------------------------------------------------------------ basic facts
     @property
@@ -279,9 +315,13 @@ class Film:
                 e2 = e.strip().title()
                 if e2 in _KNOWN:
                     syms[i] = e2
-        names = np.asarray(atoms.names).astype(str)
+        types = _text_attr(atoms, "types")
+        names = _text_attr(atoms, "names")
+        names = names if names is not None else (types if types is not None else np.full(n, "", dtype=str))
+        types = types if types is not None else names
+        resnames = _text_attr(atoms, "resnames")
+        resnames = resnames if resnames is not None else np.full(n, "", dtype=str)
         masses = np.asarray(atoms.masses, dtype=float) if hasattr(atoms, "masses") else np.full(n, np.nan)
-        types = np.asarray(atoms.types).astype(str) if hasattr(atoms, "types") else names
         guessed = []
         todo = np.flatnonzero(syms == "")
         cache: dict[tuple[str, str, float], tuple[str | None, str]] = {}
@@ -300,10 +340,10 @@ class Film:
             if sym is None:
                 continue
             syms[i] = sym
-            guessed.append((int(i), names[i], str(atoms[i].resname), sym, how))
+            guessed.append((int(i), names[i], str(resnames[i]), sym, how))
         unknown = np.flatnonzero(syms == "")
         if unknown.size:
-            ex = ", ".join(f"atom {i} (name {names[i]!r}, resname {atoms[i].resname!r})" for i in unknown[:5])
+            ex = ", ".join(f"atom {i} (name {names[i]!r}, resname {resnames[i]!r})" for i in unknown[:5])
             raise FilmError(
                 f"Cannot determine the element of {unknown.size} atom(s) in {self.topology_path!r}: "
                 f"{ex}. Give the topology element or mass columns, or standard atom names."
@@ -319,6 +359,76 @@ class Film:
             )
         return syms.astype(str), table
 
+    def _name_unnamed(self) -> bool:
+        """Give a topology without atom or residue names names made from its
+        elements (LAMMPS data files have neither): atoms their element and
+        number within the residue (``O1``, ``H1``, ``H2``), residues the Hill
+        formula of their atoms, so that a molecule's ``resname`` (and the
+        species derived from it) is its composition, ``C8H6S2``. Charge tables
+        (resname, name, charge) and selections (``resname H2O``) then work as
+        for any other topology. Names the topology has are kept. Returns
+        whether residue names were made."""
+        u = self.universe
+        atoms = u.atoms
+        if _text_attr(atoms, "names") is None:
+            resindex = np.asarray(atoms.resindices)
+            names = np.empty(len(atoms), dtype=object)
+            seen: dict[tuple[int, str], int] = {}
+            for i, (r, sym) in enumerate(zip(resindex.tolist(), self.symbols.tolist())):
+                seen[(r, sym)] = k = seen.get((r, sym), 0) + 1
+                names[i] = f"{sym}{k}"
+            if hasattr(atoms, "names"):
+                atoms.names = names
+            else:
+                u.add_TopologyAttr("names", names)
+        if _text_attr(atoms, "resnames") is None:
+            resindex = np.asarray(atoms.resindices)
+            order = np.argsort(resindex, kind="stable")
+            bounds = np.searchsorted(resindex[order], np.arange(len(u.residues) + 1))
+            formulas = np.array([hill_formula(self.symbols[order[a:b]]) for a, b in zip(bounds[:-1], bounds[1:])],
+                                dtype=object)
+            if hasattr(atoms, "resnames"):
+                u.residues.resnames = formulas
+            else:
+                u.add_TopologyAttr("resnames", formulas)
+            return True
+        return False
+
+    def _warn_boundaries(self) -> None:
+        """Warn where bonded fragments (the molecules) and residues disagree:
+        a residue of several fragments (a missing bond, or residues numbered
+        per chain instead of per molecule) or a fragment over several residues
+        (a stray bond fusing two molecules, or a polymer written residue by
+        residue). A topology with a single residue says nothing about
+        molecules and is not warned about."""
+        resindex = np.asarray(self.universe.atoms.resindices, dtype=np.int64)
+        if len(self.universe.residues) < 2:
+            return
+        pairs = np.unique(np.stack([resindex, self.molecule_of_atom], axis=1), axis=0)
+        res_ids, n_frag = np.unique(pairs[:, 0], return_counts=True)
+        mol_ids, n_res = np.unique(pairs[:, 1], return_counts=True)
+        split = res_ids[n_frag > 1]
+        fused = mol_ids[n_res > 1]
+        if not split.size and not fused.size:
+            return
+        residues = self.universe.residues
+        label = lambda r: f"{residues[r].resname} {residues[r].resid}"  # noqa: E731
+        parts = []
+        if split.size:
+            ex = "; ".join(f"residue {label(r)} is {int((pairs[:, 0] == r).sum())} fragments (molecules "
+                           f"{pairs[pairs[:, 0] == r, 1].tolist()[:6]})" for r in split[:5])
+            parts.append(f"{split.size} residue(s) made of several bonded fragments: {ex}"
+                         + (" ..." if split.size > 5 else ""))
+        if fused.size:
+            ex = "; ".join(f"molecule {m} spans residues "
+                           + ", ".join(label(r) for r in pairs[pairs[:, 1] == m, 0][:6]) for m in fused[:5])
+            parts.append(f"{fused.size} bonded fragment(s) spread over several residues: {ex}"
+                         + (" ..." if fused.size > 5 else ""))
+        warnings.warn(
+            f"{self.topology_path}: bonds and residues disagree; molecules are the bonded fragments. "
+            + ". ".join(parts) + ". Check the bonds and the residue numbering if these should be one molecule "
+            "per residue.", MoleculeBoundaryWarning, stacklevel=4)
+
     # ----------------------------------------------------------- molecules
     def _molecule_table(self) -> pd.DataFrame:
         atoms = self.universe.atoms
@@ -326,14 +436,7 @@ class Film:
         first = self.index.atoms[self.index.offsets[:-1]]
         resnames = self.molecule_resnames
         resids = (np.asarray(atoms.resids) if hasattr(atoms, "resids") else np.asarray(atoms.resindices) + 1)[first]
-        formulas = []
-        for i in range(n_mol):
-            els, cnt = np.unique(self.symbols[self.index.of(i)], return_counts=True)
-            d = dict(zip(els, cnt))
-            # Hill order: C, then H, then the rest alphabetically (all alphabetical without C)
-            first = [k for k in ("C", "H") if k in d] if "C" in d else []
-            order = first + sorted(k for k in d if k not in first)
-            formulas.append("".join(f"{k}{d[k] if d[k] > 1 else ''}" for k in order))
+        formulas = [hill_formula(self.symbols[self.index.of(i)]) for i in range(n_mol)]
         try:  # raw source charges, so non-integer molecules show up in the table
             q = np.asarray(self.charge_source.atom_charges(self), dtype=np.float64)
             net = np.bincount(self.molecule_of_atom, weights=q, minlength=n_mol)
@@ -577,7 +680,11 @@ class Film:
         if key in self._frame_cache:
             self._frame_cache.move_to_end(key)
             return self._frame_cache[key]
-        ts = self.universe.trajectory[f]
+        try:
+            ts = self.universe.trajectory[f]
+        except (OSError, EOFError, ValueError) as exc:  # a file changed or cut after loading
+            raise FilmError(f"frame {f} of {self.trajectory_paths or self.topology_path!r} cannot be read: "
+                            f"{exc}. Was the file changed after it was loaded?") from exc
         pos = np.asarray(ts.positions, dtype=np.float64).copy()
         self._check_finite(f, pos)
         box = None
@@ -905,6 +1012,9 @@ def load_film(
     for p in [top, *trajs]:
         if not os.path.exists(p):
             raise FilmError(f"File not found: {p!r}.")
+        if os.path.isfile(p) and os.path.getsize(p) == 0:
+            raise FilmError(f"{p!r} is empty (0 bytes); give a {'topology' if p == top else 'trajectory'} "
+                            "file with atoms in it (an interrupted copy or write?).")
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*(guess|Guess|No coordinate reader|Reader has no dt).*")
         try:
@@ -917,7 +1027,44 @@ def load_film(
                     f"Topology {top!r} and trajectory {', '.join(map(repr, trajs))} have different numbers of "
                     f"atoms (topology: {n_top if n_top is not None else '?'}). MDAnalysis said: {msg}"
                 ) from exc
+            if trajs and re.search(r"XDR|XTC|TRR|DCD|endoffile|read error", msg):
+                raise FilmError(f"trajectory {', '.join(map(repr, trajs))} cannot be read from its first frames "
+                                f"(truncated, damaged or not in the format its name says?): {msg}") from exc
             raise FilmError(f"MDAnalysis cannot read {top!r}{' with ' + ', '.join(trajs) if trajs else ''}: {msg}") from exc
     if len(u.atoms) == 0:
         raise FilmError(f"{top!r} contains no atoms.")
+    if trajs:
+        _check_last_frames(u, trajs)
     return Film(u, top, trajs, as_charge_source(charges))
+
+
+def _check_last_frames(universe: mda.Universe, trajs: list[str]) -> None:
+    """Read the last frame of every trajectory file once, at load.
+
+    A trajectory cut short (a copy or a run interrupted while writing) keeps
+    the header of its last frame, so MDAnalysis counts that frame, but reading
+    it fails with a bare decoder message much later, inside a study. Frames
+    are written whole and in order, so a cut leaves only the last frame
+    unreadable: say so now, with the number of frames that can be read.
+
+    Raises
+    ------
+    FilmError
+        Naming the file, the frame that cannot be read and the readable count.
+    """
+    traj = universe.trajectory
+    readers = getattr(traj, "readers", None) or [traj]
+    for path, reader in zip(trajs, readers):
+        n = len(reader)
+        if n == 0:
+            raise FilmError(f"trajectory {path!r} holds no frame.")
+        try:
+            reader[n - 1]
+        except Exception as exc:  # noqa: BLE001 - the readers raise OSError, EOFError, ValueError
+            readable = n - 1
+            raise FilmError(
+                f"trajectory {path!r} is truncated: frame {n - 1} (the last of {n}) cannot be read ({exc}); "
+                f"the {readable} frame(s) before it are readable. Copy the file again, or write its first "
+                f"{readable} frame(s) to a new file and load that one."
+            ) from exc
+    traj[0]

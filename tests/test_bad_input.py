@@ -14,11 +14,12 @@ import warnings
 from dataclasses import dataclass
 from typing import Any, Callable
 
+import MDAnalysis as mda
 import numpy as np
 import pandas as pd
 import pytest
 
-from clusterlab import Method, ResultStore, film_from_universe, sample_sites
+from clusterlab import Method, ResultStore, film_from_universe, load_film, sample_sites
 from clusterlab.errors import CarvingError, ChargeError, FilmError, InputError, ProvenanceError, StudyFileError
 from clusterlab.export import export_study, hopping_rates, pair_table
 from clusterlab.qm.calc import check_method
@@ -71,6 +72,23 @@ def _inf_charge_film(tmp_path):
         return film_from_universe(_universe(1), charges=str(csv)).charges
 
 
+def _empty_file(tmp_path):
+    (tmp_path / "empty.gro").write_bytes(b"")
+    return load_film(tmp_path / "empty.gro")
+
+
+def _cut_trajectory(tmp_path):
+    """A four-frame XTC cut inside its last frame (a copy interrupted)."""
+    u = _universe(n_frames=4)
+    u.atoms.write(str(tmp_path / "w.pdb"))
+    with mda.Writer(str(tmp_path / "w.xtc"), len(u.atoms)) as w:
+        for _ in u.trajectory:
+            w.write(u.atoms)
+    data = (tmp_path / "w.xtc").read_bytes()
+    (tmp_path / "w.xtc").write_bytes(data[:-5])
+    return load_film(tmp_path / "w.pdb", tmp_path / "w.xtc")
+
+
 def _study(**sections: dict) -> dict:
     return {"film": {"topology": "film.pdb"}, **sections}
 
@@ -106,6 +124,9 @@ CASES = [
     # ---- film content
     Case("NaN coordinate", lambda **_: _nan_film().frame_geometry(0), FilmError, "atoms [4] in molecule(s) [1]"),
     Case("inf charge in a CSV", lambda tmp_path, **_: _inf_charge_film(tmp_path), ChargeError, "inf"),
+    Case("empty topology file", lambda tmp_path, **_: _empty_file(tmp_path), FilmError, "empty.gro' is empty"),
+    Case("truncated trajectory", lambda tmp_path, **_: _cut_trajectory(tmp_path), FilmError,
+         "frame 3 (the last of 4) cannot be read"),
     # ---- methods
     Case("n_singlets text", lambda **_: Method(n_singlets="abc"), InputError, "'abc'", good=True),
     Case("n_singlets None", lambda **_: Method(n_singlets=None), InputError, "None", good=True),
