@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 from .film import Film, load_film
-from .report import ReportWriter, doped_section, model_section, sample_section, scan_section
+from .report import ReportWriter, doped_section, model_section, polarization_table, sample_section, scan_section
 from .store import ResultStore
 from .studyfile import method_from_study, xc_basis
 
@@ -130,10 +130,14 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         outcome.model = run_film_model(film, fit_method, radius_A=m["radius"], frames=m["frames"],
                                        polarization=m["polarization"], polarize_molecules=m["polarize_molecules"],
                                        reference_molecule=m["reference_molecule"], n_conformers=m["n_conformers"],
-                                       response=m["response"], progress=progress, store=store,
+                                       response=m["response"], polarizable_radius_A=m["polarizable_radius"],
+                                       polarization_scale=m["polarization_scale"], progress=progress, store=store,
                                        species=m["species"])
         outcome.timings_s["model"] = time.perf_counter() - t0
         model_section(rep, outcome.model)
+        if m["polarization"]:
+            for r in polarization_table(outcome.model).itertuples(index=False):
+                echo(f"  {r.quantity}: mean {r.mean_eV:+.3f} eV, σ {r.sigma_eV * 1e3:.0f} meV (n={r.n})")
 
     if "export" in present:
         from .export import export_study

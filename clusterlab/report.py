@@ -179,8 +179,8 @@ def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None 
                    "the uniform field that best fits the environment potential over the molecule" if response else
                    "; for a bright S1 the second-order (polarizability) part of the shift is missing, which "
                    "can dominate (README: set response = true)")
-                + ". Leaves out: each copy's own distortion beyond its conformer family, polarisation unless "
-                "requested, quantum effects of the environment.")
+                + ". Leaves out: each copy's own distortion beyond its conformer family, polarization unless "
+                "requested (charged states only, below), quantum effects of the environment.")
     rows = []
     for c in cols:
         s = disorder_stats(model_df[c].to_numpy(dtype=float), n_boot=500, seed=0)
@@ -192,9 +192,61 @@ def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None 
         c0 = cols[0]
         rep.figure(plot_histogram(model_df[c0].to_numpy(dtype=float), label=c0.replace("_eV", "")),
                    "model_histogram.png", f"Film-wide model: distribution of {c0}")
+    if "P_cation_eV" in model_df or "P_anion_eV" in model_df:
+        polarization_section(rep, result)
     if parity:
         rep.text("Parity of the model against full embedded QM on the sampled sites: " +
                  ", ".join(f"{k} {_fmt(v)}" for k, v in parity.items()))
+
+
+def polarization_table(result: Any) -> pd.DataFrame:
+    """IP and EA environment shifts of the polarized rows of a film model result,
+    with fixed charges and with the Thole polarization, and the polarization
+    energies themselves: one row per quantity (``mean_eV``, ``sigma_eV`` with its
+    95 % bootstrap interval, ``n``). The site energy is the gas-phase IP (EA) of
+    the molecule plus its shift, so σ of a shift is σ of that site energy
+    (conformational spread of the gas-phase values not included).
+    P+ = ΔIP, P- = ΔEA (polarized minus fixed charges)."""
+    from .stats import disorder_stats
+
+    t = result.table
+    rows = []
+    pairs = []
+    if "P_cation_eV" in t:
+        c = t[t["P_cation_eV"].notna()]
+        pairs += [("IP shift, fixed charges", c["cation_shift_eV"]), ("IP shift, polarized", c["cation_total_eV"]),
+                  ("P+ (ΔIP)", c["P_cation_eV"])]
+    if "P_anion_eV" in t:
+        a = t[t["P_anion_eV"].notna()]
+        pairs += [("EA shift, fixed charges", -a["anion_shift_eV"]), ("EA shift, polarized", -a["anion_total_eV"]),
+                  ("P- (ΔEA)", -a["P_anion_eV"])]
+    for name, values in pairs:
+        st = disorder_stats(values.to_numpy(dtype=float), n_boot=500, seed=0)
+        rows.append({"quantity": name, "n": st["n"], "mean_eV": st["mean"], "sigma_eV": st["sigma"],
+                     "sigma_lo_eV": st["sigma_lo"], "sigma_hi_eV": st["sigma_hi"]})
+    return pd.DataFrame(rows)
+
+
+def polarization_section(rep: ReportWriter, result: Any) -> None:
+    """The charged states with and without polarization (:func:`polarization_table`)."""
+    o = result.options
+    st = polarization_table(result)
+    if not len(st):
+        return
+    r_pol = o.get("polarizable_radius_A")
+    scale = float(o.get("polarization_scale", 1.0))
+    frames = o.get("polarization_frames") or o.get("frames")
+    rep.text(f"IP and EA with and without polarization ({int(st.n.max())} polarized molecules, frame(s) {frames}): "
+             "Thole induced dipoles (exponential damping, van Duijnen & Swart 1998 polarizabilities) on the "
+             "environment atoms "
+             + (f"of the molecules within {r_pol:g} Å" if r_pol is not None else f"within {result.radius_A:g} Å")
+             + ", in the field of the ion's added charge"
+             + (" and of the neutral film (the dipoles already induced)" if o.get("neutral_induction", True) else "")
+             + ("; no calibration factor" if scale == 1.0 else f"; calibration factor {scale:g} (explicit)")
+             + ". Site energy = gas-phase IP (EA) + shift, so the σ of a shift is that of the site energy. "
+             "Leaves out the ion's own density response to the dipoles and the periodic images of the dipoles "
+             "(README: parity against polarizable QM).")
+    rep.table(st, list(st.columns))
 
 
 def write_lines(rep: ReportWriter, title: str, lines: list[str]) -> None:

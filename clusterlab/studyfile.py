@@ -116,6 +116,10 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "polarization": Setting((bool,), False, "add Thole induced-dipole polarization (charged states)"),
         "polarize_molecules": Setting((list, str), None, "molecule ids to polarize, a list or a text such as "
                                                          "'0-9' (default all; seconds each)"),
+        "polarizable_radius": Setting(_num(), None, "only environment molecules this close (Å, carving's rule) "
+                                                    "carry induced dipoles (default: all within the radius)"),
+        "polarization_scale": Setting(_num(), 1.0, "explicit calibration factor on the polarization energies "
+                                                   "(1 = none; README: parity against polarizable QM)"),
         "reference_molecule": Setting((int,), 0, "molecule whose geometry the state charges are fitted on"),
         "species": Setting((str, list), None, "species to fit state charges for, each on its own reference "
                                               "(default: every species of the film)"),

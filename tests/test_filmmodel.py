@@ -216,8 +216,10 @@ def test_polarization_negative_growing_and_born_like(water_lattice10, water_set)
     radii = [4.0, 7.0, 10.0, 12.0]
     p = {}
     for r in radii:
+        # Born's law is the response to the added charge alone: the neutral-state induction term off
         df = film_site_energies(water_lattice10, water_set, states=("cation", "anion"), radius_A=r,
-                                polarization=True, molecules=mols, progress=False).table
+                                polarization=True, neutral_induction=False, molecules=mols,
+                                progress=False).table
         assert df["P_converged"].all()
         assert np.allclose(df["cation_total_eV"], df["cation_shift_eV"] + df["P_cation_eV"])
         p[r] = df["P_cation_eV"].to_numpy()
@@ -273,14 +275,104 @@ def test_hole_polarization_energy_in_published_range():
     cset = StateChargeSet.from_arrays({"BNZ": {"S0": q0, "cation": q0 + np.r_[[1 / 6] * 6, [0.0] * 6]}})
     p = {}
     for r in (11.0, 14.0):
+        # the published range is of the response to the hole alone: neutral-state induction off
         df = film_site_energies(film, cset, states=("cation",), radius_A=r, polarization=True,
-                                molecules=[100], progress=False).table
+                                neutral_induction=False, molecules=[100], progress=False).table
         assert df["P_converged"].all()
         p[r] = -float(df["P_cation_eV"].iloc[0])
     slope = (p[14.0] - p[11.0]) / (1 / 11.0 - 1 / 14.0)
     p_inf = p[14.0] + slope / 14.0
     assert 0 < p[11.0] < p[14.0] < p_inf
     assert 0.9 < p_inf < 3.0
+
+
+def _dense_thole_energy_eV(pos, alpha, field_eA2):
+    """-1/2 F·(alpha^-1 - T)^-1·F by one dense linear solve, written out here from the
+    published model: exponential Thole damping (Thole, Chem. Phys. 59, 341 (1981)) with
+    a = 2.1304 (van Duijnen & Swart, J. Phys. Chem. A 102, 2399 (1998)):
+    T_ij = l5 3 r r^T / r^5 - l3 / r^3, v = a r / (alpha_i alpha_j)^(1/6),
+    l3 = 1 - (1 + v + v^2/2) e^-v, l5 = 1 - (1 + v + v^2/2 + v^3/6) e^-v."""
+    n = len(pos)
+    d = pos[:, None, :] - pos[None, :, :]
+    r = np.linalg.norm(d, axis=2) + np.eye(n)
+    v = 2.1304 * r / np.outer(alpha, alpha) ** (1 / 6)
+    l3 = 1 - (1 + v + v**2 / 2) * np.exp(-v)
+    l5 = 1 - (1 + v + v**2 / 2 + v**3 / 6) * np.exp(-v)
+    t = (3 * l5 / r**5)[:, :, None, None] * d[:, :, :, None] * d[:, :, None, :] \
+        - (l3 / r**3)[:, :, None, None] * np.eye(3)
+    t[np.arange(n), np.arange(n)] = 0.0
+    b = np.diag(np.repeat(1 / alpha, 3)) - t.transpose(0, 2, 1, 3).reshape(3 * n, 3 * n)
+    f = field_eA2.ravel()
+    return -0.5 * COULOMB_EV_A * float(f @ np.linalg.solve(b, f))
+
+
+def test_polarization_equals_dense_energy_difference_on_carved_cluster(small_film):
+    """Independent path for the whole Thole term: Film.carve(polarizable_radius=)
+    picks the polarizable molecules, and P_X is the difference of two dense Thole
+    energies U(state X) - U(neutral), each of the total permanent field (central
+    molecule's charges of that state plus every other environment molecule's charges,
+    a molecule's own charges excluded: the rule of the polarizable QM embedding).
+    The model computes it as -1/2 dF·A·dF - dF·mu0 with an iterative solve; without
+    neutral_induction the neutral field is left out; polarization_scale multiplies.
+    Polarizabilities: van Duijnen & Swart (1998) O 5.7494, H 2.7927 bohr^3."""
+    # the central molecule's fitted S0 differs from the film's charges: the model must use the fitted one
+    states = {k: np.asarray(v, float) for k, v in WATER_STATES.items()}
+    states = {k: v + 0.1 * np.array([-0.2, 0.1, 0.1]) for k, v in states.items()}
+    cset = StateChargeSet.from_arrays({"WAT": states})
+    bohr3 = 0.529177210903 ** 3
+    mols, radius, inner = [0, 62], 6.0, 4.0
+    kw = dict(states=("cation", "anion"), radius_A=radius, polarization=True, polarizable_radius_A=inner,
+              polarization_tol_eA=1e-10, frames=[0], molecules=mols, progress=False)
+    full = film_site_energies(small_film, cset, **kw).table.set_index("molecule")
+    bare = film_site_energies(small_film, cset, neutral_induction=False, **kw).table.set_index("molecule")
+    half = film_site_energies(small_film, cset, polarization_scale=0.5, **kw)
+    for i in mols:
+        c = small_film.carve(i, radius, polarizable_radius=inner)
+        pol = np.asarray(c.env_polarizable)
+        assert 0 < pol.sum() < len(pol)
+        group = np.array([hash((int(m), tuple(int(x) for x in im))) for m, im in zip(c.env_molecules, c.env_images)])
+        p_pos = c.env_positions[pol]
+        alpha = np.where(np.asarray(c.env_symbols)[pol] == "O", 5.7494, 2.7927) * bohr3
+
+        def field(q_center, sources=True):
+            dc = p_pos[:, None, :] - c.qm_positions[None, :, :]
+            f = np.einsum("ps,psx->px", q_center / np.linalg.norm(dc, axis=2) ** 3, dc)
+            if sources:
+                de = p_pos[:, None, :] - c.env_positions[None, :, :]
+                w = np.where(group[pol][:, None] == group[None, :], 0.0,
+                             c.env_charges / (np.linalg.norm(de, axis=2) + (group[pol][:, None] == group[None, :])) ** 3)
+                f = f + np.einsum("ps,psx->px", w, de)
+            return f
+
+        u0 = _dense_thole_energy_eV(p_pos, alpha, field(states["S0"]))
+        for st in ("cation", "anion"):
+            want = _dense_thole_energy_eV(p_pos, alpha, field(states[st])) - u0
+            assert full.loc[i, f"P_{st}_eV"] == pytest.approx(want, rel=1e-7, abs=1e-9)
+            alone = _dense_thole_energy_eV(p_pos, alpha, field(states[st] - states["S0"], sources=False))
+            assert bare.loc[i, f"P_{st}_eV"] == pytest.approx(alone, rel=1e-7, abs=1e-9)
+        # the cross term has opposite signs for the two ions: P+ and P- differ
+        assert full.loc[i, "P_cation_eV"] != pytest.approx(full.loc[i, "P_anion_eV"], abs=1e-3)
+    assert np.allclose(half.table.set_index("molecule").loc[mols, "P_anion_eV"], 0.5 * full.loc[mols, "P_anion_eV"],
+                       rtol=1e-12, atol=0)
+    assert half.options["polarization_scale"] == 0.5 and half.model == "charges+polarizationx0.5"
+    assert full.index.size == 2 and full["P_converged"].all()
+
+
+def test_polarization_options_checked(small_film, water_set):
+    from clusterlab.study.filmmodel import fit_polarization_scale
+
+    with pytest.raises(InputError, match="polarization_scale must be a positive number"):
+        FilmModel(small_film, water_set, radius_A=6.0, polarization=True, polarization_scale=0.0)
+    with pytest.raises(InputError, match="polarization_scale must be a positive number"):
+        FilmModel(small_film, water_set, radius_A=6.0, polarization=True, polarization_scale="big")
+    with pytest.raises(InputError, match="must not exceed radius_A"):
+        FilmModel(small_film, water_set, radius_A=6.0, polarization=True, polarizable_radius_A=8.0)
+    with pytest.raises(InputError, match="neutral_induction must be True or False"):
+        FilmModel(small_film, water_set, radius_A=6.0, polarization=True, neutral_induction="yes")
+    # least squares through the origin: s = sum(m r) / sum(m m) (here 2*1 + 4*3 = 14 over 20)
+    assert fit_polarization_scale([2.0, 4.0, np.nan], [1.0, 3.0, 5.0]) == pytest.approx(0.7, rel=1e-12)
+    with pytest.raises(InputError, match="same length"):
+        fit_polarization_scale([1.0], [1.0, 2.0])
 
 
 # ------------------------------------------------------------------ dipolar disorder

@@ -72,13 +72,25 @@ Polarization (``polarization=True``)
 For the charged states the environment's atoms carry Thole-damped induced
 dipoles (:mod:`clusterlab.electrostatics.thole`; van Duijnen & Swart, J. Phys.
 Chem. A 102, 2399 (1998); Thole, Chem. Phys. 59, 341 (1981)) that respond to
-the field of the difference charges ``q_X - q_S0`` of the central molecule;
-``P_X_eV = -1/2 sum mu . E`` is the polarization energy (negative). Left
-out: the response of the environment to its own permanent charges and the
-cross term of the S0-induced dipoles with the difference field (both are
-part of what fixed-charge models put into their charges), polarization of
-the central molecule (it is in the QM charges), and periodic images of the
-induced dipoles. Neutral excitations (S1, T1) are **not** polarized here:
+the field of the difference charges ``q_X - q_S0`` of the central molecule.
+``P_X_eV`` is the change of the Thole energy on going from the neutral to
+state X, ``U(F0 + dF_X) - U(F0) = -1/2 dF_X·A·dF_X - dF_X·mu0`` (A the relay
+matrix, dF_X the difference field, mu0 = A F0 the dipoles that the neutral
+molecule's S0 charges and the charges of the *other* environment molecules
+induce): the first term is the response to the added charge (negative,
+nearly the same for both ions), the second (``neutral_induction``, on by
+default) the energy of the added charge in the dipoles already induced in
+the neutral film; it has opposite signs for the cation and the anion and is
+what makes P+ and P- differ. This is the same quantity as polarizable minus
+fixed-charge QM on the same cluster (:class:`~clusterlab.Method`
+``environment="polarizable"``, same atomic polarizabilities, damping and
+exclusion rule): ``polarizable_radius_A`` picks the polarizable images as
+``Film.carve(polarizable_radius=)`` does; on 6 demo molecules it follows that
+QM to 4 meV (P+) and 10 meV (P-) RMS without calibration
+(``bench/parity_polarization.py``; a fitted ``polarization_scale`` is 1.005).
+Left out: the central molecule's own density response to the induced dipoles
+(the QM has it; small on the demo film), charge penetration of the QM
+density, and periodic images of the induced dipoles. Neutral excitations (S1, T1) are **not** polarized here:
 their difference charges carry no net charge and the effect is small
 (common practice: tens of meV against about 1 eV for ions). Each
 polarization solve is a linear system over all environment atoms of one
@@ -148,7 +160,7 @@ BoolArray = npt.NDArray[np.bool_]
 ENVIRONMENTS = ("film", "fitted")
 
 __all__ = ["FilmModel", "FilmModelResult", "film_site_energies", "run_film_model", "environment_pairs",
-           "SHIFT_STATES"]
+           "fit_polarization_scale", "SHIFT_STATES"]
 
 
 def environment_pairs(film: "Film", radius_A: float, *, frame: int = 0, rule: str = "atom") -> EnvironmentPairs:
@@ -158,6 +170,33 @@ def environment_pairs(film: "Film", radius_A: float, *, frame: int = 0, rule: st
     res = environment_potential(geo.positions_A, np.zeros(film.n_atoms), film.index.atoms, film.index.offsets,
                                 geo.centroids_A, geo.box, check_radius_A(radius_A), rule=check_rule(rule))
     return res.pairs
+
+
+def fit_polarization_scale(model_eV: npt.ArrayLike, reference_eV: npt.ArrayLike) -> float:
+    """Least-squares scale ``s`` (through the origin) with ``s * model ≈ reference``:
+    ``s = sum(m r) / sum(m m)`` over the finite pairs; the value of
+    :class:`FilmModel`'s ``polarization_scale`` fitted on a parity set
+    (e.g. model P against polarizable QM, ``bench/parity_polarization.py``).
+
+    Raises
+    ------
+    InputError
+        Arrays of different shapes, or no finite pair with a nonzero model value.
+
+    Examples
+    --------
+    >>> fit_polarization_scale([-1.0, -0.5], [-0.9, -0.45])
+    0.9
+    """
+    m = np.asarray(model_eV, dtype=np.float64).ravel()
+    r = np.asarray(reference_eV, dtype=np.float64).ravel()
+    if m.shape != r.shape:
+        raise InputError(f"model_eV and reference_eV must have the same length; got {m.size} and {r.size}.")
+    ok = np.isfinite(m) & np.isfinite(r)
+    den = float(m[ok] @ m[ok])
+    if den == 0.0:
+        raise InputError("fit_polarization_scale needs at least one finite pair with a nonzero model value.")
+    return round(float(m[ok] @ r[ok]) / den, 12)
 
 
 # ----------------------------------------------------------------------------
@@ -237,26 +276,67 @@ def _stark_term(film: "Film", charges: StateChargeSet, fams: FrameFamilies | Non
     return out
 
 
-def _environment_charges(film: "Film", charges: StateChargeSet, environment: str) -> FloatArray:
-    if environment == "film":
-        return np.asarray(film.charges, dtype=np.float64)
-    base = np.array(film.charges, dtype=np.float64) if film.charges_available else np.full(film.n_atoms, np.nan)
+def _fitted_s0(film: "Film", charges: StateChargeSet) -> FloatArray:
+    """Per-atom fitted S0 charges of the covered molecules (NaN elsewhere)."""
+    base = np.full(film.n_atoms, np.nan)
     names = np.asarray(film.molecule_species)
     for res in charges.resnames:
         q0 = charges.charges_e[res]["S0"]
         for k in np.flatnonzero(names == res):
             base[film.index.of(int(k))] = q0
+    return base
+
+
+def _environment_charges(film: "Film", charges: StateChargeSet, environment: str) -> FloatArray:
+    if environment == "film":
+        return np.asarray(film.charges, dtype=np.float64)
+    base = _fitted_s0(film, charges)
+    if film.charges_available:
+        base = np.where(np.isnan(base), np.asarray(film.charges, dtype=np.float64), base)
     if np.isnan(base).any():
+        names = np.asarray(film.molecule_species)
         missing = sorted(set(names[np.isnan(base[film.index.atoms[film.index.offsets[:-1]]])].tolist()))
         raise ChargeError(f"environment='fitted' covers only the fitted species {charges.resnames} and the "
                           f"film has no charges for the species {missing}.")
     return base
 
 
+@dataclass(frozen=True)
+class _PolarizationSetup:
+    """The options of the Thole term (see :class:`FilmModel`)."""
+
+    cutoff_A: float | None
+    tol_eA: float
+    radius_A: float | None
+    rule: str
+    neutral_induction: bool
+    scale: float
+
+
+def _field_V_A(points_A: FloatArray, sources_A: FloatArray, q_e: FloatArray,
+               exclude: BoolArray | None = None) -> FloatArray:
+    """Bare Coulomb field (V/Å) of charges ``q_e`` at ``sources_A`` on ``points_A``,
+    pairs where ``exclude[p, s]`` is true left out (blocks of points bound the memory)."""
+    out = np.zeros((len(points_A), 3))
+    step = max(1, 2_000_000 // max(1, len(sources_A)))
+    for a in range(0, len(points_A), step):
+        d = points_A[a:a + step, None, :] - sources_A[None, :, :]
+        r = np.linalg.norm(d, axis=2)
+        if exclude is not None:
+            r = np.where(exclude[a:a + step], np.inf, r)  # a site's own molecule (and the site itself) left out
+        out[a:a + step] = np.einsum("ps,psx->px", q_e[None, :] / r ** 3, d)
+    return COULOMB_EV_A * out
+
+
 def _polarize(geo: Any, film: "Film", mol: int, pairs: EnvironmentPairs, sel: IntArray,
-              dq: dict[str, FloatArray], alpha_all: FloatArray, cutoff_A: float | None,
-              tol_eA: float) -> dict[str, tuple[float, bool]]:
-    """Thole polarization energies of the environment of one molecule, every state's field at once."""
+              dq: dict[str, FloatArray], q_env: FloatArray, q_s0: FloatArray, alpha_all: FloatArray,
+              setup: _PolarizationSetup) -> dict[str, tuple[float, bool]]:
+    """Thole polarization energies of the environment of one molecule, every state's field at once.
+
+    ``P_X = U(F0 + dF_X) - U(F0) = -1/2 dF_X·A·dF_X - dF_X·mu0`` with U the Thole
+    energy, A the relay matrix, dF_X the field of the difference charges and
+    mu0 = A F0 the dipoles the neutral molecule and the environment's own charges
+    induce (the second term only with ``neutral_induction``)."""
     idx = film.index
     c_atoms = idx.of(mol)
     env_m = pairs.env[sel]
@@ -264,13 +344,37 @@ def _polarize(geo: Any, film: "Film", mol: int, pairs: EnvironmentPairs, sel: In
     starts = idx.offsets[env_m]
     within = np.arange(sizes.sum()) - np.repeat(np.cumsum(sizes) - sizes, sizes)
     atoms = idx.atoms[np.repeat(starts, sizes) + within]
+    image_of = np.repeat(np.arange(len(env_m)), sizes)
     sites = geo.positions_A[atoms] + np.repeat(pairs.shift_A[sel], sizes, axis=0)
-    d = sites[:, None, :] - geo.positions_A[c_atoms][None, :, :]
-    r3 = np.linalg.norm(d, axis=2) ** 3
+    c_pos = geo.positions_A[c_atoms]
+    keep = np.ones(len(env_m), bool)
+    if setup.radius_A is not None and len(env_m):
+        # the images carving makes polarizable (Film.carve(polarizable_radius=)): same rule, same distance
+        if setup.rule == "atom":
+            near = np.linalg.norm(sites[:, None, :] - c_pos[None, :, :], axis=2).min(axis=1)
+            dist = np.minimum.reduceat(near, np.cumsum(sizes) - sizes)
+        else:
+            cent = geo.centroids_A[env_m] + pairs.shift_A[sel]
+            dist = np.linalg.norm(cent - geo.centroids_A[mol], axis=1)
+        keep = dist <= setup.radius_A
+    on = keep[image_of]
+    pol_sites = sites[on]
     names = list(dq)
-    fields = np.stack([COULOMB_EV_A * np.einsum("sa,sax->sx", dq[st][c_atoms][None, :] / r3, d) for st in names])
-    pols = solve_induced_dipoles(sites, alpha_all[atoms], fields, tol_eA=tol_eA, cutoff_A=cutoff_A, max_iter=1000)
-    return {st: (p.energy_eV, p.converged) for st, p in zip(names, pols)}
+    fields = [_field_V_A(pol_sites, c_pos, dq[st][c_atoms]) for st in names]
+    if setup.neutral_induction:
+        # neutral state: central molecule's S0 charges and every other environment image's charges
+        same = image_of[on][:, None] == image_of[None, :]
+        fields.append(_field_V_A(pol_sites, c_pos, q_s0[c_atoms]) + _field_V_A(pol_sites, sites, q_env[atoms], same))
+    pols = solve_induced_dipoles(pol_sites, alpha_all[atoms][on], np.stack(fields), tol_eA=setup.tol_eA,
+                                 cutoff_A=setup.cutoff_A, max_iter=1000)
+    out = {}
+    for k, st in enumerate(names):
+        e, ok = pols[k].energy_eV, pols[k].converged
+        if setup.neutral_induction:
+            e -= float(np.sum(pols[-1].dipoles_eA * fields[k]))
+            ok = ok and pols[-1].converged
+        out[st] = (setup.scale * e, ok)
+    return out
 
 
 # ----------------------------------------------------------------------------
@@ -285,6 +389,7 @@ class _FrameInputs:
     families: FrameFamilies | None
     dq: dict[str, FloatArray]
     q_env: FloatArray
+    q_s0: FloatArray
 
 
 @dataclass(frozen=True)
@@ -355,9 +460,26 @@ class FilmModel:
         seconds per frame; needs a box and a neutral cell).
     polarization_cutoff_A : float, optional
         Leave out induced dipole-dipole couplings beyond this distance
-        (default: all pairs in the environment).
+        (default: all pairs in the environment). It does not choose which
+        molecules are polarized: that is ``polarizable_radius_A``.
     polarization_tol_eA : float
         Convergence threshold of the induced dipoles (e·Å).
+    polarizable_radius_A : float, Å, optional
+        Only environment images within this distance (the ``rule``'s
+        distance, as :meth:`Film.carve`'s ``polarizable_radius``) carry
+        induced dipoles; the others stay fixed charges, whose field still
+        enters the neutral-state induction. Default: every image within
+        ``radius_A``.
+    neutral_induction : bool
+        Include ``-dF_X·mu0``, the energy of the added charge in the dipoles
+        induced in the neutral film (module docstring). ``False`` gives the
+        response to the difference charges alone (the model before this
+        option).
+    polarization_scale : float
+        Factor on every ``P_<state>_eV`` (default 1: none). A calibration
+        against polarizable QM (:func:`fit_polarization_scale` on
+        ``bench/parity_polarization.py``'s set) goes here, explicitly; the
+        value is kept in the result's options and shown in its label.
     ewald_accuracy : float
         Relative accuracy of the periodic limit.
     threads : int
@@ -386,7 +508,9 @@ class FilmModel:
                  states: Sequence[str] = SHIFT_STATES, rule: str = "atom", environment: str = "film",
                  second_order: bool = False, field_response: Sequence[str] = (), polarization: bool = False,
                  periodic_limit: bool = False, polarization_cutoff_A: float | None = None,
-                 polarization_tol_eA: float = 1e-6, ewald_accuracy: float = 1e-6, threads: int = 1) -> None:
+                 polarization_tol_eA: float = 1e-6, polarizable_radius_A: float | None = None,
+                 neutral_induction: bool = True, polarization_scale: float = 1.0,
+                 ewald_accuracy: float = 1e-6, threads: int = 1) -> None:
         states = tuple(states) if not isinstance(states, str) else (states,)
         bad = [s for s in states if s not in SHIFT_STATES]
         if bad or not states:
@@ -415,6 +539,19 @@ class FilmModel:
         self.polarization_cutoff_A = polarization_cutoff_A
         self.polarization_tol_eA = float(polarization_tol_eA)
         self.ewald_accuracy = float(ewald_accuracy)
+        if polarizable_radius_A is not None:
+            polarizable_radius_A = check_radius_A(polarizable_radius_A)
+            if polarizable_radius_A > self.radius_A:
+                raise InputError(f"polarizable_radius_A={polarizable_radius_A!r} Å must not exceed radius_A="
+                                 f"{self.radius_A:g} Å (only environment molecules can be polarized).")
+        self.polarizable_radius_A = polarizable_radius_A
+        self.neutral_induction = _check_bool("neutral_induction", neutral_induction)
+        try:
+            self.polarization_scale = float(polarization_scale)
+        except (TypeError, ValueError) as exc:
+            raise InputError(f"polarization_scale must be a positive number; got {polarization_scale!r}.") from exc
+        if isinstance(polarization_scale, (bool, np.bool_)) or not 0 < self.polarization_scale < np.inf:
+            raise InputError(f"polarization_scale must be a positive number; got {polarization_scale!r}.")
         if not (self.polarization_tol_eA > 0 and 0 < self.ewald_accuracy < 1):
             raise InputError(f"polarization_tol_eA must be positive and ewald_accuracy in (0, 1); got "
                              f"{polarization_tol_eA!r} and {ewald_accuracy!r}.")
@@ -442,6 +579,10 @@ class FilmModel:
         self._dq0 = {s: np.nan_to_num(v) for s, v in dq.items()}
         self._q_env0 = _environment_charges(film, charges, environment)
         self._alpha = atomic_polarizabilities(list(film.symbols)) if self._pol_states else None
+        self._q_s0 = _fitted_s0(film, charges)
+        self._pol_setup = _PolarizationSetup(self.polarization_cutoff_A, self.polarization_tol_eA,
+                                             self.polarizable_radius_A, self.rule, self.neutral_induction,
+                                             self.polarization_scale)
         self._names = np.asarray(film.molecule_species).astype(str)
         self._resnames = np.asarray(film.molecule_resnames).astype(str)
 
@@ -450,9 +591,10 @@ class FilmModel:
     def label(self) -> str:
         """Short name of the model for reports: ``charges`` or ``field`` (some
         state from its field response), ``+stark`` with ``second_order``,
-        ``+polarization``."""
+        ``+polarization`` (``+polarizationx0.9`` with a ``polarization_scale``)."""
+        scale = f"x{self.polarization_scale:g}" if self.polarization_scale != 1.0 else ""
         return (("field" if self.field_response else "charges") + ("+stark" if self.second_order else "")
-                + ("+polarization" if self.polarization else ""))
+                + (f"+polarization{scale}" if self.polarization else ""))
 
     @property
     def options(self) -> dict[str, Any]:
@@ -461,6 +603,8 @@ class FilmModel:
                 "second_order": self.second_order, "field_response": list(self.field_response),
                 "polarization": self.polarization, "periodic_limit": self.periodic_limit,
                 "polarization_cutoff_A": self.polarization_cutoff_A, "polarization_tol_eA": self.polarization_tol_eA,
+                "polarizable_radius_A": self.polarizable_radius_A, "neutral_induction": self.neutral_induction,
+                "polarization_scale": self.polarization_scale,
                 "ewald_accuracy": self.ewald_accuracy, "threads": self.threads, "film_id": self.film.film_id,
                 "charges_method": self.charges.method}
 
@@ -481,12 +625,14 @@ class FilmModel:
         film = self.film
         geo = film.frame_geometry(frame, periodic=film.has_box)
         if not self.charges.conformers:
-            return _FrameInputs(geo, None, self._dq0, self._q_env0)
+            return _FrameInputs(geo, None, self._dq0, self._q_env0, self._q_s0)
         fams = frame_families(film, self.charges, geo.positions_A)
         dq = {s: v.copy() for s, v in self._dq0.items()}
         q_env = self._q_env0.copy() if self.environment == "fitted" else None
         _family_overrides(film, self.charges, fams, self.states, dq, q_env)
-        return _FrameInputs(geo, fams, dq, self._q_env0 if q_env is None else q_env)
+        q_s0 = self._q_s0.copy()
+        _family_overrides(film, self.charges, fams, (), {}, q_s0)
+        return _FrameInputs(geo, fams, dq, self._q_env0 if q_env is None else q_env, q_s0)
 
     def _potential(self, inp: _FrameInputs, sel: _Selection, threads: int) -> PotentialResult:
         film, geo = self.film, inp.geo
@@ -549,8 +695,8 @@ class FilmModel:
             if not self._covered[mol]:
                 continue
             res = _polarize(inp.geo, self.film, int(mol), pairs, order[bounds[mol]:bounds[mol + 1]],
-                            {s: inp.dq[s] for s in self._pol_states}, self._alpha, self.polarization_cutoff_A,
-                            self.polarization_tol_eA)
+                            {s: inp.dq[s] for s in self._pol_states}, inp.q_env, inp.q_s0, self._alpha,
+                            self._pol_setup)
             for s, (e, ok) in res.items():
                 p_vals[s][k] = e
                 p_ok[k] &= ok
@@ -730,6 +876,7 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
                    reference_molecule: int = 0, charges: StateChargeSet | None = None,
                    progress: bool = True, n_conformers: int = 1, response: bool = False,
                    symmetrize: bool = False, response_states: Sequence[str] = ("S1",),
+                   polarizable_radius_A: float | None = None, polarization_scale: float = 1.0,
                    store: Any = None, species: Sequence[str] | None = None) -> FilmModelResult:
     """Fit state charges on reference copies (unless given) and evaluate the
     film-wide model for S1, T1, cation and anion of every molecule and frame.
@@ -740,7 +887,11 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
 
     Polarization (Thole, charged states only) costs seconds per molecule, so
     it is computed for ``polarize_molecules`` (default: all) in the first
-    frame of ``frames``; other rows have NaN polarization columns.
+    frame of ``frames``; other rows have NaN polarization columns. It is
+    :class:`FilmModel`'s Thole term with the neutral-state induction, over the
+    environment images within ``polarizable_radius_A`` (default: all within
+    ``radius_A``), times ``polarization_scale`` (default 1: uncalibrated; see
+    the README's parity against polarizable QM).
 
     ``n_conformers`` and ``symmetrize`` are passed to
     :func:`~clusterlab.study.chargefits.fit_state_charges`. ``response=True``
@@ -813,10 +964,13 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
     if not polarization:
         return result
     f0 = [int(result.table.frame.min())]
-    pol = FilmModel(film, charges, radius_A=radius_A, states=CHARGED_STATES, polarization=True
+    pol = FilmModel(film, charges, radius_A=radius_A, states=CHARGED_STATES, polarization=True,
+                    polarizable_radius_A=polarizable_radius_A, polarization_scale=polarization_scale
                     ).run(f0, polarize_molecules, progress=progress)
     cols = [c for c in pol.table.columns if c.startswith("P_") or c.endswith("_total_eV")]
     table = result.table.merge(pol.table[["frame", "molecule", *cols]], on=["frame", "molecule"], how="left")
     options = {**result.options, "polarization": True, "polarization_frames": f0,
-               "polarize_molecules": pol.options["molecules"]}
-    return dataclasses.replace(result, table=table, model=result.model + "+polarization", options=options)
+               "polarize_molecules": pol.options["molecules"],
+               **{k: pol.options[k] for k in ("polarizable_radius_A", "neutral_induction", "polarization_scale")}}
+    label = pol.model[pol.model.index("+polarization"):]
+    return dataclasses.replace(result, table=table, model=result.model + label, options=options)
