@@ -13,7 +13,7 @@ and print meV.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
@@ -629,6 +629,10 @@ class ConvergenceVerdict:
         Tolerance used (unit of the values).
     radius_by_quantity : dict of str to float or None
         Converged radius of each quantity.
+    judged : bool
+        False when the radii given cannot decide convergence (too few
+        finite radii for the reference, see :data:`MIN_RADII_TO_JUDGE`):
+        then ``converged`` is False and the message says what to add.
     """
 
     converged: bool
@@ -640,6 +644,7 @@ class ConvergenceVerdict:
     quantity: str | None = None
     tol: float = 0.010
     radius_by_quantity: dict[str, float | None] = field(default_factory=dict)
+    judged: bool = True
 
     def to_dict(self) -> dict[str, Any]:
         """Plain dictionary (JSON-ready)."""
@@ -658,6 +663,18 @@ def _fmt_r(r: float) -> str:
     return f"{r:g} Å"
 
 
+#: finite radii a quantity needs before a verdict against its largest-radius
+#: value can say "converged": two radii always agree with one of them (the
+#: reference), so with two the band test says nothing; with three the last two
+#: must agree inside the band and a third shows the approach. Against the
+#: periodic limit (an independent reference) one radius can be judged.
+MIN_RADII_TO_JUDGE = 3
+
+
+def _names(cols: Sequence[str]) -> str:
+    return ", ".join(_pretty(c) for c in cols)
+
+
 def converged_radius(
     radii: npt.ArrayLike,
     values: npt.ArrayLike | pd.Series | pd.DataFrame,
@@ -673,7 +690,11 @@ def converged_radius(
     reference is the value at the largest radius, or the periodic limit
     when ``reference`` is given. Against the largest-radius value at least
     two radii must agree (R below the largest radius), otherwise the scan
-    is not converged.
+    is not converged, and a quantity needs :data:`MIN_RADII_TO_JUDGE` (3)
+    finite radii before it can be called converged: with fewer, radii that
+    already disagree beyond ``tol`` give "not converged", and radii that
+    agree give a verdict with ``judged=False`` whose message says what
+    radius to add. Against the periodic limit one radius can be judged.
 
     Parameters
     ----------
@@ -703,8 +724,7 @@ def converged_radius(
     ------
     InputError
         On mismatched lengths, duplicate or non-finite radii, a
-        non-positive tolerance, a reference missing for a column, or a
-        quantity with fewer than two finite values.
+        non-positive tolerance, or a reference missing for a column.
 
     Examples
     --------
@@ -747,18 +767,27 @@ def converged_radius(
     refs: dict[str, float] = {}
     radius_by: dict[str, float | None] = {}
     info: dict[str, dict[str, Any]] = {}
+    unjudged: list[str] = []
     for col in table.columns:
         y = table[col].to_numpy(dtype=np.float64)
         ok = np.isfinite(y)
         rr, yy = r[ok], y[ok]
-        if yy.size < 2:
-            raise InputError(f"quantity {col!r} has {yy.size} finite values; convergence needs at least 2")
         if periodic:
             if col not in reference:  # type: ignore[operator]
                 raise InputError(f"reference has no periodic limit for {col!r}; give one per column")
             ref = float(reference[col])  # type: ignore[index]
         else:
-            ref = float(yy[-1])
+            ref = float(yy[-1]) if yy.size else float("nan")
+        if yy.size < (1 if periodic else MIN_RADII_TO_JUDGE):
+            # too few radii: not converged when the ones given already disagree, else not judged
+            dev = np.abs(yy - ref)
+            if yy.size >= 2 and not np.all(dev <= tol * (1 + 1e-9)):
+                radius_by[str(col)] = None
+            else:
+                unjudged.append(str(col))
+            refs[str(col)] = ref
+            info[str(col)] = {"r": rr, "y": yy, "dev": dev, "k": yy.size}
+            continue
         dev = np.abs(yy - ref)
         within = dev <= tol * (1 + 1e-9)
         # first index of the all-within tail
@@ -802,11 +831,14 @@ def converged_radius(
             tol=tol,
             radius_by_quantity=radius_by,
         )
+    if unjudged:
+        return _unjudged_verdict(unjudged, info, refs, ref_out, kind, tol, named, radius_by)
     slow = max(radius_by, key=lambda c: radius_by[c])  # type: ignore[arg-type,return-value]
     radius = float(radius_by[slow])  # type: ignore[arg-type]
     max_dev = max(float(np.max(d["dev"][d["r"] >= radius])) for d in info.values())
     n_q = len(radius_by)
-    who = _pretty(slow) if n_q == 1 else f"all {n_q} quantities (slowest: {_pretty(slow)})"
+    who = (_pretty(slow) if n_q == 1 else
+           f"all {n_q} quantities ({_names(list(radius_by))}; slowest: {_pretty(slow)})")
     return ConvergenceVerdict(
         converged=True,
         radius_A=radius,
@@ -819,6 +851,43 @@ def converged_radius(
         radius_by_quantity=radius_by,
     )
 
+
+
+def _unjudged_verdict(unjudged: list[str], info: dict[str, dict[str, Any]], refs: dict[str, float],
+                      ref_out: float | dict[str, float], kind: str, tol: float, named: str,
+                      radius_by: dict[str, float | None]) -> ConvergenceVerdict:
+    """The verdict when some quantity has too few finite radii to be judged."""
+    for c in unjudged:
+        radius_by[c] = None
+    r_all = np.unique(np.concatenate([info[c]["r"] for c in unjudged]))
+    n_r = int(r_all.size)
+    what = (f"{_pretty(unjudged[0])}" if len(unjudged) == 1 else
+            f"{len(unjudged)} quantities ({_names(unjudged)})")
+    if n_r == 0:
+        seen = "no finite value"
+        add = f"run at least {MIN_RADII_TO_JUDGE} radii"
+    else:
+        radii_txt = " and ".join(f"{x:g}" for x in r_all) if n_r <= 2 else ", ".join(f"{x:g}" for x in r_all)
+        moved = max((float(np.ptp(info[c]["y"])) for c in unjudged if info[c]["y"].size), default=0.0)
+        seen = f"{n_r} radius" if n_r == 1 else f"{n_r} radii"
+        seen += f" ({named}{radii_txt} Å"
+        seen += f"; moved {1e3 * moved:.1f} meV, tolerance {1e3 * tol:g} meV)" if n_r > 1 else ")"
+        need = MIN_RADII_TO_JUDGE - n_r
+        add = (f"add a radius beyond {r_all[-1]:g} Å" if need <= 1 else
+               f"add {need} radii beyond {r_all[-1]:g} Å")
+    return ConvergenceVerdict(
+        converged=False,
+        radius_A=None,
+        reference=ref_out,
+        reference_kind=kind,
+        max_deviation_after=float("nan"),
+        message=f"convergence of {what} cannot be judged yet from {seen}: {add} (a verdict needs "
+                f"{MIN_RADII_TO_JUDGE} radii, or the periodic limit)",
+        quantity=unjudged[0],
+        tol=tol,
+        radius_by_quantity=radius_by,
+        judged=False,
+    )
 
 
 # --------------------------------------------------------------------------

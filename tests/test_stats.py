@@ -14,6 +14,7 @@ from clusterlab.stats import (
     ConvergenceVerdict,
     conformational_environmental,
     converged_radius,
+    MIN_RADII_TO_JUDGE,
     disorder_stats,
     spatial_correlation,
     static_dynamic,
@@ -456,5 +457,37 @@ def test_converged_radius_errors():
         converged_radius([1.0, 2.0, 2.0], [0.1, 0.2, 0.3])
     with pytest.raises(InputError, match="tol=0.0"):
         converged_radius([1.0, 2.0], [0.1, 0.2], tol=0.0)
-    with pytest.raises(InputError, match="1 finite values"):
-        converged_radius([1.0, 2.0], [np.nan, 0.2])
+    # one finite value used to raise (and broke a scan cancelled after its first radius); it is now a
+    # verdict that says it cannot judge (see test_too_few_radii_cannot_be_judged)
+    one = converged_radius([1.0, 2.0], [np.nan, 0.2])
+    assert not one.converged and not one.judged and "from 1 radius (2 Å)" in one.message
+
+
+def test_too_few_radii_cannot_be_judged():
+    # two radii 7.3 meV apart with a 10 meV band: the last radius is its own reference, so the band
+    # test says nothing; the verdict must not say "converged"
+    df = pd.DataFrame({"S1_shift_eV": [-0.0800, -0.0873], "T1_shift_eV": [-0.050, -0.052]})
+    out = converged_radius([5.0, 8.0], df, tol=0.010)
+    assert not out.converged and not out.judged and out.radius_A is None
+    assert out.radius_by_quantity == {"S1_shift_eV": None, "T1_shift_eV": None}
+    assert "cannot be judged yet" in out.message and "add a radius beyond 8 Å" in out.message
+    assert "2 quantities (S1 shift, T1 shift)" in out.message and "moved 7.3 meV" in out.message
+    assert "converged to" not in out.message
+    # radii that already disagree beyond the band are judged: not converged
+    apart = converged_radius([5.0, 8.0], [-0.05, -0.09], tol=0.010)
+    assert apart.judged and not apart.converged and "still changes by 40 meV" in apart.message
+    # a third radius inside the band decides it
+    three = converged_radius([5.0, 8.0, 11.0], [-0.0800, -0.0873, -0.0880], tol=0.010)
+    assert three.judged and three.converged and three.radius_A == 5.0
+    # the periodic limit is an independent reference: one radius can be judged against it
+    per = converged_radius([8.0], [-0.088], tol=0.010, reference=-0.090)
+    assert per.judged and per.converged and per.radius_A == 8.0
+    # nothing finite: not judged, and says how many radii a verdict needs
+    none = converged_radius([5.0], [np.nan])
+    assert not none.judged and f"run at least {MIN_RADII_TO_JUDGE} radii" in none.message
+
+
+def test_verdict_names_every_quantity_it_counts():
+    df = pd.DataFrame({"S1_shift_eV": -0.05 - 5.0 / R**3, "T1_shift_eV": -0.03 - 4.0 / R**3})
+    out = converged_radius(R, df, tol=0.01)
+    assert out.converged and "all 2 quantities (S1 shift, T1 shift; slowest:" in out.message

@@ -294,6 +294,57 @@ def test_cancel_sets_the_event(film, monkeypatch):
     assert "cancelled" in panel.status.value
 
 
+def test_cancel_after_the_first_radius_is_not_a_failure(film, monkeypatch):
+    """Cancelling after one finished radius keeps and shows it, in the cancel's words, whatever the
+    scan raises on its way out (it used to be an InputError from the convergence verdict)."""
+    from clusterlab.errors import InputError
+
+    first = threading.Event()
+
+    def scan(film_, molecule, radii, method, **kw):
+        kw["on_result"](dict(SCAN_ROWS[0]))
+        first.set()
+        assert kw["cancel"].wait(10.0)
+        raise InputError("quantity 'S1_shift_eV' has 1 finite values; convergence needs at least 2")
+
+    panel = ShiftScanPanel(film, radii_A=(6, 9))
+    monkeypatch.setattr(calc, "radius_scan", scan)
+    panel.run()
+    assert first.wait(10.0)
+    panel.cancel_button.click()
+    assert panel.wait(10.0)
+    status = html.unescape(panel.status.value)
+    assert "cancelled after 1 radius" in status and "failed" not in status and "#a00" not in status
+    assert panel.error == "" and panel.exception is None and panel.errors.outputs == ()
+    assert panel.progress.bar_style == "warning"
+    assert panel.plot.value[:4] == b"\x89PNG" and "-0.0800" in panel.table_html.value
+
+
+def test_cancelled_scan_with_a_result_shows_its_verdict(film, monkeypatch):
+    panel = ShiftScanPanel(film, radii_A=(6, 9, 12))
+    fake = FakeScan(SCAN_ROWS[:1])
+    monkeypatch.setattr(calc, "radius_scan", fake)
+    panel.run()
+    fake.step.release()
+    assert fake.reported.acquire(timeout=10.0)
+    panel.cancel_event.set()
+    assert panel.wait(10.0)
+    status = html.unescape(panel.status.value)
+    assert "cancelled after 1 radius" in status and "(fake)" in status and "failed" not in status
+
+
+def test_bad_input_from_the_scan_is_one_line(film, monkeypatch):
+    from clusterlab.errors import InputError
+
+    panel = ShiftScanPanel(film, radii_A=(6,))
+    monkeypatch.setattr(calc, "radius_scan", FakeScan([], fail=InputError("radius 0 Å is not positive")))
+    panel.run_button.click()
+    assert panel.wait(10.0)
+    assert "radius 0 Å is not positive" in html.unescape(panel.status.value)
+    assert "Traceback" not in "".join(o.get("text", "") for o in panel.errors.outputs)
+    assert panel.error == "InputError: radius 0 Å is not positive"
+
+
 def test_scan_exception_reaches_the_error_output(film, monkeypatch):
     from clusterlab.errors import ConvergenceError
 

@@ -137,8 +137,10 @@ class ScanResult:
         """Shift vs radius with the tolerance band (see :func:`plot_convergence`)."""
         from .plots import plot_convergence
 
+        # default: the quantities the verdict judged, so the plot and the verdict count the same ones
         return plot_convergence(self.table[np.isfinite(self.table.radius_A) & (self.table.radius_A > 0)],
-                                states=kw.pop("states", None), tol_eV=self.tol_eV, periodic=self.periodic, **kw)
+                                states=kw.pop("states", None) or self.tracked, tol_eV=self.tol_eV,
+                                periodic=self.periodic, **kw)
 
     def __repr__(self) -> str:
         return f"<ScanResult molecule={self.molecule} frame={self.frame}: {self.message}>"

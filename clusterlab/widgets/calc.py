@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 import traitlets
 
+from ..errors import InputError
 from ..qm.method import Method
 from ..ranges import parse_radii
 from ..store import ResultStore
@@ -342,9 +343,9 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
             result = radius_scan(self.film, molecule, radii, self.method, progress=False, on_result=self._on_result,
                         cancel=self._cancel, **s)
         except Exception as exc:  # noqa: BLE001 - shown in the panel
-            if self._cancel.is_set() and "cancel" in type(exc).__name__.lower():
-                self._set_status(f"cancelled after {len(self.rows)} radii", "warn")
-                self.progress.bar_style = "warning"
+            if self._cancel.is_set():
+                # a cancel is not a failure: whatever the scan raised on the way out, keep what finished
+                self._show_partial()
             else:
                 self._fail(exc)
         else:
@@ -379,8 +380,8 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         return [c for c in df.columns if str(c).endswith("_shift_eV") and "_followed" not in str(c)
                 and pd.to_numeric(df[c], errors="coerce").notna().any()]
 
-    def _draw(self, df: pd.DataFrame) -> None:
-        states = self.plotted_states(df)
+    def _draw(self, df: pd.DataFrame, states: list[str] | None = None) -> None:
+        states = [c for c in states if c in df.columns] if states else self.plotted_states(df)
         if not states or "radius_A" not in df.columns:
             return
         # the vacuum reference (radius 0) is the zero of every shift: leave it off the axis
@@ -391,19 +392,39 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         self.plot.value = _style.figure_png(fig)
         self.n_plots += 1
 
+    def _show_partial(self) -> None:
+        """Status, table and plot of a cancelled scan (the radii reported before the cancel)."""
+        with self._lock:
+            df = pd.DataFrame(self.rows)
+        n = len(self.rows)
+        self._set_status(f"cancelled after {n} {'radius' if n == 1 else 'radii'}"
+                         + ("; the finished radii are kept below" if n else ""), "warn")
+        self.progress.bar_style = "warning"
+        if n:
+            self.table_html.value = _TABLE_CSS + frame_html(df.drop(columns=["frame", "molecule"],
+                                                                    errors="ignore"))
+            try:
+                self._draw(df)
+            except Exception:  # noqa: BLE001 - never hide the cancel because of the display
+                self.errors.append_stderr(traceback.format_exc())
+
     def _finish(self, result: Any) -> None:
         table = getattr(result, "table", None)
+        tracked = getattr(result, "tracked", None)
         if isinstance(table, pd.DataFrame) and len(table):
             self.table_html.value = _TABLE_CSS + frame_html(table.drop(columns=["frame", "molecule"],
                                                                        errors="ignore"))
             try:
-                self._draw(table)
+                # the finished plot draws exactly the quantities the verdict judged
+                self._draw(table, list(tracked) if tracked else None)
             except Exception:  # noqa: BLE001
                 self.errors.append_stderr(traceback.format_exc())
         verdict = getattr(result, "verdict", None)
         msg = getattr(verdict, "message", "") if verdict is not None else ""
         if self._cancel.is_set():
-            self._set_status(f"cancelled after {len(self.rows)} radii. {html.escape(str(msg))}", "warn")
+            n = len(self.rows)
+            self._set_status(f"cancelled after {n} {'radius' if n == 1 else 'radii'}; the finished radii are "
+                             f"kept below. {html.escape(str(msg))}", "warn")
             self.progress.bar_style = "warning"
         else:
             self.progress.value = self.progress.max
@@ -414,9 +435,13 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
     def _fail(self, exc: BaseException) -> None:
         self.exception = exc
         self.error = f"{type(exc).__name__}: {exc}"
+        self.progress.bar_style = "danger"
+        if isinstance(exc, InputError):
+            # a setting to fix: one line, no traceback
+            self._set_status(f"check the settings: {html.escape(str(exc))}", "error")
+            return
         text = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
         self.errors.append_stderr(text)
-        self.progress.bar_style = "danger"
         self._set_status(f"failed: {html.escape(self.error)}", "error")
 
     def _set_status(self, text: str, kind: str) -> None:
