@@ -498,6 +498,32 @@ def test_disorder_load_from_store(film, tmp_path):
     assert dp.radii.value == "10"
 
 
+def test_cancelled_sample_shows_its_sites_and_is_not_a_failure(film, tmp_path, monkeypatch):
+    from clusterlab.errors import InputError
+
+    dp = DisorderPanel(film, molecules="0-5", frames="0", radii_A=(6,), store=str(tmp_path / "c.sqlite"),
+                       show_view=False)
+    started = threading.Event()
+
+    def sample(film_, molecules, frames, radius, method, *, store, runner, seed, progress, on_result, cancel):
+        for m in (0, 1, 2, 3):
+            on_result({"frame": 0, "molecule": m, "radius_A": 6.0, "S1_eV": 7.0 + 0.01 * m,
+                       "S1_shift_eV": -0.1 + 0.01 * m, "converged": True})
+        started.set()
+        assert cancel.wait(10.0)
+        raise InputError("no site finished")  # whatever the library raises on the way out
+
+    monkeypatch.setattr(disorder, "sample_sites", sample)
+    dp.run()
+    assert started.wait(10.0)
+    dp.cancel_button.click()
+    assert dp.wait(10.0)
+    status = html.unescape(dp.status.value)
+    assert "cancelled after 4 sites" in status and "failed" not in status
+    assert dp.error == "" and dp.exception is None and dp.errors.outputs == ()
+    assert sorted(dp.data.molecule) == [0, 1, 2, 3]
+
+
 def test_disorder_errors_reach_the_output(film, tmp_path, monkeypatch):
     dp = DisorderPanel(film, show_view=False, store=str(tmp_path / "x.sqlite"))
 

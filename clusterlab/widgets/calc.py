@@ -20,14 +20,13 @@ import numpy as np
 import pandas as pd
 import traitlets
 
-from ..errors import InputError
 from ..qm.method import Method
 from ..ranges import parse_radii
 from ..store import ResultStore
 from ..study.plots import plot_convergence
 from ..study.scan import radius_scan
 from ._controls import Radii, fit_control, format_radii, link_radii
-from ._jobs import BackgroundJob
+from ._jobs import BackgroundJob, count_text
 from . import _style
 
 __all__ = ["ShiftScanPanel", "MethodControls", "make_method"]
@@ -397,7 +396,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         with self._lock:
             df = pd.DataFrame(self.rows)
         n = len(self.rows)
-        self._set_status(f"cancelled after {n} {'radius' if n == 1 else 'radii'}"
+        self._set_status(f"cancelled after {count_text(n, 'radius', 'radii')}"
                          + ("; the finished radii are kept below" if n else ""), "warn")
         self.progress.bar_style = "warning"
         if n:
@@ -422,8 +421,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         verdict = getattr(result, "verdict", None)
         msg = getattr(verdict, "message", "") if verdict is not None else ""
         if self._cancel.is_set():
-            n = len(self.rows)
-            self._set_status(f"cancelled after {n} {'radius' if n == 1 else 'radii'}; the finished radii are "
+            self._set_status(f"cancelled after {count_text(len(self.rows), 'radius', 'radii')}; the finished radii are "
                              f"kept below. {html.escape(str(msg))}", "warn")
             self.progress.bar_style = "warning"
         else:
@@ -431,18 +429,6 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
             self.progress.bar_style = "success"
             ok = bool(getattr(verdict, "converged", False))
             self._set_status(f"finished. {html.escape(str(msg))}", "ok" if ok else "warn")
-
-    def _fail(self, exc: BaseException) -> None:
-        self.exception = exc
-        self.error = f"{type(exc).__name__}: {exc}"
-        self.progress.bar_style = "danger"
-        if isinstance(exc, InputError):
-            # a setting to fix: one line, no traceback
-            self._set_status(f"check the settings: {html.escape(str(exc))}", "error")
-            return
-        text = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
-        self.errors.append_stderr(text)
-        self._set_status(f"failed: {html.escape(self.error)}", "error")
 
     def _set_status(self, text: str, kind: str) -> None:
         colour = {"ok": _style.OK, "warn": _style.WARN, "error": "#a00", "info": "#335"}.get(kind, "#555")

@@ -37,7 +37,7 @@ from ..study.plots import plot_correlation, plot_growth, plot_histogram, plot_to
 from ..study.sample import CENTROID_COLUMNS, SiteSample, choose_molecules, sample_sites, site_table
 from ..export import export_study
 from ._controls import Radii, format_radii, link_radii
-from ._jobs import BackgroundJob
+from ._jobs import BackgroundJob, count_text
 from . import _style
 from .calc import _TABLE_CSS, MethodControls, frame_html
 
@@ -307,8 +307,15 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
                                    cancel=self._cancel)
                 self.result = res
         except Exception as exc:  # noqa: BLE001
-            if self._cancel.is_set() and "cancel" in type(exc).__name__.lower():
-                self._set_status(f"cancelled after {len(self.rows)} site(s)", "warn")
+            if self._cancel.is_set():
+                # a cancel is not a failure: show the sites that finished before it
+                with self._lock:
+                    done = pd.DataFrame(self.rows)
+                if len(done):
+                    self.set_data(done)
+                self._set_status(f"cancelled after {count_text(len(done), 'site', 'sites')}"
+                                 + ("; they are in the store and shown below" if len(done) else ""), "warn")
+                self.progress.bar_style = "warning"
             else:
                 self._fail(exc)
         else:
@@ -322,7 +329,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             if failures:
                 self.errors.append_stderr("failed sites:\n" + "\n".join(map(str, failures)) + "\n")
             if self._cancel.is_set():
-                self._set_status(f"cancelled after {len(self.rows)} site(s); they are in the store", "warn")
+                self._set_status(f"cancelled after {count_text(len(self.rows), 'site', 'sites')}; they are in the "
+                                 "store and shown below", "warn")
                 self.progress.bar_style = "warning"
             else:
                 self.progress.value = self.progress.max
@@ -604,13 +612,6 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self.export()
         except Exception as exc:  # noqa: BLE001
             self._fail(exc)
-
-    def _fail(self, exc: BaseException) -> None:
-        self.exception = exc
-        self.error = f"{type(exc).__name__}: {exc}"
-        self.errors.append_stderr("".join(traceback.format_exception(type(exc), exc, exc.__traceback__)))
-        self.progress.bar_style = "danger"
-        self._set_status(f"failed: {html.escape(self.error)}", "error")
 
     def _set_status(self, text: str, kind: str) -> None:
         colour = {"ok": _style.OK, "warn": _style.WARN, "error": "#a00", "info": "#335"}.get(kind, "#555")
