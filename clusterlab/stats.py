@@ -820,19 +820,10 @@ def converged_radius(
                 f"{_pretty(slow)} still changes by {1e3 * abs(d['y'][-1] - d['y'][-2]):.0f} meV between "
                 f"{named}{d['r'][-2]:g} and {_fmt_r(d['r'][-1])}, tolerance {1e3 * tol:g} meV"
             )
-        return ConvergenceVerdict(
-            converged=False,
-            radius_A=None,
-            reference=ref_out,
-            reference_kind=kind,
-            max_deviation_after=float("nan"),
-            message=f"not converged within the radii given ({detail})",
-            quantity=slow,
-            tol=tol,
-            radius_by_quantity=radius_by,
-        )
+        return _radius_less_verdict(f"not converged within the radii given ({detail})", slow, ref_out, kind, tol,
+                                    radius_by, judged=True)
     if unjudged:
-        return _unjudged_verdict(unjudged, info, refs, ref_out, kind, tol, named, radius_by)
+        return _unjudged_verdict(unjudged, info, ref_out, kind, tol, named, radius_by)
     slow = max(radius_by, key=lambda c: radius_by[c])  # type: ignore[arg-type,return-value]
     radius = float(radius_by[slow])  # type: ignore[arg-type]
     max_dev = max(float(np.max(d["dev"][d["r"] >= radius])) for d in info.values())
@@ -853,7 +844,7 @@ def converged_radius(
 
 
 
-def _unjudged_verdict(unjudged: list[str], info: dict[str, dict[str, Any]], refs: dict[str, float],
+def _unjudged_verdict(unjudged: list[str], info: dict[str, dict[str, Any]],
                       ref_out: float | dict[str, float], kind: str, tol: float, named: str,
                       radius_by: dict[str, float | None]) -> ConvergenceVerdict:
     """The verdict when some quantity has too few finite radii to be judged."""
@@ -875,19 +866,17 @@ def _unjudged_verdict(unjudged: list[str], info: dict[str, dict[str, Any]], refs
         need = MIN_RADII_TO_JUDGE - n_r
         add = (f"add a radius beyond {r_all[-1]:g} Å" if need <= 1 else
                f"add {need} radii beyond {r_all[-1]:g} Å")
-    return ConvergenceVerdict(
-        converged=False,
-        radius_A=None,
-        reference=ref_out,
-        reference_kind=kind,
-        max_deviation_after=float("nan"),
-        message=f"convergence of {what} cannot be judged yet from {seen}: {add} (a verdict needs "
-                f"{MIN_RADII_TO_JUDGE} radii, or the periodic limit)",
-        quantity=unjudged[0],
-        tol=tol,
-        radius_by_quantity=radius_by,
-        judged=False,
-    )
+    return _radius_less_verdict(f"convergence of {what} cannot be judged yet from {seen}: {add} (a verdict "
+                                f"needs {MIN_RADII_TO_JUDGE} radii, or the periodic limit)", unjudged[0], ref_out,
+                                kind, tol, radius_by, judged=False)
+
+
+def _radius_less_verdict(message: str, quantity: str, ref_out: float | dict[str, float], kind: str, tol: float,
+                         radius_by: dict[str, float | None], *, judged: bool) -> ConvergenceVerdict:
+    """A verdict without a converged radius (not converged, or not judged)."""
+    return ConvergenceVerdict(converged=False, radius_A=None, reference=ref_out, reference_kind=kind,
+                              max_deviation_after=float("nan"), message=message, quantity=quantity, tol=tol,
+                              radius_by_quantity=radius_by, judged=judged)
 
 
 # --------------------------------------------------------------------------
