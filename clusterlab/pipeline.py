@@ -109,7 +109,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
             doped_section(rep, film, outcome.sample, states=store)  # nothing for a one-species film
             for r in stats.itertuples(index=False):
                 echo(f"  {r.quantity}: mean {r.mean_eV:.3f} eV, σ {r.sigma_eV * 1e3:.0f} meV "
-                     f"[{r.sigma_lo_eV * 1e3:.0f}, {r.sigma_hi_eV * 1e3:.0f}] (95 % CI), n={r.n}")
+                     f"[{r.sigma_lo_eV * 1e3:.0f}, {r.sigma_hi_eV * 1e3:.0f}] (95 % {r.sigma_ci_method}), n={r.n}")
 
     if "model" in present:
         from .study.filmmodel import run_film_model

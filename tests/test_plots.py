@@ -92,9 +92,10 @@ def test_histogram_plot(tmp_path):
     ax = fig.axes[0]
     assert len(ax.lines) == 2  # Gaussian fit + mean
     assert len(ax.patches) == 15 + 1  # bars + shaded mean interval
-    # the fitted curve is scipy's normal pdf with the ML parameters
+    # the curve is scipy's normal pdf with the mean and the σ the text reports (ddof=1); it used to use
+    # the ML (ddof=0) σ, a second σ beside the reported one
     gx, gy = ax.lines[0].get_data()
-    np.testing.assert_allclose(gy, sps.norm.pdf(gx, *sps.norm.fit(x)), rtol=1e-10)
+    np.testing.assert_allclose(gy, sps.norm.pdf(gx, np.mean(x), np.std(x, ddof=1)), rtol=1e-10)
     # bars are a density: area 1 (numpy histogram, density=True)
     heights = np.array([p.get_height() for p in ax.patches[:15]])
     widths = np.array([p.get_width() for p in ax.patches[:15]])
@@ -103,6 +104,19 @@ def test_histogram_plot(tmp_path):
     assert f"σ = {1e3 * st['sigma']:.0f} meV" in text and "95 % intervals" in text
     assert ax.get_xlabel() == "S1 site energy (eV)" and _has_unit(ax.get_ylabel())
     _saves(fig, tmp_path, "hist.png")
+
+
+def test_histogram_small_sample_reports_the_chi_square_interval():
+    # 3 sites: σ and its interval in the text are the chi-square ones of disorder_stats (the bootstrap
+    # interval of 3 values is far too narrow), the same numbers the panels and the report show
+    x = np.array([3.00, 3.10, 3.12])
+    st = disorder_stats(x, seed=0)
+    assert st["sigma_ci_method"] == "chi-square"
+    assert (st["sigma_ci_lo"], st["sigma_ci_hi"]) == (st["sigma_chi2_lo"], st["sigma_chi2_hi"])
+    text = plot_histogram(x, st).axes[0].texts[0].get_text()
+    assert (f"σ = {1e3 * st['sigma']:.0f} meV [{1e3 * st['sigma_chi2_lo']:.0f}, {1e3 * st['sigma_chi2_hi']:.0f}]"
+            in text) and "chi-square" in text
+    assert f"{1e3 * st['sigma_lo']:.0f}, {1e3 * st['sigma_hi']:.0f}]" not in text
 
 
 def test_histogram_missing_stats_entry():

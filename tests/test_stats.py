@@ -15,6 +15,9 @@ from clusterlab.stats import (
     conformational_environmental,
     converged_radius,
     MIN_RADII_TO_JUDGE,
+    SIGMA_BOOTSTRAP_MIN_N,
+    disorder_summary,
+    sigma_interval_note,
     disorder_stats,
     spatial_correlation,
     static_dynamic,
@@ -353,6 +356,25 @@ def test_spatial_correlation_errors():
         spatial_correlation(pos, [1.0, 1.0, 1.0, 1.0])
     with pytest.raises(InputError, match="no entry for frame 1"):
         spatial_correlation(pos, [1.0, 2.0, 3.0, 4.0], {0: [10, 10, 10]}, frames=[0, 0, 1, 1])
+
+
+def test_reported_sigma_interval_follows_the_sample_size():
+    rng = np.random.default_rng(5)
+    for n in (3, SIGMA_BOOTSTRAP_MIN_N - 1):
+        s = disorder_stats(rng.normal(0.0, 0.05, n), seed=0)
+        assert s["sigma_ci_method"] == "chi-square"
+        assert (s["sigma_ci_lo"], s["sigma_ci_hi"]) == (s["sigma_chi2_lo"], s["sigma_chi2_hi"])
+        assert f"is below {SIGMA_BOOTSTRAP_MIN_N}" in sigma_interval_note(s)
+    for method, name in (("BCa", "bootstrap BCa"), ("percentile", "bootstrap percentile")):
+        s = disorder_stats(rng.normal(0.0, 0.05, SIGMA_BOOTSTRAP_MIN_N), seed=0, method=method)
+        assert s["sigma_ci_method"] == name
+        assert (s["sigma_ci_lo"], s["sigma_ci_hi"]) == (s["sigma_lo"], s["sigma_hi"])
+    # the summary rows show that σ and that interval, in meV
+    s = disorder_stats([3.00, 3.10, 3.12], seed=0)
+    rows = dict(disorder_summary(s).itertuples(index=False))
+    assert rows["σ (meV)"] == (f"{1e3 * s['sigma']:.1f} [{1e3 * s['sigma_chi2_lo']:.1f}, "
+                               f"{1e3 * s['sigma_chi2_hi']:.1f}]")
+    assert "chi-square" in rows["σ interval"] and rows["n"] == "3"
 
 
 # ---------------------------------------------------------------------------

@@ -270,7 +270,9 @@ def test_run_button_calls_scan_with_settings_and_fills_outputs(film, monkeypatch
         fake.step.release()
         assert fake.reported.acquire(timeout=10.0)
         assert panel.progress.value == k
-        assert f"{row['S1_shift_eV']:.4f}" in panel.table_html.value
+        # shifts are shown in meV under a human header (they used to be eV with 4 decimals)
+        assert f"<td>{1e3 * row['S1_shift_eV']:.1f}</td>" in panel.table_html.value
+        assert "S1 shift (meV)" in panel.table_html.value
         assert panel.plot.value[:8] == b"\x89PNG\r\n\x1a\n"
         assert panel.n_plots == k
     assert panel.wait(10.0)
@@ -317,7 +319,7 @@ def test_cancel_after_the_first_radius_is_not_a_failure(film, monkeypatch):
     assert "cancelled after 1 radius" in status and "failed" not in status and "#a00" not in status
     assert panel.error == "" and panel.exception is None and panel.errors.outputs == ()
     assert panel.progress.bar_style == "warning"
-    assert panel.plot.value[:4] == b"\x89PNG" and "-0.0800" in panel.table_html.value
+    assert panel.plot.value[:4] == b"\x89PNG" and "<td>-80.0</td>" in panel.table_html.value
 
 
 def test_cancelled_scan_with_a_result_shows_its_verdict(film, monkeypatch):
@@ -522,6 +524,22 @@ def test_cancelled_sample_shows_its_sites_and_is_not_a_failure(film, tmp_path, m
     assert "cancelled after 4 sites" in status and "failed" not in status
     assert dp.error == "" and dp.exception is None and dp.errors.outputs == ()
     assert sorted(dp.data.molecule) == [0, 1, 2, 3]
+
+
+def test_disorder_side_table_shows_the_one_sigma_and_interval(film):
+    """3 sites: the side table shows σ (meV) with the chi-square interval of disorder_stats, the
+    interval the histogram's text shows, and says why; not the bootstrap one."""
+    dp = DisorderPanel(film, show_view=False)
+    cent = film.frame_geometry(0).centroids_A
+    dp.load(pd.DataFrame({"frame": 0, "molecule": [0, 1, 2], "radius_A": 6.0, "S1_eV": [3.00, 3.10, 3.12],
+                          "centroid_x_A": cent[:3, 0], "centroid_y_A": cent[:3, 1], "centroid_z_A": cent[:3, 2]}))
+    st = dp.stats
+    assert st["sigma_ci_method"] == "chi-square"
+    table = html.unescape(dp.stats_html.value)
+    assert (f"<td>σ (meV)</td><td>{1e3 * st['sigma']:.1f} [{1e3 * st['sigma_chi2_lo']:.1f}, "
+            f"{1e3 * st['sigma_chi2_hi']:.1f}]</td>") in table
+    assert "chi-square interval of a normal sample (n = 3 is below 30" in table
+    assert f"{1e3 * st['sigma_lo']:.1f}," not in table
 
 
 def test_disorder_errors_reach_the_output(film, tmp_path, monkeypatch):

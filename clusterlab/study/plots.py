@@ -207,16 +207,18 @@ def plot_histogram(
     x = x[np.isfinite(x)]
     if stats is None:
         stats = disorder_stats(x, seed=seed)
-    for key in ("mean", "sigma", "gauss_mu", "gauss_sigma", "mean_lo", "mean_hi", "sigma_lo", "sigma_hi"):
+    for key in ("mean", "sigma", "gauss_mu", "gauss_sigma", "mean_lo", "mean_hi", "sigma_lo", "sigma_hi",
+                "sigma_ci_lo", "sigma_ci_hi", "sigma_ci_method"):
         if key not in stats.index:
             raise InputError(f"plot_histogram: stats has no entry {key!r}; pass disorder_stats(values)")
     fig, ax = _new_axes(ax)
     ax.hist(x, bins=bins, density=True, color=PALETTE[5], edgecolor="white", alpha=0.9, label="sites")
-    mu, sg = float(stats["gauss_mu"]), float(stats["gauss_sigma"])
+    # the curve uses the σ the text reports (ddof=1), not a second estimate
+    mu, sg = float(stats["mean"]), float(stats["sigma"])
     grid = np.linspace(x.min() - 0.5 * sg, x.max() + 0.5 * sg, 300)
     if sg > 0:
         pdf = np.exp(-0.5 * ((grid - mu) / sg) ** 2) / (sg * np.sqrt(2.0 * np.pi))
-        ax.plot(grid, pdf, color=PALETTE[0], lw=2, label="Gaussian fit")
+        ax.plot(grid, pdf, color=PALETTE[0], lw=2, label="Gaussian (mean, σ)")
     ax.axvline(float(stats["mean"]), color=PALETTE[1], lw=1.5, label="mean")
     ax.axvspan(float(stats["mean_lo"]), float(stats["mean_hi"]), color=PALETTE[1], alpha=0.2, lw=0)
     conf = float(stats.get("confidence", 0.95))
@@ -226,8 +228,8 @@ def plot_histogram(
         f"mean = {float(stats['mean']):.3f} {unit} "
         f"[{float(stats['mean_lo']):.3f}, {float(stats['mean_hi']):.3f}]\n"
         f"σ = {scale * float(stats['sigma']):.0f} {sunit} "
-        f"[{scale * float(stats['sigma_lo']):.0f}, {scale * float(stats['sigma_hi']):.0f}]\n"
-        f"({100 * conf:g} % intervals)"
+        f"[{scale * float(stats['sigma_ci_lo']):.0f}, {scale * float(stats['sigma_ci_hi']):.0f}]\n"
+        f"({100 * conf:g} % intervals; σ: {stats['sigma_ci_method']})"
     )
     ax.text(0.02, 0.98, text, transform=ax.transAxes, va="top", ha="left", fontsize="small",
             bbox={"boxstyle": "round", "facecolor": "white", "alpha": 0.85, "edgecolor": _GREY})

@@ -298,7 +298,8 @@ class SiteSample:
 
     def growth(self, quantity: str = "S1_shift_eV", **kw: Any) -> pd.DataFrame:
         """Mean and σ of ``quantity`` at each radius with confidence intervals:
-        how the statistics converge as the cluster grows."""
+        how the statistics converge as the cluster grows (``sigma_lo``,
+        ``sigma_hi``: the reported σ interval, named in ``sigma_ci_method``)."""
         rows = []
         t = self._converged()
         for r, g in t.groupby("radius_A"):
@@ -306,8 +307,10 @@ class SiteSample:
             if np.isfinite(vals).sum() < 3:
                 continue
             s = disorder_stats(vals, **kw)
-            rows.append({"radius_A": float(r), **{k: s[k] for k in
-                         ("n", "mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi")}})
+            # σ with the one reported interval (the rule of stats.SIGMA_BOOTSTRAP_MIN_N)
+            rows.append({"radius_A": float(r), **{k: s[k] for k in ("n", "mean", "mean_lo", "mean_hi", "sigma")},
+                         "sigma_lo": s["sigma_ci_lo"], "sigma_hi": s["sigma_ci_hi"],
+                         "sigma_ci_method": s["sigma_ci_method"]})
         return pd.DataFrame(rows)
 
     def static_dynamic(self, quantity: str = "S1_eV", *, radius_A: float | None = None) -> pd.Series:

@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 import traitlets
 
+from ..labels import display_table
 from ..qm.method import Method
 from ..ranges import parse_radii
 from ..store import ResultStore
@@ -48,14 +49,14 @@ HIDDEN_COLUMNS = frozenset({
 
 def frame_html(df: pd.DataFrame, *, max_rows: int = 200, css_class: str = "clusterlab-table",
                hide: frozenset[str] = HIDDEN_COLUMNS) -> str:
-    """HTML table of a DataFrame (scalar columns, floats with 4 decimals;
-    bookkeeping columns in ``hide`` left out)."""
+    """HTML table of a DataFrame as :func:`clusterlab.labels.display_table`
+    shows it (human headers, shifts and σ in meV, molecule/frame/radius
+    first); non-scalar and bookkeeping columns (``hide``) left out."""
     if df is None or len(df) == 0:
         return '<div style="color:#777">no results yet</div>'
     keep = [c for c in df.columns if c not in hide
             and df[c].map(lambda v: np.isscalar(v) or v is None).all()]
-    return df[keep].head(max_rows).to_html(index=False, classes=css_class, float_format=lambda v: f"{v:.4f}",
-                                           na_rep="–", border=0)
+    return display_table(df[keep].head(max_rows)).to_html(index=False, classes=css_class, border=0)
 
 
 _TABLE_CSS = ("<style>.clusterlab-table{border-collapse:collapse;font-size:12px}"

@@ -30,7 +30,7 @@ import traitlets
 
 from ..errors import InputError
 from ..ranges import parse_frames, parse_radii
-from ..stats import disorder_stats, spatial_correlation
+from ..stats import disorder_stats, disorder_summary, spatial_correlation
 from ..store import ResultStore
 from ..study.doped import host_guest_overview, n_species
 from ..study.plots import plot_correlation, plot_growth, plot_histogram, plot_torsion
@@ -450,11 +450,9 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             return
         self.stats = disorder_stats(finite, seed=int(self.seed.value))
         self.hist_plot.value = _style.figure_png(plot_histogram(finite, self.stats, label=q.replace("_eV", "")))
-        keys = ["n", "mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi", "sigma_chi2_lo",
-                "sigma_chi2_hi", "skewness", "excess_kurtosis", "normality_p", "normality_test", "confidence"]
-        st = self.stats
-        rows = "".join(f"<tr><td>{k}</td><td>{st[k]:.4f}</td></tr>" if isinstance(st[k], float)
-                       else f"<tr><td>{k}</td><td>{html.escape(str(st[k]))}</td></tr>" for k in keys if k in st)
+        # the same σ and interval as the histogram's text (one rule: stats.disorder_summary)
+        rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
+                       for k, v in disorder_summary(self.stats).itertuples(index=False))
         self.stats_html.value = f'<table class="clusterlab-table clusterlab-stats">{rows}</table>'
 
     def _draw_growth(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
