@@ -15,7 +15,8 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 from .film import Film, load_film
-from .report import ReportWriter, doped_section, model_section, sample_section, scan_section
+from .report import (ReportWriter, doped_section, model_correlation_section, model_section, sample_section,
+                     scan_section)
 from .store import ResultStore
 from .studyfile import method_from_study, xc_basis
 
@@ -105,7 +106,8 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         if outcome.sample.failures:
             rep.text("Failed sites: " + "; ".join(outcome.sample.failures[:10]))
         if len(outcome.sample.table):
-            stats = sample_section(rep, outcome.sample, list(s["quantities"]))
+            # C(r) comes from the film-wide model when it runs (every molecule-frame, not a QM sample)
+            stats = sample_section(rep, outcome.sample, list(s["quantities"]), correlation="model" not in present)
             doped_section(rep, film, outcome.sample, states=store)  # nothing for a one-species film
             for r in stats.itertuples(index=False):
                 echo(f"  {r.quantity}: mean {r.mean_eV:.3f} eV, σ {r.sigma_eV * 1e3:.0f} meV "
@@ -128,6 +130,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
                                        response=m["response"], progress=progress, store=store)
         outcome.timings_s["model"] = time.perf_counter() - t0
         model_section(rep, outcome.model)
+        model_correlation_section(rep, outcome.model, film)
 
     if "export" in present:
         from .export import export_study

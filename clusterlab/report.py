@@ -112,10 +112,13 @@ def _sigma_row(quantity: str, s: pd.Series) -> dict[str, Any]:
             "sigma_lo_eV": s["sigma_ci_lo"], "sigma_hi_eV": s["sigma_ci_hi"], "sigma_ci_method": s["sigma_ci_method"]}
 
 
-def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: int = 2000) -> pd.DataFrame:
-    """Disorder statistics, histogram, growth, decompositions, correlation."""
+def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: int = 2000,
+                   correlation: bool = True) -> pd.DataFrame:
+    """Disorder statistics, histogram, growth, decompositions, and (``correlation``) the spatial
+    correlation of the sample; a study with the film-wide model draws it from the model instead
+    (:func:`model_correlation_section`)."""
     from .stats import sigma_interval_note
-    from .study.plots import plot_correlation, plot_growth, plot_histogram
+    from .study.plots import plot_growth, plot_histogram
 
     t = sample.at()
     unknown = [q for q in quantities if q not in sample.table.columns]
@@ -153,13 +156,45 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
         g = sample.growth("S1_shift_eV", n_boot=n_boot, seed=0)
         if len(g) > 1:
             rep.figure(plot_growth(g), "growth.png", "Mean S1 shift and σ vs cut radius (95 % CI)")
-    if len(t) >= 6 and "S1_eV" in t.columns:
+    if correlation and len(t) >= 3 and "S1_eV" in t.columns:
         try:
-            corr = sample.correlation("S1_eV", n_bins=8)
-            rep.figure(plot_correlation(corr), "correlation.png", "Spatial correlation of S1 site energies")
+            corr = sample.correlation("S1_eV", n_bins=8, n_boot=min(n_boot, 500), seed=0)
+            correlation_figure(rep, corr, f"the QM sample ({len(t)} sites)", "S1 site energies")
         except Exception as exc:  # noqa: BLE001 - a plot must not sink the report
             rep.text(f"(spatial correlation not shown: {exc})")
     return stats
+
+
+def correlation_figure(rep: ReportWriter, corr: pd.DataFrame, source: str, what: str) -> None:
+    """C(r) with its bootstrap intervals and pair counts, or the reason it is not drawn, in words."""
+    from .stats import correlation_note
+    from .study.plots import plot_correlation
+
+    note = correlation_note(corr)
+    if note is not None:
+        rep.text(f"Spatial correlation of {what} from {source}: {note}.")
+        return
+    rep.figure(plot_correlation(corr, title=f"from {source}"), "correlation.png",
+               f"Spatial correlation of {what} from {source}: bins with at least {corr.attrs['min_pairs']} pairs, "
+               f"{100 * corr.attrs['confidence']:g} % bootstrap intervals over sites, pair counts on the points")
+
+
+def model_correlation_section(rep: ReportWriter, result: Any, film: Any, *, n_boot: int = 200) -> None:
+    """C(r) of the film-wide model's S1 shift over every molecule-frame it computed (many more pairs
+    than a QM sample, so the report prefers it when the model ran)."""
+    from .study.sample import site_correlation
+
+    t = result.table
+    col = next((c for c in ("S1_shift_eV", "S1_eV") if c in t.columns and t[c].notna().sum() >= 3), None)
+    if col is None:
+        return
+    rep.section("Spatial correlation")
+    try:
+        corr = site_correlation(t, col, film=film, n_bins=12, n_boot=n_boot, seed=0)
+        correlation_figure(rep, corr, f"the film-wide model ({t[col].notna().sum()} molecule-frames)",
+                           col.replace("_eV", "").replace("_", " "))
+    except Exception as exc:  # noqa: BLE001 - a plot must not sink the report
+        rep.text(f"(spatial correlation not shown: {exc})")
 
 
 def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None = None) -> None:

@@ -13,6 +13,7 @@ and print meV.
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass, field
 from typing import Any
@@ -523,6 +524,14 @@ def _check_box(box: Any) -> npt.NDArray[np.float64] | None:
     return b
 
 
+#: fewest pairs a distance bin of C(r) needs to be shown. For independent
+#: Gaussian values the covariance of a bin of k pairs has a standard error of
+#: about σ²/√k, so C(r) of a bin scatters by about 1/√k around its true value:
+#: 0.18 at k = 30, already a fifth of the whole range of a typical C(r); pairs
+#: that share sites scatter more. Bins below this are counted but not drawn.
+MIN_PAIRS_PER_BIN = 30
+
+
 def spatial_correlation(
     positions_A: npt.ArrayLike,
     values: npt.ArrayLike,
@@ -531,6 +540,10 @@ def spatial_correlation(
     r_max_A: float | None = None,
     n_bins: int = 20,
     frames: npt.ArrayLike | None = None,
+    n_boot: int = 0,
+    seed: int | np.random.Generator | None = None,
+    confidence: float = 0.95,
+    min_pairs: int = MIN_PAIRS_PER_BIN,
 ) -> pd.DataFrame:
     """Correlation of site-energy fluctuations against centroid distance.
 
@@ -558,20 +571,35 @@ def spatial_correlation(
         Number of equal-width bins on [0, r_max_A].
     frames : array_like, shape (n,), optional
         Frame label of each row; pairs are only formed within a frame.
+    n_boot : int, default 0
+        Bootstrap resamples of the sites for the interval of C in each bin
+        (0: no interval). A resample gives each site a multiplicity (a
+        multinomial draw) and each pair the product of its two sites'; mean,
+        variance and every bin are recomputed with those weights, so a site
+        never pairs with its own copy.
+    seed : int, numpy.random.Generator or None
+        Seed of the bootstrap.
+    confidence : float, default 0.95
+        Level of the percentile interval ``C_lo``, ``C_hi``.
+    min_pairs : int, default :data:`MIN_PAIRS_PER_BIN`
+        Bins with fewer pairs get ``shown = False``.
 
     Returns
     -------
     pandas.DataFrame
         One row per bin: ``r_A`` (bin centre), ``r_lo_A``, ``r_hi_A``,
         ``n_pairs``, ``covariance`` (<δE_i δE_j>, unit of values squared;
-        NaN for empty bins), ``C`` (covariance / σ²). ``attrs`` holds
-        ``variance`` and ``mean``.
+        NaN for empty bins), ``C`` (covariance / σ²), ``C_lo``, ``C_hi``
+        (bootstrap interval; NaN without ``n_boot``), ``shown`` (at least
+        ``min_pairs`` pairs and a finite C). ``attrs`` holds ``variance``,
+        ``mean``, ``n_sites``, ``min_pairs`` and ``n_boot``.
 
     Raises
     ------
     InputError
         On mismatched shapes, an invalid box, r_max_A beyond half the box
-        width, fewer than 2 sites, or zero variance.
+        width, fewer than 2 sites, zero variance, a negative ``n_boot`` or
+        ``min_pairs``.
     """
     from MDAnalysis.lib import distances as mda_dist  # layer-1 use: array routines only
 
@@ -597,6 +625,10 @@ def spatial_correlation(
     if int(n_bins) != n_bins or n_bins < 1:
         raise InputError(f"n_bins={n_bins!r} is invalid; use a positive integer")
     n_bins = int(n_bins)
+    for name, v in (("n_boot", n_boot), ("min_pairs", min_pairs)):
+        if isinstance(v, (bool, np.bool_)) or int(v) != v or v < 0:
+            raise InputError(f"{name}={v!r} is invalid; use a non-negative integer")
+    confidence = _check_confidence(confidence)
 
     if isinstance(box, Mapping):
         boxes = []
@@ -636,6 +668,7 @@ def spatial_correlation(
     edges = np.linspace(0.0, r_max, n_bins + 1)
     counts = np.zeros(n_bins, dtype=np.int64)
     sums = np.zeros(n_bins)
+    kept: list[tuple[npt.NDArray[np.intp], npt.NDArray[np.intp], npt.NDArray[np.intp]]] = []
     for f in range(len(labels)):
         sel = np.flatnonzero(fr == f)
         if sel.size < 2:
@@ -649,8 +682,21 @@ def spatial_correlation(
         prod = dv[sel[pairs[:, 0]]] * dv[sel[pairs[:, 1]]]
         counts += np.bincount(k, minlength=n_bins)
         sums += np.bincount(k, weights=prod, minlength=n_bins)
+        if n_boot:
+            kept.append((sel[pairs[:, 0]], sel[pairs[:, 1]], k))
     with np.errstate(invalid="ignore", divide="ignore"):
         cov = np.where(counts > 0, sums / np.maximum(counts, 1), np.nan)
+    c_lo = np.full(n_bins, np.nan)
+    c_hi = np.full(n_bins, np.nan)
+    if n_boot and kept:
+        boot = _bootstrap_correlation(val, kept, n_bins, int(n_boot), np.random.default_rng(seed))
+        alpha = 0.5 * (1.0 - confidence)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns: bins no resample filled
+            c_lo, c_hi = np.nanquantile(boot, [alpha, 1.0 - alpha], axis=0)
+        c_lo = np.where(counts > 0, c_lo, np.nan)
+        c_hi = np.where(counts > 0, c_hi, np.nan)
+    c = cov / var
     out = pd.DataFrame(
         {
             "r_A": 0.5 * (edges[:-1] + edges[1:]),
@@ -658,12 +704,63 @@ def spatial_correlation(
             "r_hi_A": edges[1:],
             "n_pairs": counts,
             "covariance": cov,
-            "C": cov / var,
+            "C": c,
+            "C_lo": c_lo,
+            "C_hi": c_hi,
+            "shown": (counts >= max(int(min_pairs), 1)) & np.isfinite(c),
         }
     )
-    out.attrs["variance"] = var
-    out.attrs["mean"] = mean
+    out.attrs.update({"variance": var, "mean": mean, "n_sites": int(val.size), "min_pairs": int(min_pairs),
+                      "n_boot": int(n_boot), "confidence": confidence})
     return out
+
+
+def _bootstrap_correlation(
+    val: npt.NDArray[np.float64],
+    kept: list[tuple[npt.NDArray[np.intp], npt.NDArray[np.intp], npt.NDArray[np.intp]]],
+    n_bins: int,
+    n_boot: int,
+    rng: np.random.Generator,
+) -> npt.NDArray[np.float64]:
+    """C(r) of ``n_boot`` site resamples, shape (n_boot, n_bins) (NaN where a resample has no pair).
+
+    With site weights w (a multinomial draw of n) and pair weights w_i w_j:
+    mean m = Σ w x / n, variance v = Σ w x² / n - m², and per bin
+    cov = (Σ w_ij x_i x_j - m Σ w_ij (x_i + x_j)) / Σ w_ij + m².
+    """
+    n = val.size
+    i = np.concatenate([p[0] for p in kept])
+    j = np.concatenate([p[1] for p in kept])
+    k = np.concatenate([p[2] for p in kept])
+    onehot = np.zeros((k.size, n_bins))
+    onehot[np.arange(k.size), k] = 1.0
+    xx, xs = val[i] * val[j], val[i] + val[j]
+    out = np.empty((n_boot, n_bins))
+    rows = max(1, _BOOT_BLOCK // max(k.size, n))
+    for start in range(0, n_boot, rows):
+        w = rng.multinomial(n, np.full(n, 1.0 / n), size=min(rows, n_boot - start)).astype(np.float64)
+        m = w @ val / n
+        v = w @ (val**2) / n - m**2
+        wp = w[:, i] * w[:, j]
+        s1 = wp @ onehot
+        with np.errstate(invalid="ignore", divide="ignore"):
+            cov = ((wp * xx) @ onehot - m[:, None] * ((wp * xs) @ onehot)) / s1 + m[:, None] ** 2
+            out[start:start + w.shape[0]] = np.where((s1 > 0) & (v[:, None] > 0), cov / v[:, None], np.nan)
+    return out
+
+
+def correlation_note(corr: pd.DataFrame) -> str | None:
+    """Why C(r) cannot be drawn (no bin reaches ``min_pairs`` pairs), in words; None when some bin can."""
+    if "shown" in corr.columns and bool(corr["shown"].any()):
+        return None
+    need = int(corr.attrs.get("min_pairs", MIN_PAIRS_PER_BIN))
+    n_sites = corr.attrs.get("n_sites")
+    total = int(corr["n_pairs"].sum())
+    most = int(corr["n_pairs"].max()) if len(corr) else 0
+    who = f"{n_sites} sites give" if n_sites is not None else "the sites give"
+    return (f"C(r) is not drawn: {who} {total} pairs within {float(corr['r_hi_A'].max()):g} Å, at most {most} in "
+            f"one distance bin, and a bin needs {need} pairs to say more than noise; sample more sites (or "
+            "frames), or use the film-wide model's table of every molecule")
 
 
 # --------------------------------------------------------------------------

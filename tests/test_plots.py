@@ -158,6 +158,25 @@ def test_correlation_plot(tmp_path):
         plot_correlation(corr.drop(columns="C"))
 
 
+def test_correlation_plot_intervals_counts_and_words():
+    rng = np.random.default_rng(1)
+    box = [20, 20, 20, 90, 90, 90]
+    corr = spatial_correlation(rng.uniform(0, 20, (200, 3)), rng.normal(size=200), box, n_bins=8, n_boot=200,
+                               seed=0)
+    ax = plot_correlation(corr).axes[0]
+    x, y = ax.lines[1].get_data()
+    shown = corr[corr.shown]
+    np.testing.assert_allclose(x, shown.r_A) and np.testing.assert_allclose(y, shown.C)
+    assert len(ax.collections) == 1  # the error bars
+    assert [t.get_text() for t in ax.texts] == [str(k) for k in shown.n_pairs]
+    assert ax.get_xlim()[0] == 0.0
+    # nothing to draw: the reason in words, no negative distances
+    few = spatial_correlation(rng.uniform(0, 20, (3, 3)), [1.0, 2.0, 4.0], box, n_bins=8)
+    ax = plot_correlation(few).axes[0]
+    assert len(ax.lines) == 1 and "C(r) is not drawn" in ax.texts[0].get_text().replace("\n", " ")
+    assert ax.get_xlim() == (0.0, pytest.approx(10.0))
+
+
 def test_parity_plot(tmp_path):
     rng = np.random.default_rng(2)
     qm = rng.normal(3.0, 0.1, 60)

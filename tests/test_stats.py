@@ -16,6 +16,8 @@ from clusterlab.stats import (
     converged_radius,
     MIN_RADII_TO_JUDGE,
     SIGMA_BOOTSTRAP_MIN_N,
+    MIN_PAIRS_PER_BIN,
+    correlation_note,
     disorder_summary,
     sigma_interval_note,
     disorder_stats,
@@ -304,6 +306,71 @@ def test_uncorrelated_values_give_zero():
     ok = out["n_pairs"] > 200
     assert np.all(np.abs(out["C"][ok]) < 5 / np.sqrt(out["n_pairs"][ok]))
     assert out.attrs["variance"] == pytest.approx(np.var(vals), rel=1e-12)
+
+
+def test_correlation_bootstrap_weights_match_an_explicit_resample():
+    # a resample with multiplicities w is the sample with site i copied w_i times, pairs only between
+    # copies of different sites: check the weighted formula against that explicit construction
+    from clusterlab.stats import _bootstrap_correlation
+
+    rng = np.random.default_rng(3)
+    pos = rng.uniform(0, 12.0, size=(9, 3))
+    vals = rng.normal(size=9)
+    w = np.array([[2, 0, 1, 1, 3, 0, 1, 1, 0]])
+
+    class Draw:
+        def multinomial(self, n, p, size):
+            assert n == 9 and size == 1
+            return w
+
+    out = spatial_correlation(pos, vals, None, r_max_A=12.0, n_bins=3)
+    i, j = np.triu_indices(9, 1)
+    d = np.linalg.norm(pos[i] - pos[j], axis=1)
+    keep = d < 12.0
+    k = np.minimum((d[keep] / 12.0 * 3).astype(int), 2)
+    boot = _bootstrap_correlation(vals, [(i[keep], j[keep], k)], 3, 1, Draw())
+    copies = np.repeat(np.arange(9), w[0])
+    x = vals[copies]
+    m, v = x.mean(), x.var()
+    expect = np.full(3, np.nan)
+    for b in range(3):
+        num = den = 0.0
+        for a in range(len(copies)):
+            for c in range(a + 1, len(copies)):
+                s1, s2 = sorted((copies[a], copies[c]))
+                if s1 == s2:
+                    continue
+                dist = np.linalg.norm(pos[s1] - pos[s2])
+                if dist < 12.0 and min(int(dist / 12.0 * 3), 2) == b:
+                    num += (vals[s1] - m) * (vals[s2] - m)
+                    den += 1
+        if den:
+            expect[b] = num / den / v
+    np.testing.assert_allclose(boot[0], expect, rtol=1e-10)
+    assert out["C_lo"].isna().all() and out.attrs["n_boot"] == 0
+
+
+def test_correlation_intervals_pair_counts_and_shown_bins():
+    rng = np.random.default_rng(8)
+    pos = rng.uniform(0, 20.0, size=(120, 3))
+    vals = rng.normal(size=120)
+    box = [20.0, 20.0, 20.0, 90, 90, 90]
+    a = spatial_correlation(pos, vals, box, n_bins=6, n_boot=300, seed=2)
+    b = spatial_correlation(pos, vals, box, n_bins=6, n_boot=300, seed=2)
+    pd.testing.assert_frame_equal(a, b)
+    plain = spatial_correlation(pos, vals, box, n_bins=6)
+    pd.testing.assert_series_equal(a["C"], plain["C"])  # the interval does not move the estimate
+    assert (a.shown == (a.n_pairs >= MIN_PAIRS_PER_BIN)).all() and a.attrs["min_pairs"] == MIN_PAIRS_PER_BIN
+    ok = a.shown
+    assert np.all(a.C_lo[ok] < a.C_hi[ok])
+    # independent values: the intervals hold 0 in most bins with many pairs
+    assert np.mean((a.C_lo[ok] <= 0) & (0 <= a.C_hi[ok])) >= 0.5
+    assert correlation_note(a) is None
+    few = spatial_correlation(pos[:4], vals[:4], box, n_bins=6)
+    note = correlation_note(few)
+    assert note is not None and "4 sites give" in note and f"needs {MIN_PAIRS_PER_BIN} pairs" in note
+    with pytest.raises(InputError, match="n_boot=-1"):
+        spatial_correlation(pos, vals, box, n_boot=-1)
 
 
 def _brute_min_image(pos, box_vecs):

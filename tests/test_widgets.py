@@ -441,7 +441,11 @@ def test_disorder_run_histogram_growth_scene_and_export(film, tmp_path, monkeypa
     for r in (6.0, 9.0):
         s = dp.data.loc[dp.data.radius_A == r, "S1_shift_eV"].to_numpy()
         assert g.loc[r, "sigma"] == pytest.approx(np.std(s, ddof=1), rel=1e-12)
-    assert dp.growth_plot.value[:4] == b"\x89PNG" and dp.corr_plot.value[:4] == b"\x89PNG"
+    assert dp.growth_plot.value[:4] == b"\x89PNG"
+    # 24 sites give at most a few tens of pairs per distance bin: C(r) would be noise, so the panel says
+    # why in words (it used to draw it; see test_correlation_is_drawn_with_intervals_when_pairs_allow)
+    assert dp.corr_plot.value == b"" and not dp.correlation.shown.any()
+    assert "C(r) is not drawn: 24 sites give" in html.unescape(dp.corr_note.value)
     # site energies on the film: sampled molecules in chain M, B-factor normalised 0..100
     sub = dp.data[(dp.data.radius_A == 9.0) & (dp.data.frame == 0)].set_index("molecule")["S1_eV"]
     lines = [ln for ln in dp.scene_pdb.splitlines() if ln.startswith("HETATM")]
@@ -540,6 +544,38 @@ def test_disorder_side_table_shows_the_one_sigma_and_interval(film):
             f"{1e3 * st['sigma_chi2_hi']:.1f}]</td>") in table
     assert "chi-square interval of a normal sample (n = 3 is below 30" in table
     assert f"{1e3 * st['sigma_lo']:.1f}," not in table
+
+
+def _lattice_sites(film, frames=(0, 1), seed=3):
+    rng = np.random.default_rng(seed)
+    rows = []
+    for f in frames:
+        cent = film.frame_geometry(f).centroids_A
+        for m in range(film.n_molecules):
+            rows.append({"frame": f, "molecule": m, "radius_A": 6.0, "S1_eV": 3.0 + rng.normal(0, 0.05),
+                         "centroid_x_A": cent[m, 0], "centroid_y_A": cent[m, 1], "centroid_z_A": cent[m, 2]})
+    return pd.DataFrame(rows)
+
+
+def test_correlation_is_drawn_with_intervals_when_pairs_allow(film):
+    from clusterlab.stats import MIN_PAIRS_PER_BIN
+    from clusterlab.study.sample import site_correlation
+
+    dp = DisorderPanel(film, show_view=False)
+    data = _lattice_sites(film)
+    dp.load(data)
+    c = dp.correlation
+    # the library's table of the same sites, with the same bootstrap seed
+    ref = site_correlation(data, "S1_eV", film=film, n_bins=10, n_boot=dp.correlation_boot, seed=int(dp.seed.value))
+    pd.testing.assert_frame_equal(c, ref)
+    assert c.shown.any() and (c.n_pairs[c.shown] >= MIN_PAIRS_PER_BIN).all()
+    assert (c.n_pairs[~c.shown] < MIN_PAIRS_PER_BIN).all() or not np.isfinite(c.C[~c.shown]).all()
+    drawn = c[c.shown]
+    assert np.all((drawn.C_lo <= drawn.C) & (drawn.C <= drawn.C_hi))
+    assert dp.corr_plot.value[:4] == b"\x89PNG" and f"at least {MIN_PAIRS_PER_BIN} pairs" in dp.corr_note.value
+    # three sites: words, not empty axes
+    dp.load(data.head(3))
+    assert dp.corr_plot.value == b"" and "C(r) is not drawn: 3 sites give" in html.unescape(dp.corr_note.value)
 
 
 def test_disorder_errors_reach_the_output(film, tmp_path, monkeypatch):

@@ -15,7 +15,9 @@ deficiencies; the order below is this module's own.
 
 from __future__ import annotations
 
+import textwrap
 from collections.abc import Mapping, Sequence
+
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
@@ -23,7 +25,7 @@ from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
 from ..errors import InputError
-from ..stats import converged_radius, disorder_stats
+from ..stats import converged_radius, correlation_note, disorder_stats
 
 __all__ = [
     "PALETTE",
@@ -277,34 +279,67 @@ def plot_growth(growth_df: pd.DataFrame, *, label: str = "environment shift") ->
     return fig
 
 
-def plot_correlation(corr_df: pd.DataFrame, *, ax: Axes | None = None, min_pairs: int = 1) -> Figure:
-    """Spatial correlation C(r) of site-energy fluctuations.
+def plot_correlation(corr_df: pd.DataFrame, *, ax: Axes | None = None, min_pairs: int | None = None,
+                     title: str | None = None) -> Figure:
+    """Spatial correlation C(r) of site-energy fluctuations, with intervals and pair counts.
 
     Parameters
     ----------
     corr_df : pandas.DataFrame
         Output of :func:`clusterlab.stats.spatial_correlation` (columns
-        ``r_A``, ``C``; ``n_pairs`` used when present).
+        ``r_A``, ``C``; ``n_pairs``, ``shown``, ``C_lo``, ``C_hi`` used when
+        present).
     ax : matplotlib.axes.Axes, optional
-    min_pairs : int, default 1
-        Bins with fewer pairs are not drawn.
+    min_pairs : int, optional
+        Bins with fewer pairs are not drawn; default: the table's ``shown``
+        column (its ``min_pairs``), else every bin.
+    title : str, optional
+        Axes title (e.g. where the sites come from).
 
     Returns
     -------
     matplotlib.figure.Figure
-        Lines: C(r) and the zero line.
+        Lines: the zero line and C(r) (with its interval as error bars when
+        the table has one). Each point is labelled with its pair count.
+        When no bin can be drawn the axes hold the reason in words
+        (:func:`clusterlab.stats.correlation_note`) instead of points.
     """
     _need(corr_df, ["r_A", "C"], "plot_correlation")
     d = corr_df
-    if "n_pairs" in d.columns:
+    if min_pairs is not None and "n_pairs" in d.columns:
         d = d[d["n_pairs"] >= min_pairs]
+    elif "shown" in d.columns:
+        d = d[d["shown"].astype(bool)]
+    d = d[np.isfinite(pd.to_numeric(d["C"], errors="coerce"))]
     fig, ax = _new_axes(ax)
     ax.axhline(0.0, color=_GREY, lw=0.8)
-    ax.plot(d["r_A"].to_numpy(dtype=float), d["C"].to_numpy(dtype=float), marker="o", color=PALETTE[2],
-            label="C(r)")
+    r_top = float(corr_df["r_hi_A"].max()) if "r_hi_A" in corr_df.columns and len(corr_df) else None
+    if not len(d):
+        note = correlation_note(corr_df.assign(shown=False)) if "n_pairs" in corr_df.columns else \
+            "C(r) is not drawn: no distance bin has a value"
+        ax.text(0.5, 0.5, "\n".join(textwrap.wrap(note, 48)), transform=ax.transAxes, ha="center", va="center",
+                fontsize="small")
+        ax.set_xlim(0.0, r_top if r_top else 1.0)
+    else:
+        r = d["r_A"].to_numpy(dtype=float)
+        c = d["C"].to_numpy(dtype=float)
+        has_ci = {"C_lo", "C_hi"} <= set(d.columns) and np.isfinite(d["C_lo"].to_numpy(dtype=float)).any()
+        if has_ci:
+            err = np.vstack([c - d["C_lo"].to_numpy(dtype=float), d["C_hi"].to_numpy(dtype=float) - c])
+            ax.errorbar(r, c, yerr=np.where(np.isfinite(err), err, 0.0), marker="o", color=PALETTE[2], capsize=0,
+                        label=f"C(r), {100 * float(corr_df.attrs.get('confidence', 0.95)):g} % bootstrap interval")
+        else:
+            ax.plot(r, c, marker="o", color=PALETTE[2], label="C(r)")
+        if "n_pairs" in d.columns:
+            for x, y, k in zip(r, c, d["n_pairs"].to_numpy()):
+                ax.annotate(f"{int(k)}", (x, y), textcoords="offset points", xytext=(0, 6), ha="center",
+                            fontsize="x-small", color=_GREY)
+        ax.set_xlim(0.0, r_top if r_top else None)
+        ax.legend(fontsize="small", title="numbers: pairs per bin", title_fontsize="x-small")
     ax.set_xlabel("centroid distance r (Å)")
     ax.set_ylabel("C(r) = ⟨δE_i δE_j⟩ / σ² (dimensionless)")
-    ax.legend(fontsize="small")
+    if title:
+        ax.set_title(title, fontsize="medium")
     return fig
 
 

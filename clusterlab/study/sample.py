@@ -322,12 +322,46 @@ class SiteSample:
 
     def correlation(self, quantity: str = "S1_eV", *, radius_A: float | None = None, **kw: Any) -> pd.DataFrame:
         """Spatial correlation of site energies vs centroid distance (periodic,
-        pairs within the same frame)."""
+        pairs within the same frame; keywords of :func:`spatial_correlation`,
+        e.g. ``n_boot`` for intervals)."""
         df = self.at(radius_A)
-        pos = df[list(CENTROID_COLUMNS)].to_numpy(dtype=float)
-        frames = df.frame.to_numpy()
-        boxes = {int(f): self.box.get(int(f)) for f in np.unique(frames)}
-        return spatial_correlation(pos, df[quantity].to_numpy(dtype=float), box=boxes, frames=frames, **kw)
+        boxes = {int(f): self.box.get(int(f)) for f in np.unique(df.frame.to_numpy())}
+        return site_correlation(df, quantity, boxes=boxes, **kw)
+
+
+def site_correlation(table: pd.DataFrame, quantity: str, *, film: Film | None = None,
+                     boxes: dict[int, Any] | None = None, **kw: Any) -> pd.DataFrame:
+    """:func:`spatial_correlation` of one column of a site table (one row per
+    frame and molecule: a sample's or the film-wide model's), pairs within
+    each frame.
+
+    Positions are the table's centroid columns, or the film's molecule
+    centroids when the table has none (the film-wide model's table); boxes
+    are ``boxes`` or the film's.
+
+    Raises
+    ------
+    InputError
+        If ``quantity`` is not a column, or the table has no centroids and
+        no film is given.
+    """
+    if quantity not in table.columns:
+        raise InputError(f"{quantity!r} is not a column of the table; columns: {sorted(table.columns)}.")
+    frames = table["frame"].to_numpy(dtype=int)
+    if all(c in table.columns for c in CENTROID_COLUMNS):
+        pos = table[list(CENTROID_COLUMNS)].to_numpy(dtype=float)
+    elif film is not None:
+        pos = np.empty((len(table), 3))
+        mols = table["molecule"].to_numpy(dtype=int)
+        for f in np.unique(frames):
+            here = frames == f
+            pos[here] = film.frame_geometry(int(f)).centroids_A[mols[here]]
+    else:
+        raise InputError("the table has no centroid columns "
+                         f"{list(CENTROID_COLUMNS)}; pass film= to take the molecule centroids from it.")
+    if boxes is None:
+        boxes = {int(f): (film.box(int(f)) if film is not None else None) for f in np.unique(frames)}
+    return spatial_correlation(pos, table[quantity].to_numpy(dtype=float), box=boxes, frames=frames, **kw)
 
 
 def sample_sites(

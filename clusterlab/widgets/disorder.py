@@ -30,11 +30,11 @@ import traitlets
 
 from ..errors import InputError
 from ..ranges import parse_frames, parse_radii
-from ..stats import disorder_stats, disorder_summary, spatial_correlation
+from ..stats import MIN_PAIRS_PER_BIN, correlation_note, disorder_stats, disorder_summary, spatial_correlation
 from ..store import ResultStore
 from ..study.doped import host_guest_overview, n_species
 from ..study.plots import plot_correlation, plot_growth, plot_histogram, plot_torsion
-from ..study.sample import CENTROID_COLUMNS, SiteSample, choose_molecules, sample_sites, site_table
+from ..study.sample import SiteSample, choose_molecules, sample_sites, site_correlation, site_table
 from ..export import export_study
 from ._controls import Radii, format_radii, link_radii
 from ._jobs import BackgroundJob, count_text
@@ -136,8 +136,10 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         #: least time between two redraws while a sample runs (s)
         self.redraw_interval_s = 3.0
         self._radius_chosen = False
-        #: correlation bins with fewer pairs are not drawn
-        self.min_pairs = 3
+        #: correlation bins with fewer pairs are not drawn (the library's stated threshold)
+        self.min_pairs = MIN_PAIRS_PER_BIN
+        #: bootstrap resamples of the sites for the C(r) error bars
+        self.correlation_boot = 200
         self._last_draw = -np.inf
 
         self.errors = widgets.Output(layout=widgets.Layout(max_height="220px", overflow="auto"))
@@ -469,23 +471,27 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.growth_plot.value = _style.figure_png(plot_growth(self.growth, label=col.replace("_eV", "")))
 
     def _draw_correlation(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
-        if not all(c in sub.columns for c in CENTROID_COLUMNS):
-            self.corr_note.value = "<i>the table has no molecule centroids.</i>"
-            return
         ok = np.isfinite(vals)
         if ok.sum() < 3:
-            self.corr_note.value = "<i>the spatial correlation needs at least 3 sites.</i>"
+            self._no_correlation("the spatial correlation needs at least 3 sites with a value; "
+                                 f"{int(ok.sum())} so far.")
             return
-        pos = sub.loc[ok, list(CENTROID_COLUMNS)].to_numpy(dtype=float)
-        frames = sub.loc[ok, "frame"].to_numpy(dtype=int) if "frame" in sub else None
-        box = None
-        if self.film.has_box:
-            box = {int(f): self.film.box(int(f)) for f in np.unique(frames)} if frames is not None \
-                else self.film.box(0)
-        self.correlation = spatial_correlation(pos, vals[ok], box, frames=frames, n_bins=10)
-        self.corr_note.value = (f"<span>{html.escape(q)}, {int(ok.sum())} sites; bins with at least "
-                                f"{self.min_pairs} pairs drawn</span>")
-        self.corr_plot.value = _style.figure_png(plot_correlation(self.correlation, min_pairs=self.min_pairs))
+        self.correlation = site_correlation(sub[ok], q, film=self.film, n_bins=10, n_boot=self.correlation_boot,
+                                            seed=int(self.seed.value), min_pairs=self.min_pairs)
+        note = correlation_note(self.correlation)
+        if note is not None:
+            self._no_correlation(note)
+            return
+        c = self.correlation
+        self.corr_note.value = (f"<span>{html.escape(q)}, {int(ok.sum())} sites: bins with at least "
+                                f"{self.min_pairs} pairs drawn ({int(c.shown.sum())} of {len(c)}), error bars "
+                                f"95 % bootstrap over sites, numbers = pairs per bin</span>")
+        self.corr_plot.value = _style.figure_png(plot_correlation(c))
+
+    def _no_correlation(self, why: str) -> None:
+        """Say why C(r) is not drawn, in words, instead of empty axes."""
+        self.corr_note.value = f'<i class="clusterlab-no-correlation">{html.escape(why)}</i>'
+        self.corr_plot.value = b""
 
     def _draw_doped(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
         """The host:guest tab: formats :func:`clusterlab.study.doped.host_guest_overview` of the shown sites."""
