@@ -15,8 +15,8 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 from .film import Film, load_film
-from .report import (ReportWriter, doped_section, model_correlation_section, model_section, sample_section,
-                     scan_section)
+from .report import (ReportWriter, doped_section, log_section, model_correlation_section, model_section,
+                     sample_section, scan_section)
 from .store import ResultStore
 from .studyfile import method_from_study, xc_basis
 
@@ -79,6 +79,11 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
     echo(f"method: {method.describe()}")
     rkw = _runner_kwargs(study)
 
+    def narrate(line: str) -> None:
+        """Each step of a scan or sample on the console (with the bars; --quiet keeps only the summary)."""
+        if progress:
+            echo("    " + line)
+
     if "scan" in present and study["scan"]["molecule"] is not None:
         from .study.scan import radius_scan
 
@@ -87,7 +92,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         echo(f"radius scan of molecule {s['molecule']} at radii {s['radii']} Å ...")
         outcome.scan = radius_scan(film, s["molecule"], s["radii"], method, frame=s["frame"], rule=s["rule"],
                                    qm_shell=s["qm_shell"], periodic_limit=s["periodic_limit"], tol_eV=s["tol_eV"],
-                                   store=store, runner="serial", progress=progress)
+                                   store=store, runner="serial", progress=progress, on_step=narrate)
         outcome.timings_s["scan"] = time.perf_counter() - t0
         echo("  " + outcome.scan.verdict.message)
         scan_section(rep, outcome.scan)
@@ -100,7 +105,8 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         echo(f"site-energy sample (molecules {s['molecules']!r}, n={s['n']}, frames {s['frames']}, "
              f"radius {s['radius']} Å) ...")
         outcome.sample = sample_sites(film, s["molecules"], s["frames"], s["radius"], method, store=store,
-                                      n=s["n"], seed=s["seed"], rule=s["rule"], progress=progress, **rkw)
+                                      n=s["n"], seed=s["seed"], rule=s["rule"], progress=progress,
+                                      on_step=narrate, **rkw)
         outcome.timings_s["sample"] = time.perf_counter() - t0
         echo(f"  {outcome.sample.report}")
         if outcome.sample.failures:
@@ -148,6 +154,8 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
 
     outcome.timings_s["total"] = time.perf_counter() - t_all
     rep.section("Timings", ", ".join(f"{k} {v:.1f} s" for k, v in outcome.timings_s.items()))
+    log_section(rep, {"radius scan": outcome.scan.log if outcome.scan is not None else [],
+                      "site sample": outcome.sample.log if outcome.sample is not None else []})
     outcome.summary_path = rep.write()
     with open(os.path.join(rep.folder, "study.json"), "w", encoding="utf-8") as fh:
         json.dump({k: v for k, v in study.items()}, fh, indent=2, default=str)

@@ -102,7 +102,7 @@ def scan_section(rep: ReportWriter, scan) -> None:
     rep.section(f"Radius scan of molecule {scan.molecule} (frame {scan.frame})",
                 f"Method: {scan.method.describe()}. **Verdict:** {scan.verdict.message}.")
     rep.display(scan.table, ["radius_A", "n_env_molecules", "n_charges", "S1_eV", "S1_shift_eV", "T1_eV",
-                             "T1_shift_eV", "dEST_eV", "IP_shift_eV", "EA_shift_eV", "converged", "kind"])
+                             "T1_shift_eV", "dEST_eV", "IP_shift_eV", "EA_shift_eV", "converged"])
     rep.figure(scan.plot(), "convergence.png", "Environment shift vs cut radius, with the tolerance band")
 
 
@@ -163,6 +163,16 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
         except Exception as exc:  # noqa: BLE001 - a plot must not sink the report
             rep.text(f"(spatial correlation not shown: {exc})")
     return stats
+
+
+def log_section(rep: ReportWriter, logs: dict[str, list[str]]) -> None:
+    """The runs' narration (one line per radius or site, with the times), when there is any."""
+    logs = {k: v for k, v in logs.items() if v}
+    if not logs:
+        return
+    rep.section("Log")
+    for what, lines in logs.items():
+        rep.text(f"{what}:\n\n```\n" + "\n".join(lines) + "\n```")
 
 
 def correlation_figure(rep: ReportWriter, corr: pd.DataFrame, source: str, what: str) -> None:

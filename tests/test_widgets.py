@@ -296,6 +296,26 @@ def test_cancel_sets_the_event(film, monkeypatch):
     assert "cancelled" in panel.status.value
 
 
+def test_scan_narration_reaches_the_status_line(film, monkeypatch):
+    seen = threading.Event()
+    go = threading.Event()
+
+    def scan(film_, molecule, radii, method, **kw):
+        kw["on_step"]("radius 8 Å: 33 molecules, 528 charges (1 of 2; elapsed 40 s, about 40 s left)")
+        seen.set()
+        assert go.wait(10.0)
+        return None
+
+    panel = ShiftScanPanel(film, radii_A=(5, 8))
+    monkeypatch.setattr(calc, "radius_scan", scan)
+    panel.run()
+    assert seen.wait(10.0)
+    assert "radius 8 Å: 33 molecules, 528 charges (1 of 2; elapsed 40 s, about 40 s left)" in \
+        html.unescape(panel.status.value)
+    go.set()
+    assert panel.wait(10.0) and len(panel.narration) == 1
+
+
 def test_cancel_after_the_first_radius_is_not_a_failure(film, monkeypatch):
     """Cancelling after one finished radius keeps and shows it, in the cancel's words, whatever the
     scan raises on its way out (it used to be an InputError from the convergence verdict)."""
@@ -393,7 +413,8 @@ def _fake_sample_factory(film, seed=11):
     rng = np.random.default_rng(seed)
     calls = []
 
-    def fake(film_, molecules, frames, radius, method, *, store, runner, seed, progress, on_result, cancel):
+    def fake(film_, molecules, frames, radius, method, *, store, runner, seed, progress, on_result, cancel,
+               on_step=None):
         calls.append({"molecules": list(molecules), "frames": list(frames), "radius": radius,
                       "method": method, "store": store, "runner": runner, "seed": seed})
         rows = []
@@ -511,7 +532,8 @@ def test_cancelled_sample_shows_its_sites_and_is_not_a_failure(film, tmp_path, m
                        show_view=False)
     started = threading.Event()
 
-    def sample(film_, molecules, frames, radius, method, *, store, runner, seed, progress, on_result, cancel):
+    def sample(film_, molecules, frames, radius, method, *, store, runner, seed, progress, on_result, cancel,
+               on_step=None):
         for m in (0, 1, 2, 3):
             on_result({"frame": 0, "molecule": m, "radius_A": 6.0, "S1_eV": 7.0 + 0.01 * m,
                        "S1_shift_eV": -0.1 + 0.01 * m, "converged": True})
@@ -651,11 +673,15 @@ def test_panels_run_the_real_library(film, tmp_path):
         row = t[t.radius_A == r].iloc[0]
         assert row.n_env_molecules == film.carve(0, r).n_env_molecules
     assert "finished" in scan.status.value and scan.result.verdict.message in html.unescape(scan.status.value)
+    # the panel got the library's narration line by line
+    assert scan.narration == scan.result.log and len(scan.narration) == 3
+    assert scan.narration[2].startswith("radius 6 Å: ")
     dp = DisorderPanel(film, molecules="0-2", frames="1", radii_A=(4.0,), basis="sto-3g", n_singlets=1,
                        n_triplets=1, store=str(tmp_path / "s.sqlite"), show_view=False)
     dp.run().wait(120.0, raise_error=True)
     assert sorted(dp.data.molecule) == [0, 1, 2] and set(dp.data.frame) == {1}
     assert dp.stats["n"] == 3
+    assert dp.narration == dp.result.log and len(dp.narration) == 4 and "(3 of 3; elapsed" in dp.narration[-1]
     back = DisorderPanel(film, show_view=False)
     back.load(tmp_path / "s.sqlite")
     np.testing.assert_allclose(back.data.sort_values("molecule").S1_eV, dp.data.sort_values("molecule").S1_eV)

@@ -30,7 +30,7 @@ from ..runner import RunReport
 from ..stats import conformational_environmental, disorder_stats, spatial_correlation, static_dynamic
 from ..store import ResultStore
 from .scan import open_store
-from .tasks import check_film_method, cluster_task, run_cluster_tasks
+from .tasks import check_film_method, cluster_task, narrate_tasks, run_cluster_tasks
 
 #: the molecule-centroid columns of a site table (Å)
 CENTROID_COLUMNS = ("centroid_x_A", "centroid_y_A", "centroid_z_A")
@@ -245,6 +245,8 @@ class SiteSample:
     failures: list[str] = field(default_factory=list)
     film_id: str | None = None
     method: Method | None = None
+    #: the run's narration, one line per site (empty for a sample read from a store)
+    log: list[str] = field(default_factory=list)
 
     @classmethod
     def from_store(cls, store: ResultStore | str | os.PathLike[str], *, film: Film | None = None,
@@ -380,6 +382,7 @@ def sample_sites(
     progress: bool = True,
     on_result: Callable[[dict], Any] | None = None,
     cancel: threading.Event | None = None,
+    on_step: Callable[[str], Any] | None = None,
     **runner_kw: Any,
 ) -> SiteSample:
     """Embedded site energies of many molecules and frames.
@@ -398,6 +401,11 @@ def sample_sites(
     runner : "processes" (default), "serial", "dask" or a Runner
     on_result : callable(dict), optional
         Called with each finished row.
+    on_step : callable(str), optional
+        Gets the narration as it happens: the number of sites to compute,
+        then one line per finished site (molecules, charges, S1 shift, its
+        time, elapsed time and the time left, the next site); the lines are
+        also in ``SiteSample.log``.
 
     Returns
     -------
@@ -413,11 +421,13 @@ def sample_sites(
     tasks = [cluster_task(film, int(m), r, method, frame=f, rule=rule, qm_shell_A=qm_shell)
              for f in fr for m in ids for r in radii]
 
+    narration = narrate_tasks(tasks, st, on_step, site=True, what="sites")
     report, rows, failures = run_cluster_tasks(tasks, st, desc="site energies", on_result=on_result,
-                                               runner=runner, progress=progress, cancel=cancel, **runner_kw)
+                                               narration=narration, runner=runner, progress=progress,
+                                               cancel=cancel, **runner_kw)
     table = pd.DataFrame(rows)
     if len(table):
         table = table.sort_values(["radius_A", "frame", "molecule"], kind="stable").reset_index(drop=True)
     boxes = {f: film.box(f) for f in fr}
     return SiteSample(table=table, box=boxes, report=report, failures=failures, film_id=film.film_id,
-                      method=method)
+                      method=method, log=narration.log.lines)

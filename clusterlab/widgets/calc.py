@@ -164,6 +164,8 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
     ----------
     rows : list of dict
         Rows reported so far by the running scan.
+    narration : list of str
+        The scan's narration so far (``radius_scan(on_step=)``).
     result : ScanResult or None
         The finished scan's result.
     error : str
@@ -191,6 +193,8 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         self.film = film
         self.explorer = explorer
         self.rows: list[dict] = []
+        #: the running scan's narration, one line per step (the status line shows the latest)
+        self.narration: list[str] = []
         self.result: Any = None
         self.error = ""
         self.method: Any = None
@@ -313,6 +317,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
             self._set_status("a scan is already running; cancel it first", "warn")
             return self
         self.rows = []
+        self.narration = []
         self.result = None
         self.error = ""
         self.exception = None
@@ -341,7 +346,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         molecule, radii = s.pop("molecule"), s.pop("radii")
         try:
             result = radius_scan(self.film, molecule, radii, self.method, progress=False, on_result=self._on_result,
-                        cancel=self._cancel, **s)
+                                 cancel=self._cancel, on_step=self._on_step, **s)
         except Exception as exc:  # noqa: BLE001 - shown in the panel
             if self._cancel.is_set():
                 # a cancel is not a failure: whatever the scan raised on the way out, keep what finished
@@ -357,6 +362,12 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
                 store.close()
             self.run_button.disabled = False
             self.cancel_button.disabled = True
+
+    def _on_step(self, line: str) -> None:
+        """The scan's narration (worker thread): the status line shows the latest step."""
+        self.narration.append(line)
+        if not self._cancel.is_set():
+            self._set_status(html.escape(line), "info")
 
     def _on_result(self, row: dict) -> None:
         """Called by the scan (worker thread) after each radius."""

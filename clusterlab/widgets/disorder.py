@@ -122,6 +122,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.states_source: Any = None
         self.data = pd.DataFrame()
         self.rows: list[dict] = []
+        #: the running sample's narration, one line per site (the status line shows the latest)
+        self.narration: list[str] = []
         self.result: Any = None
         self.error = ""
         self.stats: pd.Series | None = None
@@ -279,6 +281,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.error = ""
         self.exception = None
         self.rows = []
+        self.narration = []
         self.result = None
         try:
             s = self.settings()
@@ -306,7 +309,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
                 radius: float | list[float] = s["radii"][0] if len(s["radii"]) == 1 else list(s["radii"])
                 res = sample_sites(self.film, s["molecules"], s["frames"], radius, method, store=store,
                                    runner=s["runner"], seed=s["seed"], progress=False, on_result=self._on_result,
-                                   cancel=self._cancel)
+                                   cancel=self._cancel, on_step=self._on_step)
                 self.result = res
         except Exception as exc:  # noqa: BLE001
             if self._cancel.is_set():
@@ -343,6 +346,12 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         finally:
             self.run_button.disabled = False
             self.cancel_button.disabled = True
+
+    def _on_step(self, line: str) -> None:
+        """The sample's narration (worker thread): the status line shows the latest site."""
+        self.narration.append(line)
+        if not self._cancel.is_set():
+            self._set_status(html.escape(line), "info")
 
     def _on_result(self, row: dict) -> None:
         """Called by the sample (worker thread) after each site; redraws at
