@@ -84,6 +84,17 @@ def test_convergence_plot_states_and_errors(scan_df):
         plot_convergence(scan_df, periodic=-0.08)
 
 
+def test_convergence_plot_puts_a_non_shift_quantity_on_its_own_axis():
+    r = np.array([5.0, 8.0, 11.0])
+    df = pd.DataFrame({"radius_A": r, "S1_shift_eV": [-0.080, -0.087, -0.088], "dEST_eV": [1.93, 1.928, 1.927]})
+    fig = plot_convergence(df, states=["S1_shift_eV", "dEST_eV"], tol_eV=0.01)
+    left, right = fig.axes
+    np.testing.assert_allclose(right.lines[0].get_ydata(), df.dEST_eV)
+    assert right.get_ylabel() == "ΔEST (eV)" and left.get_ylabel() == "environment shift (eV)"
+    labels = [t.get_text() for t in left.get_legend().get_texts()]
+    assert "S1 shift" in labels and "ΔEST (eV), right axis" in labels
+
+
 def test_histogram_plot(tmp_path):
     rng = np.random.default_rng(0)
     x = rng.normal(3.05, 0.09, 200)

@@ -25,6 +25,7 @@ from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
 from ..errors import InputError
+from ..labels import column_label
 from ..stats import converged_radius, correlation_note, disorder_stats
 
 __all__ = [
@@ -143,11 +144,18 @@ def plot_convergence(
     rows = scan_df[np.isfinite(pd.to_numeric(scan_df["radius_A"], errors="coerce"))]
     rows = rows.sort_values("radius_A")
     r = rows["radius_A"].to_numpy(dtype=float)
+    # a judged quantity that is not a shift (ΔEST, a few eV) gets its own axis on the right, so the
+    # shifts (tens of meV) stay readable
+    others = [c for c in cols if not str(c).endswith("_shift_eV")]
+    right = ax.twinx() if others else None
+    main = ax
     for i, c in enumerate(cols):
         colour = PALETTE[i % len(PALETTE)]
         y = rows[c].to_numpy(dtype=float)
         name = _label_of(c)
-        ax.plot(r, y, marker="o", color=colour, label=f"{name} shift")
+        ax = right if c in others else main
+        ax.plot(r, y, marker="o", color=colour, ls="--" if c in others else "-",
+                label=f"{column_label(c)}, right axis" if c in others else f"{name} shift")
         ref = limits.get(c)
         finite = np.isfinite(y)
         if ref is None and finite.any():
@@ -163,11 +171,18 @@ def plot_convergence(
             if verdict.converged:
                 ax.axvline(verdict.radius_A, color=colour, ls=":", lw=1.2,
                            label=f"{name} converged at {verdict.radius_A:g} Å")
+    ax = main
     ax.set_xlabel("cluster radius (Å)")
     ax.set_ylabel("environment shift (eV)")
     ax.set_title(f"shift vs radius (band: ±{1e3 * tol_eV:g} meV)", fontsize="medium")
-    ax.legend(fontsize="small")
+    handles, labels = ax.get_legend_handles_labels()
+    if right is not None:
+        right.set_ylabel(", ".join(column_label(c) for c in others))
+        more = right.get_legend_handles_labels()
+        handles, labels = handles + more[0], labels + more[1]
+    ax.legend(handles, labels, fontsize="small")
     return fig
+
 
 
 def plot_histogram(
