@@ -296,6 +296,15 @@ def test_cancel_sets_the_event(film, monkeypatch):
     assert "cancelled" in panel.status.value
 
 
+def _run_then_cancel(panel, started):
+    """Start the panel's job, press cancel once ``started`` is set, and return the status text."""
+    panel.run()
+    assert started.wait(10.0)
+    panel.cancel_button.click()
+    assert panel.wait(10.0)
+    return html.unescape(panel.status.value)
+
+
 def test_scan_narration_reaches_the_status_line(film, monkeypatch):
     seen = threading.Event()
     go = threading.Event()
@@ -331,11 +340,7 @@ def test_cancel_after_the_first_radius_is_not_a_failure(film, monkeypatch):
 
     panel = ShiftScanPanel(film, radii_A=(6, 9))
     monkeypatch.setattr(calc, "radius_scan", scan)
-    panel.run()
-    assert first.wait(10.0)
-    panel.cancel_button.click()
-    assert panel.wait(10.0)
-    status = html.unescape(panel.status.value)
+    status = _run_then_cancel(panel, first)
     assert "cancelled after 1 radius" in status and "failed" not in status and "#a00" not in status
     assert panel.error == "" and panel.exception is None and panel.errors.outputs == ()
     assert panel.progress.bar_style == "warning"
@@ -404,6 +409,9 @@ def test_defaults_are_the_library_functions(film):
     assert panel.build_method() == Method.preset("draft")
     DisorderPanel(film, show_view=False)
     assert disorder.disorder_stats is disorder_stats and disorder.spatial_correlation is spatial_correlation
+    from clusterlab.study.sample import site_correlation
+
+    assert disorder.site_correlation is site_correlation
     assert disorder.sample_sites is sample_sites and disorder.site_table is site_table
     assert disorder.SiteSample is SiteSample
 
@@ -542,11 +550,7 @@ def test_cancelled_sample_shows_its_sites_and_is_not_a_failure(film, tmp_path, m
         raise InputError("no site finished")  # whatever the library raises on the way out
 
     monkeypatch.setattr(disorder, "sample_sites", sample)
-    dp.run()
-    assert started.wait(10.0)
-    dp.cancel_button.click()
-    assert dp.wait(10.0)
-    status = html.unescape(dp.status.value)
+    status = _run_then_cancel(dp, started)
     assert "cancelled after 4 sites" in status and "failed" not in status
     assert dp.error == "" and dp.exception is None and dp.errors.outputs == ()
     assert sorted(dp.data.molecule) == [0, 1, 2, 3]

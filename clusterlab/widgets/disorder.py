@@ -30,7 +30,8 @@ import traitlets
 
 from ..errors import InputError
 from ..ranges import parse_frames, parse_radii
-from ..stats import MIN_PAIRS_PER_BIN, correlation_note, disorder_stats, disorder_summary, spatial_correlation
+from ..stats import MIN_PAIRS_PER_BIN, correlation_note, disorder_stats, disorder_summary
+from ..stats import spatial_correlation  # noqa: F401 - the kernel under site_correlation, kept importable here
 from ..store import ResultStore
 from ..study.doped import host_guest_overview, n_species
 from ..study.plots import plot_correlation, plot_growth, plot_histogram, plot_torsion
