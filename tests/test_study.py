@@ -50,6 +50,17 @@ def test_scan_narrates_each_radius(film, tmp_path):
     assert "(2 of 2; elapsed" in lines[2] and "left" not in lines[2] and "next" not in lines[2]
 
 
+def test_scan_cancelled_after_one_radius_keeps_it_and_cannot_judge(film, tmp_path):
+    import threading
+
+    stop = threading.Event()
+    res = radius_scan(film, 4, [3.0, 4.5, 6.0], METHOD, store=tmp_path / "c.sqlite", progress=False,
+                      on_result=lambda row: stop.set(), cancel=stop)
+    assert list(res.table.radius_A) == [0.0, 3.0]
+    assert not res.verdict.judged and not res.converged
+    assert "cannot be judged yet from 1 radius (3 Å)" in res.message and "add 2 radii beyond 3 Å" in res.message
+
+
 def test_radius_scan_table_store_and_resume(film, tmp_path):
     rows = []
     path = tmp_path / "scan.sqlite"
