@@ -15,7 +15,8 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 from .film import Film, load_film
-from .report import ReportWriter, doped_section, model_section, polarization_table, sample_section, scan_section
+from .report import (ReportWriter, doped_section, log_section, model_correlation_section, model_section,
+                     polarization_table, sample_section, scan_section)
 from .store import ResultStore
 from .studyfile import method_from_study, xc_basis
 
@@ -78,6 +79,11 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
     echo(f"method: {method.describe()}")
     rkw = _runner_kwargs(study)
 
+    def narrate(line: str) -> None:
+        """Each step of a scan or sample on the console (with the bars; --quiet keeps only the summary)."""
+        if progress:
+            echo("    " + line)
+
     if "scan" in present and (study["scan"]["molecule"] is not None or study["scan"]["species"]):
         from .study.scan import radius_scan
 
@@ -89,7 +95,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         echo(f"radius scan of molecule {molecule} at radii {s['radii']} Å ...")
         outcome.scan = radius_scan(film, molecule, s["radii"], method, frame=s["frame"], rule=s["rule"],
                                    qm_shell=s["qm_shell"], periodic_limit=s["periodic_limit"], tol_eV=s["tol_eV"],
-                                   store=store, runner="serial", progress=progress)
+                                   store=store, runner="serial", progress=progress, on_step=narrate)
         outcome.timings_s["scan"] = time.perf_counter() - t0
         echo("  " + outcome.scan.verdict.message)
         scan_section(rep, outcome.scan)
@@ -104,17 +110,18 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
              f"radius {s['radius']} Å) ...")
         outcome.sample = sample_sites(film, s["molecules"], s["frames"], s["radius"], method, store=store,
                                       n=s["n"], seed=s["seed"], species=s["species"], rule=s["rule"],
-                                      progress=progress, **rkw)
+                                      progress=progress, on_step=narrate, **rkw)
         outcome.timings_s["sample"] = time.perf_counter() - t0
         echo(f"  {outcome.sample.report}")
         if outcome.sample.failures:
             rep.text("Failed sites: " + "; ".join(outcome.sample.failures[:10]))
         if len(outcome.sample.table):
-            stats = sample_section(rep, outcome.sample, list(s["quantities"]))
+            # C(r) comes from the film-wide model when it runs (every molecule-frame, not a QM sample)
+            stats = sample_section(rep, outcome.sample, list(s["quantities"]), correlation="model" not in present)
             doped_section(rep, film, outcome.sample, states=store)  # nothing for a one-species film
             for r in stats.itertuples(index=False):
                 echo(f"  {r.quantity}: mean {r.mean_eV:.3f} eV, σ {r.sigma_eV * 1e3:.0f} meV "
-                     f"[{r.sigma_lo_eV * 1e3:.0f}, {r.sigma_hi_eV * 1e3:.0f}] (95 % CI), n={r.n}")
+                     f"[{r.sigma_lo_eV * 1e3:.0f}, {r.sigma_hi_eV * 1e3:.0f}] (95 % {r.sigma_ci_method}), n={r.n}")
 
     if "model" in present:
         from .study.filmmodel import run_film_model
@@ -138,6 +145,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         if m["polarization"]:
             for r in polarization_table(outcome.model).itertuples(index=False):
                 echo(f"  {r.quantity}: mean {r.mean_eV:+.3f} eV, σ {r.sigma_eV * 1e3:.0f} meV (n={r.n})")
+        model_correlation_section(rep, outcome.model, film)
 
     if "export" in present:
         from .export import export_study
@@ -155,6 +163,8 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
 
     outcome.timings_s["total"] = time.perf_counter() - t_all
     rep.section("Timings", ", ".join(f"{k} {v:.1f} s" for k, v in outcome.timings_s.items()))
+    log_section(rep, {"radius scan": outcome.scan.log if outcome.scan is not None else [],
+                      "site sample": outcome.sample.log if outcome.sample is not None else []})
     outcome.summary_path = rep.write()
     with open(os.path.join(rep.folder, "study.json"), "w", encoding="utf-8") as fh:
         json.dump({k: v for k, v in study.items()}, fh, indent=2, default=str)

@@ -9,9 +9,10 @@ from __future__ import annotations
 
 import os
 import sys
-from typing import Any
+import time
+from typing import Any, Callable
 
-__all__ = ["progress_bar", "progress_wanted"]
+__all__ = ["StepLog", "format_duration", "progress_bar", "progress_wanted"]
 
 _TRUE = {"1", "true", "yes", "on"}
 
@@ -75,3 +76,77 @@ def progress_bar(total: int | None, desc: str = "", enabled: bool = True, *,
         disable=not progress_wanted(enabled), dynamic_ncols=True, smoothing=0.1,
         file=sys.stderr,
     )
+
+
+def format_duration(seconds: float) -> str:
+    """``"8 s"``, ``"2 min 05 s"``, ``"1 h 03 min"``."""
+    s = max(0.0, float(seconds))
+    if s < 60:
+        return f"{s:.0f} s"
+    if s < 3600:
+        return f"{int(s // 60)} min {int(s % 60):02d} s"
+    return f"{int(s // 3600)} h {int(s % 3600 // 60):02d} min"
+
+
+class StepLog:
+    """Narration of a long job: one line per step, with the elapsed time and
+    an estimate of the time left, for a panel's status line, the command
+    line and a report's log alike.
+
+    Parameters
+    ----------
+    total : int
+        Items the job will compute (not counting those already done).
+    on_line : callable(str), optional
+        Gets each line as it is written (a panel's status, ``print``).
+    clock : callable, default time.monotonic
+        Seconds (tests pass a fake clock).
+
+    Attributes
+    ----------
+    lines : list of str
+        Every line so far.
+    done : int
+        Items finished. The time left is the mean time per finished item
+        times the items left.
+
+    Examples
+    --------
+    >>> t = iter([0.0, 0.0, 10.0])
+    >>> log = StepLog(2, clock=lambda: next(t))
+    >>> log.say("radius 5 Å with the vacuum reference")
+    'radius 5 Å with the vacuum reference (elapsed 0 s)'
+    >>> log.finished("radius 5 Å: 12 molecules, 36 charges")
+    'radius 5 Å: 12 molecules, 36 charges (1 of 2; elapsed 10 s, about 10 s left)'
+    """
+
+    def __init__(self, total: int, on_line: Callable[[str], Any] | None = None, *,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        self.total = int(total)
+        self.done = 0
+        self.lines: list[str] = []
+        self._on_line = on_line
+        self._clock = clock
+        self._t0 = clock()
+
+    @property
+    def elapsed_s(self) -> float:
+        return self._clock() - self._t0
+
+    def _emit(self, line: str) -> str:
+        self.lines.append(line)
+        if self._on_line is not None:
+            self._on_line(line)
+        return line
+
+    def say(self, text: str) -> str:
+        """A step that starts (no item finished): the text and the elapsed time."""
+        return self._emit(f"{text} (elapsed {format_duration(self.elapsed_s)})")
+
+    def finished(self, text: str) -> str:
+        """An item finished: the text, the count, the elapsed time and the time left."""
+        self.done += 1
+        elapsed = self.elapsed_s
+        left = elapsed / self.done * max(self.total - self.done, 0)
+        tail = "" if self.done >= self.total else f", about {format_duration(left)} left"
+        return self._emit(f"{text} ({self.done} of {self.total}; elapsed {format_duration(elapsed)}{tail})")

@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
+from .labels import display_table
 
 MODEL_NOTE = (
     "All numbers are model estimates. The QM values use electrostatic point-charge embedding of a "
@@ -76,6 +77,12 @@ class ReportWriter:
     def table(self, df: pd.DataFrame, cols: list[str], nd: int = 3) -> None:
         self.lines += [_table_md(df, cols, nd), ""]
 
+    def display(self, df: pd.DataFrame, cols: list[str]) -> None:
+        """A table as people read it (:func:`clusterlab.labels.display_table`: human headers, shifts
+        and σ in meV, the vacuum row named)."""
+        shown = display_table(df[[c for c in cols if c in df.columns]])
+        self.lines += [_table_md(shown, list(shown.columns)), ""]
+
     def figure(self, fig, name: str, caption: str) -> str:
         path = os.path.join(self.folder, name)
         fig.savefig(path, dpi=110, bbox_inches="tight")
@@ -95,14 +102,24 @@ def scan_section(rep: ReportWriter, scan) -> None:
     species = f", species {scan.species}" if getattr(scan, "species", None) else ""
     rep.section(f"Radius scan of molecule {scan.molecule}{species} (frame {scan.frame})",
                 f"Method: {scan.method.describe()}. **Verdict:** {scan.verdict.message}.")
-    rep.table(scan.table, ["radius_A", "n_env_molecules", "n_charges", "S1_eV", "S1_shift_eV", "T1_eV",
-                           "T1_shift_eV", "dEST_eV", "IP_shift_eV", "EA_shift_eV"])
+    rep.display(scan.table, ["radius_A", "n_env_molecules", "n_charges", "S1_eV", "S1_shift_eV", "T1_eV",
+                             "T1_shift_eV", "dEST_eV", "IP_shift_eV", "EA_shift_eV", "converged"])
     rep.figure(scan.plot(), "convergence.png", "Environment shift vs cut radius, with the tolerance band")
 
 
-def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: int = 2000) -> pd.DataFrame:
-    """Disorder statistics, histogram, growth, decompositions, correlation."""
-    from .study.plots import plot_correlation, plot_growth, plot_histogram
+def _sigma_row(quantity: str, s: pd.Series) -> dict[str, Any]:
+    """A statistics row with the one reported σ interval (stats.SIGMA_BOOTSTRAP_MIN_N rule)."""
+    return {"quantity": quantity, "n": s["n"], "mean_eV": s["mean"], "sigma_eV": s["sigma"],
+            "sigma_lo_eV": s["sigma_ci_lo"], "sigma_hi_eV": s["sigma_ci_hi"], "sigma_ci_method": s["sigma_ci_method"]}
+
+
+def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: int = 2000,
+                   correlation: bool = True) -> pd.DataFrame:
+    """Disorder statistics, histogram, growth, decompositions, and (``correlation``) the spatial
+    correlation of the sample; a study with the film-wide model draws it from the model instead
+    (:func:`model_correlation_section`)."""
+    from .stats import sigma_interval_note
+    from .study.plots import plot_growth, plot_histogram
 
     t = sample.at()
     unknown = [q for q in quantities if q not in sample.table.columns]
@@ -110,6 +127,7 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
         have = sorted(c for c in sample.table.columns if str(c).endswith(("_eV", "_osc")))
         raise InputError(f"quantity {unknown[0]!r} is not a column of the sample; it has {have}.")
     radius = float(t.radius_A.max()) if len(t) else float("nan")
+    notes: list[str] = []
     rep.section(f"Site-energy sample ({t.molecule.nunique()} molecules x {t.frame.nunique()} frames, "
                 f"radius {radius:g} Å)")
     rows = []
@@ -117,23 +135,23 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
         if q not in t.columns or t[q].notna().sum() < 3:
             continue
         s = sample.stats(q, n_boot=n_boot, seed=0)
-        rows.append({"quantity": q, "n": s["n"], "mean_eV": s["mean"], "sigma_eV": s["sigma"],
-                     "sigma_lo_eV": s["sigma_lo"], "sigma_hi_eV": s["sigma_hi"], "skewness": s["skewness"],
-                     "excess_kurtosis": s["excess_kurtosis"], "normality_p": s["normality_p"]})
+        rows.append({**_sigma_row(q, s), "skewness": s["skewness"], "excess_kurtosis": s["excess_kurtosis"],
+                     "normality_p": s["normality_p"]})
+        notes.append(sigma_interval_note(s))
     stats = pd.DataFrame(rows)
     if len(stats):
-        rep.text(f"σ intervals: {int(100 * 0.95)} % bootstrap (BCa) confidence intervals.")
-        rep.table(stats, list(stats.columns))
+        rep.text("σ intervals: " + "; ".join(dict.fromkeys(notes)) + ".")
+        rep.display(stats, [c for c in stats.columns if c != "sigma_ci_method"])
         if "species" in t.columns and t["species"].nunique() > 1:
             per = pd.concat([sample.stats(q, by="species", n_boot=n_boot, seed=0).assign(quantity=q)
                              for q in stats.quantity], ignore_index=True)
-            per = per.rename(columns={"mean": "mean_eV", "sigma": "sigma_eV", "sigma_lo": "sigma_lo_eV",
-                                      "sigma_hi": "sigma_hi_eV"})
-            rep.text("Per species:")
+            per = per.rename(columns={"mean": "mean_eV", "sigma": "sigma_eV", "sigma_ci_lo": "sigma_lo_eV",
+                                      "sigma_ci_hi": "sigma_hi_eV"})
+            rep.text("Per species (σ interval by the same rule):")
             rep.table(per, ["quantity", "species", "n", "mean_eV", "sigma_eV", "sigma_lo_eV", "sigma_hi_eV"])
         q0 = stats.quantity.iloc[0]
         rep.figure(plot_histogram(t[q0].to_numpy(dtype=float), label=q0.replace("_eV", "")),
-                   f"histogram_{q0}.png", f"Distribution of {q0} with the Gaussian fit")
+                   f"histogram_{q0}.png", f"Distribution of {q0} with the Gaussian of its mean and σ")
     if t.frame.nunique() > 1 and "S1_eV" in t.columns:
         sd = sample.static_dynamic("S1_eV")
         rep.text(f"Static vs dynamic (S1): σ_static = {_fmt(sd['sigma_static'])} eV, "
@@ -146,13 +164,55 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
         g = sample.growth("S1_shift_eV", n_boot=n_boot, seed=0)
         if len(g) > 1:
             rep.figure(plot_growth(g), "growth.png", "Mean S1 shift and σ vs cut radius (95 % CI)")
-    if len(t) >= 6 and "S1_eV" in t.columns:
+    if correlation and len(t) >= 3 and "S1_eV" in t.columns:
         try:
-            corr = sample.correlation("S1_eV", n_bins=8)
-            rep.figure(plot_correlation(corr), "correlation.png", "Spatial correlation of S1 site energies")
+            corr = sample.correlation("S1_eV", n_bins=8, n_boot=min(n_boot, 500), seed=0)
+            correlation_figure(rep, corr, f"the QM sample ({len(t)} sites)", "S1 site energies")
         except Exception as exc:  # noqa: BLE001 - a plot must not sink the report
             rep.text(f"(spatial correlation not shown: {exc})")
     return stats
+
+
+def log_section(rep: ReportWriter, logs: dict[str, list[str]]) -> None:
+    """The runs' narration (one line per radius or site, with the times), when there is any."""
+    logs = {k: v for k, v in logs.items() if v}
+    if not logs:
+        return
+    rep.section("Log")
+    for what, lines in logs.items():
+        rep.text(f"{what}:\n\n```\n" + "\n".join(lines) + "\n```")
+
+
+def correlation_figure(rep: ReportWriter, corr: pd.DataFrame, source: str, what: str) -> None:
+    """C(r) with its bootstrap intervals and pair counts, or the reason it is not drawn, in words."""
+    from .stats import correlation_note
+    from .study.plots import plot_correlation
+
+    note = correlation_note(corr)
+    if note is not None:
+        rep.text(f"Spatial correlation of {what} from {source}: {note}.")
+        return
+    rep.figure(plot_correlation(corr, title=f"from {source}"), "correlation.png",
+               f"Spatial correlation of {what} from {source}: bins with at least {corr.attrs['min_pairs']} pairs, "
+               f"{100 * corr.attrs['confidence']:g} % bootstrap intervals over sites, pair counts on the points")
+
+
+def model_correlation_section(rep: ReportWriter, result: Any, film: Any, *, n_boot: int = 200) -> None:
+    """C(r) of the film-wide model's S1 shift over every molecule-frame it computed (many more pairs
+    than a QM sample, so the report prefers it when the model ran)."""
+    from .study.sample import site_correlation
+
+    t = result.table
+    col = next((c for c in ("S1_shift_eV", "S1_eV") if c in t.columns and t[c].notna().sum() >= 3), None)
+    if col is None:
+        return
+    rep.section("Spatial correlation")
+    try:
+        corr = site_correlation(t, col, film=film, n_bins=12, n_boot=n_boot, seed=0)
+        correlation_figure(rep, corr, f"the film-wide model ({t[col].notna().sum()} molecule-frames)",
+                           col.replace("_eV", "").replace("_", " "))
+    except Exception as exc:  # noqa: BLE001 - a plot must not sink the report
+        rep.text(f"(spatial correlation not shown: {exc})")
 
 
 def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None = None) -> None:
@@ -184,11 +244,10 @@ def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None 
     rows = []
     for c in cols:
         s = disorder_stats(model_df[c].to_numpy(dtype=float), n_boot=500, seed=0)
-        rows.append({"quantity": c, "n": s["n"], "mean_eV": s["mean"], "sigma_eV": s["sigma"],
-                     "sigma_lo_eV": s["sigma_lo"], "sigma_hi_eV": s["sigma_hi"]})
+        rows.append(_sigma_row(c, s))
     if rows:
         st = pd.DataFrame(rows)
-        rep.table(st, list(st.columns))
+        rep.display(st, list(st.columns))
         c0 = cols[0]
         rep.figure(plot_histogram(model_df[c0].to_numpy(dtype=float), label=c0.replace("_eV", "")),
                    "model_histogram.png", f"Film-wide model: distribution of {c0}")

@@ -145,6 +145,9 @@ radius = 3.0
     assert "radius scan of molecule 4" in out and "n=4" in out
     summary = (tmp_path / "rep" / "summary.md").read_text()
     assert "Radius scan of molecule 4" in summary and "model estimates" in summary
+    # the report's log narrates each radius and each site, with the times
+    assert "## Log" in summary and "2 radii to compute; first: vacuum reference and radius 3 Å" in summary
+    assert "radius 4.5 Å: " in summary and "(2 of 2; elapsed" in summary and "4 sites to compute" in summary
     assert (tmp_path / "rep" / "convergence.png").stat().st_size > 1000
     assert (tmp_path / "rep" / "histogram_S1_eV.png").exists()
     assert main(["report", str(tmp_path / "st.sqlite"), "--out", str(tmp_path / "rep2")]) == 0

@@ -84,6 +84,17 @@ def test_convergence_plot_states_and_errors(scan_df):
         plot_convergence(scan_df, periodic=-0.08)
 
 
+def test_convergence_plot_puts_a_non_shift_quantity_on_its_own_axis():
+    r = np.array([5.0, 8.0, 11.0])
+    df = pd.DataFrame({"radius_A": r, "S1_shift_eV": [-0.080, -0.087, -0.088], "dEST_eV": [1.93, 1.928, 1.927]})
+    fig = plot_convergence(df, states=["S1_shift_eV", "dEST_eV"], tol_eV=0.01)
+    left, right = fig.axes
+    np.testing.assert_allclose(right.lines[0].get_ydata(), df.dEST_eV)
+    assert right.get_ylabel() == "ΔEST (eV)" and left.get_ylabel() == "environment shift (eV)"
+    labels = [t.get_text() for t in left.get_legend().get_texts()]
+    assert "S1 shift" in labels and "ΔEST (eV), right axis" in labels
+
+
 def test_histogram_plot(tmp_path):
     rng = np.random.default_rng(0)
     x = rng.normal(3.05, 0.09, 200)
@@ -92,9 +103,10 @@ def test_histogram_plot(tmp_path):
     ax = fig.axes[0]
     assert len(ax.lines) == 2  # Gaussian fit + mean
     assert len(ax.patches) == 15 + 1  # bars + shaded mean interval
-    # the fitted curve is scipy's normal pdf with the ML parameters
+    # the curve is scipy's normal pdf with the mean and the σ the text reports (ddof=1); it used to use
+    # the ML (ddof=0) σ, a second σ beside the reported one
     gx, gy = ax.lines[0].get_data()
-    np.testing.assert_allclose(gy, sps.norm.pdf(gx, *sps.norm.fit(x)), rtol=1e-10)
+    np.testing.assert_allclose(gy, sps.norm.pdf(gx, np.mean(x), np.std(x, ddof=1)), rtol=1e-10)
     # bars are a density: area 1 (numpy histogram, density=True)
     heights = np.array([p.get_height() for p in ax.patches[:15]])
     widths = np.array([p.get_width() for p in ax.patches[:15]])
@@ -103,6 +115,19 @@ def test_histogram_plot(tmp_path):
     assert f"σ = {1e3 * st['sigma']:.0f} meV" in text and "95 % intervals" in text
     assert ax.get_xlabel() == "S1 site energy (eV)" and _has_unit(ax.get_ylabel())
     _saves(fig, tmp_path, "hist.png")
+
+
+def test_histogram_small_sample_reports_the_chi_square_interval():
+    # 3 sites: σ and its interval in the text are the chi-square ones of disorder_stats (the bootstrap
+    # interval of 3 values is far too narrow), the same numbers the panels and the report show
+    x = np.array([3.00, 3.10, 3.12])
+    st = disorder_stats(x, seed=0)
+    assert st["sigma_ci_method"] == "chi-square"
+    assert (st["sigma_ci_lo"], st["sigma_ci_hi"]) == (st["sigma_chi2_lo"], st["sigma_chi2_hi"])
+    text = plot_histogram(x, st).axes[0].texts[0].get_text()
+    assert (f"σ = {1e3 * st['sigma']:.0f} meV [{1e3 * st['sigma_chi2_lo']:.0f}, {1e3 * st['sigma_chi2_hi']:.0f}]"
+            in text) and "chi-square" in text
+    assert f"{1e3 * st['sigma_lo']:.0f}, {1e3 * st['sigma_hi']:.0f}]" not in text
 
 
 def test_histogram_missing_stats_entry():
@@ -142,6 +167,25 @@ def test_correlation_plot(tmp_path):
     _saves(fig, tmp_path, "corr.png")
     with pytest.raises(InputError, match="'C' is missing"):
         plot_correlation(corr.drop(columns="C"))
+
+
+def test_correlation_plot_intervals_counts_and_words():
+    rng = np.random.default_rng(1)
+    box = [20, 20, 20, 90, 90, 90]
+    corr = spatial_correlation(rng.uniform(0, 20, (200, 3)), rng.normal(size=200), box, n_bins=8, n_boot=200,
+                               seed=0)
+    ax = plot_correlation(corr).axes[0]
+    x, y = ax.lines[1].get_data()
+    shown = corr[corr.shown]
+    np.testing.assert_allclose(x, shown.r_A) and np.testing.assert_allclose(y, shown.C)
+    assert len(ax.collections) == 1  # the error bars
+    assert [t.get_text() for t in ax.texts] == [str(k) for k in shown.n_pairs]
+    assert ax.get_xlim()[0] == 0.0
+    # nothing to draw: the reason in words, no negative distances
+    few = spatial_correlation(rng.uniform(0, 20, (3, 3)), [1.0, 2.0, 4.0], box, n_bins=8)
+    ax = plot_correlation(few).axes[0]
+    assert len(ax.lines) == 1 and "C(r) is not drawn" in ax.texts[0].get_text().replace("\n", " ")
+    assert ax.get_xlim() == (0.0, pytest.approx(10.0))
 
 
 def test_parity_plot(tmp_path):

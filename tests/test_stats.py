@@ -14,6 +14,12 @@ from clusterlab.stats import (
     ConvergenceVerdict,
     conformational_environmental,
     converged_radius,
+    MIN_RADII_TO_JUDGE,
+    SIGMA_BOOTSTRAP_MIN_N,
+    MIN_PAIRS_PER_BIN,
+    correlation_note,
+    disorder_summary,
+    sigma_interval_note,
     disorder_stats,
     spatial_correlation,
     static_dynamic,
@@ -318,6 +324,71 @@ def test_uncorrelated_values_give_zero():
     assert out.attrs["variance"] == pytest.approx(np.var(vals), rel=1e-12)
 
 
+def test_correlation_bootstrap_weights_match_an_explicit_resample():
+    # a resample with multiplicities w is the sample with site i copied w_i times, pairs only between
+    # copies of different sites: check the weighted formula against that explicit construction
+    from clusterlab.stats import _bootstrap_correlation
+
+    rng = np.random.default_rng(3)
+    pos = rng.uniform(0, 12.0, size=(9, 3))
+    vals = rng.normal(size=9)
+    w = np.array([[2, 0, 1, 1, 3, 0, 1, 1, 0]])
+
+    class Draw:
+        def multinomial(self, n, p, size):
+            assert n == 9 and size == 1
+            return w
+
+    out = spatial_correlation(pos, vals, None, r_max_A=12.0, n_bins=3)
+    i, j = np.triu_indices(9, 1)
+    d = np.linalg.norm(pos[i] - pos[j], axis=1)
+    keep = d < 12.0
+    k = np.minimum((d[keep] / 12.0 * 3).astype(int), 2)
+    boot = _bootstrap_correlation(vals, [(i[keep], j[keep], k)], 3, 1, Draw())
+    copies = np.repeat(np.arange(9), w[0])
+    x = vals[copies]
+    m, v = x.mean(), x.var()
+    expect = np.full(3, np.nan)
+    for b in range(3):
+        num = den = 0.0
+        for a in range(len(copies)):
+            for c in range(a + 1, len(copies)):
+                s1, s2 = sorted((copies[a], copies[c]))
+                if s1 == s2:
+                    continue
+                dist = np.linalg.norm(pos[s1] - pos[s2])
+                if dist < 12.0 and min(int(dist / 12.0 * 3), 2) == b:
+                    num += (vals[s1] - m) * (vals[s2] - m)
+                    den += 1
+        if den:
+            expect[b] = num / den / v
+    np.testing.assert_allclose(boot[0], expect, rtol=1e-10)
+    assert out["C_lo"].isna().all() and out.attrs["n_boot"] == 0
+
+
+def test_correlation_intervals_pair_counts_and_shown_bins():
+    rng = np.random.default_rng(8)
+    pos = rng.uniform(0, 20.0, size=(120, 3))
+    vals = rng.normal(size=120)
+    box = [20.0, 20.0, 20.0, 90, 90, 90]
+    a = spatial_correlation(pos, vals, box, n_bins=6, n_boot=300, seed=2)
+    b = spatial_correlation(pos, vals, box, n_bins=6, n_boot=300, seed=2)
+    pd.testing.assert_frame_equal(a, b)
+    plain = spatial_correlation(pos, vals, box, n_bins=6)
+    pd.testing.assert_series_equal(a["C"], plain["C"])  # the interval does not move the estimate
+    assert (a.shown == (a.n_pairs >= MIN_PAIRS_PER_BIN)).all() and a.attrs["min_pairs"] == MIN_PAIRS_PER_BIN
+    ok = a.shown
+    assert np.all(a.C_lo[ok] < a.C_hi[ok])
+    # independent values: the intervals hold 0 in most bins with many pairs
+    assert np.mean((a.C_lo[ok] <= 0) & (0 <= a.C_hi[ok])) >= 0.5
+    assert correlation_note(a) is None
+    few = spatial_correlation(pos[:4], vals[:4], box, n_bins=6)
+    note = correlation_note(few)
+    assert note is not None and "4 sites give" in note and f"needs {MIN_PAIRS_PER_BIN} pairs" in note
+    with pytest.raises(InputError, match="n_boot=-1"):
+        spatial_correlation(pos, vals, box, n_boot=-1)
+
+
 def _brute_min_image(pos, box_vecs):
     """Minimum-image distances by enumerating the 27 neighbouring images
     (independent of MDAnalysis; exact for r below half the cell width)."""
@@ -368,6 +439,25 @@ def test_spatial_correlation_errors():
         spatial_correlation(pos, [1.0, 1.0, 1.0, 1.0])
     with pytest.raises(InputError, match="no entry for frame 1"):
         spatial_correlation(pos, [1.0, 2.0, 3.0, 4.0], {0: [10, 10, 10]}, frames=[0, 0, 1, 1])
+
+
+def test_reported_sigma_interval_follows_the_sample_size():
+    rng = np.random.default_rng(5)
+    for n in (3, SIGMA_BOOTSTRAP_MIN_N - 1):
+        s = disorder_stats(rng.normal(0.0, 0.05, n), seed=0)
+        assert s["sigma_ci_method"] == "chi-square"
+        assert (s["sigma_ci_lo"], s["sigma_ci_hi"]) == (s["sigma_chi2_lo"], s["sigma_chi2_hi"])
+        assert f"is below {SIGMA_BOOTSTRAP_MIN_N}" in sigma_interval_note(s)
+    for method, name in (("BCa", "bootstrap BCa"), ("percentile", "bootstrap percentile")):
+        s = disorder_stats(rng.normal(0.0, 0.05, SIGMA_BOOTSTRAP_MIN_N), seed=0, method=method)
+        assert s["sigma_ci_method"] == name
+        assert (s["sigma_ci_lo"], s["sigma_ci_hi"]) == (s["sigma_lo"], s["sigma_hi"])
+    # the summary rows show that σ and that interval, in meV
+    s = disorder_stats([3.00, 3.10, 3.12], seed=0)
+    rows = dict(disorder_summary(s).itertuples(index=False))
+    assert rows["σ (meV)"] == (f"{1e3 * s['sigma']:.1f} [{1e3 * s['sigma_chi2_lo']:.1f}, "
+                               f"{1e3 * s['sigma_chi2_hi']:.1f}]")
+    assert "chi-square" in rows["σ interval"] and rows["n"] == "3"
 
 
 # ---------------------------------------------------------------------------
@@ -472,5 +562,37 @@ def test_converged_radius_errors():
         converged_radius([1.0, 2.0, 2.0], [0.1, 0.2, 0.3])
     with pytest.raises(InputError, match="tol=0.0"):
         converged_radius([1.0, 2.0], [0.1, 0.2], tol=0.0)
-    with pytest.raises(InputError, match="1 finite values"):
-        converged_radius([1.0, 2.0], [np.nan, 0.2])
+    # one finite value used to raise (and broke a scan cancelled after its first radius); it is now a
+    # verdict that says it cannot judge (see test_too_few_radii_cannot_be_judged)
+    one = converged_radius([1.0, 2.0], [np.nan, 0.2])
+    assert not one.converged and not one.judged and "from 1 radius (2 Å)" in one.message
+
+
+def test_too_few_radii_cannot_be_judged():
+    # two radii 7.3 meV apart with a 10 meV band: the last radius is its own reference, so the band
+    # test says nothing; the verdict must not say "converged"
+    df = pd.DataFrame({"S1_shift_eV": [-0.0800, -0.0873], "T1_shift_eV": [-0.050, -0.052]})
+    out = converged_radius([5.0, 8.0], df, tol=0.010)
+    assert not out.converged and not out.judged and out.radius_A is None
+    assert out.radius_by_quantity == {"S1_shift_eV": None, "T1_shift_eV": None}
+    assert "cannot be judged yet" in out.message and "add a radius beyond 8 Å" in out.message
+    assert "2 quantities (S1 shift, T1 shift)" in out.message and "moved 7.3 meV" in out.message
+    assert "converged to" not in out.message
+    # radii that already disagree beyond the band are judged: not converged
+    apart = converged_radius([5.0, 8.0], [-0.05, -0.09], tol=0.010)
+    assert apart.judged and not apart.converged and "still changes by 40 meV" in apart.message
+    # a third radius inside the band decides it
+    three = converged_radius([5.0, 8.0, 11.0], [-0.0800, -0.0873, -0.0880], tol=0.010)
+    assert three.judged and three.converged and three.radius_A == 5.0
+    # the periodic limit is an independent reference: one radius can be judged against it
+    per = converged_radius([8.0], [-0.088], tol=0.010, reference=-0.090)
+    assert per.judged and per.converged and per.radius_A == 8.0
+    # nothing finite: not judged, and says how many radii a verdict needs
+    none = converged_radius([5.0], [np.nan])
+    assert not none.judged and f"run at least {MIN_RADII_TO_JUDGE} radii" in none.message
+
+
+def test_verdict_names_every_quantity_it_counts():
+    df = pd.DataFrame({"S1_shift_eV": -0.05 - 5.0 / R**3, "T1_shift_eV": -0.03 - 4.0 / R**3})
+    out = converged_radius(R, df, tol=0.01)
+    assert out.converged and "all 2 quantities (S1 shift, T1 shift; slowest:" in out.message

@@ -36,6 +36,31 @@ def _quiet():
         yield
 
 
+def test_scan_narrates_each_radius(film, tmp_path):
+    lines = []
+    res = radius_scan(film, 4, [3.0, 4.5], METHOD, store=tmp_path / "n.sqlite", progress=False, on_step=lines.append)
+    t = res.table.set_index("radius_A")
+    assert lines == res.log and len(lines) == 3
+    assert lines[0].startswith("2 radii to compute; first: vacuum reference and radius 3 Å (elapsed ")
+    r3 = t.loc[3.0]
+    assert lines[1].startswith(f"radius 3 Å: {int(r3.n_env_molecules)} molecules, {int(r3.n_charges)} charges, "
+                               f"S1 shift {1e3 * r3.S1_shift_eV:+.1f} meV")
+    assert "; next: radius 4.5 Å (1 of 2; elapsed" in lines[1] and lines[1].endswith(" left)")
+    assert lines[2].startswith(f"radius 4.5 Å: {int(t.loc[4.5].n_env_molecules)} molecules")
+    assert "(2 of 2; elapsed" in lines[2] and "left" not in lines[2] and "next" not in lines[2]
+
+
+def test_scan_cancelled_after_one_radius_keeps_it_and_cannot_judge(film, tmp_path):
+    import threading
+
+    stop = threading.Event()
+    res = radius_scan(film, 4, [3.0, 4.5, 6.0], METHOD, store=tmp_path / "c.sqlite", progress=False,
+                      on_result=lambda row: stop.set(), cancel=stop)
+    assert list(res.table.radius_A) == [0.0, 3.0]
+    assert not res.verdict.judged and not res.converged
+    assert "cannot be judged yet from 1 radius (3 Å)" in res.message and "add 2 radii beyond 3 Å" in res.message
+
+
 def test_radius_scan_table_store_and_resume(film, tmp_path):
     rows = []
     path = tmp_path / "scan.sqlite"
@@ -54,6 +79,7 @@ def test_radius_scan_table_store_and_resume(film, tmp_path):
     # a re-run finds everything in the store and recomputes nothing
     again = radius_scan(film, 4, [3.0, 4.5], METHOD, store=path, progress=False)
     assert again.report.skipped == 2 and again.report.done == 0
+    assert again.log == ["0 radii to compute (2 already in the store) (elapsed 0 s)"]
     np.testing.assert_allclose(again.table.S1_eV, t.S1_eV)
     assert ResultStore(path).counts()["done"] == 2
     # the verdict is the detector's verdict on the same numbers

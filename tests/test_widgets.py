@@ -270,7 +270,9 @@ def test_run_button_calls_scan_with_settings_and_fills_outputs(film, monkeypatch
         fake.step.release()
         assert fake.reported.acquire(timeout=10.0)
         assert panel.progress.value == k
-        assert f"{row['S1_shift_eV']:.4f}" in panel.table_html.value
+        # shifts are shown in meV under a human header (they used to be eV with 4 decimals)
+        assert f"<td>{1e3 * row['S1_shift_eV']:.1f}</td>" in panel.table_html.value
+        assert "S1 shift (meV)" in panel.table_html.value
         assert panel.plot.value[:8] == b"\x89PNG\r\n\x1a\n"
         assert panel.n_plots == k
     assert panel.wait(10.0)
@@ -292,6 +294,82 @@ def test_cancel_sets_the_event(film, monkeypatch):
     assert panel.wait(10.0)
     assert fake.saw_cancel
     assert "cancelled" in panel.status.value
+
+
+def _run_then_cancel(panel, started):
+    """Start the panel's job, press cancel once ``started`` is set, and return the status text."""
+    panel.run()
+    assert started.wait(10.0)
+    panel.cancel_button.click()
+    assert panel.wait(10.0)
+    return html.unescape(panel.status.value)
+
+
+def test_scan_narration_reaches_the_status_line(film, monkeypatch):
+    seen = threading.Event()
+    go = threading.Event()
+
+    def scan(film_, molecule, radii, method, **kw):
+        kw["on_step"]("radius 8 Å: 33 molecules, 528 charges (1 of 2; elapsed 40 s, about 40 s left)")
+        seen.set()
+        assert go.wait(10.0)
+        return None
+
+    panel = ShiftScanPanel(film, radii_A=(5, 8))
+    monkeypatch.setattr(calc, "radius_scan", scan)
+    panel.run()
+    assert seen.wait(10.0)
+    assert "radius 8 Å: 33 molecules, 528 charges (1 of 2; elapsed 40 s, about 40 s left)" in \
+        html.unescape(panel.status.value)
+    go.set()
+    assert panel.wait(10.0) and len(panel.narration) == 1
+
+
+def test_cancel_after_the_first_radius_is_not_a_failure(film, monkeypatch):
+    """Cancelling after one finished radius keeps and shows it, in the cancel's words, whatever the
+    scan raises on its way out (it used to be an InputError from the convergence verdict)."""
+    from clusterlab.errors import InputError
+
+    first = threading.Event()
+
+    def scan(film_, molecule, radii, method, **kw):
+        kw["on_result"](dict(SCAN_ROWS[0]))
+        first.set()
+        assert kw["cancel"].wait(10.0)
+        raise InputError("quantity 'S1_shift_eV' has 1 finite values; convergence needs at least 2")
+
+    panel = ShiftScanPanel(film, radii_A=(6, 9))
+    monkeypatch.setattr(calc, "radius_scan", scan)
+    status = _run_then_cancel(panel, first)
+    assert "cancelled after 1 radius" in status and "failed" not in status and "#a00" not in status
+    assert panel.error == "" and panel.exception is None and panel.errors.outputs == ()
+    assert panel.progress.bar_style == "warning"
+    assert panel.plot.value[:4] == b"\x89PNG" and "<td>-80.0</td>" in panel.table_html.value
+
+
+def test_cancelled_scan_with_a_result_shows_its_verdict(film, monkeypatch):
+    panel = ShiftScanPanel(film, radii_A=(6, 9, 12))
+    fake = FakeScan(SCAN_ROWS[:1])
+    monkeypatch.setattr(calc, "radius_scan", fake)
+    panel.run()
+    fake.step.release()
+    assert fake.reported.acquire(timeout=10.0)
+    panel.cancel_event.set()
+    assert panel.wait(10.0)
+    status = html.unescape(panel.status.value)
+    assert "cancelled after 1 radius" in status and "(fake)" in status and "failed" not in status
+
+
+def test_bad_input_from_the_scan_is_one_line(film, monkeypatch):
+    from clusterlab.errors import InputError
+
+    panel = ShiftScanPanel(film, radii_A=(6,))
+    monkeypatch.setattr(calc, "radius_scan", FakeScan([], fail=InputError("radius 0 Å is not positive")))
+    panel.run_button.click()
+    assert panel.wait(10.0)
+    assert "radius 0 Å is not positive" in html.unescape(panel.status.value)
+    assert "Traceback" not in "".join(o.get("text", "") for o in panel.errors.outputs)
+    assert panel.error == "InputError: radius 0 Å is not positive"
 
 
 def test_scan_exception_reaches_the_error_output(film, monkeypatch):
@@ -331,6 +409,9 @@ def test_defaults_are_the_library_functions(film):
     assert panel.build_method() == Method.preset("draft")
     DisorderPanel(film, show_view=False)
     assert disorder.disorder_stats is disorder_stats and disorder.spatial_correlation is spatial_correlation
+    from clusterlab.study.sample import site_correlation
+
+    assert disorder.site_correlation is site_correlation
     assert disorder.sample_sites is sample_sites and disorder.site_table is site_table
     assert disorder.SiteSample is SiteSample
 
@@ -340,7 +421,8 @@ def _fake_sample_factory(film, seed=11):
     rng = np.random.default_rng(seed)
     calls = []
 
-    def fake(film_, molecules, frames, radius, method, *, store, runner, seed, progress, on_result, cancel):
+    def fake(film_, molecules, frames, radius, method, *, store, runner, seed, progress, on_result, cancel,
+               on_step=None):
         calls.append({"molecules": list(molecules), "frames": list(frames), "radius": radius,
                       "method": method, "store": store, "runner": runner, "seed": seed})
         rows = []
@@ -388,7 +470,11 @@ def test_disorder_run_histogram_growth_scene_and_export(film, tmp_path, monkeypa
     for r in (6.0, 9.0):
         s = dp.data.loc[dp.data.radius_A == r, "S1_shift_eV"].to_numpy()
         assert g.loc[r, "sigma"] == pytest.approx(np.std(s, ddof=1), rel=1e-12)
-    assert dp.growth_plot.value[:4] == b"\x89PNG" and dp.corr_plot.value[:4] == b"\x89PNG"
+    assert dp.growth_plot.value[:4] == b"\x89PNG"
+    # 24 sites give at most a few tens of pairs per distance bin: C(r) would be noise, so the panel says
+    # why in words (it used to draw it; see test_correlation_is_drawn_with_intervals_when_pairs_allow)
+    assert dp.corr_plot.value == b"" and not dp.correlation.shown.any()
+    assert "C(r) is not drawn: 24 sites give" in html.unescape(dp.corr_note.value)
     # site energies on the film: sampled molecules in chain M, B-factor normalised 0..100
     sub = dp.data[(dp.data.radius_A == 9.0) & (dp.data.frame == 0)].set_index("molecule")["S1_eV"]
     lines = [ln for ln in dp.scene_pdb.splitlines() if ln.startswith("HETATM")]
@@ -445,6 +531,77 @@ def test_disorder_load_from_store(film, tmp_path):
     assert dp.radii_A == [6.0, 9.0, 12.0]
     dp.radii_A = [10]
     assert dp.radii.value == "10"
+
+
+def test_cancelled_sample_shows_its_sites_and_is_not_a_failure(film, tmp_path, monkeypatch):
+    from clusterlab.errors import InputError
+
+    dp = DisorderPanel(film, molecules="0-5", frames="0", radii_A=(6,), store=str(tmp_path / "c.sqlite"),
+                       show_view=False)
+    started = threading.Event()
+
+    def sample(film_, molecules, frames, radius, method, *, store, runner, seed, progress, on_result, cancel,
+               on_step=None):
+        for m in (0, 1, 2, 3):
+            on_result({"frame": 0, "molecule": m, "radius_A": 6.0, "S1_eV": 7.0 + 0.01 * m,
+                       "S1_shift_eV": -0.1 + 0.01 * m, "converged": True})
+        started.set()
+        assert cancel.wait(10.0)
+        raise InputError("no site finished")  # whatever the library raises on the way out
+
+    monkeypatch.setattr(disorder, "sample_sites", sample)
+    status = _run_then_cancel(dp, started)
+    assert "cancelled after 4 sites" in status and "failed" not in status
+    assert dp.error == "" and dp.exception is None and dp.errors.outputs == ()
+    assert sorted(dp.data.molecule) == [0, 1, 2, 3]
+
+
+def test_disorder_side_table_shows_the_one_sigma_and_interval(film):
+    """3 sites: the side table shows σ (meV) with the chi-square interval of disorder_stats, the
+    interval the histogram's text shows, and says why; not the bootstrap one."""
+    dp = DisorderPanel(film, show_view=False)
+    cent = film.frame_geometry(0).centroids_A
+    dp.load(pd.DataFrame({"frame": 0, "molecule": [0, 1, 2], "radius_A": 6.0, "S1_eV": [3.00, 3.10, 3.12],
+                          "centroid_x_A": cent[:3, 0], "centroid_y_A": cent[:3, 1], "centroid_z_A": cent[:3, 2]}))
+    st = dp.stats
+    assert st["sigma_ci_method"] == "chi-square"
+    table = html.unescape(dp.stats_html.value)
+    assert (f"<td>σ (meV)</td><td>{1e3 * st['sigma']:.1f} [{1e3 * st['sigma_chi2_lo']:.1f}, "
+            f"{1e3 * st['sigma_chi2_hi']:.1f}]</td>") in table
+    assert "chi-square interval of a normal sample (n = 3 is below 30" in table
+    assert f"{1e3 * st['sigma_lo']:.1f}," not in table
+
+
+def _lattice_sites(film, frames=(0, 1), seed=3):
+    rng = np.random.default_rng(seed)
+    rows = []
+    for f in frames:
+        cent = film.frame_geometry(f).centroids_A
+        for m in range(film.n_molecules):
+            rows.append({"frame": f, "molecule": m, "radius_A": 6.0, "S1_eV": 3.0 + rng.normal(0, 0.05),
+                         "centroid_x_A": cent[m, 0], "centroid_y_A": cent[m, 1], "centroid_z_A": cent[m, 2]})
+    return pd.DataFrame(rows)
+
+
+def test_correlation_is_drawn_with_intervals_when_pairs_allow(film):
+    from clusterlab.stats import MIN_PAIRS_PER_BIN
+    from clusterlab.study.sample import site_correlation
+
+    dp = DisorderPanel(film, show_view=False)
+    data = _lattice_sites(film)
+    dp.load(data)
+    c = dp.correlation
+    # the library's table of the same sites, with the same bootstrap seed
+    ref = site_correlation(data, "S1_eV", film=film, n_bins=10, n_boot=dp.correlation_boot, seed=int(dp.seed.value))
+    pd.testing.assert_frame_equal(c, ref)
+    assert c.shown.any() and (c.n_pairs[c.shown] >= MIN_PAIRS_PER_BIN).all()
+    assert (c.n_pairs[~c.shown] < MIN_PAIRS_PER_BIN).all() or not np.isfinite(c.C[~c.shown]).all()
+    drawn = c[c.shown]
+    assert np.all((drawn.C_lo <= drawn.C) & (drawn.C <= drawn.C_hi))
+    assert dp.corr_plot.value[:4] == b"\x89PNG" and f"at least {MIN_PAIRS_PER_BIN} pairs" in dp.corr_note.value
+    # three sites: words, not empty axes
+    dp.load(data.head(3))
+    assert dp.corr_plot.value == b"" and "C(r) is not drawn: 3 sites give" in html.unescape(dp.corr_note.value)
 
 
 def test_disorder_errors_reach_the_output(film, tmp_path, monkeypatch):
@@ -520,11 +677,15 @@ def test_panels_run_the_real_library(film, tmp_path):
         row = t[t.radius_A == r].iloc[0]
         assert row.n_env_molecules == film.carve(0, r).n_env_molecules
     assert "finished" in scan.status.value and scan.result.verdict.message in html.unescape(scan.status.value)
+    # the panel got the library's narration line by line
+    assert scan.narration == scan.result.log and len(scan.narration) == 3
+    assert scan.narration[2].startswith("radius 6 Å: ")
     dp = DisorderPanel(film, molecules="0-2", frames="1", radii_A=(4.0,), basis="sto-3g", n_singlets=1,
                        n_triplets=1, store=str(tmp_path / "s.sqlite"), show_view=False)
     dp.run().wait(120.0, raise_error=True)
     assert sorted(dp.data.molecule) == [0, 1, 2] and set(dp.data.frame) == {1}
     assert dp.stats["n"] == 3
+    assert dp.narration == dp.result.log and len(dp.narration) == 4 and "(3 of 3; elapsed" in dp.narration[-1]
     back = DisorderPanel(film, show_view=False)
     back.load(tmp_path / "s.sqlite")
     np.testing.assert_allclose(back.data.sort_values("molecule").S1_eV, dp.data.sort_values("molecule").S1_eV)

@@ -157,8 +157,8 @@ def fit_state_charges(film: "Film", method: Method, *, species: Sequence[str] | 
     geos = {f: film.frame_geometry(f, periodic=film.has_box) for f in frames}
     fits: dict[str, dict[str, Any]] = {}
     confs: dict[str, list[ConformerCharges]] = {}
-    bar = progress_bar(None, desc="state-charge fits", enabled=progress, unit="reference")
     names = np.asarray(film.molecule_species)
+    plan = []  # (species, references, net charge): known before any fit, so the bar has a total
     for res in wanted:
         ids = np.flatnonzero(names == res)
         mol0 = int(molecules[res]) if molecules and res in molecules else int(ids[0])
@@ -173,7 +173,10 @@ def fit_state_charges(film: "Film", method: Method, *, species: Sequence[str] | 
             chosen = pick_references(copies, int(n_conformers), first=first, min_rmsd_A=min_conformer_rmsd_A,
                                      medoids=conformer_medoids)
             picks = [cand[k] for k in chosen]
-        charge = molecule_net_charge(film, mol0)
+        plan.append((res, picks, molecule_net_charge(film, mol0)))
+    bar = progress_bar(sum(len(picks) for _, picks, _ in plan), desc="state-charge fits", enabled=progress,
+                       unit="reference")
+    for res, picks, charge in plan:
         confs[res] = []
         for f, mol in picks:
             atoms = film.molecule_atoms(mol)

@@ -15,7 +15,9 @@ deficiencies; the order below is this module's own.
 
 from __future__ import annotations
 
+import textwrap
 from collections.abc import Mapping, Sequence
+
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
@@ -23,7 +25,8 @@ from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
 from ..errors import InputError
-from ..stats import converged_radius, disorder_stats
+from ..labels import column_label
+from ..stats import converged_radius, correlation_note, disorder_stats
 
 __all__ = [
     "PALETTE",
@@ -141,11 +144,18 @@ def plot_convergence(
     rows = scan_df[np.isfinite(pd.to_numeric(scan_df["radius_A"], errors="coerce"))]
     rows = rows.sort_values("radius_A")
     r = rows["radius_A"].to_numpy(dtype=float)
+    # a judged quantity that is not a shift (ΔEST, a few eV) gets its own axis on the right, so the
+    # shifts (tens of meV) stay readable
+    others = [c for c in cols if not str(c).endswith("_shift_eV")]
+    right = ax.twinx() if others else None
+    main = ax
     for i, c in enumerate(cols):
         colour = PALETTE[i % len(PALETTE)]
         y = rows[c].to_numpy(dtype=float)
         name = _label_of(c)
-        ax.plot(r, y, marker="o", color=colour, label=f"{name} shift")
+        ax = right if c in others else main
+        ax.plot(r, y, marker="o", color=colour, ls="--" if c in others else "-",
+                label=f"{column_label(c)}, right axis" if c in others else f"{name} shift")
         ref = limits.get(c)
         finite = np.isfinite(y)
         if ref is None and finite.any():
@@ -161,11 +171,18 @@ def plot_convergence(
             if verdict.converged:
                 ax.axvline(verdict.radius_A, color=colour, ls=":", lw=1.2,
                            label=f"{name} converged at {verdict.radius_A:g} Å")
+    ax = main
     ax.set_xlabel("cluster radius (Å)")
     ax.set_ylabel("environment shift (eV)")
     ax.set_title(f"shift vs radius (band: ±{1e3 * tol_eV:g} meV)", fontsize="medium")
-    ax.legend(fontsize="small")
+    handles, labels = ax.get_legend_handles_labels()
+    if right is not None:
+        right.set_ylabel(", ".join(column_label(c) for c in others))
+        more = right.get_legend_handles_labels()
+        handles, labels = handles + more[0], labels + more[1]
+    ax.legend(handles, labels, fontsize="small")
     return fig
+
 
 
 def plot_histogram(
@@ -207,16 +224,18 @@ def plot_histogram(
     x = x[np.isfinite(x)]
     if stats is None:
         stats = disorder_stats(x, seed=seed)
-    for key in ("mean", "sigma", "gauss_mu", "gauss_sigma", "mean_lo", "mean_hi", "sigma_lo", "sigma_hi"):
+    for key in ("mean", "sigma", "gauss_mu", "gauss_sigma", "mean_lo", "mean_hi", "sigma_lo", "sigma_hi",
+                "sigma_ci_lo", "sigma_ci_hi", "sigma_ci_method"):
         if key not in stats.index:
             raise InputError(f"plot_histogram: stats has no entry {key!r}; pass disorder_stats(values)")
     fig, ax = _new_axes(ax)
     ax.hist(x, bins=bins, density=True, color=PALETTE[5], edgecolor="white", alpha=0.9, label="sites")
-    mu, sg = float(stats["gauss_mu"]), float(stats["gauss_sigma"])
+    # the curve uses the σ the text reports (ddof=1), not a second estimate
+    mu, sg = float(stats["mean"]), float(stats["sigma"])
     grid = np.linspace(x.min() - 0.5 * sg, x.max() + 0.5 * sg, 300)
     if sg > 0:
         pdf = np.exp(-0.5 * ((grid - mu) / sg) ** 2) / (sg * np.sqrt(2.0 * np.pi))
-        ax.plot(grid, pdf, color=PALETTE[0], lw=2, label="Gaussian fit")
+        ax.plot(grid, pdf, color=PALETTE[0], lw=2, label="Gaussian (mean, σ)")
     ax.axvline(float(stats["mean"]), color=PALETTE[1], lw=1.5, label="mean")
     ax.axvspan(float(stats["mean_lo"]), float(stats["mean_hi"]), color=PALETTE[1], alpha=0.2, lw=0)
     conf = float(stats.get("confidence", 0.95))
@@ -226,8 +245,8 @@ def plot_histogram(
         f"mean = {float(stats['mean']):.3f} {unit} "
         f"[{float(stats['mean_lo']):.3f}, {float(stats['mean_hi']):.3f}]\n"
         f"σ = {scale * float(stats['sigma']):.0f} {sunit} "
-        f"[{scale * float(stats['sigma_lo']):.0f}, {scale * float(stats['sigma_hi']):.0f}]\n"
-        f"({100 * conf:g} % intervals)"
+        f"[{scale * float(stats['sigma_ci_lo']):.0f}, {scale * float(stats['sigma_ci_hi']):.0f}]\n"
+        f"({100 * conf:g} % intervals; σ: {stats['sigma_ci_method']})"
     )
     ax.text(0.02, 0.98, text, transform=ax.transAxes, va="top", ha="left", fontsize="small",
             bbox={"boxstyle": "round", "facecolor": "white", "alpha": 0.85, "edgecolor": _GREY})
@@ -275,34 +294,67 @@ def plot_growth(growth_df: pd.DataFrame, *, label: str = "environment shift") ->
     return fig
 
 
-def plot_correlation(corr_df: pd.DataFrame, *, ax: Axes | None = None, min_pairs: int = 1) -> Figure:
-    """Spatial correlation C(r) of site-energy fluctuations.
+def plot_correlation(corr_df: pd.DataFrame, *, ax: Axes | None = None, min_pairs: int | None = None,
+                     title: str | None = None) -> Figure:
+    """Spatial correlation C(r) of site-energy fluctuations, with intervals and pair counts.
 
     Parameters
     ----------
     corr_df : pandas.DataFrame
         Output of :func:`clusterlab.stats.spatial_correlation` (columns
-        ``r_A``, ``C``; ``n_pairs`` used when present).
+        ``r_A``, ``C``; ``n_pairs``, ``shown``, ``C_lo``, ``C_hi`` used when
+        present).
     ax : matplotlib.axes.Axes, optional
-    min_pairs : int, default 1
-        Bins with fewer pairs are not drawn.
+    min_pairs : int, optional
+        Bins with fewer pairs are not drawn; default: the table's ``shown``
+        column (its ``min_pairs``), else every bin.
+    title : str, optional
+        Axes title (e.g. where the sites come from).
 
     Returns
     -------
     matplotlib.figure.Figure
-        Lines: C(r) and the zero line.
+        Lines: the zero line and C(r) (with its interval as error bars when
+        the table has one). Each point is labelled with its pair count.
+        When no bin can be drawn the axes hold the reason in words
+        (:func:`clusterlab.stats.correlation_note`) instead of points.
     """
     _need(corr_df, ["r_A", "C"], "plot_correlation")
     d = corr_df
-    if "n_pairs" in d.columns:
+    if min_pairs is not None and "n_pairs" in d.columns:
         d = d[d["n_pairs"] >= min_pairs]
+    elif "shown" in d.columns:
+        d = d[d["shown"].astype(bool)]
+    d = d[np.isfinite(pd.to_numeric(d["C"], errors="coerce"))]
     fig, ax = _new_axes(ax)
     ax.axhline(0.0, color=_GREY, lw=0.8)
-    ax.plot(d["r_A"].to_numpy(dtype=float), d["C"].to_numpy(dtype=float), marker="o", color=PALETTE[2],
-            label="C(r)")
+    r_top = float(corr_df["r_hi_A"].max()) if "r_hi_A" in corr_df.columns and len(corr_df) else None
+    if not len(d):
+        note = correlation_note(corr_df.assign(shown=False)) if "n_pairs" in corr_df.columns else \
+            "C(r) is not drawn: no distance bin has a value"
+        ax.text(0.5, 0.5, "\n".join(textwrap.wrap(note, 48)), transform=ax.transAxes, ha="center", va="center",
+                fontsize="small")
+        ax.set_xlim(0.0, r_top if r_top else 1.0)
+    else:
+        r = d["r_A"].to_numpy(dtype=float)
+        c = d["C"].to_numpy(dtype=float)
+        has_ci = {"C_lo", "C_hi"} <= set(d.columns) and np.isfinite(d["C_lo"].to_numpy(dtype=float)).any()
+        if has_ci:
+            err = np.vstack([c - d["C_lo"].to_numpy(dtype=float), d["C_hi"].to_numpy(dtype=float) - c])
+            ax.errorbar(r, c, yerr=np.where(np.isfinite(err), err, 0.0), marker="o", color=PALETTE[2], capsize=0,
+                        label=f"C(r), {100 * float(corr_df.attrs.get('confidence', 0.95)):g} % bootstrap interval")
+        else:
+            ax.plot(r, c, marker="o", color=PALETTE[2], label="C(r)")
+        if "n_pairs" in d.columns:
+            for x, y, k in zip(r, c, d["n_pairs"].to_numpy()):
+                ax.annotate(f"{int(k)}", (x, y), textcoords="offset points", xytext=(0, 6), ha="center",
+                            fontsize="x-small", color=_GREY)
+        ax.set_xlim(0.0, r_top if r_top else None)
+        ax.legend(fontsize="small", title="numbers: pairs per bin", title_fontsize="x-small")
     ax.set_xlabel("centroid distance r (Å)")
     ax.set_ylabel("C(r) = ⟨δE_i δE_j⟩ / σ² (dimensionless)")
-    ax.legend(fontsize="small")
+    if title:
+        ax.set_title(title, fontsize="medium")
     return fig
 
 

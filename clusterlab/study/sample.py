@@ -31,7 +31,7 @@ from ..stats import (conformational_environmental, disorder_stats, grouped_disor
                      static_dynamic)
 from ..store import ResultStore
 from .scan import open_store
-from .tasks import check_film_method, cluster_task, run_cluster_tasks
+from .tasks import check_film_method, cluster_task, narrate_tasks, run_cluster_tasks
 
 #: the molecule-centroid columns of a site table (Å)
 CENTROID_COLUMNS = ("centroid_x_A", "centroid_y_A", "centroid_z_A")
@@ -259,6 +259,8 @@ class SiteSample:
     failures: list[str] = field(default_factory=list)
     film_id: str | None = None
     method: Method | None = None
+    #: the run's narration, one line per site (empty for a sample read from a store)
+    log: list[str] = field(default_factory=list)
 
     @classmethod
     def from_store(cls, store: ResultStore | str | os.PathLike[str], *, film: Film | None = None,
@@ -329,7 +331,8 @@ class SiteSample:
 
     def growth(self, quantity: str = "S1_shift_eV", **kw: Any) -> pd.DataFrame:
         """Mean and σ of ``quantity`` at each radius with confidence intervals:
-        how the statistics converge as the cluster grows."""
+        how the statistics converge as the cluster grows (``sigma_lo``,
+        ``sigma_hi``: the reported σ interval, named in ``sigma_ci_method``)."""
         rows = []
         t = self._converged()
         for r, g in t.groupby("radius_A"):
@@ -337,8 +340,10 @@ class SiteSample:
             if np.isfinite(vals).sum() < 3:
                 continue
             s = disorder_stats(vals, **kw)
-            rows.append({"radius_A": float(r), **{k: s[k] for k in
-                         ("n", "mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi")}})
+            # σ with the one reported interval (the rule of stats.SIGMA_BOOTSTRAP_MIN_N)
+            rows.append({"radius_A": float(r), **{k: s[k] for k in ("n", "mean", "mean_lo", "mean_hi", "sigma")},
+                         "sigma_lo": s["sigma_ci_lo"], "sigma_hi": s["sigma_ci_hi"],
+                         "sigma_ci_method": s["sigma_ci_method"]})
         return pd.DataFrame(rows)
 
     def static_dynamic(self, quantity: str = "S1_eV", *, radius_A: float | None = None) -> pd.Series:
@@ -350,12 +355,46 @@ class SiteSample:
 
     def correlation(self, quantity: str = "S1_eV", *, radius_A: float | None = None, **kw: Any) -> pd.DataFrame:
         """Spatial correlation of site energies vs centroid distance (periodic,
-        pairs within the same frame)."""
+        pairs within the same frame; keywords of :func:`spatial_correlation`,
+        e.g. ``n_boot`` for intervals)."""
         df = self.at(radius_A)
-        pos = df[list(CENTROID_COLUMNS)].to_numpy(dtype=float)
-        frames = df.frame.to_numpy()
-        boxes = {int(f): self.box.get(int(f)) for f in np.unique(frames)}
-        return spatial_correlation(pos, df[quantity].to_numpy(dtype=float), box=boxes, frames=frames, **kw)
+        boxes = {int(f): self.box.get(int(f)) for f in np.unique(df.frame.to_numpy())}
+        return site_correlation(df, quantity, boxes=boxes, **kw)
+
+
+def site_correlation(table: pd.DataFrame, quantity: str, *, film: Film | None = None,
+                     boxes: dict[int, Any] | None = None, **kw: Any) -> pd.DataFrame:
+    """:func:`spatial_correlation` of one column of a site table (one row per
+    frame and molecule: a sample's or the film-wide model's), pairs within
+    each frame.
+
+    Positions are the table's centroid columns, or the film's molecule
+    centroids when the table has none (the film-wide model's table); boxes
+    are ``boxes`` or the film's.
+
+    Raises
+    ------
+    InputError
+        If ``quantity`` is not a column, or the table has no centroids and
+        no film is given.
+    """
+    if quantity not in table.columns:
+        raise InputError(f"{quantity!r} is not a column of the table; columns: {sorted(table.columns)}.")
+    frames = table["frame"].to_numpy(dtype=int)
+    if all(c in table.columns for c in CENTROID_COLUMNS):
+        pos = table[list(CENTROID_COLUMNS)].to_numpy(dtype=float)
+    elif film is not None:
+        pos = np.empty((len(table), 3))
+        mols = table["molecule"].to_numpy(dtype=int)
+        for f in np.unique(frames):
+            here = frames == f
+            pos[here] = film.frame_geometry(int(f)).centroids_A[mols[here]]
+    else:
+        raise InputError("the table has no centroid columns "
+                         f"{list(CENTROID_COLUMNS)}; pass film= to take the molecule centroids from it.")
+    if boxes is None:
+        boxes = {int(f): (film.box(int(f)) if film is not None else None) for f in np.unique(frames)}
+    return spatial_correlation(pos, table[quantity].to_numpy(dtype=float), box=boxes, frames=frames, **kw)
 
 
 def sample_sites(
@@ -375,6 +414,7 @@ def sample_sites(
     progress: bool = True,
     on_result: Callable[[dict], Any] | None = None,
     cancel: threading.Event | None = None,
+    on_step: Callable[[str], Any] | None = None,
     **runner_kw: Any,
 ) -> SiteSample:
     """Embedded site energies of many molecules and frames.
@@ -397,6 +437,11 @@ def sample_sites(
     runner : "processes" (default), "serial", "dask" or a Runner
     on_result : callable(dict), optional
         Called with each finished row.
+    on_step : callable(str), optional
+        Gets the narration as it happens: the number of sites to compute,
+        then one line per finished site (molecules, charges, S1 shift, its
+        time, elapsed time and the time left, the next site); the lines are
+        also in ``SiteSample.log``.
 
     Returns
     -------
@@ -412,11 +457,13 @@ def sample_sites(
     tasks = [cluster_task(film, int(m), r, method, frame=f, rule=rule, qm_shell_A=qm_shell)
              for f in fr for m in ids for r in radii]
 
+    narration = narrate_tasks(tasks, st, on_step, site=True, what="sites")
     report, rows, failures = run_cluster_tasks(tasks, st, desc="site energies", on_result=on_result,
-                                               runner=runner, progress=progress, cancel=cancel, **runner_kw)
+                                               narration=narration, runner=runner, progress=progress,
+                                               cancel=cancel, **runner_kw)
     table = pd.DataFrame(rows)
     if len(table):
         table = table.sort_values(["radius_A", "frame", "molecule"], kind="stable").reset_index(drop=True)
     boxes = {f: film.box(f) for f in fr}
     return SiteSample(table=table, box=boxes, report=report, failures=failures, film_id=film.film_id,
-                      method=method)
+                      method=method, log=narration.log.lines)

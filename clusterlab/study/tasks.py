@@ -23,6 +23,7 @@ from ..versions import __version__
 from ..errors import InputError
 from ..film import Film, check_polarizable_radius, film_from_spec, remember_film
 from ..qm.method import Method, check_periodic_environment, require_method
+from ..progress import StepLog
 from ..runner import RunReport, Task, run_tasks
 from ..store import ResultStore, task_key
 
@@ -135,17 +136,79 @@ def polarizable_radius(radius_A: float, polarizable_radius_A: float | None, meth
     return check_polarizable_radius(polarizable_radius_A, radius_A)
 
 
+def task_label(task: Task, *, site: bool = True) -> str:
+    """A task in words: ``"frame 0, molecule 7, radius 8 Å"`` (``site=False``: ``"radius 8 Å"``;
+    the periodic limit and an inner polarizable radius are named)."""
+    p = task.payload
+    where = f"frame {p['frame']}, molecule {p['molecule']}, " if site else ""
+    if task.kind == "periodic":
+        return f"{where}periodic limit"
+    inner = p.get("polarizable_radius_A")
+    return f"{where}radius {float(p['radius_A']):g} Å" + (f" (inner {float(inner):g} Å)" if inner else "")
+
+
+def _result_words(summary: dict[str, Any]) -> str:
+    """What a finished cluster was: molecules, charges, the S1 shift (meV), its time."""
+    parts = []
+    if summary.get("n_env_molecules") is not None:
+        parts.append(f"{int(summary['n_env_molecules'])} molecules, {int(summary.get('n_charges') or 0)} charges")
+    shift = summary.get("S1_shift_eV")
+    if shift is not None and np.isfinite(shift):
+        parts.append(f"S1 shift {1e3 * float(shift):+.1f} meV")
+    if summary.get("wall_s") is not None and np.isfinite(summary["wall_s"]):
+        parts.append(f"{float(summary['wall_s']):.0f} s")
+    return ", ".join(parts) or "done"
+
+
+class TaskNarration:
+    """The narration of a task list (:func:`narrate_tasks`): a
+    :class:`~clusterlab.progress.StepLog` and the tasks still pending."""
+
+    def __init__(self, log: StepLog, todo: list[Task], *, site: bool) -> None:
+        self.log = log
+        self._labels = {t.key: task_label(t, site=site) for t in todo}
+        self._pending = [t.key for t in todo]
+
+    def finished(self, task: Task, summary: dict[str, Any]) -> str:
+        """The line of a finished task, naming the next one."""
+        if task.key in self._pending:
+            self._pending.remove(task.key)
+        nxt = f"; next: {self._labels[self._pending[0]]}" if self._pending else ""
+        return self.log.finished(f"{self._labels.get(task.key, task_label(task))}: {_result_words(summary)}{nxt}")
+
+
+def narrate_tasks(tasks: list[Task], store: ResultStore, on_step: Any = None, *, site: bool = True,
+                  what: str = "clusters") -> TaskNarration:
+    """The narration of the tasks not yet in the store, its first line written: how many to
+    compute and the first one (which also computes the vacuum reference)."""
+    todo = [t for t in tasks if not ((rec := store.get(t.key)) is not None and rec.done)]
+    log = StepLog(len(todo), on_step)
+    cached = len(tasks) - len(todo)
+    head = f"{len(todo)} {what} to compute" + (f" ({cached} already in the store)" if cached else "")
+    if todo:
+        head += f"; first: vacuum reference and {task_label(todo[0], site=site)}"
+    log.say(head)
+    return TaskNarration(log, todo, site=site)
+
+
 def run_cluster_tasks(tasks: list[Task], store: ResultStore, *, desc: str, on_result: Any = None,
+                      narration: TaskNarration | None = None,
                       **run_kw: Any) -> tuple[RunReport, list[dict[str, Any]], list[str]]:
     """Run cluster tasks through :func:`~clusterlab.runner.run_tasks` and read
     their records back from the store, in task order.
 
-    ``on_result(row)`` gets each new summary as it is stored. Returns
-    ``(report, rows, failures)``: the summaries of finished tasks (new or
-    already stored) and one line per failed task naming frame, molecule and
-    radius with the error.
+    ``on_result(row)`` gets each new summary as it is stored; ``narration``
+    (from :func:`narrate_tasks`) gets a line per finished task, with the next
+    one named. Returns ``(report, rows, failures)``: the summaries of
+    finished tasks (new or already stored) and one line per failed task
+    naming frame, molecule and radius with the error.
     """
-    cb = None if on_result is None else (lambda task, summary: on_result(dict(summary)))
+    def cb(task: Task, summary: dict[str, Any]) -> None:
+        if narration is not None:
+            narration.finished(task, summary)
+        if on_result is not None:
+            on_result(dict(summary))
+
     report = run_tasks(tasks, TASK_FN, store=store, desc=desc, on_result=cb, **run_kw)
     rows, failures = [], []
     for t in tasks:

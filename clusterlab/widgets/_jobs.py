@@ -4,8 +4,17 @@ status line; no science here."""
 
 from __future__ import annotations
 
+import html
 import threading
+import traceback
 from typing import Any
+
+from ..errors import InputError
+
+
+def count_text(n: int, one: str, many: str) -> str:
+    """``"1 radius"``, ``"3 radii"``."""
+    return f"{n} {one if n == 1 else many}"
 
 
 class BackgroundJob:
@@ -13,8 +22,10 @@ class BackgroundJob:
     thread; ``wait``, ``cancel``, ``running`` and ``cancel_event`` follow it.
 
     The class using it sets ``self.exception`` (the job's error, or None) in
-    its ``_work`` and provides ``run()``, an ``errors`` Output widget,
-    ``_set_status(text, kind)`` and ``_cancel_message``.
+    its ``_work`` and provides ``run()``, an ``errors`` Output widget, a
+    ``progress`` bar, ``_set_status(text, kind)`` and ``_cancel_message``;
+    ``_fail(exc)`` shows a failure (a cancel is never one: the panels check
+    ``cancel_event`` first).
     """
 
     _cancel_message = "cancelling…"
@@ -61,6 +72,19 @@ class BackgroundJob:
     def _on_cancel_click(self, _b: Any) -> None:
         with self.errors:  # type: ignore[attr-defined]
             self.cancel()
+
+    def _fail(self, exc: BaseException) -> None:
+        """Record ``exc`` and show it: a one-line status for an input problem (a setting to fix), the
+        status plus the traceback in the error box for anything else."""
+        self.exception = exc
+        self.error = f"{type(exc).__name__}: {exc}"
+        self.progress.bar_style = "danger"  # type: ignore[attr-defined]
+        if isinstance(exc, InputError):
+            self._set_status(f"check the settings: {html.escape(str(exc))}", "error")  # type: ignore[attr-defined]
+            return
+        text = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
+        self.errors.append_stderr(text)  # type: ignore[attr-defined]
+        self._set_status(f"failed: {html.escape(self.error)}", "error")  # type: ignore[attr-defined]
 
     def cancel(self) -> None:
         """Ask the running job to stop (finished results stay in the store)."""

@@ -20,13 +20,14 @@ import numpy as np
 import pandas as pd
 import traitlets
 
+from ..labels import display_table
 from ..qm.method import Method
 from ..ranges import parse_radii
 from ..store import ResultStore
 from ..study.plots import plot_convergence
 from ..study.scan import pick_species_molecule, radius_scan
 from ._controls import Radii, fit_control, format_radii, link_radii, species_dropdown
-from ._jobs import BackgroundJob
+from ._jobs import BackgroundJob, count_text
 from . import _style
 
 __all__ = ["ShiftScanPanel", "MethodControls", "make_method"]
@@ -48,14 +49,14 @@ HIDDEN_COLUMNS = frozenset({
 
 def frame_html(df: pd.DataFrame, *, max_rows: int = 200, css_class: str = "clusterlab-table",
                hide: frozenset[str] = HIDDEN_COLUMNS) -> str:
-    """HTML table of a DataFrame (scalar columns, floats with 4 decimals;
-    bookkeeping columns in ``hide`` left out)."""
+    """HTML table of a DataFrame as :func:`clusterlab.labels.display_table`
+    shows it (human headers, shifts and σ in meV, molecule/frame/radius
+    first); non-scalar and bookkeeping columns (``hide``) left out."""
     if df is None or len(df) == 0:
         return '<div style="color:#777">no results yet</div>'
     keep = [c for c in df.columns if c not in hide
             and df[c].map(lambda v: np.isscalar(v) or v is None).all()]
-    return df[keep].head(max_rows).to_html(index=False, classes=css_class, float_format=lambda v: f"{v:.4f}",
-                                           na_rep="–", border=0)
+    return display_table(df[keep].head(max_rows)).to_html(index=False, classes=css_class, border=0)
 
 
 _TABLE_CSS = ("<style>.clusterlab-table{border-collapse:collapse;font-size:12px}"
@@ -163,6 +164,8 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
     ----------
     rows : list of dict
         Rows reported so far by the running scan.
+    narration : list of str
+        The scan's narration so far (``radius_scan(on_step=)``).
     result : ScanResult or None
         The finished scan's result.
     error : str
@@ -190,6 +193,8 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         self.film = film
         self.explorer = explorer
         self.rows: list[dict] = []
+        #: the running scan's narration, one line per step (the status line shows the latest)
+        self.narration: list[str] = []
         self.result: Any = None
         self.error = ""
         self.method: Any = None
@@ -321,6 +326,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
             self._set_status("a scan is already running; cancel it first", "warn")
             return self
         self.rows = []
+        self.narration = []
         self.result = None
         self.error = ""
         self.exception = None
@@ -349,11 +355,11 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         molecule, radii = s.pop("molecule"), s.pop("radii")
         try:
             result = radius_scan(self.film, molecule, radii, self.method, progress=False, on_result=self._on_result,
-                        cancel=self._cancel, **s)
+                                 cancel=self._cancel, on_step=self._on_step, **s)
         except Exception as exc:  # noqa: BLE001 - shown in the panel
-            if self._cancel.is_set() and "cancel" in type(exc).__name__.lower():
-                self._set_status(f"cancelled after {len(self.rows)} radii", "warn")
-                self.progress.bar_style = "warning"
+            if self._cancel.is_set():
+                # a cancel is not a failure: whatever the scan raised on the way out, keep what finished
+                self._show_partial()
             else:
                 self._fail(exc)
         else:
@@ -365,6 +371,12 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
                 store.close()
             self.run_button.disabled = False
             self.cancel_button.disabled = True
+
+    def _on_step(self, line: str) -> None:
+        """The scan's narration (worker thread): the status line shows the latest step."""
+        self.narration.append(line)
+        if not self._cancel.is_set():
+            self._set_status(html.escape(line), "info")
 
     def _on_result(self, row: dict) -> None:
         """Called by the scan (worker thread) after each radius."""
@@ -388,8 +400,8 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         return [c for c in df.columns if str(c).endswith("_shift_eV") and "_followed" not in str(c)
                 and pd.to_numeric(df[c], errors="coerce").notna().any()]
 
-    def _draw(self, df: pd.DataFrame) -> None:
-        states = self.plotted_states(df)
+    def _draw(self, df: pd.DataFrame, states: list[str] | None = None) -> None:
+        states = [c for c in states if c in df.columns] if states else self.plotted_states(df)
         if not states or "radius_A" not in df.columns:
             return
         # the vacuum reference (radius 0) is the zero of every shift: leave it off the axis
@@ -400,33 +412,44 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         self.plot.value = _style.figure_png(fig)
         self.n_plots += 1
 
+    def _show_partial(self) -> None:
+        """Status, table and plot of a cancelled scan (the radii reported before the cancel)."""
+        with self._lock:
+            df = pd.DataFrame(self.rows)
+        n = len(self.rows)
+        self._set_status(f"cancelled after {count_text(n, 'radius', 'radii')}"
+                         + ("; the finished radii are kept below" if n else ""), "warn")
+        self.progress.bar_style = "warning"
+        if n:
+            self.table_html.value = _TABLE_CSS + frame_html(df.drop(columns=["frame", "molecule"],
+                                                                    errors="ignore"))
+            try:
+                self._draw(df)
+            except Exception:  # noqa: BLE001 - never hide the cancel because of the display
+                self.errors.append_stderr(traceback.format_exc())
+
     def _finish(self, result: Any) -> None:
         table = getattr(result, "table", None)
+        tracked = getattr(result, "tracked", None)
         if isinstance(table, pd.DataFrame) and len(table):
             self.table_html.value = _TABLE_CSS + frame_html(table.drop(columns=["frame", "molecule"],
                                                                        errors="ignore"))
             try:
-                self._draw(table)
+                # the finished plot draws exactly the quantities the verdict judged
+                self._draw(table, list(tracked) if tracked else None)
             except Exception:  # noqa: BLE001
                 self.errors.append_stderr(traceback.format_exc())
         verdict = getattr(result, "verdict", None)
         msg = getattr(verdict, "message", "") if verdict is not None else ""
         if self._cancel.is_set():
-            self._set_status(f"cancelled after {len(self.rows)} radii. {html.escape(str(msg))}", "warn")
+            self._set_status(f"cancelled after {count_text(len(self.rows), 'radius', 'radii')}; the finished radii are "
+                             f"kept below. {html.escape(str(msg))}", "warn")
             self.progress.bar_style = "warning"
         else:
             self.progress.value = self.progress.max
             self.progress.bar_style = "success"
             ok = bool(getattr(verdict, "converged", False))
             self._set_status(f"finished. {html.escape(str(msg))}", "ok" if ok else "warn")
-
-    def _fail(self, exc: BaseException) -> None:
-        self.exception = exc
-        self.error = f"{type(exc).__name__}: {exc}"
-        text = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
-        self.errors.append_stderr(text)
-        self.progress.bar_style = "danger"
-        self._set_status(f"failed: {html.escape(self.error)}", "error")
 
     def _set_status(self, text: str, kind: str) -> None:
         colour = {"ok": _style.OK, "warn": _style.WARN, "error": "#a00", "info": "#335"}.get(kind, "#555")

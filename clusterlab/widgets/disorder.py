@@ -30,14 +30,15 @@ import traitlets
 
 from ..errors import InputError
 from ..ranges import parse_frames, parse_radii
-from ..stats import disorder_stats, spatial_correlation
+from ..stats import MIN_PAIRS_PER_BIN, correlation_note, disorder_stats, disorder_summary
+from ..stats import spatial_correlation  # noqa: F401 - the kernel under site_correlation, kept importable here
 from ..store import ResultStore
 from ..study.doped import host_guest_overview, n_species
 from ..study.plots import plot_correlation, plot_growth, plot_histogram, plot_torsion
-from ..study.sample import CENTROID_COLUMNS, SiteSample, choose_molecules, sample_sites, site_table
+from ..study.sample import SiteSample, choose_molecules, sample_sites, site_correlation, site_table
 from ..export import export_study
 from ._controls import Radii, format_radii, link_radii, species_dropdown
-from ._jobs import BackgroundJob
+from ._jobs import BackgroundJob, count_text
 from . import _style
 from .calc import _TABLE_CSS, MethodControls, frame_html
 
@@ -122,6 +123,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.states_source: Any = None
         self.data = pd.DataFrame()
         self.rows: list[dict] = []
+        #: the running sample's narration, one line per site (the status line shows the latest)
+        self.narration: list[str] = []
         self.result: Any = None
         self.error = ""
         self.stats: pd.Series | None = None
@@ -136,8 +139,10 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         #: least time between two redraws while a sample runs (s)
         self.redraw_interval_s = 3.0
         self._radius_chosen = False
-        #: correlation bins with fewer pairs are not drawn
-        self.min_pairs = 3
+        #: correlation bins with fewer pairs are not drawn (the library's stated threshold)
+        self.min_pairs = MIN_PAIRS_PER_BIN
+        #: bootstrap resamples of the sites for the C(r) error bars
+        self.correlation_boot = 200
         self._last_draw = -np.inf
 
         self.errors = widgets.Output(layout=widgets.Layout(max_height="220px", overflow="auto"))
@@ -278,6 +283,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.error = ""
         self.exception = None
         self.rows = []
+        self.narration = []
         self.result = None
         try:
             s = self.settings()
@@ -305,11 +311,18 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
                 radius: float | list[float] = s["radii"][0] if len(s["radii"]) == 1 else list(s["radii"])
                 res = sample_sites(self.film, s["molecules"], s["frames"], radius, method, store=store,
                                    runner=s["runner"], seed=s["seed"], progress=False, on_result=self._on_result,
-                                   cancel=self._cancel)
+                                   cancel=self._cancel, on_step=self._on_step)
                 self.result = res
         except Exception as exc:  # noqa: BLE001
-            if self._cancel.is_set() and "cancel" in type(exc).__name__.lower():
-                self._set_status(f"cancelled after {len(self.rows)} site(s)", "warn")
+            if self._cancel.is_set():
+                # a cancel is not a failure: show the sites that finished before it
+                with self._lock:
+                    done = pd.DataFrame(self.rows)
+                if len(done):
+                    self.set_data(done)
+                self._set_status(f"cancelled after {count_text(len(done), 'site', 'sites')}"
+                                 + ("; they are in the store and shown below" if len(done) else ""), "warn")
+                self.progress.bar_style = "warning"
             else:
                 self._fail(exc)
         else:
@@ -323,7 +336,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             if failures:
                 self.errors.append_stderr("failed sites:\n" + "\n".join(map(str, failures)) + "\n")
             if self._cancel.is_set():
-                self._set_status(f"cancelled after {len(self.rows)} site(s); they are in the store", "warn")
+                self._set_status(f"cancelled after {count_text(len(self.rows), 'site', 'sites')}; they are in the "
+                                 "store and shown below", "warn")
                 self.progress.bar_style = "warning"
             else:
                 self.progress.value = self.progress.max
@@ -334,6 +348,12 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         finally:
             self.run_button.disabled = False
             self.cancel_button.disabled = True
+
+    def _on_step(self, line: str) -> None:
+        """The sample's narration (worker thread): the status line shows the latest site."""
+        self.narration.append(line)
+        if not self._cancel.is_set():
+            self._set_status(html.escape(line), "info")
 
     def _on_result(self, row: dict) -> None:
         """Called by the sample (worker thread) after each site; redraws at
@@ -443,11 +463,9 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             return
         self.stats = disorder_stats(finite, seed=int(self.seed.value))
         self.hist_plot.value = _style.figure_png(plot_histogram(finite, self.stats, label=q.replace("_eV", "")))
-        keys = ["n", "mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi", "sigma_chi2_lo",
-                "sigma_chi2_hi", "skewness", "excess_kurtosis", "normality_p", "normality_test", "confidence"]
-        st = self.stats
-        rows = "".join(f"<tr><td>{k}</td><td>{st[k]:.4f}</td></tr>" if isinstance(st[k], float)
-                       else f"<tr><td>{k}</td><td>{html.escape(str(st[k]))}</td></tr>" for k in keys if k in st)
+        # the same σ and interval as the histogram's text (one rule: stats.disorder_summary)
+        rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
+                       for k, v in disorder_summary(self.stats).itertuples(index=False))
         self.stats_html.value = f'<table class="clusterlab-table clusterlab-stats">{rows}</table>'
 
     def _draw_growth(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
@@ -464,23 +482,27 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.growth_plot.value = _style.figure_png(plot_growth(self.growth, label=col.replace("_eV", "")))
 
     def _draw_correlation(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
-        if not all(c in sub.columns for c in CENTROID_COLUMNS):
-            self.corr_note.value = "<i>the table has no molecule centroids.</i>"
-            return
         ok = np.isfinite(vals)
         if ok.sum() < 3:
-            self.corr_note.value = "<i>the spatial correlation needs at least 3 sites.</i>"
+            self._no_correlation("the spatial correlation needs at least 3 sites with a value; "
+                                 f"{int(ok.sum())} so far.")
             return
-        pos = sub.loc[ok, list(CENTROID_COLUMNS)].to_numpy(dtype=float)
-        frames = sub.loc[ok, "frame"].to_numpy(dtype=int) if "frame" in sub else None
-        box = None
-        if self.film.has_box:
-            box = {int(f): self.film.box(int(f)) for f in np.unique(frames)} if frames is not None \
-                else self.film.box(0)
-        self.correlation = spatial_correlation(pos, vals[ok], box, frames=frames, n_bins=10)
-        self.corr_note.value = (f"<span>{html.escape(q)}, {int(ok.sum())} sites; bins with at least "
-                                f"{self.min_pairs} pairs drawn</span>")
-        self.corr_plot.value = _style.figure_png(plot_correlation(self.correlation, min_pairs=self.min_pairs))
+        self.correlation = site_correlation(sub[ok], q, film=self.film, n_bins=10, n_boot=self.correlation_boot,
+                                            seed=int(self.seed.value), min_pairs=self.min_pairs)
+        note = correlation_note(self.correlation)
+        if note is not None:
+            self._no_correlation(note)
+            return
+        c = self.correlation
+        self.corr_note.value = (f"<span>{html.escape(q)}, {int(ok.sum())} sites: bins with at least "
+                                f"{self.min_pairs} pairs drawn ({int(c.shown.sum())} of {len(c)}), error bars "
+                                f"95 % bootstrap over sites, numbers = pairs per bin</span>")
+        self.corr_plot.value = _style.figure_png(plot_correlation(c))
+
+    def _no_correlation(self, why: str) -> None:
+        """Say why C(r) is not drawn, in words, instead of empty axes."""
+        self.corr_note.value = f'<i class="clusterlab-no-correlation">{html.escape(why)}</i>'
+        self.corr_plot.value = b""
 
     def _draw_doped(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
         """The host:guest tab: formats :func:`clusterlab.study.doped.host_guest_overview` of the shown sites."""
@@ -605,13 +627,6 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self.export()
         except Exception as exc:  # noqa: BLE001
             self._fail(exc)
-
-    def _fail(self, exc: BaseException) -> None:
-        self.exception = exc
-        self.error = f"{type(exc).__name__}: {exc}"
-        self.errors.append_stderr("".join(traceback.format_exception(type(exc), exc, exc.__traceback__)))
-        self.progress.bar_style = "danger"
-        self._set_status(f"failed: {html.escape(self.error)}", "error")
 
     def _set_status(self, text: str, kind: str) -> None:
         colour = {"ok": _style.OK, "warn": _style.WARN, "error": "#a00", "info": "#335"}.get(kind, "#555")
