@@ -118,7 +118,7 @@ def test_box_frames_and_density(universe, frames, record):
     assert lo - 2e-3 <= dens.min() and dens.max() <= hi + 2e-3
     assert abs(dens.mean() - record["density_g_cm3_production_mean"]) < 2e-3
     # a realistic amorphous organic solid is about 1.1-1.25 g/cm^3 (common practice); this short
-    # melt-quench leaves the film a few to ten % looser (README), so the demo band reaches lower
+    # melt-quench leaves the film 10-20 % looser (README), so the demo band reaches lower
     assert 0.95 <= dens.mean() <= 1.3
     assert record["frame_spacing_ps"] >= 1.0
 
