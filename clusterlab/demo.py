@@ -8,6 +8,9 @@ from .errors import InputError
 
 DEMO_TOPOLOGY = "bithiophene_film.psf"
 DEMO_TRAJECTORY = "bithiophene_film.xtc"
+#: The second demo film (host:guest emission layer), in ``demo_traj/doped/``.
+DOPED_TOPOLOGY = "doped/doped_film.psf"
+DOPED_TRAJECTORY = "doped/doped_film.xtc"
 
 
 def demo_dir() -> str:
@@ -27,6 +30,27 @@ def demo_paths() -> tuple[str, str]:
     """``(topology, trajectory)`` paths of the demo film."""
     d = demo_dir()
     return os.path.join(d, DEMO_TOPOLOGY), os.path.join(d, DEMO_TRAJECTORY)
+
+
+def doped_demo_paths() -> tuple[str, str]:
+    """``(topology, trajectory)`` paths of the doped demo film.
+
+    Scenario (invented): an amorphous emission layer of 1,400 polar carbazole
+    hosts (residue ``HCZ``, 33 atoms) doped with 100 twisted donor-acceptor
+    emitters (``GDA``, 60 atoms); see ``demo_traj/doped/README.md``.
+
+    Raises
+    ------
+    InputError
+        If the source tree's ``demo_traj/doped/`` files are not found.
+    """
+    d = demo_dir()
+    top, traj = os.path.join(d, DOPED_TOPOLOGY), os.path.join(d, DOPED_TRAJECTORY)
+    for p in (top, traj):
+        if not os.path.exists(p):
+            raise InputError(f"The doped demo film file {p!r} was not found; it is part of the source tree "
+                             "(demo_traj/doped/). Install clusterlab from its source tree (pip install -e .).")
+    return top, traj
 
 
 def demo_study(out_dir: str, *, quick: bool = False, workers: int | None = None) -> dict:

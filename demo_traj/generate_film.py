@@ -31,15 +31,16 @@ import json
 import os
 import sys
 import time
-from collections import deque
 from pathlib import Path
 
 import numpy as np
 
+from filmkit import (AVOGADRO, KCAL_TO_KJ, collect_frames, density_g_cm3, dihedral_deg, graph_distances,
+                     place_molecules, run_schedule, write_psf, write_trajectory)
+
 HERE = Path(__file__).resolve().parent
 STEM = "bithiophene_film"
 SEED = 20240611                      # fixed seed: placement, velocities, thermostat, barostat
-KCAL_TO_KJ = 4.184                   # thermochemical calorie (exact by definition)
 N_MOLECULES = 256
 N_FRAMES = 20
 
@@ -144,25 +145,6 @@ V2_IMPROPER = 2.2
 # high-level ab initio estimates, Raos, Famulari, Marcon, Chem. Phys. Lett. 379, 364 (2003)
 # -- anchor values from memory (minima near 148 and 42 deg, 90-deg barrier about 1.9 kcal/mol).
 TORSION_TARGET = [(0.0, 1.6), (42.0, 0.5), (90.0, 1.9), (148.0, 0.0), (180.0, 0.15)]
-
-
-def graph_distances(n: int, bonds: list[tuple[int, int]]) -> np.ndarray:
-    """Topological (bond-count) distance matrix by breadth-first search, shape (n, n)."""
-    nbr: list[list[int]] = [[] for _ in range(n)]
-    for i, j in bonds:
-        nbr[i].append(j)
-        nbr[j].append(i)
-    dist = np.full((n, n), 99, dtype=int)
-    for start in range(n):
-        dist[start, start] = 0
-        todo = deque([start])
-        while todo:
-            k = todo.popleft()
-            for m in nbr[k]:
-                if dist[start, m] == 99:
-                    dist[start, m] = dist[start, k] + 1
-                    todo.append(m)
-    return dist
 
 
 def molecule_terms(xyz_A: np.ndarray) -> dict:
@@ -351,17 +333,6 @@ def build_system(charges_e: np.ndarray, terms: dict, torsion_fourier: list[tuple
     return sys_
 
 
-def dihedral_deg(p: np.ndarray) -> np.ndarray:
-    """Dihedral angles (deg) of point quadruples, p shape (..., 4, 3)."""
-    b0, b1, b2 = p[..., 0, :] - p[..., 1, :], p[..., 2, :] - p[..., 1, :], p[..., 3, :] - p[..., 2, :]
-    b1n = b1 / np.linalg.norm(b1, axis=-1, keepdims=True)
-    v = b0 - (b0 * b1n).sum(-1, keepdims=True) * b1n
-    w = b2 - (b2 * b1n).sum(-1, keepdims=True) * b1n
-    x = (v * w).sum(-1)
-    y = (np.cross(b1n, v) * w).sum(-1)
-    return np.degrees(np.arctan2(y, x))
-
-
 def fit_inter_ring_torsion(xyz_A: np.ndarray, charges_e: np.ndarray, terms: dict,
                            exact_geometric: bool = True):
     """Fourier terms on S-C2-C2'-S so that a rigid scan of one molecule follows TORSION_TARGET.
@@ -408,75 +379,6 @@ def fit_inter_ring_torsion(xyz_A: np.ndarray, charges_e: np.ndarray, terms: dict
     return terms_out, report
 
 
-# --------------------------------------------------------------------------
-def random_rotation(rng: np.random.Generator) -> np.ndarray:
-    """Uniform random rotation matrix from a random unit quaternion (Shoemake, Graphics Gems III, 1992)."""
-    q = rng.normal(size=4)
-    w, x, y, z = q / np.linalg.norm(q)
-    return np.array([[1 - 2 * (y * y + z * z), 2 * (x * y - z * w), 2 * (x * z + y * w)],
-                     [2 * (x * y + z * w), 1 - 2 * (x * x + z * z), 2 * (y * z - x * w)],
-                     [2 * (x * z - y * w), 2 * (y * z + x * w), 1 - 2 * (x * x + y * y)]])
-
-
-def place_molecules(xyz_A: np.ndarray, n_mol: int, box_A: float, rng: np.random.Generator,
-                    min_dist_A: float = 2.8) -> np.ndarray:
-    """Random positions and orientations without overlaps (minimum image), shape (n_mol*16, 3), Å."""
-    centred = xyz_A - xyz_A.mean(0)
-    placed: list[np.ndarray] = []
-    tries = 0
-    while len(placed) < n_mol:
-        tries += 1
-        if tries > 2000 * n_mol:
-            raise RuntimeError(f"could not place {n_mol} molecules in a {box_A:.1f} Å box")
-        cand = centred @ random_rotation(rng).T + rng.uniform(0, box_A, 3)
-        if placed:
-            allp = np.vstack(placed)
-            d = cand[:, None, :] - allp[None, :, :]
-            d -= box_A * np.round(d / box_A)
-            if np.min(np.einsum("ijk,ijk->ij", d, d)) < min_dist_A ** 2:
-                continue
-        placed.append(cand)
-    return np.vstack(placed)
-
-
-def write_psf(path: Path, n_mol: int, charges_e: np.ndarray, terms: dict) -> None:
-    """CHARMM/X-PLOR PSF, standard column layout (I8,1X,A4,1X,A4,1X,A4,1X,A4,1X,A4,1X,2G14.6,I8)."""
-    n = len(NAMES)
-    lines = ["PSF", "", f"{3:8d} !NTITLE",
-             " REMARKS 2,2'-bithiophene demo film (invented scenario), clusterlab demo_traj",
-             " REMARKS charges: HF/6-31G* ESP fit; see forcefield.json",
-             " REMARKS written by demo_traj/generate_film.py", "",
-             f"{n_mol * n:8d} !NATOM"]
-    for mol in range(n_mol):
-        for i in range(n):
-            lines.append(f"{mol * n + i + 1:8d} {'FILM':<4} {mol + 1:<4d} {'BTH':<4} {NAMES[i]:<4} "
-                         f"{TYPES[i]:<4} {charges_e[i]:14.6f}{MASS[ELEMENTS[i]]:14.4f}{0:8d}")
-
-    def section(tag: str, label: str, tuples: list[tuple[int, ...]], per_line: int) -> None:
-        lines.append("")
-        lines.append(f"{len(tuples):8d} !{tag}: {label}")
-        flat = [t for t in tuples]
-        for s0 in range(0, len(flat), per_line):
-            lines.append("".join(f"{a:8d}" for t in flat[s0:s0 + per_line] for a in t))
-
-    def expand(local: list[tuple[int, ...]]) -> list[tuple[int, ...]]:
-        return [tuple(mol * n + a + 1 for a in t) for mol in range(n_mol) for t in local]
-
-    section("NBOND", "bonds", expand([b[:2] for b in terms["bonds"]]), 4)
-    section("NTHETA", "angles", expand([a[:3] for a in terms["angles"]]), 3)
-    section("NPHI", "dihedrals", expand(terms["ring_torsions"] + terms["inter_ring_torsions"]), 2)
-    section("NIMPHI", "impropers", expand(terms["impropers"]), 2)
-    section("NDON", "donors", [], 4)
-    section("NACC", "acceptors", [], 4)
-    lines += ["", f"{0:8d} !NNB", ""]
-    path.write_text("\n".join(lines) + "\n")
-
-
-def density_g_cm3(n_atoms_mass_amu: float, box_nm: np.ndarray) -> float:
-    vol_cm3 = float(np.prod(box_nm)) * 1e-21
-    return n_atoms_mass_amu / 6.02214076e23 / vol_cm3     # Avogadro constant, SI 2019 (exact)
-
-
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="very short schedule, to check the script")
@@ -489,7 +391,6 @@ def main(argv: list[str] | None = None) -> int:
     import openmm as mm
     import openmm.unit as u
     import MDAnalysis as mda
-    from MDAnalysis.coordinates.memory import MemoryReader
 
     t_start = time.perf_counter()
     timings: dict[str, float] = {}
@@ -512,9 +413,9 @@ def main(argv: list[str] | None = None) -> int:
     mol_mass = sum(MASS[e] for e in ELEMENTS)
     total_mass = n_mol * mol_mass
     start_density = 0.50                                     # g/cm^3, random insertion still succeeds here
-    box0_nm = (total_mass / 6.02214076e23 / start_density * 1e21) ** (1 / 3)
+    box0_nm = (total_mass / AVOGADRO / start_density * 1e21) ** (1 / 3)
     t0 = time.perf_counter()
-    pos_A = place_molecules(xyz, n_mol, box0_nm * 10, rng)
+    pos_A = place_molecules([xyz] * n_mol, box0_nm * 10, rng)
     timings["placement_s"] = time.perf_counter() - t0
     print(f"  placed {n_mol} molecules in a {box0_nm * 10:.2f} Å box ({start_density} g/cm^3)", flush=True)
     system = build_system(q, terms, fourier, n_mol, box0_nm, exact_geometric=args.exact_geometric)
@@ -538,38 +439,11 @@ def main(argv: list[str] | None = None) -> int:
                 ("equilibrate", 20, 300, 300, 1.0)]
     frame_ps = 2.0                                        # production: 20 frames, 2 ps apart, NPT 300 K
     ctx.setVelocitiesToTemperature(450 * u.kelvin, SEED % 2 ** 31)
-    log = []
-
-    def state_density() -> float:
-        a, b, c = ctx.getState().getPeriodicBoxVectors(asNumpy=True).value_in_unit(u.nanometer)
-        return density_g_cm3(total_mass, np.array([a[0], b[1], c[2]]))
-
-    for name, ps, t_a, t_b, p_bar in schedule:
-        t0 = time.perf_counter()
-        ctx.setParameter(mm.MonteCarloBarostat.Pressure(), p_bar)
-        nsteps = max(10, int(round(ps * scale / 0.002)))
-        nchunk = 16 if t_a != t_b else 4
-        for k in range(nchunk):
-            temp = t_a + (t_b - t_a) * k / max(1, nchunk - 1)
-            integ.setTemperature(temp * u.kelvin)
-            ctx.setParameter(mm.MonteCarloBarostat.Temperature(), temp)
-            integ.step(nsteps // nchunk)
-        timings[f"{name}_s"] = time.perf_counter() - t0
-        log.append({"phase": name, "ps": ps * scale, "T_K": [t_a, t_b], "P_bar": p_bar,
-                    "density_end_g_cm3": round(state_density(), 4), "wall_s": round(timings[f"{name}_s"], 1)})
-        print("  ", log[-1], flush=True)
+    log = run_schedule(ctx, integ, schedule, 0.002, scale, total_mass, timings)
 
     t0 = time.perf_counter()
-    frames, boxes = [], []
     steps_per_frame = max(10, int(round(frame_ps * scale / 0.002)))
-    for f in range(N_FRAMES):
-        integ.step(steps_per_frame)
-        st = ctx.getState(getPositions=True)
-        a, b, c = st.getPeriodicBoxVectors(asNumpy=True).value_in_unit(u.nanometer)
-        box_A = np.array([a[0], b[1], c[2]]) * 10.0
-        p = st.getPositions(asNumpy=True).value_in_unit(u.nanometer) * 10.0
-        frames.append(p - box_A * np.floor(p / box_A))      # wrap every atom into [0, L)
-        boxes.append(np.concatenate([box_A, [90.0, 90.0, 90.0]]))
+    frames, boxes = collect_frames(ctx, integ, N_FRAMES, steps_per_frame)
     timings["production_s"] = time.perf_counter() - t0
     print(f"  production done in {timings['production_s']:.0f} s", flush=True)
     np.savez(Path(os.environ.get("TMPDIR", "/tmp")) / "bithiophene_film_frames.npz",
@@ -579,15 +453,15 @@ def main(argv: list[str] | None = None) -> int:
     out = args.out
     out.mkdir(parents=True, exist_ok=True)
     psf = out / f"{STEM}.psf"
-    write_psf(psf, n_mol, q, terms)
-    un = mda.Universe(str(psf))
-    un.load_new(np.array(frames, dtype=np.float32), format=MemoryReader,
-                dimensions=np.array(boxes, dtype=np.float32), dt=frame_ps * scale)
-    with mda.Writer(str(out / f"{STEM}.xtc"), un.atoms.n_atoms) as w:
-        for _ts in un.trajectory:
-            w.write(un.atoms)
-    un.trajectory[0]
-    un.atoms.write(str(out / f"{STEM}.pdb"))
+    species = {"resname": "BTH", "names": NAMES, "types": TYPES, "charges": q,
+               "masses": [MASS[e] for e in ELEMENTS], "bonds": [b[:2] for b in terms["bonds"]],
+               "angles": [a[:3] for a in terms["angles"]],
+               "dihedrals": terms["ring_torsions"] + terms["inter_ring_torsions"],
+               "impropers": terms["impropers"]}
+    write_psf(psf, [species] * n_mol, ["2,2'-bithiophene demo film (invented scenario), clusterlab demo_traj",
+                                       "charges: HF/6-31G* ESP fit; see forcefield.json",
+                                       "written by demo_traj/generate_film.py"])
+    write_trajectory(psf, frames, boxes, frame_ps * scale, out / f"{STEM}.xtc", out / f"{STEM}.pdb")
 
     dens = [density_g_cm3(total_mass, b[:3] / 10.0) for b in boxes]
     fr = np.array(frames).reshape(N_FRAMES, n_mol, 16, 3)
