@@ -76,9 +76,14 @@ def test_conformer_families_and_spread():
     odd = [k for k in mols if k % 2 and k not in refs2]
     rms1 = float(np.sqrt(np.mean(e1.loc[odd] ** 2)))
     rms2 = float(np.sqrt(np.mean(e2.loc[odd] ** 2)))
-    # measured while writing this test: 5.5 meV with one reference, 0.6 meV with two
-    # (the same-shape copies keep about 1 meV: the fit points turn with the lab frame)
-    assert rms1 > 4e-3
+    # The yardstick is the film's own fit noise, not a number read off this test: with one
+    # reference the same-shape (104.5°) copies keep a small error because the fit points
+    # turn with the lab frame. The 85° copies must stand clearly above that noise with one
+    # reference, and drop to it (within half a meV) with two references, which include their shape.
+    even = [k for k in mols if k % 2 == 0 and k not in refs2 and k != 0]
+    noise = float(np.sqrt(np.mean(e1.loc[even] ** 2)))
+    assert rms1 > 3 * noise
+    assert rms2 < noise + 0.5e-3
     assert rms2 < 0.3 * rms1
     # the RMS to quote travels with the result, over all refitted copies
     assert s1.rms_error_eV["cation"] == pytest.approx(float(np.sqrt(np.mean(e1**2))), rel=1e-12)
