@@ -262,7 +262,8 @@ def polarization_table(result: Any) -> pd.DataFrame:
     """IP and EA environment shifts of the polarized rows of a film model result,
     with fixed charges and with the Thole polarization, and the polarization
     energies themselves: one row per quantity (``mean_eV``, ``sigma_eV`` with its
-    95 % bootstrap interval, ``n``). The site energy is the gas-phase IP (EA) of
+    95 % interval by the one rule of :func:`~clusterlab.stats.disorder_stats`
+    (``sigma_ci_method``: chi-square for small n, bootstrap from 30 on), ``n``). The site energy is the gas-phase IP (EA) of
     the molecule plus its shift, so σ of a shift is σ of that site energy
     (conformational spread of the gas-phase values not included).
     P+ = ΔIP, P- = ΔEA (polarized minus fixed charges)."""
@@ -282,7 +283,8 @@ def polarization_table(result: Any) -> pd.DataFrame:
     for name, values in pairs:
         st = disorder_stats(values.to_numpy(dtype=float), n_boot=500, seed=0)
         rows.append({"quantity": name, "n": st["n"], "mean_eV": st["mean"], "sigma_eV": st["sigma"],
-                     "sigma_lo_eV": st["sigma_lo"], "sigma_hi_eV": st["sigma_hi"]})
+                     "sigma_lo_eV": st["sigma_ci_lo"], "sigma_hi_eV": st["sigma_ci_hi"],
+                     "sigma_ci_method": st["sigma_ci_method"]})
     return pd.DataFrame(rows)
 
 
@@ -305,7 +307,7 @@ def polarization_section(rep: ReportWriter, result: Any) -> None:
              + ". Site energy = gas-phase IP (EA) + shift, so the σ of a shift is that of the site energy. "
              "Leaves out the ion's own density response to the dipoles and the periodic images of the dipoles "
              "(README: parity against polarizable QM).")
-    rep.table(st, list(st.columns))
+    rep.display(st, list(st.columns))
 
 
 def write_lines(rep: ReportWriter, title: str, lines: list[str]) -> None:
