@@ -30,7 +30,7 @@ from .carve import MoleculeIndex, select_images
 from .charges import ChargeSource, as_charge_source, species_without_charges
 from .cluster import Cluster
 from .errors import CarvingError, ChargeError, FilmError, InputError, MoleculeBoundaryWarning
-from .geometry import box_vectors, make_whole, minimum_image, perpendicular_widths, wrap_molecules
+from .geometry import box_vectors, half_box_width_A, make_whole, minimum_image, perpendicular_widths, wrap_molecules
 from .ranges import parse_species
 
 FloatArray = npt.NDArray[np.float64]
@@ -886,9 +886,9 @@ class Film:
         """Plain-language warnings about a cut radius (beyond half the box...)."""
         out = []
         if self.has_box:
-            w = perpendicular_widths(box_vectors(self.box(frame)))
-            if radius > 0.5 * w.min():
-                out.append(f"radius {radius:g} Å exceeds half the smallest box width ({0.5 * w.min():.1f} Å): "
+            half = half_box_width_A(self.box(frame))
+            if radius > half:
+                out.append(f"radius {radius:g} Å exceeds half the smallest box width ({half:.1f} Å): "
                            "periodic images of molecules (and of the central molecule) are included.")
         return out
 

@@ -69,6 +69,13 @@ def perpendicular_widths(h: FloatArray) -> FloatArray:
     )
 
 
+def half_box_width_A(box: npt.ArrayLike) -> float:
+    """Half the smallest distance between opposite faces of the cell of
+    ``box`` ([lx, ly, lz, alpha, beta, gamma] or 3x3 rows), Å: the largest
+    radius at which the minimum image of every point is unique."""
+    return 0.5 * float(perpendicular_widths(box_vectors(box)).min())
+
+
 def to_fractional(positions_A: FloatArray, h: FloatArray) -> FloatArray:
     """Cartesian (n, 3) → fractional coordinates in the cell of rows ``h``."""
     return np.asarray(positions_A) @ np.linalg.inv(h)

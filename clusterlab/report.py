@@ -338,7 +338,7 @@ def doped_section(rep: ReportWriter, film: Any, sites: Any, *, states: Any = Non
     if ov is None:
         return None
     se = ov.species
-    counts = film.molecules["species"].astype(str).value_counts()
+    counts = film.species
     rep.section(f"Host:guest film (host {se.host}, {counts.get(se.host, 0)} molecules; guest {se.guest}, "
                 f"{counts.get(se.guest, 0)} molecules)",
                 "Per-species site energies (95 % bootstrap intervals). Trap depths: hole = IP_host − IP_guest, "

@@ -24,7 +24,7 @@ import pandas as pd
 from scipy import special, stats
 
 from .errors import InputError
-from .geometry import box_vectors, perpendicular_widths
+from .geometry import half_box_width_A
 
 __all__ = [
     "disorder_stats",
@@ -36,6 +36,7 @@ __all__ = [
     "ConvergenceVerdict",
     "mean_offset",
     "periodic_fit",
+    "fourier_basis",
 ]
 
 #: Above this sample size the normality test switches from Shapiro-Wilk to
@@ -565,12 +566,6 @@ def conformational_environmental(
 # --------------------------------------------------------------------------
 # 3. spatial correlation
 # --------------------------------------------------------------------------
-def _half_width_A(box: npt.NDArray[np.float64]) -> float:
-    """Half the smallest distance between opposite cell faces (Å): the
-    largest radius at which the minimum image is unique."""
-    return 0.5 * float(perpendicular_widths(box_vectors(box)).min())
-
-
 def _check_box(box: Any) -> npt.NDArray[np.float64] | None:
     if box is None:
         return None
@@ -709,7 +704,7 @@ def spatial_correlation(
 
     if r_max_A is None:
         if boxes[0] is not None:
-            r_max = min(_half_width_A(b) for b in boxes if b is not None)
+            r_max = min(half_box_width_A(b) for b in boxes if b is not None)
         else:
             r_max = 0.0
             for f in range(len(labels)):
@@ -722,9 +717,9 @@ def spatial_correlation(
         if not r_max > 0:
             raise InputError(f"r_max_A={r_max_A!r} is invalid; use a positive distance in Å")
         for b in boxes:
-            if b is not None and r_max > _half_width_A(b) * (1 + 1e-12):
+            if b is not None and r_max > half_box_width_A(b) * (1 + 1e-12):
                 raise InputError(
-                    f"r_max_A={r_max_A!r} Å exceeds half the box width ({_half_width_A(b):.3f} Å), "
+                    f"r_max_A={r_max_A!r} Å exceeds half the box width ({half_box_width_A(b):.3f} Å), "
                     "beyond which minimum-image distances undercount pairs; use a smaller r_max_A"
                 )
     edges = np.linspace(0.0, r_max, n_bins + 1)
@@ -1176,6 +1171,17 @@ def mean_offset(
     }, dtype=object)
 
 
+def fourier_basis(angle_deg: npt.ArrayLike, n_harmonics: int) -> npt.NDArray[np.float64]:
+    """Columns ``1, cos θ, sin θ, ..., cos kθ, sin kθ`` (k = ``n_harmonics``)
+    of an angle in degrees, shape (n, 2 k + 1): the design matrix of
+    :func:`periodic_fit`, and with its ``coefficients`` the fitted curve."""
+    th = np.radians(np.asarray(angle_deg, dtype=np.float64))
+    cols = [np.ones(th.shape)]
+    for k in range(1, int(n_harmonics) + 1):
+        cols += [np.cos(k * th), np.sin(k * th)]
+    return np.column_stack(cols)
+
+
 def periodic_fit(
     angle_deg: npt.ArrayLike,
     values: npt.ArrayLike,
@@ -1226,15 +1232,12 @@ def periodic_fit(
     if isinstance(n_harmonics, (bool, np.bool_)) or not isinstance(n_harmonics, (int, np.integer)) or n_harmonics < 1:
         raise InputError(f"n_harmonics={n_harmonics!r} is invalid; use a positive integer (default 2)")
     ok = np.isfinite(th) & np.isfinite(y)
-    th, y = np.radians(th[ok]), y[ok]
+    th, y = th[ok], y[ok]
     p = 2 * int(n_harmonics) + 1
     n = y.size
     if n < p + 2:
         raise InputError(f"periodic_fit with {n_harmonics} harmonic(s) needs at least {p + 2} complete rows; got {n}")
-    cols = [np.ones(n)]
-    for k in range(1, int(n_harmonics) + 1):
-        cols += [np.cos(k * th), np.sin(k * th)]
-    design = np.column_stack(cols)
+    design = fourier_basis(th, n_harmonics)
     coef, *_ = np.linalg.lstsq(design, y, rcond=None)
     res = y - design @ coef
     ss_res = float(res @ res)

@@ -401,7 +401,7 @@ def _brute_min_image(pos, box_vecs):
 @pytest.mark.parametrize("box", [[20.0, 22.0, 25.0, 90, 90, 90], [20.0, 22.0, 25.0, 75.0, 100.0, 65.0]])
 def test_periodic_pair_counts_match_brute_force(box):
     from clusterlab.geometry import box_vectors as _box_vectors
-    from clusterlab.stats import _half_width_A
+    from clusterlab.geometry import half_box_width_A
 
     rng = np.random.default_rng(4)
     vecs = _box_vectors(np.array(box, float))
@@ -412,7 +412,7 @@ def test_periodic_pair_counts_match_brute_force(box):
     frac = rng.uniform(0, 1, size=(300, 3))
     pos = frac @ vecs
     vals = rng.normal(size=300)
-    rmax = _half_width_A(np.array(box, float))
+    rmax = half_box_width_A(np.array(box, float))
     out = spatial_correlation(pos, vals, box, n_bins=8)
     d = _brute_min_image(pos, vecs)
     i, j = np.triu_indices(300, 1)

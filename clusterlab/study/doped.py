@@ -43,9 +43,9 @@ import pandas as pd
 
 from ..errors import InputError
 from ..film import Film
-from ..geometry import box_vectors, dihedral_deg, perpendicular_widths
+from ..geometry import dihedral_deg, half_box_width_A
 from ..qm.results import ExcitationResult
-from ..stats import conformational_environmental, grouped_disorder_stats, mean_offset, periodic_fit
+from ..stats import conformational_environmental, fourier_basis, grouped_disorder_stats, mean_offset, periodic_fit
 from ..store import ResultStore
 from .filmmodel import FilmModelResult
 from .jsonio import json_of_kind, table_from_dict, table_to_dict
@@ -98,7 +98,7 @@ def _sites(sites: Any, *, radius_A: float | None, film: Film | None, what: str) 
         if film is None:
             raise InputError(f"{what}: the site table has no 'species' column; give film= to take it from "
                              "film.molecules.")
-        df["species"] = film.molecules["species"].to_numpy()[df["molecule"].to_numpy(dtype=int)]
+        df["species"] = film.molecule_species[df["molecule"].to_numpy(dtype=int)]
     if df.duplicated(["frame", "molecule"]).any():
         bad = df[df.duplicated(["frame", "molecule"], keep=False)].iloc[0]
         raise InputError(f"{what}: (frame={bad['frame']}, molecule={bad['molecule']}) appears more than once; "
@@ -439,7 +439,7 @@ def triplet_confinement(film: Film, sites: Any, *, cutoff_A: float, host: str | 
     if value not in df.columns:
         raise InputError(f"triplet_confinement: the site table has no {value!r} column; columns: {list(df.columns)}.")
     host, guest = _host_guest(_abundance(df, film), host, guest, "triplet_confinement")
-    species = film.molecules["species"].astype(str).to_numpy()
+    species = film.molecule_species.astype(str)
     host_ids = np.flatnonzero(species == host)
     vals = pd.to_numeric(df[value], errors="coerce").to_numpy(dtype=float)
     host_pool = np.sort(vals[(df["species"] == host).to_numpy() & np.isfinite(vals)])
@@ -448,9 +448,9 @@ def triplet_confinement(film: Film, sites: Any, *, cutoff_A: float, host: str | 
     for f, idx in df.groupby("frame").indices.items():
         frame = int(f)
         box = film.box(frame) if film.has_box else None
-        if box is not None and cut > 0.5 * _min_width_A(box):
+        if box is not None and cut > half_box_width_A(box):
             raise InputError(f"cutoff_A={cut:g} Å exceeds half the smallest width of frame {frame}'s box "
-                             f"({0.5 * _min_width_A(box):.3f} Å); the minimum image would miss neighbours.")
+                             f"({half_box_width_A(box):.3f} Å); the minimum image would miss neighbours.")
         cent = film.frame_geometry(frame, periodic=film.has_box).centroids_A
         sub = df.iloc[idx]
         known = dict(zip(sub["molecule"].to_numpy(dtype=int), vals[idx]))
@@ -490,10 +490,6 @@ def triplet_confinement(film: Film, sites: Any, *, cutoff_A: float, host: str | 
     frac = float(np.nanmean(conf)) if np.isfinite(conf).any() else float("nan")
     return ConfinementResult(sites=out, cutoff_A=cut, host=host, guest=guest, fallback=fallback,
                              fraction=frac, n_isolated=int((~np.isfinite(conf)).sum()))
-
-
-def _min_width_A(box: Any) -> float:
-    return float(perpendicular_widths(box_vectors(box)).min())
 
 
 # ---------------------------------------------------------------------------
@@ -614,10 +610,7 @@ class TorsionResult(_TableResult):
             raise InputError(f"no fit for species {species!r}; have {self.fits['species'].tolist()}.")
         coef = json.loads(row["coefficients"].iloc[0])
         th = np.linspace(-180.0, 180.0, int(n_points))
-        y = np.full_like(th, coef[0])
-        for k in range(1, (len(coef) - 1) // 2 + 1):
-            y += coef[2 * k - 1] * np.cos(np.radians(k * th)) + coef[2 * k] * np.sin(np.radians(k * th))
-        return th, y
+        return th, fourier_basis(th, (len(coef) - 1) // 2) @ np.asarray(coef, dtype=np.float64)
 
 
 def dest_torsion(film: Film, sites: Any, atoms: Mapping[str, Sequence[int]], *, n_harmonics: int = 2,
@@ -738,7 +731,7 @@ def state_table(source: Any, *, film: Film | None = None, film_id: str | None = 
         r = float(df["radius_A"].astype(float).max()) if radius_A is None else float(radius_A)
         df = df[np.isclose(df["radius_A"].astype(float), r)]
     if film is not None and len(df):
-        df = df.assign(species=film.molecules["species"].to_numpy()[df["molecule"].to_numpy(dtype=int)])
+        df = df.assign(species=film.molecule_species[df["molecule"].to_numpy(dtype=int)])
     return df.reset_index(drop=True)
 
 
@@ -978,7 +971,7 @@ def host_guest_overview(film: Film, sites: Any, *, cutoff_A: float | None = None
     if "T1_eV" in table.columns:
         cut = float(OVERVIEW_NEIGHBOUR_CUTOFF_A if cutoff_A is None else cutoff_A)
         if film.has_box:
-            half = 0.5 * min(_min_width_A(film.box(f)) for f in sorted(set(table["frame"])))
+            half = min(half_box_width_A(film.box(f)) for f in sorted(set(table["frame"])))
             if cut >= half:
                 cut = half * (1.0 - 1e-9)
                 out.notes.append(f"confinement neighbour distance capped at {cut:.2f} Å (half the box width)")

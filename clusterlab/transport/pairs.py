@@ -18,7 +18,7 @@ import pandas as pd
 from MDAnalysis.lib import distances as mdadist
 
 from ..errors import InputError
-from ..geometry import box_vectors, perpendicular_widths
+from ..geometry import half_box_width_A
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -169,7 +169,7 @@ def neighbour_pairs(
         raise InputError(f"cutoff_A must be a finite number > 0 of Å; got {cutoff_A!r}.")
     b = _box(box)
     if b is not None:
-        half = 0.5 * float(perpendicular_widths(box_vectors(b)).min())
+        half = half_box_width_A(b)
         if cutoff_A > half * (1 + 1e-6):  # float32 boxes: 16 Å may read 16.0000005
             # beyond half the width a pair has two images within the cutoff; one would be dropped
             raise InputError(f"cutoff_A={cutoff_A!r} Å exceeds half the shortest box width ({half:.3f} Å); "
