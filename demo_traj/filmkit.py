@@ -4,8 +4,9 @@ Plain helpers, no force field: topology graph distances, dihedrals, random
 insertion of molecules into a periodic box, a CHARMM/X-PLOR PSF writer for any
 mix of species, the phase runner of a melt-quench schedule, frame collection
 and the trajectory writers. Only the generators import this module (it is not
-part of the clusterlab package). OpenMM and MDAnalysis are imported inside the
-functions that need them.
+part of the clusterlab package, but uses its geometry, so install the project
+first: ``pip install -e .[demo]``). OpenMM and MDAnalysis are imported inside
+the functions that need them.
 """
 
 from __future__ import annotations
@@ -39,14 +40,13 @@ def graph_distances(n: int, bonds: list[tuple[int, int]]) -> np.ndarray:
 
 
 def dihedral_deg(p: np.ndarray) -> np.ndarray:
-    """Dihedral angles (deg) of point quadruples, p shape (..., 4, 3)."""
-    b0, b1, b2 = p[..., 0, :] - p[..., 1, :], p[..., 2, :] - p[..., 1, :], p[..., 3, :] - p[..., 2, :]
-    b1n = b1 / np.linalg.norm(b1, axis=-1, keepdims=True)
-    v = b0 - (b0 * b1n).sum(-1, keepdims=True) * b1n
-    w = b2 - (b2 * b1n).sum(-1, keepdims=True) * b1n
-    x = (v * w).sum(-1)
-    y = (np.cross(b1n, v) * w).sum(-1)
-    return np.degrees(np.arctan2(y, x))
+    """Dihedral angles (deg) of point quadruples, p shape (..., 4, 3)
+    (:func:`clusterlab.geometry.dihedral_deg`, IUPAC sign)."""
+    from clusterlab.geometry import dihedral_deg as chain_dihedral_deg
+
+    p = np.asarray(p, dtype=np.float64)
+    q = p.reshape(-1, 4, 3)
+    return chain_dihedral_deg(q[:, 0], q[:, 1], q[:, 2], q[:, 3]).reshape(p.shape[:-2])
 
 
 def random_rotation(rng: np.random.Generator) -> np.ndarray:
