@@ -25,6 +25,8 @@ from clusterlab.study.plots import (
     plot_growth,
     plot_histogram,
     plot_parity,
+    skew_check,
+    the_legend,
 )
 
 RADII = np.array([6.0, 8.0, 10.0, 12.0, 14.0, 18.0, 22.0])
@@ -91,8 +93,9 @@ def test_convergence_plot_puts_a_non_shift_quantity_on_its_own_axis():
     left, right = fig.axes
     np.testing.assert_allclose(right.lines[0].get_ydata(), df.dEST_eV)
     assert right.get_ylabel() == "ΔEST (eV)" and left.get_ylabel() == "environment shift (eV)"
-    labels = [t.get_text() for t in left.get_legend().get_texts()]
-    assert "S1 shift" in labels and "ΔEST (eV), right axis" in labels
+    labels = [t.get_text() for t in the_legend(fig).get_texts()]
+    # S1 moves 8 meV from 5 Å on, ΔEST 3 meV: both within 10 meV, converged at 5 Å, said in the entries
+    assert labels[:2] == ["S1 shift, converged at 5 Å", "ΔEST (eV), right axis, converged at 5 Å"]
 
 
 def test_histogram_plot(tmp_path):
@@ -214,3 +217,134 @@ def test_draw_into_given_axes_and_palette():
     assert out is fig
     assert to_rgb(ax.lines[1].get_color()) == to_rgb(PALETTE[2])
     assert len(set(PALETTE)) == len(PALETTE) == 8
+
+
+# ---------------------------------------------------------------- readability (legends, bands, shapes)
+def _drawn(fig):
+    """Draw with Agg so that window extents are final; returns the renderer."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    return canvas.get_renderer()
+
+
+def _overlap(a, b) -> bool:
+    """Whether two display-space boxes share an area (touching edges do not count)."""
+    return a.x0 < b.x1 - 0.5 and b.x0 < a.x1 - 0.5 and a.y0 < b.y1 - 0.5 and b.y0 < a.y1 - 0.5
+
+
+def _followed_scan():
+    r = np.array([6.0, 8.0, 10.0, 12.0, 14.0])
+    s1 = -0.08 - 30.0 / r**3
+    return pd.DataFrame({"radius_A": r, "S1_shift_eV": s1, "T1_shift_eV": -0.05 - 10.0 / r**3,
+                         "dEST_eV": 1.9 + 0.01 / r, "S1_followed_shift_eV": s1})  # followed = plain: coincide
+
+
+def test_convergence_legend_sits_outside_the_axes_and_covers_no_point():
+    # the report's plot used to hide the points under a nine-entry legend inside the axes
+    df = _followed_scan()
+    fig = plot_convergence(df, states=["S1_shift_eV", "T1_shift_eV", "dEST_eV", "S1_followed_shift_eV"])
+    renderer = _drawn(fig)
+    leg = the_legend(fig)
+    box = leg.get_window_extent(renderer)
+    for ax in fig.axes:
+        assert not _overlap(box, ax.get_window_extent(renderer))
+    # and inside the figure (the widgets save without bbox_inches="tight")
+    fig_box = fig.bbox
+    assert box.x0 >= fig_box.x0 - 1 and box.x1 <= fig_box.x1 + 1 and box.y0 >= fig_box.y0 - 1
+    # one entry per quantity plus the band: not one per drawn line
+    assert len(leg.get_texts()) == 4 + 1
+    # an axes passed in: the legend goes to its right, still off the data
+    host = Figure(figsize=(8, 4))
+    ax = host.add_subplot(position=[0.1, 0.1, 0.5, 0.8])
+    plot_convergence(df, states=["S1", "T1"], ax=ax)
+    renderer = _drawn(host)
+    assert not _overlap(ax.get_legend().get_window_extent(renderer), ax.get_window_extent(renderer))
+
+
+def test_followed_state_stays_visible_over_the_plain_state():
+    df = _followed_scan()
+    ax = plot_convergence(df, states=["S1", "S1_followed"]).axes[0]
+    plain = next(ln for ln in ax.lines if ln.get_label().startswith("S1 shift"))
+    followed = next(ln for ln in ax.lines if "followed" in ln.get_label())
+    np.testing.assert_allclose(plain.get_ydata(), followed.get_ydata())  # the same numbers here ...
+    # ... so the followed line is drawn on top, dashed, with open markers larger than the plain ones
+    assert followed.get_zorder() > plain.get_zorder()
+    assert followed.get_linestyle() != plain.get_linestyle() and followed.get_marker() != plain.get_marker()
+    assert followed.get_markerfacecolor() == "none" and followed.get_markersize() > plain.get_markersize()
+
+
+def test_tolerance_bands_are_hatched_outlines_that_do_not_mix():
+    fig = plot_convergence(_followed_scan(), states=["S1", "T1"], tol_eV=0.02)
+    bands = fig.axes[0].patches
+    assert len(bands) == 2
+    for band, colour in zip(bands, PALETTE):
+        assert band.get_facecolor()[3] == 0.0  # no fill: overlapping bands do not add up to grey
+        assert band.get_hatch() and to_rgb(band.get_edgecolor()) == pytest.approx(to_rgb(colour))
+    assert bands[0].get_hatch() != bands[1].get_hatch()  # different directions where they cross
+
+
+def _bars(ax):
+    from matplotlib.patches import Rectangle
+
+    return [p for p in ax.patches if isinstance(p, Rectangle) and p.get_label() != "interval of the mean"
+            and p.get_height() > 0 and p.get_width() < 1]
+
+
+def test_histogram_note_and_legend_cover_no_bar():
+    rng = np.random.default_rng(4)
+    for x in (rng.normal(0.0, 0.05, 300), -rng.gamma(1.5, 0.03, 300)):  # peak in the middle / at the right
+        fig = plot_histogram(x, bins=20)
+        renderer = _drawn(fig)
+        ax = fig.axes[0]
+        bars = [b.get_window_extent(renderer) for b in _bars(ax)]
+        assert len(bars) >= 10
+        for box in (ax.texts[0].get_window_extent(renderer), ax.get_legend().get_window_extent(renderer)):
+            assert not any(_overlap(box, b) for b in bars)
+            assert box.x1 <= fig.bbox.x1 + 1  # inside the saved figure
+
+
+def test_histogram_draws_the_gaussian_only_for_an_unskewed_sample():
+    rng = np.random.default_rng(5)
+    normal = rng.normal(3.0, 0.05, 400)
+    # a second-order (quadratic) shift, like the film model's S1: -(field)^2 of a Gaussian field is a
+    # scaled chi-square(1), skewness sqrt(8) = 2.83 in theory (Johnson, Kotz & Balakrishnan, Continuous
+    # Univariate Distributions 1, 1994)
+    skewed = -0.02 * rng.normal(0.0, 1.0, 400) ** 2
+    ax = plot_histogram(normal).axes[0]
+    assert [ln.get_label() for ln in ax.lines] == ["Gaussian (mean, σ)", "mean"]
+    assert "skewed" not in ax.texts[0].get_text()
+    ax = plot_histogram(skewed).axes[0]
+    assert [ln.get_label() for ln in ax.lines] == ["mean"]
+    g1 = sps.skew(skewed)
+    assert g1 == pytest.approx(-np.sqrt(8.0), abs=0.6)
+    text = ax.texts[0].get_text()
+    assert f"skewed (g1 = {g1:.2f})" in text and "Gaussian not drawn" in text
+    # the decision is scipy's skewtest (D'Agostino 1970) at 5 %
+    assert skew_check(skewed)["p"] == pytest.approx(sps.skewtest(skewed).pvalue)
+    assert skew_check(normal)["skewed"] is bool(sps.skewtest(normal).pvalue < 0.05) is False
+
+
+def test_skew_check_below_eight_values_uses_the_standard_error_of_skewness():
+    # skewtest needs 8 values; below that: |g1| > 2 sqrt(6/n) (common practice)
+    few = np.array([0.0, 0.01, 0.02, 0.03, 0.5])
+    g1 = sps.skew(few)
+    out = skew_check(few)
+    assert out["g1"] == pytest.approx(g1) and np.isnan(out["p"])
+    assert out["skewed"] is bool(abs(g1) > 2 * np.sqrt(6 / 5))
+    assert skew_check([0.0, 0.01, 0.02, 0.03, 0.04])["skewed"] is False
+
+
+def test_histogram_range_ignores_outliers_and_counts_them():
+    rng = np.random.default_rng(6)
+    x = np.concatenate([rng.normal(0.0, 0.05, 500), [2.5, 3.0]])  # two values 50-60 σ out
+    ax = plot_histogram(x).axes[0]
+    lo, hi = ax.get_xlim()
+    assert hi < 0.5 and lo > -0.5
+    assert "2 of 502 values beyond" in ax.texts[0].get_text()
+    # the statistics still use every value
+    assert f"σ = {1e3 * np.std(x, ddof=1):.0f} meV" in ax.texts[0].get_text()
+    # the bars keep the normalisation of all values: their area is the fraction shown
+    bars = _bars(ax)
+    assert sum(b.get_height() * b.get_width() for b in bars) == pytest.approx(500 / 502)

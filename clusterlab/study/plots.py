@@ -17,12 +17,15 @@ from __future__ import annotations
 
 import textwrap
 from collections.abc import Mapping, Sequence
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
 from matplotlib.axes import Axes
+from matplotlib.colors import to_rgba
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 from ..errors import InputError
 from ..labels import column_label
@@ -31,6 +34,8 @@ from ..stats import converged_radius, correlation_note, disorder_stats
 __all__ = [
     "PALETTE",
     "plot_convergence",
+    "skew_check",
+    "the_legend",
     "plot_histogram",
     "plot_growth",
     "plot_correlation",
@@ -68,8 +73,43 @@ def _need(df: pd.DataFrame, columns: Sequence[str], what: str) -> None:
 
 
 def _label_of(col: str) -> str:
-    """'S1_shift_eV' -> 'S1'."""
-    return col[: -len("_shift_eV")] if col.endswith("_shift_eV") else col
+    """'S1_shift_eV' -> 'S1'; 'S1_followed_shift_eV' -> 'S1 followed'."""
+    name = col[: -len("_shift_eV")] if col.endswith("_shift_eV") else col
+    return name.replace("_", " ")
+
+
+#: hatch of each quantity's tolerance band, in turn: different directions, so that two bands that
+#: overlap read as a cross-hatch of two colours instead of one muddy tint
+_HATCHES = ("//", "\\\\", "||", "--")
+
+
+def _outside_legend(fig: Figure, ax: Axes, own: bool, handles: list, labels: list, *, ncols: int = 2,
+                    right_axis: bool = False) -> None:
+    """A legend that never covers the data: below the axes in a figure this module made (constrained
+    layout makes room for it), else to the right of the axes (beyond a right axis when there is one)."""
+    if not handles:
+        return
+    if own:
+        # two columns while the labels are short, else one; the figure grows by the rows it adds
+        cols = min(ncols, len(handles)) if max(len(t) for t in labels) <= 30 else 1
+        rows = -(-len(handles) // cols)
+        w, h = fig.get_size_inches()
+        fig.set_size_inches(w, h + 0.2 * rows)
+        fig.legend(handles, labels, loc="outside lower center", ncols=cols, fontsize="small", frameon=False)
+    else:
+        ax.legend(handles, labels, loc="center left", bbox_to_anchor=(1.22 if right_axis else 1.02, 0.5),
+                  fontsize="small", frameon=False)
+
+
+def the_legend(fig: Figure):
+    """The legend of a figure made here: the figure's own (when this module made the figure) or the
+    first axes' (when an axes was passed in); None when there is none."""
+    if fig.legends:
+        return fig.legends[0]
+    for ax in fig.axes:
+        if ax.get_legend() is not None:
+            return ax.get_legend()
+    return None
 
 
 def plot_convergence(
@@ -84,9 +124,15 @@ def plot_convergence(
 
     Draws each shift (eV) vs ``radius_A``, a band of ±``tol_eV`` around
     each quantity's reference (the periodic limit when given, else the
-    largest-radius value), the periodic limit as a dashed line, and the
-    converged radius from :func:`clusterlab.stats.converged_radius` as a
-    dotted vertical line.
+    largest-radius value) as a hatched outline in the quantity's colour
+    (bands of several quantities overlap without mixing into one tint), the
+    periodic limit as a thin dashed line, and the converged radius from
+    :func:`clusterlab.stats.converged_radius` as a dotted vertical line (and
+    in the quantity's legend entry). A followed state (``S1_followed``) is
+    drawn dashed with open squares over the plain state's filled circles, so
+    both show where they coincide. The legend sits outside the axes (below
+    them in a figure made here, to the right of a given ``ax``), one entry
+    per quantity plus one each for the band and the periodic limit.
 
     Parameters
     ----------
@@ -107,6 +153,8 @@ def plot_convergence(
     matplotlib.figure.Figure
         Lines: one per quantity, one dashed per periodic limit, one dotted
         per converged quantity. Patches: one tolerance band per quantity.
+        A quantity that is not a shift (ΔEST) is drawn dash-dotted on a
+        right axis, with its band there.
 
     Raises
     ------
@@ -114,6 +162,9 @@ def plot_convergence(
         If ``radius_A`` or a requested column is missing, or no shift column
         is found.
     """
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
     _need(scan_df, ["radius_A"], "plot_convergence")
     if states is None:
         cols = [c for c in scan_df.columns if str(c).endswith("_shift_eV")]
@@ -137,10 +188,11 @@ def plot_convergence(
     else:
         limits = {}
         for c in cols:
-            for key in (c, _label_of(c)):
+            for key in (c, _label_of(c), c[: -len("_shift_eV")] if c.endswith("_shift_eV") else c):
                 if key in periodic:
                     limits[c] = float(periodic[key])
-    fig, ax = _new_axes(ax)
+    own = ax is None
+    fig, ax = _new_axes(ax, figsize=(5.4, 3.8))
     rows = scan_df[np.isfinite(pd.to_numeric(scan_df["radius_A"], errors="coerce"))]
     rows = rows.sort_values("radius_A")
     r = rows["radius_A"].to_numpy(dtype=float)
@@ -149,13 +201,25 @@ def plot_convergence(
     others = [c for c in cols if not str(c).endswith("_shift_eV")]
     right = ax.twinx() if others else None
     main = ax
+    handles: list[Any] = []
+    any_band = any_limit = False
     for i, c in enumerate(cols):
         colour = PALETTE[i % len(PALETTE)]
         y = rows[c].to_numpy(dtype=float)
         name = _label_of(c)
         ax = right if c in others else main
-        ax.plot(r, y, marker="o", color=colour, ls="--" if c in others else "-",
-                label=f"{column_label(c)}, right axis" if c in others else f"{name} shift")
+        if c in others:
+            style = {"ls": "-.", "marker": "D", "ms": 5, "zorder": 2.5}
+            label = f"{column_label(c)}, right axis"
+        elif "followed" in str(c):
+            # over the plain state: open squares and dashes leave the plain line visible underneath
+            style = {"ls": (0, (4, 2)), "marker": "s", "ms": 8, "mfc": "none", "mew": 1.4, "zorder": 3}
+            label = f"{name} shift (open squares)"
+        else:
+            style = {"ls": "-", "marker": "o", "ms": 5, "zorder": 2.5}
+            label = f"{name} shift"
+        (line,) = ax.plot(r, y, color=colour, lw=1.5, label=label, **style)
+        handles.append(line)
         ref = limits.get(c)
         finite = np.isfinite(y)
         if ref is None and finite.any():
@@ -163,26 +227,71 @@ def plot_convergence(
         else:
             ref_val = ref  # type: ignore[assignment]
         if ref_val is not None and np.isfinite(ref_val):
-            ax.axhspan(ref_val - tol_eV, ref_val + tol_eV, color=colour, alpha=0.12, lw=0)
+            ax.axhspan(ref_val - tol_eV, ref_val + tol_eV, facecolor="none", edgecolor=to_rgba(colour, 0.85),
+                       lw=0.9, hatch=_HATCHES[i % len(_HATCHES)], hatchcolor=to_rgba(colour, 0.22),
+                       hatch_linewidth=0.6, zorder=0.5)
+            any_band = True
         if ref is not None:
-            ax.axhline(ref, color=colour, ls="--", lw=1.2, label=f"{name} periodic limit")
+            ax.axhline(ref, color=colour, ls="--", lw=1.0, zorder=1)
+            any_limit = True
         if finite.sum() >= 2:
             verdict = converged_radius(r, y, tol=tol_eV, reference=ref)
             if verdict.converged:
-                ax.axvline(verdict.radius_A, color=colour, ls=":", lw=1.2,
-                           label=f"{name} converged at {verdict.radius_A:g} Å")
+                ax.axvline(verdict.radius_A, color=colour, ls=":", lw=1.2, zorder=1)
+                line.set_label(f"{label}, converged at {verdict.radius_A:g} Å")
+    if any_band:
+        handles.append(Patch(facecolor="none", edgecolor=_GREY, hatch="//", lw=0.9,
+                             label=f"±{1e3 * tol_eV:g} meV around the reference"))
+    if any_limit:
+        handles.append(Line2D([], [], color=_GREY, ls="--", lw=1.0, label="periodic limit (its colour)"))
     ax = main
     ax.set_xlabel("cluster radius (Å)")
     ax.set_ylabel("environment shift (eV)")
     ax.set_title(f"shift vs radius (band: ±{1e3 * tol_eV:g} meV)", fontsize="medium")
-    handles, labels = ax.get_legend_handles_labels()
     if right is not None:
         right.set_ylabel(", ".join(column_label(c) for c in others))
-        more = right.get_legend_handles_labels()
-        handles, labels = handles + more[0], labels + more[1]
-    ax.legend(handles, labels, fontsize="small")
+    _outside_legend(fig, main, own, handles, [h.get_label() for h in handles], right_axis=right is not None)
     return fig
 
+
+#: robust x-range of a histogram: these percentiles of the values, widened by
+#: :data:`HISTOGRAM_PAD` of their distance on each side (values beyond are
+#: counted in a note, not drawn)
+HISTOGRAM_PERCENTILES = (0.5, 99.5)
+HISTOGRAM_PAD = 0.25
+
+#: significance level of the skewness test that decides whether a Gaussian is drawn
+SKEW_ALPHA = 0.05
+
+
+def skew_check(values: npt.ArrayLike, *, alpha: float = SKEW_ALPHA) -> dict[str, Any]:
+    """Whether a sample is significantly skewed (then a Gaussian does not describe it).
+
+    From 8 values on: D'Agostino's skewness test (``scipy.stats.skewtest``;
+    D'Agostino, Biometrika 57, 679, 1970), skewed when its two-sided p is
+    below ``alpha``. Below 8 values (where that test is not defined): skewed
+    when |g1| exceeds twice its standard error sqrt(6/n) (common practice).
+
+    Returns
+    -------
+    dict
+        ``skewed`` (bool), ``g1`` (moment skewness, scipy's ``skew``), ``p``
+        (NaN below 8 values), ``rule`` (text), ``n``.
+    """
+    from scipy import stats as sps
+
+    x = np.asarray(values, dtype=float).ravel()
+    x = x[np.isfinite(x)]
+    n = int(x.size)
+    if n < 3 or float(np.ptp(x)) == 0.0:
+        return {"skewed": False, "g1": float("nan"), "p": float("nan"), "rule": "too few distinct values", "n": n}
+    g1 = float(sps.skew(x))
+    if n >= 8:
+        p = float(sps.skewtest(x).pvalue)
+        return {"skewed": bool(p < alpha), "g1": g1, "p": p, "rule": f"skewtest p = {p:.2g}", "n": n}
+    se = float(np.sqrt(6.0 / n))
+    return {"skewed": bool(abs(g1) > 2.0 * se), "g1": g1, "p": float("nan"),
+            "rule": f"|g1| vs 2·sqrt(6/n) = {2 * se:.2f}", "n": n}
 
 
 def plot_histogram(
@@ -195,7 +304,16 @@ def plot_histogram(
     bins: int | str = "auto",
     seed: int | None = 0,
 ) -> Figure:
-    """Histogram of site energies with the Gaussian fit and the interval on the mean.
+    """Histogram of site energies with the Gaussian of its mean and σ (when it fits) and the
+    interval on the mean.
+
+    The x-range runs over the robust percentiles :data:`HISTOGRAM_PERCENTILES`
+    of the values (widened by :data:`HISTOGRAM_PAD`); values beyond it are not
+    drawn and the note counts them (the statistics use every value). The
+    Gaussian is drawn only when the sample is not significantly skewed
+    (:func:`skew_check`); otherwise the note says "skewed (g1 = …): Gaussian
+    not drawn". The note with n, mean, σ and their intervals and the legend
+    sit outside the axes, right of them, so they cover no bar.
 
     Parameters
     ----------
@@ -209,16 +327,17 @@ def plot_histogram(
         What the values are, for the x axis ("S1 site energy").
     unit : str, default "eV"
     bins : int or str, default "auto"
-        Passed to numpy's histogram.
+        Passed to numpy's histogram (over the shown range).
     seed : int or None, default 0
         Bootstrap seed when ``stats`` is computed here.
 
     Returns
     -------
     matplotlib.figure.Figure
-        Lines: the Gaussian fit and the mean. Patches: the histogram bars
-        and the shaded interval of the mean. A text box gives mean, σ and
-        their intervals.
+        Lines: the Gaussian (when drawn) and the mean. Patches: the histogram
+        bars (heights: count / (n × bin width), n counting every value, so
+        the bars' area is the fraction of values shown) and the shaded
+        interval of the mean. One text box (the note).
     """
     x = np.asarray(values, dtype=float).ravel()
     x = x[np.isfinite(x)]
@@ -228,31 +347,55 @@ def plot_histogram(
                 "sigma_ci_lo", "sigma_ci_hi", "sigma_ci_method"):
         if key not in stats.index:
             raise InputError(f"plot_histogram: stats has no entry {key!r}; pass disorder_stats(values)")
-    fig, ax = _new_axes(ax)
-    ax.hist(x, bins=bins, density=True, color=PALETTE[5], edgecolor="white", alpha=0.9, label="sites")
-    # the curve uses the σ the text reports (ddof=1), not a second estimate
+    fig, ax = _new_axes(ax, figsize=(6.6, 3.6))
     mu, sg = float(stats["mean"]), float(stats["sigma"])
-    grid = np.linspace(x.min() - 0.5 * sg, x.max() + 0.5 * sg, 300)
-    if sg > 0:
+    p_lo, p_hi = np.percentile(x, HISTOGRAM_PERCENTILES)
+    pad = HISTOGRAM_PAD * (p_hi - p_lo) if p_hi > p_lo else max(abs(p_lo) * 0.01, 1e-6)
+    lo = min(p_lo - pad, float(stats["mean_lo"]))
+    hi = max(p_hi + pad, float(stats["mean_hi"]))
+    inside = (x >= lo) & (x <= hi)
+    n_out = int(x.size - inside.sum())
+    edges = np.histogram_bin_edges(x[inside], bins=bins)
+    width = float(edges[1] - edges[0]) if len(edges) > 1 else 1.0
+    # density over every value (the statistics' n), so the curve and the bars share one normalisation
+    ax.hist(x[inside], bins=edges, weights=np.full(int(inside.sum()), 1.0 / (x.size * width)),
+            color=PALETTE[5], edgecolor="white", alpha=0.9, label="sites")
+    shape = skew_check(x)
+    grid = np.linspace(float(edges[0]), float(edges[-1]), 300)
+    if sg > 0 and not shape["skewed"]:
+        # the curve uses the σ the text reports (ddof=1), not a second estimate
         pdf = np.exp(-0.5 * ((grid - mu) / sg) ** 2) / (sg * np.sqrt(2.0 * np.pi))
         ax.plot(grid, pdf, color=PALETTE[0], lw=2, label="Gaussian (mean, σ)")
-    ax.axvline(float(stats["mean"]), color=PALETTE[1], lw=1.5, label="mean")
-    ax.axvspan(float(stats["mean_lo"]), float(stats["mean_hi"]), color=PALETTE[1], alpha=0.2, lw=0)
+    ax.axvline(mu, color=PALETTE[1], lw=1.5, label="mean")
+    ax.axvspan(float(stats["mean_lo"]), float(stats["mean_hi"]), color=PALETTE[1], alpha=0.2, lw=0,
+               label="interval of the mean")
+    # the axes end where the bars (and the mean's interval) end, not at the padded range
+    x0, x1 = min(float(edges[0]), float(stats["mean_lo"])), max(float(edges[-1]), float(stats["mean_hi"]))
+    margin = 0.03 * (x1 - x0 if x1 > x0 else 1.0)
+    ax.set_xlim(x0 - margin, x1 + margin)
+    ax.xaxis.set_major_locator(MaxNLocator(nbins=5))
     conf = float(stats.get("confidence", 0.95))
     scale, sunit = (1e3, "meV") if unit == "eV" else (1.0, unit)
-    text = (
-        f"n = {int(stats.get('n', x.size))}\n"
-        f"mean = {float(stats['mean']):.3f} {unit} "
-        f"[{float(stats['mean_lo']):.3f}, {float(stats['mean_hi']):.3f}]\n"
-        f"σ = {scale * float(stats['sigma']):.0f} {sunit} "
-        f"[{scale * float(stats['sigma_ci_lo']):.0f}, {scale * float(stats['sigma_ci_hi']):.0f}]\n"
-        f"({100 * conf:g} % intervals; σ: {stats['sigma_ci_method']})"
-    )
-    ax.text(0.02, 0.98, text, transform=ax.transAxes, va="top", ha="left", fontsize="small",
+    lines = [
+        f"n = {int(stats.get('n', x.size))}",
+        f"mean = {mu:.3f} {unit}",
+        f"  [{float(stats['mean_lo']):.3f}, {float(stats['mean_hi']):.3f}]",
+        f"σ = {scale * sg:.0f} {sunit} "
+        f"[{scale * float(stats['sigma_ci_lo']):.0f}, {scale * float(stats['sigma_ci_hi']):.0f}]",
+        f"{100 * conf:g} % intervals",
+        f"  (σ: {stats['sigma_ci_method']})",
+    ]
+    if shape["skewed"]:
+        lines += [f"skewed (g1 = {shape['g1']:.2f}):", "  Gaussian not drawn", f"  ({shape['rule']})"]
+    if n_out:
+        lines += [f"{n_out} of {x.size} values beyond", "  the shown range, not drawn",
+                  f"  ({HISTOGRAM_PERCENTILES[0]:g}–{HISTOGRAM_PERCENTILES[1]:g} percentiles",
+                  f"  ± {100 * HISTOGRAM_PAD:g} % of their span)"]
+    ax.text(1.03, 1.0, "\n".join(lines), transform=ax.transAxes, va="top", ha="left", fontsize="small",
             bbox={"boxstyle": "round", "facecolor": "white", "alpha": 0.85, "edgecolor": _GREY})
     ax.set_xlabel(f"{label} ({unit})")
     ax.set_ylabel(f"probability density (1/{unit})")
-    ax.legend(fontsize="small", loc="upper right")
+    ax.legend(fontsize="small", loc="lower left", bbox_to_anchor=(1.02, 0.0), frameon=False)
     return fig
 
 
