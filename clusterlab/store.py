@@ -29,12 +29,14 @@ Workers never touch the store.
 from __future__ import annotations
 
 import json
+import logging
 import math
 import os
 import socket
 import sqlite3
 import threading
 import time
+import warnings
 from collections.abc import Iterator, Mapping, MutableMapping
 from dataclasses import dataclass
 from pathlib import Path
@@ -43,8 +45,11 @@ from typing import Any
 from .versions import __version__
 from .errors import InputError, ProvenanceError, StudyFileError
 
+_log = logging.getLogger(__name__)
+
 __all__ = [
     "ResultStore",
+    "StoreFolderNotice",
     "StoredRecord",
     "task_key",
     "canonical_json",
@@ -328,13 +333,41 @@ def _flatten(d: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
     return out
 
 
+class StoreFolderNotice(UserWarning):
+    """Issued when opening a result store creates the folder it lives in (a
+    mistyped path then shows at once instead of results landing in a new,
+    unexpected folder). Silence it with ``warnings.filterwarnings("ignore",
+    category=StoreFolderNotice)``."""
+
+
+def _make_parent(path: Path) -> str | None:
+    """Create the missing folders above a store file; say which, once (warning and log line).
+    Returns the created folder (absolute) or None when it existed."""
+    parent = path.parent
+    if parent.exists():
+        return None
+    top = parent
+    while not top.parent.exists() and top.parent != top:
+        top = top.parent  # the outermost folder that will be new
+    parent.mkdir(parents=True, exist_ok=True)
+    where = str(parent.resolve())
+    msg = (f"result store {str(path)!r}: folder {where!r} did not exist and was created"
+           + (f" (new from {str(top.resolve())!r} down)" if top != parent else ""))
+    _log.info(msg)
+    warnings.warn(msg, StoreFolderNotice, stacklevel=3)
+    return where
+
+
 class ResultStore:
     """SQLite result store of one study.
 
     Parameters
     ----------
     path : str or os.PathLike
-        The ``.sqlite`` file; created (with parent folders) if missing.
+        The ``.sqlite`` file; created if missing. Missing parent folders are
+        created too, with a :class:`StoreFolderNotice` warning (and an INFO
+        log line) naming the new folder; :attr:`created_folder` holds it
+        (None when the folder existed).
     readonly : bool
         Open for reading only (another process may be writing).  The file
         must exist.
@@ -379,6 +412,7 @@ class ResultStore:
             )
         self._lock = threading.RLock()
         self._conn = None
+        self.created_folder: str | None = None
         if self.path.is_dir():
             raise StudyFileError(
                 f"result store {str(self.path)!r} is a directory; give the path of a .sqlite file "
@@ -390,7 +424,7 @@ class ResultStore:
             uri = f"file:{self.path.resolve().as_posix()}?mode=ro"
             conn = sqlite3.connect(uri, uri=True, timeout=timeout_s, check_same_thread=False)
         else:
-            self.path.parent.mkdir(parents=True, exist_ok=True)
+            self.created_folder = _make_parent(self.path)
             conn = sqlite3.connect(
                 str(self.path), timeout=timeout_s, check_same_thread=False,
                 isolation_level=None,  # explicit BEGIN/COMMIT below

@@ -15,7 +15,9 @@ import pytest
 
 from clusterlab import __version__
 from clusterlab.errors import InputError, StudyFileError
-from clusterlab.store import ResultStore, canonical_json, task_key
+import warnings
+
+from clusterlab.store import ResultStore, StoreFolderNotice, canonical_json, task_key
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -219,3 +221,25 @@ def test_task_key_sensitivity():
         task_key(**{**FIELDS, "radius_A": float("nan")})
     with pytest.raises(InputError, match="has type object"):
         task_key(method=object())
+
+
+def test_a_store_in_a_missing_folder_says_which_folder_it_created(tmp_path, caplog):
+    path = tmp_path / "new" / "deeper" / "study.sqlite"
+    with caplog.at_level("INFO", logger="clusterlab.store"):
+        with pytest.warns(StoreFolderNotice) as rec:
+            st = ResultStore(path)
+    st.close()
+    msg = str(rec[0].message)
+    assert str((tmp_path / "new" / "deeper").resolve()) in msg and "did not exist and was created" in msg
+    assert f"new from {str((tmp_path / 'new').resolve())!r} down" in msg
+    assert st.created_folder == str((tmp_path / "new" / "deeper").resolve()) and path.exists()
+    assert any("was created" in r.getMessage() for r in caplog.records)
+    # the warning points at the caller's line, not inside the store
+    assert rec[0].filename == __file__
+    # an existing folder: no word, nothing created
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", StoreFolderNotice)
+        with ResultStore(path) as again:
+            assert again.created_folder is None
+        with ResultStore(tmp_path / "other.sqlite") as beside:
+            assert beside.created_folder is None
