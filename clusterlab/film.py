@@ -13,6 +13,7 @@ Hill formula (``C8H6S2``).
 from __future__ import annotations
 
 import hashlib
+import logging
 import os
 import re
 import warnings
@@ -32,6 +33,8 @@ from .cluster import Cluster
 from .errors import CarvingError, ChargeError, FilmError, InputError, MoleculeBoundaryWarning
 from .geometry import box_vectors, half_box_width_A, make_whole, minimum_image, perpendicular_widths, wrap_molecules
 from .ranges import parse_species
+
+_log = logging.getLogger(__name__)
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -100,6 +103,29 @@ def _guess_from_name(name: str) -> str | None:
         return None
     sym = str(sym).title()
     return sym if sym in _KNOWN else None
+
+
+class GuessedElementsWarning(UserWarning):
+    """Warned, in one line, when a topology does not give the elements of
+    its atoms and they are guessed from atom names or masses. The line
+    gives the count and the rule; every guessed atom is in
+    :attr:`Film.guessed_elements`, and one line per residue name, atom name
+    and element goes to the ``clusterlab.film`` logger at DEBUG level."""
+
+
+def guessed_elements_line(table: pd.DataFrame, n_atoms: int, topology: str) -> str:
+    """The one line that says how many elements were guessed, and by which rule.
+
+    ``table`` is :attr:`Film.guessed_elements` (``guessed_from``: ``name`` or
+    ``mass``)."""
+    how = table["guessed_from"].value_counts()
+    parts = []
+    if how.get("name", 0):
+        parts.append(f"{int(how['name'])} from the atom name (where a mass is given it agrees)")
+    if how.get("mass", 0):
+        parts.append(f"{int(how['mass'])} from the mass (the name gave no element, or another one)")
+    return (f"{topology}: elements guessed for {len(table)} of {n_atoms} atoms, " + " and ".join(parts)
+            + "; per atom in Film.guessed_elements, per atom name at DEBUG level of the 'clusterlab.film' logger")
 
 
 class MixedSpeciesWarning(UserWarning):
@@ -350,13 +376,10 @@ class Film:
             )
         table = pd.DataFrame(guessed, columns=["atom", "name", "resname", "element", "guessed_from"])
         if len(table):
+            warnings.warn(guessed_elements_line(table, n, self.topology_path), GuessedElementsWarning, stacklevel=4)
             groups = table.groupby(["resname", "name", "element", "guessed_from"]).size()
-            summary = "; ".join(f"{r}:{nm}->{e} (by {how}, {k} atoms)" for (r, nm, e, how), k in list(groups.items())[:8])
-            warnings.warn(
-                f"{self.topology_path}: elements guessed for {len(table)} atom(s): {summary}"
-                + (" ..." if len(groups) > 8 else ""),
-                stacklevel=3,
-            )
+            for (r, nm, e, how), k in groups.items():
+                _log.debug("%s: %s:%s -> %s (by %s, %d atoms)", self.topology_path, r, nm, e, how, k)
         return syms.astype(str), table
 
     def _name_unnamed(self) -> bool:

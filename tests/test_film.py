@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import warnings
+from pathlib import Path
 
 import MDAnalysis as mda
 import numpy as np
@@ -11,6 +12,7 @@ import pytest
 from clusterlab import load_film
 from clusterlab.charges import MoleculeTypeCharges
 from clusterlab.errors import ChargeError, FilmError
+from clusterlab.film import GuessedElementsWarning
 
 from conftest import TIP3P_Q, build_water_universe, lattice_centres
 
@@ -131,10 +133,33 @@ def test_element_guessing_is_reported(tmp_path):
     text.append("END")
     p = tmp_path / "noelem.pdb"
     p.write_text("\n".join(text) + "\n")
-    with pytest.warns(UserWarning, match="elements guessed for 4 atom"):
+    with pytest.warns(GuessedElementsWarning, match="elements guessed for 4 of 4 atoms, 4 from the atom name"):
         film = load_film(str(p))
     assert list(film.symbols) == ["C", "O", "N", "H"]
     assert list(film.guessed_elements.element) == ["C", "O", "N", "H"]
+
+
+def test_guessed_elements_of_a_whole_film_are_one_line_with_details_on_request(caplog):
+    # the demo film's PSF names its atoms (C2A, S1B, ...) but gives no element column: loading it used
+    # to print a long warning listing the guesses; now one line with the count and the rule
+    root = Path(__file__).resolve().parents[1] / "demo_traj"
+    with caplog.at_level("DEBUG", logger="clusterlab.film"):
+        with warnings.catch_warnings(record=True) as rec:
+            warnings.simplefilter("always")
+            film = load_film(str(root / "bithiophene_film.psf"))
+    guessed = [w for w in rec if issubclass(w.category, GuessedElementsWarning)]
+    assert len(guessed) == 1
+    text = str(guessed[0].message)
+    assert "\n" not in text and len(text) < 300
+    assert "elements guessed for 4096 of 4096 atoms, 4096 from the atom name" in text
+    assert "Film.guessed_elements" in text
+    # the details: every atom in the table, one DEBUG line per residue/atom name (16 names of BTH)
+    assert len(film.guessed_elements) == film.n_atoms == 4096
+    names = film.guessed_elements.groupby(["resname", "name"]).ngroups
+    debug = [r for r in caplog.records if r.levelname == "DEBUG" and "->" in r.getMessage()]
+    assert names == 16 and len(debug) == names
+    # element counts agree with the film's formula (C8H6S2 x 256)
+    assert film.guessed_elements.element.value_counts().to_dict() == {"C": 2048, "H": 1536, "S": 512}
 
 
 def test_unknown_element_is_an_error(tmp_path):
