@@ -66,3 +66,9 @@ class MoleculeBoundaryWarning(UserWarning):
     spread over several residues. Molecules are the fragments then; the
     warning names the residues, so that a missing bond or a residue numbering
     slip does not pass unseen."""
+
+
+class QMRegionSizeWarning(UserWarning):
+    """Warned before a calculation whose QM region is much larger than its
+    central molecule (a QM shell that pulls in many neighbours): the message
+    gives the atom and basis-function counts and a rough cost factor."""

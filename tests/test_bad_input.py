@@ -265,3 +265,39 @@ def test_cli_run_in_which_every_task_failed_exits_nonzero(monkeypatch, tmp_path,
     ok.sample.table = pd.DataFrame({"S1_eV": [3.0]})
     monkeypatch.setattr(pipeline, "run_study", lambda study, **kw: ok)
     assert main(["run", "study.toml", "--quiet"]) == 0
+
+
+def test_a_qm_shell_that_fills_the_qm_region_is_warned_before_anything_runs():
+    # a 4 x 4 x 4 water lattice (4 Å spacing): an 8 Å QM shell pulls dozens of neighbours into the QM
+    # region. cluster_task only describes the task (nothing runs), and warns with the counts there.
+    from clusterlab.errors import QMRegionSizeWarning
+    from clusterlab.qm import engine
+    from clusterlab.study.tasks import cluster_task
+
+    box = np.array([16.0, 16.0, 16.0, 90.0, 90.0, 90.0])
+    u, _ = build_water_universe(lattice_centres(4, 0.05, np.random.default_rng(1)), box)
+    film = film_from_universe(u)
+    method = Method(xc="hf", basis="sto-3g")
+    engine._QM_SIZE_WARNED.clear()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", QMRegionSizeWarning)
+        cluster_task(film, 0, 8.0, method, qm_shell_A=1.0)  # no neighbour within 1 Å: no word
+    big = film.carve(0, 8.0, qm_shell=8.0)
+    k = len(big.qm_molecules)
+    assert big.n_qm_atoms == 3 * k > 100
+    with pytest.warns(QMRegionSizeWarning) as rec:
+        cluster_task(film, 0, 8.0, method, qm_shell_A=8.0)
+    msg = str(rec[0].message)
+    assert rec[0].filename == __file__  # points at the caller
+    # STO-3G is a minimal basis: 5 functions on O (1s 2s 2p), 1 on H (Hehre, Stewart & Pople, J. Chem.
+    # Phys. 51, 2657, 1969), so 7 per water and a cost factor of k³ for k waters
+    assert f"holds {3 * k} atoms in {k} molecules (3 in the central molecule 0, {3 * k - 3} added" in msg
+    assert f"{7 * k} basis functions (sto-3g) against 7" in msg and f"≈ {k ** 3:.0f}×" in msg
+    assert "rough estimate" in msg
+    # once per process and region size: the next radius of the same scan says nothing more
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", QMRegionSizeWarning)
+        cluster_task(film, 0, 10.0, method, qm_shell_A=8.0)
+    # the engine gives the same text to the result's warnings (qm_region_size_note)
+    assert engine.qm_region_size_note(big, method) == msg
+    assert engine.qm_region_size_note(film.carve(0, 8.0), method) is None

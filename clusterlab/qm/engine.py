@@ -31,7 +31,7 @@ import numpy.typing as npt
 
 from ..cluster import Cluster
 from ..electrostatics.thole import THOLE_EXP_A, atomic_polarizabilities
-from ..errors import ConvergenceError, GeometryError, InputError
+from ..errors import ConvergenceError, GeometryError, InputError, QMRegionSizeWarning
 from ..units import AU_DIPOLE_TO_DEBYE, HARTREE_TO_EV
 from ..versions import software_versions
 from .calc import (
@@ -41,6 +41,7 @@ from .calc import (
     WarmStart,
     calculate,
     check_method,
+    build_molecule,
     ion_states,
     n_electrons,
     omp_threads,
@@ -61,6 +62,67 @@ NEUTRAL_TOL_E = 1e-4
 class EmbeddingWarning(UserWarning):
     """Issued when the environment carries a net charge (non-neutral
     embedding), or a calculation falls back or fails to converge."""
+
+
+#: a QM region is warned about (:func:`qm_region_size_note`) when it has more than this many atoms
+#: and more than :data:`QM_REGION_CENTRAL_FACTOR` times its central molecule's atoms (common practice:
+#: a shell that doubles the QM region multiplies the cost by about 8)
+QM_REGION_WARN_ATOMS = 100
+QM_REGION_CENTRAL_FACTOR = 2.0
+
+_QM_SIZE_WARNED: set[tuple] = set()
+
+
+def _n_basis(symbols, method: Method) -> int:
+    spin = n_electrons(symbols, 0) % 2
+    return int(build_molecule(list(symbols), np.zeros((len(symbols), 3)) + np.arange(len(symbols))[:, None],
+                              method, spin=spin).nao_nr())
+
+
+def qm_region_size_note(cluster: Cluster, method: Method) -> str | None:
+    """A warning text when the QM region of ``cluster`` is large, else None.
+
+    Large: more than :data:`QM_REGION_WARN_ATOMS` atoms and more than
+    :data:`QM_REGION_CENTRAL_FACTOR` times the central molecule's atoms
+    (the first of ``cluster.qm_molecules``). The text gives both atom
+    counts, both basis sizes in ``method.basis`` and a rough cost factor
+    (N_basis(region) / N_basis(central))³: the SCF and response steps of
+    dense linear algebra scale about as the cube of the basis size (common
+    practice; integrals and the XC grid scale differently, so it is a rough
+    estimate, not a prediction).
+    """
+    n = int(cluster.n_qm_atoms)
+    if n == 0:
+        return None
+    central_mask = (np.asarray(cluster.qm_atom_molecules) == cluster.qm_molecules[0]
+                    if len(cluster.qm_molecules) else np.ones(n, bool))
+    n_central = int(np.count_nonzero(central_mask)) or n
+    if n <= max(QM_REGION_WARN_ATOMS, QM_REGION_CENTRAL_FACTOR * n_central):
+        return None
+    symbols = list(cluster.qm_symbols)
+    nbf = _n_basis(symbols, method)
+    nbf0 = _n_basis([s for s, c in zip(symbols, central_mask) if c], method)
+    factor = (nbf / nbf0) ** 3
+    return (f"the QM region holds {n} atoms in {len(cluster.qm_molecules)} molecules ({n_central} in the central "
+            f"molecule {cluster.center}, {n - n_central} added by the QM shell): {nbf} basis functions "
+            f"({method.basis}) against {nbf0} for the central molecule alone, so each SCF and response step "
+            f"costs roughly ({nbf}/{nbf0})³ ≈ {factor:.0f}× the central molecule's (a rough estimate: cubic "
+            "scaling of the linear algebra; memory grows as the square). A smaller qm_shell is cheaper.")
+
+
+def warn_qm_region_size(cluster: Cluster, method: Method, *, stacklevel: int = 2) -> str | None:
+    """Warn (:class:`~clusterlab.errors.QMRegionSizeWarning`) about a large QM
+    region, once per process for each region size and basis; returns the text
+    (:func:`qm_region_size_note`) or None."""
+    msg = qm_region_size_note(cluster, method)
+    if msg is None:
+        return None
+    key = (cluster.n_qm_atoms, len(cluster.qm_molecules), method.basis)
+    if key not in _QM_SIZE_WARNED:
+        _QM_SIZE_WARNED.add(key)
+        warnings.warn(msg, QMRegionSizeWarning, stacklevel=stacklevel + 1)
+        log.warning("clusterlab.qm: %s", msg)
+    return msg
 
 
 # ----------------------------------------------------------------- checks
@@ -219,6 +281,9 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: bool | Calculation
                "monopole potential of that charge; check the charge source or the carving rule.")
         warnings.warn(msg, EmbeddingWarning, stacklevel=3)
         warn.append(msg)
+    big = warn_qm_region_size(cluster, method, stacklevel=3)
+    if big is not None:
+        warn.append(big)
     log.info("clusterlab.qm: %s; %d QM atoms, %d charges", method.describe(), cluster.n_qm_atoms, len(env_q))
     guess_dm, guess_calc = _guess_parts(guess)
     timings: dict[str, float] = {}

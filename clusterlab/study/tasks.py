@@ -77,10 +77,27 @@ def cluster_task(
     extra = {}
     if pol_r is not None:
         payload["polarizable_radius_A"] = extra["polarizable_radius_A"] = pol_r
+    if float(qm_shell_A) > 0 and kind == "excitations":
+        _warn_qm_shell(film, molecule, radius, frame, rule, float(qm_shell_A), method)
     key = task_key(film_id=film.film_id, frame=frame, molecule=molecule,
                    radius_A=payload["radius_A"], rule=rule, qm_shell_A=float(qm_shell_A),
                    method_key=method.key(), kind=kind, version=__version__, **extra)
     return Task(key=key, kind=kind, payload=payload)
+
+
+def _warn_qm_shell(film: Film, molecule: int, radius_A: float, frame: int, rule: str, qm_shell_A: float,
+                   method: Method) -> None:
+    """Before any task runs: carve the cluster a QM shell makes and warn when its QM region is large
+    (:func:`clusterlab.qm.engine.warn_qm_region_size`: atom count and a rough cost). A cluster that
+    cannot be carved here is left to the worker, which raises the real error."""
+    from ..errors import ClusterlabError
+    from ..qm.engine import warn_qm_region_size
+
+    try:
+        cluster = film.carve(molecule, radius_A, frame=frame, rule=rule, qm_shell=qm_shell_A)
+    except ClusterlabError:
+        return
+    warn_qm_region_size(cluster, method, stacklevel=3)
 
 
 def check_film_method(film: Film, method: Method) -> None:
