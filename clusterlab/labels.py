@@ -55,9 +55,10 @@ _UNITS = (("_meV", "meV"), ("_eV", "eV"), ("_A", "Å"), ("_s", "s"), ("_e", "e")
 
 
 def shown_in_meV(name: str) -> bool:
-    """Whether a column in eV is shown in meV: environment shifts, polarization parts and widths σ."""
+    """Whether a column in eV is shown in meV: environment shifts, polarization parts and widths
+    (σ, the spread of a host-guest difference)."""
     s = str(name)
-    return s.endswith("_eV") and ("_shift" in s or "_polarization" in s or s.startswith("sigma"))
+    return s.endswith("_eV") and ("_shift" in s or "_polarization" in s or s.startswith(("sigma", "spread")))
 
 
 def column_label(name: str) -> str:

@@ -143,12 +143,8 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
         rep.text("σ intervals: " + "; ".join(dict.fromkeys(notes)) + ".")
         rep.display(stats, [c for c in stats.columns if c != "sigma_ci_method"])
         if "species" in t.columns and t["species"].nunique() > 1:
-            per = pd.concat([sample.stats(q, by="species", n_boot=n_boot, seed=0).assign(quantity=q)
-                             for q in stats.quantity], ignore_index=True)
-            per = per.rename(columns={"mean": "mean_eV", "sigma": "sigma_eV", "sigma_ci_lo": "sigma_lo_eV",
-                                      "sigma_ci_hi": "sigma_hi_eV"})
-            rep.text("Per species (σ interval by the same rule):")
-            rep.table(per, ["quantity", "species", "n", "mean_eV", "sigma_eV", "sigma_lo_eV", "sigma_hi_eV"])
+            # the per-species table is the host:guest section's (doped_section): shown once, there
+            rep.text("Per species: see the host:guest section below.")
         q0 = stats.quantity.iloc[0]
         rep.figure(plot_histogram(t[q0].to_numpy(dtype=float), label=q0.replace("_eV", "")),
                    f"histogram_{q0}.png", f"Distribution of {q0} with the Gaussian of its mean and σ")
@@ -326,6 +322,7 @@ def doped_section(rep: ReportWriter, film: Any, sites: Any, *, states: Any = Non
     (the arguments are its own). Writes nothing and returns None for a film
     of one species; else returns the overview.
     """
+    from .stats import SIGMA_BOOTSTRAP_MIN_N
     from .study.doped import host_guest_overview
     from .study.plots import plot_torsion
 
@@ -341,13 +338,19 @@ def doped_section(rep: ReportWriter, film: Any, sites: Any, *, states: Any = Non
     counts = film.species
     rep.section(f"Host:guest film (host {se.host}, {counts.get(se.host, 0)} molecules; guest {se.guest}, "
                 f"{counts.get(se.guest, 0)} molecules)",
-                "Per-species site energies (95 % bootstrap intervals). Trap depths: hole = IP_host − IP_guest, "
+                f"Per-species site energies: {100 * se.confidence:g} % intervals, σ by the one rule of the "
+                f"report (chi-square below {SIGMA_BOOTSTRAP_MIN_N} sites, bootstrap BCa from there; column σ "
+                "interval). Trap depths: hole = IP_host − IP_guest, "
                 "electron = EA_guest − EA_host (IP = E(cation) − E(neutral), EA = E(neutral) − E(anion)); "
-                "positive = the guest traps that carrier. Vertical energies of the embedding model.")
-    rep.table(se.stats, ["species", "quantity", "n", "mean_eV", "sigma_eV", "sigma_lo_eV", "sigma_hi_eV"])
+                "positive = the guest traps that carrier; the depth's interval is a bootstrap interval of a "
+                "difference of means, the spread (σ of a host−guest site difference) follows the σ rule on the "
+                "smaller species. Vertical energies of the embedding model.")
+    rep.display(se.stats, ["species", "quantity", "n", "mean_eV", "sigma_eV", "sigma_lo_eV", "sigma_hi_eV",
+                           "sigma_ci_method"])
     if len(se.traps):
-        rep.table(se.traps, ["carrier", "definition", "depth_eV", "depth_lo_eV", "depth_hi_eV", "spread_eV",
-                             "n_host", "n_guest"])
+        rep.display(se.traps.rename(columns={"spread_ci_method": "sigma_ci_method"}),
+                    ["carrier", "definition", "depth_eV", "depth_lo_eV", "depth_hi_eV", "spread_eV",
+                     "spread_lo_eV", "spread_hi_eV", "sigma_ci_method", "n_host", "n_guest"])
     else:
         rep.text("(no trap depths: the sites have no IP/EA values of both species)")
     if ov.confinement is not None:

@@ -1129,8 +1129,13 @@ def mean_offset(
         ``offset`` (difference of the means), ``offset_lo``, ``offset_hi``
         (percentile bootstrap interval), ``spread`` = sqrt(σ1² + σ2²) (ddof=1):
         the standard deviation of the difference between a random member of
-        ``first`` and a random member of ``second``, ``n_first``,
-        ``n_second``, ``confidence``, ``n_boot``. Unit of the input.
+        ``first`` and a random member of ``second``, with its interval by the
+        one σ rule of :func:`reported_sigma_interval` on the smaller sample
+        (``spread_ci_lo``, ``spread_ci_hi``, ``spread_ci_method``: chi-square
+        with Satterthwaite's ``spread_dof`` degrees of freedom below
+        :data:`SIGMA_BOOTSTRAP_MIN_N`, else the stratified percentile
+        bootstrap), ``n_first``, ``n_second``, ``confidence``, ``n_boot``.
+        Unit of the input.
 
     Raises
     ------
@@ -1154,19 +1159,36 @@ def mean_offset(
         raise InputError(f"mean_offset needs at least 2 finite values in each sample; got {a.size} and {b.size}")
     rng = np.random.default_rng(seed)
     boot = np.empty(int(n_boot))
+    boot_spread = np.empty(int(n_boot))
     rows = max(1, _BOOT_BLOCK // max(a.size, b.size))
     for start in range(0, int(n_boot), rows):
         k = min(rows, int(n_boot) - start)
-        boot[start:start + k] = (a[rng.integers(0, a.size, size=(k, a.size))].mean(axis=1)
-                                 - b[rng.integers(0, b.size, size=(k, b.size))].mean(axis=1))
+        ra = a[rng.integers(0, a.size, size=(k, a.size))]
+        rb = b[rng.integers(0, b.size, size=(k, b.size))]
+        boot[start:start + k] = ra.mean(axis=1) - rb.mean(axis=1)
+        boot_spread[start:start + k] = np.sqrt(ra.var(axis=1, ddof=1) + rb.var(axis=1, ddof=1))
     alpha = 0.5 * (1.0 - confidence)
     lo, hi = np.quantile(boot, [alpha, 1.0 - alpha])
     offset = float(a.mean() - b.mean())
     if np.ptp(boot) <= 1e-12 * max(1.0, abs(offset)):  # constant samples: the interval is the value
         lo = hi = offset
+    va, vb = float(np.var(a, ddof=1)), float(np.var(b, ddof=1))
+    spread = math.sqrt(va + vb)
+    # the spread is a width like σ: its interval follows the one rule (reported_sigma_interval) on the
+    # smaller sample; the chi-square branch uses Satterthwaite's degrees of freedom for a sum of two
+    # variances (Satterthwaite, Biometrics Bulletin 2, 110, 1946), exact when the two σ are equal
+    if va + vb > 0.0:
+        nu = (va + vb) ** 2 / (va**2 / (a.size - 1) + vb**2 / (b.size - 1))
+        chi_hi, chi_lo = stats.chi2.ppf([1.0 - alpha, alpha], nu)
+        chi2 = (spread * math.sqrt(nu / chi_hi), spread * math.sqrt(nu / chi_lo))
+        boot_ci = tuple(float(v) for v in np.quantile(boot_spread, [alpha, 1.0 - alpha]))
+    else:
+        nu, chi2, boot_ci = float("nan"), (0.0, 0.0), (0.0, 0.0)
+    ci = reported_sigma_interval(min(a.size, b.size), boot_ci, chi2, "percentile")
     return pd.Series({
-        "offset": offset, "offset_lo": float(lo), "offset_hi": float(hi),
-        "spread": math.sqrt(float(np.var(a, ddof=1)) + float(np.var(b, ddof=1))),
+        "offset": offset, "offset_lo": float(lo), "offset_hi": float(hi), "spread": spread,
+        "spread_ci_lo": ci["sigma_ci_lo"], "spread_ci_hi": ci["sigma_ci_hi"], "spread_ci_method": ci["sigma_ci_method"],
+        "spread_dof": float(nu),
         "n_first": int(a.size), "n_second": int(b.size), "confidence": confidence, "n_boot": int(n_boot),
     }, dtype=object)
 

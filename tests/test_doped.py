@@ -11,13 +11,14 @@ import pandas as pd
 import pytest
 from MDAnalysis.coordinates.memory import MemoryReader
 from MDAnalysis.lib.distances import calc_dihedrals
+from scipy import stats as sps
 
 from clusterlab import Cluster, Method, excitations, film_from_universe
 from clusterlab.errors import InputError
 from clusterlab.geometry import dihedral_deg
 from clusterlab.qm.results import ExcitationResult, ExcitedState
 from clusterlab.report import ReportWriter, doped_section
-from clusterlab.stats import mean_offset, periodic_fit
+from clusterlab.stats import disorder_stats, mean_offset, periodic_fit
 from clusterlab.store import ResultStore, task_key
 from clusterlab.study import SiteSample
 from clusterlab.study.doped import (ConfinementResult, HostGuestOverview, MissingNeighboursError, SpeciesEnergies,
@@ -434,3 +435,53 @@ def test_nothing_new_for_a_one_species_film(tmp_path):
     rep = ReportWriter(str(tmp_path / "rep"), "t")
     n_lines = len(rep.lines)
     assert doped_section(rep, film, t) is None and len(rep.lines) == n_lines
+
+
+def test_per_species_sigma_and_trap_spread_follow_the_one_interval_rule(film, tmp_path):
+    # the host:guest tables used bootstrap σ intervals at any n while the rest of the report used the
+    # one rule (chi-square below 30 values, BCa from there: stats.disorder_stats)
+    rng = np.random.default_rng(11)
+    guest = film.molecules["species"].to_numpy() == "GST"
+    sp = np.where(guest, "GST", "HST")
+    t = site_rows(film, IP_eV=np.where(guest, 5.6, 6.0) + rng.normal(0, 0.1, film.n_molecules),
+                  EA_eV=np.where(guest, 2.9, 2.5) + rng.normal(0, 0.05, film.n_molecules))
+    se = species_energies(t, film=film, n_boot=500, seed=2)
+    st = se.stats.set_index(["species", "quantity"])
+    host_ip = t.loc[sp == "HST", "IP_eV"].to_numpy()
+    ref = disorder_stats(host_ip, n_boot=500, seed=2)
+    row = st.loc[("HST", "IP_eV")]
+    assert row.n == 62 and row.sigma_ci_method == "bootstrap BCa"
+    assert (row.sigma_lo_eV, row.sigma_hi_eV) == (ref["sigma_ci_lo"], ref["sigma_ci_hi"])
+    # the spread's interval: n_guest = 2 < 30, so chi-square with Satterthwaite's degrees of freedom;
+    # with equal σ that is exact: (n1 + n2 - 2) S_p² / σ² ~ chi2(n1 + n2 - 2) (checked below on equal
+    # samples against scipy's chi-square quantiles)
+    tr = se.traps.set_index("carrier")
+    assert tr.loc["hole", "spread_ci_method"] == "chi-square"
+    assert tr.loc["hole", "spread_lo_eV"] < tr.loc["hole", "spread_eV"] < tr.loc["hole", "spread_hi_eV"]
+    a = rng.normal(0, 0.1, 12)
+    b = a[::-1] * 1.0 + 0.3  # same variance exactly
+    o = mean_offset(a, b, n_boot=500, seed=0)
+    assert o["spread_dof"] == pytest.approx(22.0)
+    s2 = np.var(a, ddof=1) + np.var(b, ddof=1)
+    lo = np.sqrt(22 * s2 / sps.chi2.ppf(0.975, 22))
+    hi = np.sqrt(22 * s2 / sps.chi2.ppf(0.025, 22))
+    assert (o["spread_ci_lo"], o["spread_ci_hi"]) == (pytest.approx(lo, rel=1e-12), pytest.approx(hi, rel=1e-12))
+    # from 30 values in the smaller sample on: the stratified bootstrap of the spread
+    big = mean_offset(rng.normal(0, 0.1, 40), rng.normal(0, 0.2, 35), n_boot=500, seed=0)
+    assert big["spread_ci_method"] == "bootstrap percentile"
+    assert big["spread_ci_lo"] < big["spread"] < big["spread_ci_hi"]
+
+
+def test_report_shows_the_per_species_table_once(film, tmp_path):
+    from clusterlab.report import sample_section
+
+    sites = _doped_sites(film)
+    rep = ReportWriter(str(tmp_path / "rep"), "t")
+    sample = SiteSample(table=sites)
+    sample_section(rep, sample, ["S1_eV"], n_boot=200, correlation=False)
+    doped_section(rep, film, sample, cutoff_A=4.5, n_boot=200)
+    text = "\n".join(rep.lines)
+    header = "| species | quantity | n | mean (eV) | σ (meV) | σ low (meV) | σ high (meV) | σ interval |"
+    assert text.count(header) == 1 and text.count("| HST | S1_eV |") == 1
+    assert "Per species: see the host:guest section below." in text
+    assert "σ by the one rule of the report (chi-square below 30 sites" in text

@@ -174,14 +174,19 @@ class SpeciesEnergies(_TableResult):
     ----------
     stats : pandas.DataFrame
         One row per (species, quantity): ``species, quantity, n, mean_eV,
-        mean_lo_eV, mean_hi_eV, sigma_eV, sigma_lo_eV, sigma_hi_eV``
-        (:func:`~clusterlab.stats.disorder_stats`, BCa intervals; NaN when a
-        species has fewer than 3 values).
+        mean_lo_eV, mean_hi_eV, sigma_eV, sigma_lo_eV, sigma_hi_eV,
+        sigma_ci_method`` (:func:`~clusterlab.stats.disorder_stats`: BCa
+        interval of the mean; σ with the one reported interval, chi-square
+        below :data:`~clusterlab.stats.SIGMA_BOOTSTRAP_MIN_N` values, BCa from
+        there; NaN when a species has fewer than 3 values).
     traps : pandas.DataFrame
         One row per carrier (``hole``, ``electron``) whose quantity the table
         has: ``carrier, definition, depth_eV, depth_lo_eV, depth_hi_eV,
-        spread_eV, n_host, n_guest`` (:func:`~clusterlab.stats.mean_offset`;
-        the spread is that of the difference of a random host and guest site).
+        spread_eV, spread_lo_eV, spread_hi_eV, spread_ci_method, n_host,
+        n_guest`` (:func:`~clusterlab.stats.mean_offset`: percentile bootstrap
+        interval of the depth, a difference of means; the spread is the σ of
+        the difference of a random host and guest site, its interval by the
+        same σ rule as every σ).
         Positive depth: the guest traps that carrier (module docstring).
     host, guest : str
     radius_A : float or None
@@ -279,17 +284,21 @@ def species_energies(sites: Any, *, film: Film | None = None, host: str | None =
     r_used = float(df["radius_A"].iloc[0]) if "radius_A" in df.columns and len(df) else None
     qs = [q for q in quantities if q in df.columns]
     rows = []
-    keys = ("mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi")
+    # σ with the one reported interval of disorder_stats (chi-square below SIGMA_BOOTSTRAP_MIN_N sites)
+    keys = {"mean": "mean_eV", "mean_lo": "mean_lo_eV", "mean_hi": "mean_hi_eV", "sigma": "sigma_eV",
+            "sigma_ci_lo": "sigma_lo_eV", "sigma_ci_hi": "sigma_hi_eV"}
     for q in qs:
         per = grouped_disorder_stats(pd.to_numeric(df[q], errors="coerce").to_numpy(dtype=float),
                                      df["species"].to_numpy(), name="species", n_boot=n_boot, seed=seed,
                                      confidence=confidence)
         for _, g in per.iterrows():
+            method = g["sigma_ci_method"]
             rows.append({"species": g["species"], "quantity": q, "n": int(g["n"]),
-                         **{f"{k}_eV": float(g[k]) for k in keys}})
+                         **{v: float(g[k]) for k, v in keys.items()},
+                         "sigma_ci_method": method if isinstance(method, str) else ""})
     rows.sort(key=lambda r: (r["species"], qs.index(r["quantity"])))
     stats = pd.DataFrame(rows, columns=["species", "quantity", "n", "mean_eV", "mean_lo_eV", "mean_hi_eV",
-                                        "sigma_eV", "sigma_lo_eV", "sigma_hi_eV"])
+                                        "sigma_eV", "sigma_lo_eV", "sigma_hi_eV", "sigma_ci_method"])
     traps = []
     for carrier, q, first, second, text in (("hole", "IP_eV", host, guest, "IP_host - IP_guest"),
                                             ("electron", "EA_eV", guest, host, "EA_guest - EA_host")):
@@ -303,11 +312,13 @@ def species_energies(sites: Any, *, film: Film | None = None, host: str | None =
         n_first, n_second = int(o["n_first"]), int(o["n_second"])
         traps.append({"carrier": carrier, "definition": text, "depth_eV": float(o["offset"]),
                       "depth_lo_eV": float(o["offset_lo"]), "depth_hi_eV": float(o["offset_hi"]),
-                      "spread_eV": float(o["spread"]),
+                      "spread_eV": float(o["spread"]), "spread_lo_eV": float(o["spread_ci_lo"]),
+                      "spread_hi_eV": float(o["spread_ci_hi"]), "spread_ci_method": o["spread_ci_method"],
                       "n_host": n_first if first == host else n_second,
                       "n_guest": n_second if first == host else n_first})
     trap_df = pd.DataFrame(traps, columns=["carrier", "definition", "depth_eV", "depth_lo_eV", "depth_hi_eV",
-                                           "spread_eV", "n_host", "n_guest"])
+                                           "spread_eV", "spread_lo_eV", "spread_hi_eV", "spread_ci_method",
+                                           "n_host", "n_guest"])
     return SpeciesEnergies(stats=stats, traps=trap_df, host=host, guest=guest, radius_A=r_used,
                            confidence=float(confidence), n_boot=int(n_boot), seed=int(seed))
 
