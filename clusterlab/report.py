@@ -65,6 +65,9 @@ class ReportWriter:
         os.makedirs(self.folder, exist_ok=True)
         self.lines: list[str] = [f"# {title}", "", MODEL_NOTE, ""]
         self.figures: list[str] = []
+        #: what the sections computed, for the headline at the top (:func:`headline_lines`): the
+        #: sections put their own results here, so the headline repeats numbers, it makes none
+        self.facts: dict[str, Any] = {}
 
     def section(self, title: str, text: str = "") -> None:
         self.lines += [f"## {title}", ""]
@@ -91,10 +94,105 @@ class ReportWriter:
         return path
 
     def write(self) -> str:
+        """Write ``summary.md``: the title, the model note, the headline ("What this film says",
+        from :attr:`facts`, when any section recorded some), then the sections."""
         path = os.path.join(self.folder, "summary.md")
+        head = headline_lines(self.facts) if self.facts else []
         with open(path, "w", encoding="utf-8") as fh:
-            fh.write("\n".join(self.lines).rstrip() + "\n")
+            fh.write("\n".join(self.lines[:4] + head + self.lines[4:]).rstrip() + "\n")
         return path
+
+
+#: one-line caution per model, for the headline (what each leaves out; the sections say more)
+CAUTIONS = {
+    "qm": "Embedded QM: fixed ground-state point charges only (no polarization, exchange or dispersion of the "
+          "environment), vertical energies, the functional's and basis set's own errors.",
+    "model": "Film-wide model: charges fitted on a few conformer references, so each copy's own distortion "
+             "is missing; no polarization of the environment for neutral excitations.",
+    "polarization": "Thole polarization (IP/EA): classical induced dipoles; no density response of the ion to "
+                    "them, no periodic images of the dipoles.",
+}
+
+
+def _mev(x: Any) -> str:
+    """meV with one decimal, as the report's tables show shifts and σ."""
+    return f"{1e3 * float(x):.1f} meV"
+
+
+def _sigma_words(row: Any, what: str) -> str:
+    lo, hi = (f"{1e3 * float(row[k]):.1f}" for k in ("sigma_lo_eV", "sigma_hi_eV"))
+    return (f"σ of {what} = {_mev(row['sigma_eV'])} [{lo}, {hi}] (95 % {row['sigma_ci_method']} "
+            f"interval, n = {int(row['n'])})")
+
+
+def headline_lines(facts: dict[str, Any]) -> list[str]:
+    """The report's top section, "What this film says", from what the sections recorded.
+
+    Convergence: the verdict of the radius scan (:attr:`ScanResult.verdict`) and the S1 shift at its
+    reference; disorder: σ of S1 with its one reported interval from the QM sample's statistics
+    (three sites or more), else from the film-wide model's table (the environmental part only); the
+    dominant part from the sample's conformational/environmental split; the shape the histogram found;
+    one caution per model that ran. A missing piece is said in words. No number is computed here.
+    """
+    out = ["## What this film says", ""]
+    items: list[str] = []
+    scan = facts.get("scan")
+    if scan is None:
+        items.append("Convergence with radius: no radius scan in this report.")
+    else:
+        v = scan.verdict
+        ref = v.reference.get("S1_shift_eV") if isinstance(v.reference, dict) else v.reference
+        if v.reference_kind == "largest radius":
+            radii = pd.to_numeric(scan.table["radius_A"], errors="coerce")
+            where = f"at the largest radius, {float(radii[np.isfinite(radii)].max()):g} Å"
+        else:
+            where = f"{v.reference_kind}"
+        shift = (f"S1 shift {where}: {_mev(ref)}" if ref is not None and np.isfinite(float(ref))
+                 else "no S1 shift in the scan")
+        if v.converged:
+            items.append(f"Convergence with radius: converged from {v.radius_A:g} Å within ±{1e3 * v.tol:g} meV "
+                         f"(slowest quantity: {_axis_name(str(v.quantity))}). {shift}.")
+        elif not v.judged:
+            items.append(f"Convergence with radius: not judged yet: {v.message}. {shift}, provisional.")
+        else:
+            items.append(f"Convergence with radius: not converged: {v.message}. {shift}, not a converged value.")
+    sample_stats = facts.get("sample_stats")
+    model_stats = facts.get("model_stats")
+    n_sites = facts.get("sample_sites")
+    if sample_stats is not None and len(sample_stats) and "S1_eV" in set(sample_stats["quantity"]):
+        row = sample_stats[sample_stats["quantity"] == "S1_eV"].iloc[0]
+        items.append("Static disorder (QM sample): " + _sigma_words(row, "the S1 site energy") + ".")
+    else:
+        why = ("no site-energy sample in this report" if n_sites is None else
+               f"the QM sample has {n_sites} site(s), σ needs 3")
+        if model_stats is not None and len(model_stats) and "S1_shift_eV" in set(model_stats["quantity"]):
+            mrow = model_stats[model_stats["quantity"] == "S1_shift_eV"].iloc[0]
+            items.append("Static disorder (film-wide model, the environmental part only): "
+                         + _sigma_words(mrow, "the S1 shift") + f"; {why}.")
+        else:
+            items.append(f"Static disorder: not available ({why}, and no film-wide model).")
+    ce = facts.get("conf_env")
+    if ce is not None and np.isfinite(float(ce["sigma_conf"])) and np.isfinite(float(ce["sigma_env"])):
+        conf, env = float(ce["sigma_conf"]), float(ce["sigma_env"])
+        part = "conformational" if conf > env else "environmental"
+        items.append(f"Dominant part of the S1 disorder: {part} (σ_conf = {_mev(conf)}, σ_env = {_mev(env)}, "
+                     "from the QM sample's vacuum energies and shifts).")
+    else:
+        items.append("Dominant part of the S1 disorder: not split (needs 3 or more QM sites with their vacuum "
+                     f"energies{'' if n_sites is None else f'; the sample has {n_sites}'}).")
+    for what, shape in facts.get("shapes", {}).items():
+        if shape["skewed"]:
+            items.append(f"Shape: {what} is skewed (g1 = {shape['g1']:.2f}, {shape['rule']}): σ is its width, "
+                         "it is not Gaussian.")
+    models = ["qm"] if facts.get("qm") else []
+    models += [m for m in ("model", "polarization") if facts.get(m)]
+    items += [f"Caution: {CAUTIONS[m]}" for m in models]
+    return out + [f"- {x}" for x in items] + [""]
+
+
+def _axis_name(column: str) -> str:
+    """'S1_shift_eV' -> 'S1 shift' (the histogram's axis names the unit itself)."""
+    return column[: -len("_eV")].replace("_", " ") if column.endswith("_eV") else column.replace("_", " ")
 
 
 def scan_section(rep: ReportWriter, scan) -> None:
@@ -102,6 +200,8 @@ def scan_section(rep: ReportWriter, scan) -> None:
     species = f", species {scan.species}" if getattr(scan, "species", None) else ""
     rep.section(f"Radius scan of molecule {scan.molecule}{species} (frame {scan.frame})",
                 f"Method: {scan.method.describe()}. **Verdict:** {scan.verdict.message}.")
+    rep.facts["scan"] = scan
+    rep.facts["qm"] = True
     rep.display(scan.table, ["radius_A", "n_env_molecules", "n_charges", "S1_eV", "S1_shift_eV", "T1_eV",
                              "T1_shift_eV", "dEST_eV", "IP_shift_eV", "EA_shift_eV", "converged"])
     rep.figure(scan.plot(), "convergence.png", "Environment shift vs cut radius, with the tolerance band")
@@ -119,7 +219,7 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
     correlation of the sample; a study with the film-wide model draws it from the model instead
     (:func:`model_correlation_section`)."""
     from .stats import sigma_interval_note
-    from .study.plots import plot_growth, plot_histogram
+    from .study.plots import plot_growth, plot_histogram, skew_check
 
     t = sample.at()
     unknown = [q for q in quantities if q not in sample.table.columns]
@@ -139,6 +239,7 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
                      "normality_p": s["normality_p"]})
         notes.append(sigma_interval_note(s))
     stats = pd.DataFrame(rows)
+    rep.facts.update({"sample_stats": stats, "sample_sites": len(t), "qm": True})
     if len(stats):
         rep.text("σ intervals: " + "; ".join(dict.fromkeys(notes)) + ".")
         rep.display(stats, [c for c in stats.columns if c != "sigma_ci_method"])
@@ -146,14 +247,19 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
             # the per-species table is the host:guest section's (doped_section): shown once, there
             rep.text("Per species: see the host:guest section below.")
         q0 = stats.quantity.iloc[0]
-        rep.figure(plot_histogram(t[q0].to_numpy(dtype=float), label=q0.replace("_eV", "")),
-                   f"histogram_{q0}.png", f"Distribution of {q0} with the Gaussian of its mean and σ")
+        values = t[q0].to_numpy(dtype=float)
+        shape = skew_check(values)
+        rep.facts.setdefault("shapes", {})[f"the QM sample's {_axis_name(q0)}"] = shape
+        rep.figure(plot_histogram(values, label=_axis_name(q0)), f"histogram_{q0}.png",
+                   f"Distribution of {q0}" + (" (skewed: no Gaussian drawn)" if shape["skewed"] else
+                                              " with the Gaussian of its mean and σ"))
     if t.frame.nunique() > 1 and "S1_eV" in t.columns:
         sd = sample.static_dynamic("S1_eV")
         rep.text(f"Static vs dynamic (S1): σ_static = {_fmt(sd['sigma_static'])} eV, "
                  f"σ_dynamic = {_fmt(sd['sigma_dynamic'])} eV, σ_total = {_fmt(sd['sigma_total'])} eV.")
     if {"S1_vacuum_eV", "S1_shift_eV"} <= set(t.columns) and len(t) >= 3:
         ce = sample.conformational_environmental("S1")
+        rep.facts["conf_env"] = ce
         rep.text(f"Conformational vs environmental (S1): σ_conf = {_fmt(ce['sigma_conf'])} eV, "
                  f"σ_env = {_fmt(ce['sigma_env'])} eV, correlation {_fmt(ce['correlation'], 2)}.")
     if sample.table.radius_A.nunique() > 1:
@@ -218,7 +324,7 @@ def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None 
     conformer references and the field response are read from it.
     """
     from .stats import disorder_stats
-    from .study.plots import plot_histogram
+    from .study.plots import plot_histogram, skew_check
 
     model_df = result.table
     n_fit = max([len(refs) for refs in result.charges.conformers.values()] or [1])
@@ -241,12 +347,18 @@ def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None 
     for c in cols:
         s = disorder_stats(model_df[c].to_numpy(dtype=float), n_boot=500, seed=0)
         rows.append(_sigma_row(c, s))
+    rep.facts["model"] = True
     if rows:
         st = pd.DataFrame(rows)
+        rep.facts["model_stats"] = st
         rep.display(st, list(st.columns))
         c0 = cols[0]
-        rep.figure(plot_histogram(model_df[c0].to_numpy(dtype=float), label=c0.replace("_eV", "")),
-                   "model_histogram.png", f"Film-wide model: distribution of {c0}")
+        values = model_df[c0].to_numpy(dtype=float)
+        shape = skew_check(values)
+        rep.facts.setdefault("shapes", {})[f"the film-wide model's {_axis_name(c0)}"] = shape
+        rep.figure(plot_histogram(values, label=_axis_name(c0)), "model_histogram.png",
+                   f"Film-wide model: distribution of {c0}" + (" (skewed: no Gaussian drawn)" if shape["skewed"]
+                                                              else ""))
     if "P_cation_eV" in model_df or "P_anion_eV" in model_df:
         polarization_section(rep, result)
     if parity:
@@ -290,6 +402,7 @@ def polarization_section(rep: ReportWriter, result: Any) -> None:
     st = polarization_table(result)
     if not len(st):
         return
+    rep.facts["polarization"] = True
     r_pol = o.get("polarizable_radius_A")
     scale = float(o.get("polarization_scale", 1.0))
     frames = o.get("polarization_frames") or o.get("frames")

@@ -92,3 +92,112 @@ def test_scan_section_reads_in_meV_and_names_the_vacuum_row(tmp_path):
     assert "cannot be judged yet" in text and "add a radius beyond 8 Å" in text
     assert "| vacuum | 0 | 3.100 | 0.0 |" in text and "| 8.0 | 90 | 3.013 | -87.3 |" in text
     assert "S1 shift (meV)" in text
+
+
+class _Method:
+    @staticmethod
+    def describe():
+        return "test method"
+
+
+def _scan(radii, shifts, tol=0.01):
+    from matplotlib.figure import Figure
+
+    table = pd.DataFrame({"radius_A": radii, "n_charges": [30 * (i + 1) for i in range(len(radii))],
+                          "S1_shift_eV": shifts, "converged": True})
+
+    class Scan:
+        molecule, frame, method = 3, 0, _Method
+        verdict = converged_radius(np.asarray(radii, float), np.asarray(shifts, float), tol=tol)
+
+        @staticmethod
+        def plot():
+            return Figure()
+
+    Scan.table = table
+    return Scan
+
+
+def _headline(path):
+    text = open(path, encoding="utf-8").read()
+    head = text.split("## What this film says", 1)[1].split("\n## ", 1)[0]
+    return text, head
+
+
+def test_headline_repeats_the_sections_numbers_at_the_top(film, tmp_path):
+    rep = ReportWriter(str(tmp_path / "r"), "t")
+    rep.section("Film", "a film")
+    # S1 shift settles to -90 meV: within 10 meV of the largest radius from 10 Å on
+    scan = _scan([5.0, 7.5, 10.0, 12.5, 15.0], [-0.150, -0.110, -0.095, -0.091, -0.090])
+    scan_section(rep, scan)
+    rng = np.random.default_rng(4)
+    t = _sites(film, range(40))
+    vac = 3.0 + rng.normal(0.0, 0.06, len(t))  # conformational spread 60 meV > environmental 30 meV
+    t = t.assign(S1_vacuum_eV=vac, S1_eV=vac + t.S1_shift_eV)
+    sample = SiteSample(table=t)
+    stats = sample_section(rep, sample, ["S1_eV"], n_boot=200, correlation=False)
+    text, head = _headline(rep.write())
+    # at the top: before the first section, right after the model note
+    assert text.index("## What this film says") < text.index("## Film")
+    assert scan.verdict.converged and scan.verdict.radius_A == 10.0
+    assert "converged from 10 Å within ±10 meV" in head and "S1 shift at the largest radius, 15 Å: -90.0 meV" in head
+    row = stats.iloc[0]
+    assert (f"Static disorder (QM sample): σ of the S1 site energy = {1e3 * row.sigma_eV:.1f} meV "
+            f"[{1e3 * row.sigma_lo_eV:.1f}, {1e3 * row.sigma_hi_eV:.1f}] (95 % bootstrap BCa interval, n = 40)") in head
+    # the same split the section below prints (one-way decomposition of vacuum energy and shift)
+    ce = sample.conformational_environmental("S1")
+    assert ce["sigma_conf"] > ce["sigma_env"]
+    assert f"conformational (σ_conf = {1e3 * ce['sigma_conf']:.1f} meV, σ_env = {1e3 * ce['sigma_env']:.1f}" in head
+    assert f"σ_conf = {_fmt_ev(ce['sigma_conf'])} eV" in text  # the section's own line
+    assert "Caution: Embedded QM" in head and "Film-wide model" not in head
+
+
+def _fmt_ev(x):
+    return f"{float(x):.3f}"
+
+
+def test_headline_says_in_words_what_is_missing(film, tmp_path):
+    rep = ReportWriter(str(tmp_path / "r"), "t")
+    # two radii only: the verdict cannot be judged
+    scan_section(rep, _scan([5.0, 8.0], [-0.08, -0.087]))
+    sample_section(rep, SiteSample(table=_sites(film, [0, 1])), ["S1_eV"], n_boot=200, correlation=False)
+    _, head = _headline(rep.write())
+    assert "Convergence with radius: not judged yet: " in head and "provisional" in head
+    assert "Static disorder: not available (the QM sample has 2 site(s), σ needs 3" in head
+    assert "not split (needs 3 or more QM sites with their vacuum energies; the sample has 2)" in head
+    # nothing recorded: no headline at all (a bare writer)
+    bare = ReportWriter(str(tmp_path / "b"), "t")
+    bare.section("x", "y")
+    assert "What this film says" not in open(bare.write(), encoding="utf-8").read()
+    # a scan that moves more than the tolerance at its largest radii: not converged, said so
+    rep = ReportWriter(str(tmp_path / "n"), "t")
+    scan_section(rep, _scan([5.0, 8.0, 11.0], [-0.20, -0.12, -0.06]))
+    _, head = _headline(rep.write())
+    assert "Convergence with radius: not converged: " in head and "not a converged value" in head
+    assert "no site-energy sample in this report" in head
+
+
+def test_headline_takes_sigma_from_the_film_model_when_the_sample_is_too_small(film, tmp_path):
+    from clusterlab.report import model_section
+
+    rng = np.random.default_rng(8)
+    # a second-order shift (the film model's bright S1): -F² of a Gaussian F is skewed
+    shift = -0.02 * rng.normal(0.0, 1.0, 128) ** 2
+
+    class Result:
+        table = pd.DataFrame({"frame": 0, "molecule": range(128), "S1_shift_eV": shift})
+        options = {"n_conformers": 1, "field_response": ["S1"]}
+
+        class charges:  # noqa: N801
+            conformers = {"WAT": [0]}
+
+    rep = ReportWriter(str(tmp_path / "r"), "t")
+    model_section(rep, Result)
+    _, head = _headline(rep.write())
+    s = disorder_stats(shift, n_boot=500, seed=0)
+    assert (f"Static disorder (film-wide model, the environmental part only): σ of the S1 shift = "
+            f"{1e3 * s['sigma']:.1f} meV [{1e3 * s['sigma_ci_lo']:.1f}, {1e3 * s['sigma_ci_hi']:.1f}]") in head
+    assert "no site-energy sample in this report" in head
+    assert "Shape: the film-wide model's S1 shift is skewed (g1 = " in head
+    assert "Caution: Film-wide model" in head and "Caution: Embedded QM" not in head
+    assert (tmp_path / "r" / "model_histogram.png").exists()
