@@ -244,8 +244,14 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
         rep.text("σ intervals: " + "; ".join(dict.fromkeys(notes)) + ".")
         rep.display(stats, [c for c in stats.columns if c != "sigma_ci_method"])
         if "species" in t.columns and t["species"].nunique() > 1:
-            # the per-species table is the host:guest section's (doped_section): shown once, there
-            rep.text("Per species: see the host:guest section below.")
+            per = pd.concat([sample.stats(q, by="species", n_boot=n_boot, seed=0).assign(quantity=q)
+                             for q in stats.quantity], ignore_index=True)
+            per = per.rename(columns={"mean": "mean_eV", "sigma": "sigma_eV", "sigma_ci_lo": "sigma_lo_eV",
+                                      "sigma_ci_hi": "sigma_hi_eV"})
+            rep.text("Per species (σ interval by the same rule):")
+            rep.display(per, ["species", "quantity", "n", "mean_eV", "sigma_eV", "sigma_lo_eV", "sigma_hi_eV",
+                              "sigma_ci_method"])
+            rep.facts["per_species_shown"] = True  # the host:guest section then refers to it
         q0 = stats.quantity.iloc[0]
         values = t[q0].to_numpy(dtype=float)
         shape = skew_check(values)
@@ -458,8 +464,11 @@ def doped_section(rep: ReportWriter, film: Any, sites: Any, *, states: Any = Non
                 "positive = the guest traps that carrier; the depth's interval is a bootstrap interval of a "
                 "difference of means, the spread (σ of a host−guest site difference) follows the σ rule on the "
                 "smaller species. Vertical energies of the embedding model.")
-    rep.display(se.stats, ["species", "quantity", "n", "mean_eV", "sigma_eV", "sigma_lo_eV", "sigma_hi_eV",
-                           "sigma_ci_method"])
+    if rep.facts.get("per_species_shown"):
+        rep.text("Per-species means and σ: the table of the site-energy sample section above (shown once).")
+    else:
+        rep.display(se.stats, ["species", "quantity", "n", "mean_eV", "sigma_eV", "sigma_lo_eV", "sigma_hi_eV",
+                               "sigma_ci_method"])
     if len(se.traps):
         rep.display(se.traps.rename(columns={"spread_ci_method": "sigma_ci_method"}),
                     ["carrier", "definition", "depth_eV", "depth_lo_eV", "depth_hi_eV", "spread_eV",
