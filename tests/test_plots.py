@@ -283,6 +283,10 @@ def test_tolerance_bands_are_hatched_outlines_that_do_not_mix():
         assert band.get_facecolor()[3] == 0.0  # no fill: overlapping bands do not add up to grey
         assert band.get_hatch() and to_rgb(band.get_edgecolor()) == pytest.approx(to_rgb(colour))
     assert bands[0].get_hatch() != bands[1].get_hatch()  # different directions where they cross
+    # the histogram's interval of the mean over the bars: an outline too, not a tint over the bars' colour
+    ax = plot_histogram(np.random.default_rng(0).normal(0.0, 0.05, 50)).axes[0]
+    span = next(p for p in ax.patches if p.get_label() == "interval of the mean")
+    assert span.get_facecolor()[3] == 0.0 and span.get_hatch()
 
 
 def _bars(ax):

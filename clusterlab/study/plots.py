@@ -367,8 +367,10 @@ def plot_histogram(
         pdf = np.exp(-0.5 * ((grid - mu) / sg) ** 2) / (sg * np.sqrt(2.0 * np.pi))
         ax.plot(grid, pdf, color=PALETTE[0], lw=2, label="Gaussian (mean, σ)")
     ax.axvline(mu, color=PALETTE[1], lw=1.5, label="mean")
-    ax.axvspan(float(stats["mean_lo"]), float(stats["mean_hi"]), color=PALETTE[1], alpha=0.2, lw=0,
-               label="interval of the mean")
+    # the mean's interval as a hatched outline over the bars: a filled tint would mix with the bars' colour
+    ax.axvspan(float(stats["mean_lo"]), float(stats["mean_hi"]), facecolor="none",
+               edgecolor=to_rgba(PALETTE[1], 0.9), hatch="///", hatchcolor=to_rgba(PALETTE[1], 0.55),
+               hatch_linewidth=0.7, lw=0.9, zorder=2.5, label="interval of the mean")
     # the axes end where the bars (and the mean's interval) end, not at the padded range
     x0, x1 = min(float(edges[0]), float(stats["mean_lo"])), max(float(edges[-1]), float(stats["mean_hi"]))
     margin = 0.03 * (x1 - x0 if x1 > x0 else 1.0)
