@@ -26,7 +26,7 @@ from clusterlab.study.plots import (
     plot_histogram,
     plot_parity,
     skew_check,
-    the_legend,
+    figure_legend,
 )
 
 RADII = np.array([6.0, 8.0, 10.0, 12.0, 14.0, 18.0, 22.0])
@@ -93,7 +93,7 @@ def test_convergence_plot_puts_a_non_shift_quantity_on_its_own_axis():
     left, right = fig.axes
     np.testing.assert_allclose(right.lines[0].get_ydata(), df.dEST_eV)
     assert right.get_ylabel() == "ΔEST (eV)" and left.get_ylabel() == "environment shift (eV)"
-    labels = [t.get_text() for t in the_legend(fig).get_texts()]
+    labels = [t.get_text() for t in figure_legend(fig).get_texts()]
     # S1 moves 8 meV from 5 Å on, ΔEST 3 meV: both within 10 meV, converged at 5 Å, said in the entries
     assert labels[:2] == ["S1 shift, converged at 5 Å", "ΔEST (eV), right axis, converged at 5 Å"]
 
@@ -246,7 +246,7 @@ def test_convergence_legend_sits_outside_the_axes_and_covers_no_point():
     df = _followed_scan()
     fig = plot_convergence(df, states=["S1_shift_eV", "T1_shift_eV", "dEST_eV", "S1_followed_shift_eV"])
     renderer = _drawn(fig)
-    leg = the_legend(fig)
+    leg = figure_legend(fig)
     box = leg.get_window_extent(renderer)
     for ax in fig.axes:
         assert not _overlap(box, ax.get_window_extent(renderer))

@@ -8,6 +8,12 @@ axes (the figure of that axes is returned).
 
 Energies are taken to be in eV; widths σ are drawn in meV where marked.
 
+Readability rules kept by the convergence plot and the histogram: legends and
+notes sit outside the axes, so they cover no data; bands are hatched outlines,
+never filled tints that mix where they overlap; a Gaussian is drawn only over
+a sample that is not significantly skewed (:func:`skew_check`); a histogram's
+x-range comes from robust percentiles, with the values beyond it counted.
+
 Palette: the eight-colour set of Okabe & Ito ("Color Universal Design",
 2008), which stays distinguishable under the common colour-vision
 deficiencies; the order below is this module's own.
@@ -35,7 +41,7 @@ __all__ = [
     "PALETTE",
     "plot_convergence",
     "skew_check",
-    "the_legend",
+    "figure_legend",
     "plot_histogram",
     "plot_growth",
     "plot_correlation",
@@ -101,7 +107,7 @@ def _outside_legend(fig: Figure, ax: Axes, own: bool, handles: list, labels: lis
                   fontsize="small", frameon=False)
 
 
-def the_legend(fig: Figure):
+def figure_legend(fig: Figure):
     """The legend of a figure made here: the figure's own (when this module made the figure) or the
     first axes' (when an axes was passed in); None when there is none."""
     if fig.legends:
