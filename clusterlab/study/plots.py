@@ -432,16 +432,20 @@ def plot_growth(growth_df: pd.DataFrame, *, label: str = "environment shift") ->
     fig = Figure(figsize=(5.0, 5.2), layout="constrained")
     ax_m, ax_s = fig.subplots(2, 1, sharex=True)
     ax_m.fill_between(r, g["mean_lo"].to_numpy(dtype=float), g["mean_hi"].to_numpy(dtype=float),
-                      color=PALETTE[0], alpha=0.25, lw=0, label="confidence interval")
+                      color=PALETTE[0], alpha=0.25, lw=0, label="interval of the mean")
     ax_m.plot(r, g["mean"].to_numpy(dtype=float), marker="o", color=PALETTE[0], label="mean")
     ax_m.set_ylabel(f"mean {label} (eV)")
-    ax_m.legend(fontsize="small")
     ax_s.fill_between(r, 1e3 * g["sigma_lo"].to_numpy(dtype=float), 1e3 * g["sigma_hi"].to_numpy(dtype=float),
-                      color=PALETTE[1], alpha=0.25, lw=0, label="confidence interval")
+                      color=PALETTE[1], alpha=0.25, lw=0, label="interval of σ")
     ax_s.plot(r, 1e3 * g["sigma"].to_numpy(dtype=float), marker="s", color=PALETTE[1], label="σ")
     ax_s.set_ylabel("disorder width σ (meV)")
     ax_s.set_xlabel("cluster radius (Å)")
-    ax_s.legend(fontsize="small")
+    # one legend for both panels, below them: inside, it sat on the bands
+    handles, labels = [], []
+    for a in (ax_m, ax_s):
+        h, lab = a.get_legend_handles_labels()
+        handles, labels = handles + h, labels + lab
+    _outside_legend(fig, ax_s, True, handles, labels)
     return fig
 
 
@@ -477,6 +481,7 @@ def plot_correlation(corr_df: pd.DataFrame, *, ax: Axes | None = None, min_pairs
     elif "shown" in d.columns:
         d = d[d["shown"].astype(bool)]
     d = d[np.isfinite(pd.to_numeric(d["C"], errors="coerce"))]
+    own = ax is None
     fig, ax = _new_axes(ax)
     ax.axhline(0.0, color=_GREY, lw=0.8)
     r_top = float(corr_df["r_hi_A"].max()) if "r_hi_A" in corr_df.columns and len(corr_df) else None
@@ -501,7 +506,9 @@ def plot_correlation(corr_df: pd.DataFrame, *, ax: Axes | None = None, min_pairs
                 ax.annotate(f"{int(k)}", (x, y), textcoords="offset points", xytext=(0, 6), ha="center",
                             fontsize="x-small", color=_GREY)
         ax.set_xlim(0.0, r_top if r_top else None)
-        ax.legend(fontsize="small", title="numbers: pairs per bin", title_fontsize="x-small")
+        handles, labels = ax.get_legend_handles_labels()
+        _outside_legend(fig, ax, own, handles, [f"{labels[0]} (numbers: pairs per bin)"] + labels[1:]
+                        if "n_pairs" in d.columns else labels)
     ax.set_xlabel("centroid distance r (Å)")
     ax.set_ylabel("C(r) = ⟨δE_i δE_j⟩ / σ² (dimensionless)")
     if title:
