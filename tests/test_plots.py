@@ -352,3 +352,20 @@ def test_histogram_range_ignores_outliers_and_counts_them():
     # the bars keep the normalisation of all values: their area is the fraction shown
     bars = _bars(ax)
     assert sum(b.get_height() * b.get_width() for b in bars) == pytest.approx(500 / 502)
+
+
+def test_growth_and_correlation_legends_cover_no_axes():
+    rng = np.random.default_rng(3)
+    rows = []
+    for r in (8.0, 12.0, 16.0):
+        s = disorder_stats(rng.normal(-0.1, 0.05, 40), seed=int(r), n_boot=300)
+        rows.append(pd.concat([pd.Series({"radius_A": r}), s]))
+    corr = spatial_correlation(rng.uniform(0, 20, (200, 3)), rng.normal(size=200), [20, 20, 20, 90, 90, 90],
+                               n_bins=8, n_boot=200, seed=0)
+    for fig, n_entries in ((plot_growth(pd.DataFrame(rows)), 4), (plot_correlation(corr), 1)):
+        renderer = _drawn(fig)
+        leg = figure_legend(fig)
+        assert len(leg.get_texts()) == n_entries
+        box = leg.get_window_extent(renderer)
+        assert all(not _overlap(box, ax.get_window_extent(renderer)) for ax in fig.axes)
+        assert box.y0 >= fig.bbox.y0 - 1  # inside the figure
