@@ -379,6 +379,29 @@ def _tda_davidson(vind, hdiag: FloatArray, guess: FloatArray, nroots: int, metho
             np.atleast_2d(np.asarray(xs, dtype=float)))
 
 
+def _tda_operator(td, mf_resp, method: Method, singlet: bool, n_solve: int):
+    """(vind, hdiag, window) of the TDA operator: clusterlab's MO-basis
+    operator on the method's orbital window where ``method.response_kernel``
+    is "mo" and it applies (window then an
+    :class:`~clusterlab.qm.mokernel.OrbitalWindow`), else PySCF's AO route
+    (window None)."""
+    if method.response_kernel == "mo":
+        from . import mokernel
+
+        ok, why = mokernel.supported(mf_resp)
+        if ok:
+            window = mokernel.orbital_window(mf_resp.mo_energy, mf_resp.mo_occ, method.orbital_window_Eh)
+            if window.n_pairs < 2 * n_solve:  # too narrow for the states asked: all orbitals
+                window = mokernel.orbital_window(mf_resp.mo_energy, mf_resp.mo_occ, None)
+            vind, hdiag = mokernel.tda_operator(mf_resp, singlet, window,
+                                                environment_response=singlet and has_induced_dipoles(mf_resp),
+                                                max_memory_MB=float(getattr(mf_resp, "max_memory", 2000)))
+            return vind, hdiag, window
+        log.info("MO-basis response kernel not used (%s); PySCF's AO route runs", why)
+    vind, hdiag = td.gen_vind(mf_resp)
+    return vind, hdiag, None
+
+
 def _tdscf_states(mf, mf_resp, method: Method, kind: str, n: int, x0: FloatArray | None) -> ResponseStates:
     """Full TDA/TDDFT states, or the "stda-refined" model.
 
@@ -428,9 +451,15 @@ def _tdscf_states(mf, mf_resp, method: Method, kind: str, n: int, x0: FloatArray
         energies = np.asarray(td.e, float).reshape(-1)
         vecs = np.array([(np.asarray(x, float) + np.asarray(y, float)).ravel() for x, y in td.xy])
     else:
-        vind, hdiag = td.gen_vind(mf_resp)
+        vind, hdiag, window = _tda_operator(td, mf_resp, method, singlet, n_solve)
+        extra["kernel"] = "ao" if window is None else "mo"
+        if window is not None:
+            extra["window_pairs"] = [window.n_pairs, nov]
+            guess = window.restrict(guess)
         if refined:
             sg = _stda_guess(mf, method, kind, n_solve)
+            if sg is not None and window is not None:
+                sg = window.restrict(sg)
             start = guess if sg is None else np.vstack([sg, guess])
             energies, vecs, res = subspace_refine(vind, hdiag, start, n_solve)
             conv = np.ones(len(energies), dtype=bool)
@@ -441,6 +470,8 @@ def _tdscf_states(mf, mf_resp, method: Method, kind: str, n: int, x0: FloatArray
             if not conv[:n].all():  # one retry with more iterations from the current vectors
                 log.warning("%s response not converged; retrying with %d iterations", kind, 2 * td.max_cycle)
                 conv, energies, vecs = _tda_davidson(vind, hdiag, vecs, n_solve, method, 2 * td.max_cycle)
+        if window is not None:
+            vecs = window.embed(vecs)
         # PySCF's convention: X of a closed-shell state normalised to 1/2
         td.e = energies[:n]
         td.xy = [(v.reshape(nocc, nvir) / np.linalg.norm(v) * np.sqrt(0.5), 0) for v in vecs[:n]]
@@ -597,7 +628,18 @@ def calculate(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method
         t = time.perf_counter()
         calc.ct[kind] = _ct_measures(mf, mol, calc, rs, method)
         calc.timings["ct_measures"] = calc.timings.get("ct_measures", 0.0) + time.perf_counter() - t
+    _release_fitted_integrals(mf)
     return calc
+
+
+def _release_fitted_integrals(mf) -> None:
+    """Drop the SCF's in-memory density-fitting tensor once its states are
+    solved: a kept Calculation (warm starts hold several) would otherwise hold
+    naux*nao^2/2 numbers (1.9 GB for a 60-atom molecule in 6-31G). PySCF
+    rebuilds it if the SCF object is used again."""
+    df = getattr(mf, "with_df", None)
+    if df is not None and isinstance(getattr(df, "_cderi", None), np.ndarray):
+        df._cderi = None
 
 
 @dataclass

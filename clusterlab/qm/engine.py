@@ -264,9 +264,26 @@ def _guess_parts(guess) -> tuple[Any, Calculation | None]:
     return np.asarray(guess, dtype=float), None
 
 
+def _copy_guess_dm(copy_guess, cluster: Cluster, method: Method, timings: dict[str, float]):
+    """The vacuum orbitals of another copy of the same molecule rotated onto
+    this one (qm.guess.aligned_density), or None when they do not apply."""
+    ws = copy_guess.warm_start if isinstance(copy_guess, ExcitationResult) else copy_guess
+    ref = ws.vacuum if isinstance(ws, WarmStart) else ws if isinstance(ws, Calculation) else None
+    if ref is None or not ref.converged or ref.mol is None:
+        return None
+    if list(ref.mol.elements) != [s.capitalize() for s in cluster.qm_symbols] or ref.mol.basis != method.basis:
+        return None
+    from .guess import aligned_density
+
+    dm, rmsd = aligned_density(ref.mol, ref.mo_coeff, ref.mo_occ, ref.mol.elements,
+                               [s.capitalize() for s in cluster.qm_symbols], cluster.qm_positions)
+    timings["copy_guess_rmsd_A"] = rmsd
+    return dm
+
+
 def _excitations(cluster: Cluster, method: Method, *, vacuum: bool | Calculation = True, guess=None,
                  raise_on_failure: bool = False, progress=None, embedding: Embedding | None = None,
-                 radius_A: float | None = None) -> ExcitationResult:
+                 radius_A: float | None = None, copy_guess=None) -> ExcitationResult:
     t_start = time.perf_counter()
     _validate(cluster, method)
     if embedding is None:
@@ -293,7 +310,9 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: bool | Calculation
             vac = vacuum
         elif vacuum:
             t = time.perf_counter()
-            vac = calculate(*qm, VACUUM, charge=cluster.qm_charge, progress=progress, tag="vacuum")
+            vac_dm = _copy_guess_dm(copy_guess, cluster, method, timings) if copy_guess is not None else None
+            vac = calculate(*qm, VACUUM, charge=cluster.qm_charge, guess_dm=vac_dm, progress=progress,
+                            tag="vacuum")
             timings["vacuum"] = time.perf_counter() - t
             for k, v in vac.timings.items():
                 timings[f"vacuum_{k}"] = v
@@ -449,7 +468,8 @@ def _charged_result(cluster, method, emb: Calculation, vac: Calculation | None, 
 
 
 def excitations(cluster: Cluster, method: Method, *, vacuum: "bool | ExcitationResult" = True, guess=None,
-                raise_on_failure: bool = False, progress: Callable[[str], None] | None = None) -> ExcitationResult:
+                raise_on_failure: bool = False, progress: Callable[[str], None] | None = None,
+                copy_guess: "ExcitationResult | None" = None) -> ExcitationResult:
     """Excited states of the QM region in the field of the environment charges.
 
     Parameters
@@ -470,6 +490,13 @@ def excitations(cluster: Cluster, method: Method, *, vacuum: "bool | ExcitationR
         Raise :class:`ConvergenceError` instead of flagging non-convergence.
     progress : callable(str) or None
         Called with a short message before each step.
+    copy_guess : ExcitationResult or None
+        An in-memory result of *another copy of the same molecule* (same
+        atoms in the same order, same basis): its vacuum orbitals, rotated
+        onto this copy by the best superposition of the atoms
+        (:func:`clusterlab.qm.guess.aligned_density`), start the vacuum SCF
+        (fewer SCF cycles; the converged answer is the same). Ignored when it
+        does not apply.
 
     Returns
     -------
@@ -497,7 +524,7 @@ def excitations(cluster: Cluster, method: Method, *, vacuum: "bool | ExcitationR
                              "(results loaded from JSON carry none); pass vacuum=True.")
         vacuum = vac
     return _excitations(cluster, method, vacuum=vacuum, guess=guess, raise_on_failure=raise_on_failure,
-                        progress=progress)
+                        progress=progress, copy_guess=copy_guess)
 
 
 def charged_states(cluster: Cluster, method: Method, *, vacuum: bool = True,

@@ -29,7 +29,11 @@ ENVIRONMENTS = ("charges", "polarizable")
 #: Fields added after method keys were first stored, with their defaults: they
 #: enter :meth:`Method.key` only when they differ from these, so that the keys
 #: of every method written before them stay the same.
-_KEY_OMITS_DEFAULTS = {"environment": "charges", "polarization_reference": True}
+_KEY_OMITS_DEFAULTS = {"environment": "charges", "polarization_reference": True, "response_kernel": "ao",
+                       "orbital_window_Eh": None}
+
+#: Valid values of :attr:`Method.response_kernel`.
+RESPONSE_KERNELS = ("ao", "mo")
 
 #: Default Gaussian width (Å) of the environment charges. A Gaussian charge
 #: exp(-r^2/w^2) differs from a point charge in its potential by
@@ -68,6 +72,12 @@ _PRESETS: dict[str, tuple[str, dict[str, Any]]] = {
         "S1, T1 and ΔEST within ~0.01 eV of full TDA at a fraction of its cost",
         dict(xc="b3lyp", basis="6-31g", density_fit=True, grid_level=1, response_grid_level=1,
              n_singlets=3, n_triplets=3, excited="stda-refined"),
+    ),
+    "fast-large": (
+        "fast-refined for large molecules (50-100 atoms): the same B3LYP/6-31G states, the TDA operator "
+        "in the MO basis on orbitals within 1 Eh of the gap (S1/T1 shifts within ~1 meV of the full space)",
+        dict(xc="b3lyp", basis="6-31g", density_fit=True, grid_level=1, response_grid_level=1,
+             n_singlets=3, n_triplets=3, excited="stda-refined", response_kernel="mo", orbital_window_Eh=1.0),
     ),
     "site-energy": (
         "B3LYP/def2-SVP ground state plus cation/anion by ΔSCF, no excited states: IP/EA site energies",
@@ -155,6 +165,19 @@ class Method:
         with fixed charges in the same call, giving the polarization
         contribution (polarizable minus fixed) of every state; its density
         and response vectors start the polarizable calculation.
+    response_kernel : {"ao", "mo"}
+        How the TDA operator (full TDA and the refined model) is applied:
+        "ao" is PySCF's AO-basis route; "mo" is clusterlab's MO-basis
+        density-fitted operator (:mod:`clusterlab.qm.mokernel`: the same
+        matrix, several times cheaper for large molecules; needs
+        ``density_fit``). Where "mo" does not apply (range-separated or
+        meta-GGA functionals, full TDDFT) PySCF's route runs and the result
+        says so (``extra["kernel"]``).
+    orbital_window_Eh : float or None
+        With ``response_kernel="mo"``: the response sees only occupied
+        orbitals within this energy (Hartree) of the HOMO and virtual ones
+        within it of the LUMO (None: all orbitals). Its error on S1/T1 and
+        their shifts is measured in the tests and ``bench/bench_large_site.py``.
 
     Examples
     --------
@@ -182,6 +205,8 @@ class Method:
     response_conv_tol: float = 1e-5
     environment: str = "charges"
     polarization_reference: bool = True
+    response_kernel: str = "ao"
+    orbital_window_Eh: float | None = None
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
@@ -229,6 +254,21 @@ class Method:
                 raise InputError(f"{name}={getattr(self, name)!r} must be a finite "
                                  f"{'positive' if positive else 'non-negative'} number.")
             set_(self, name, v)
+        kern = str(self.response_kernel).strip().lower()
+        if kern not in RESPONSE_KERNELS:
+            raise InputError(f"response_kernel={self.response_kernel!r} is not a response kernel. Use one of "
+                             f"{', '.join(map(repr, RESPONSE_KERNELS))}.")
+        set_(self, "response_kernel", kern)
+        if kern == "mo" and not self.density_fit:
+            raise InputError("response_kernel='mo' needs density_fit=True (it contracts the fitted integrals).")
+        if self.orbital_window_Eh is not None:
+            w = _as_float("orbital_window_Eh", self.orbital_window_Eh, "a positive number of Hartree or None")
+            if not (w > 0 and w != float("inf")):
+                raise InputError(f"orbital_window_Eh={self.orbital_window_Eh!r} must be a positive number of "
+                                 "Hartree or None (all orbitals).")
+            if kern != "mo":
+                raise InputError("orbital_window_Eh applies to response_kernel='mo' only; set both or neither.")
+            set_(self, "orbital_window_Eh", w)
         if _as_int("max_cycle", self.max_cycle, "a positive integer") < 1:
             raise InputError(f"max_cycle={self.max_cycle!r} must be a positive integer.")
         set_(self, "max_cycle", int(self.max_cycle))
@@ -317,7 +357,9 @@ class Method:
         return (f"{self.xc.upper()}/{self.basis}{' +DF' if self.density_fit else ''}{grid}, "
                 f"{self.excited.upper()} {self.n_singlets}S+{self.n_triplets}T"
                 f"{', ΔSCF IP/EA' if self.charged_states else ''}, charge width {self.charge_smearing_A:g} Å"
-                f"{', polarizable environment' if self.is_polarizable else ''}")
+                f"{', polarizable environment' if self.is_polarizable else ''}"
+                f"{', MO-basis response' if self.response_kernel == 'mo' else ''}"
+                f"{f' on a {self.orbital_window_Eh:g} Eh orbital window' if self.orbital_window_Eh else ''}")
 
 
 def require_method(method: Any, who: str) -> "Method":

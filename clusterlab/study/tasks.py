@@ -35,6 +35,8 @@ KINDS = ("excitations", "periodic")
 _WARM: "OrderedDict[tuple, Any]" = OrderedDict()
 _WARM_SIZE = 8
 _WARM_LOCK = threading.Lock()
+#: Last result per molecule kind (see _copy_key): its vacuum orbitals, rotated, start the next copy.
+_COPIES: "OrderedDict[tuple, Any]" = OrderedDict()
 
 
 def cluster_task(
@@ -240,6 +242,12 @@ def run_cluster_tasks(tasks: list[Task], store: ResultStore, *, desc: str, on_re
     return report, rows, failures
 
 
+def _copy_key(payload: dict[str, Any], cluster) -> tuple:
+    """Copies of one molecule kind share their vacuum orbitals as SCF guesses:
+    the same atoms in the same order and the same basis."""
+    return (payload["film"]["film_id"], tuple(cluster.qm_symbols), Method.from_dict(payload["method"]).basis)
+
+
 def _warm_key(payload: dict[str, Any]) -> tuple:
     return (payload["film"]["film_id"], payload["frame"], payload["molecule"],
             payload["qm_shell_A"], payload["rule"], Method.from_dict(payload["method"]).key())
@@ -267,10 +275,19 @@ def run_cluster_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
                              qm_shell=float(payload["qm_shell_A"]),
                              polarizable_radius=payload.get("polarizable_radius_A"))
         ws = prev.warm_start if prev is not None else None
+        ckey = _copy_key(payload, cluster)
         if ws is not None and ws.fits(cluster) and prev.scf_converged and ws.vacuum is not None:
             res = excitations(cluster, method, vacuum=prev, guess=prev)
-        else:
-            res = excitations(cluster, method, vacuum=True)
+        else:  # a new QM region: its vacuum SCF starts from the last copy of the same molecule
+            with _WARM_LOCK:
+                other = _COPIES.get(ckey)
+            res = excitations(cluster, method, vacuum=True, copy_guess=other)
+        if res.warm_start is not None and res.warm_start.vacuum is not None and res.warm_start.vacuum.converged:
+            with _WARM_LOCK:
+                _COPIES[ckey] = res
+                _COPIES.move_to_end(ckey)
+                while len(_COPIES) > _WARM_SIZE:
+                    _COPIES.popitem(last=False)
         with _WARM_LOCK:
             _WARM[wkey] = res
             _WARM.move_to_end(wkey)

@@ -1,0 +1,70 @@
+"""Densities carried between copies of a molecule (clusterlab.qm.guess).
+
+Outside checks: rotational invariance of the SCF (the converged density of a
+rotated molecule is the rotated density, a law of the theory), and the
+Kabsch superposition against scipy's independent
+``scipy.spatial.transform.Rotation.align_vectors`` (Virtanen et al., Nature
+Methods 17, 261 (2020)).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.spatial.transform import Rotation
+
+from clusterlab.errors import InputError
+from clusterlab.qm.calc import build_molecule, make_scf, run_scf
+from clusterlab.qm.guess import aligned_density, kabsch_rotation
+from clusterlab.qm.method import Method
+
+SYM = ["C", "O", "H", "H"]
+XYZ = np.array([[0.0, 0.0, 0.0], [0.0, 0.0, 1.21], [0.0, 0.94, -0.59], [0.0, -0.94, -0.59]])
+
+
+def test_kabsch_matches_scipy_and_recovers_a_rotation():
+    rng = np.random.default_rng(2)
+    p = rng.standard_normal((7, 3))
+    r_true = Rotation.random(random_state=4).as_matrix()
+    q = p @ r_true.T + np.array([1.0, -2.0, 0.5])
+    r, rmsd = kabsch_rotation(p, q)
+    assert np.allclose(r, r_true, atol=1e-10) and rmsd < 1e-10
+    noisy = q + 0.05 * rng.standard_normal(q.shape)
+    r2, rmsd2 = kabsch_rotation(p, noisy)
+    ref, _ = Rotation.align_vectors(noisy - noisy.mean(0), p - p.mean(0))
+    assert np.allclose(r2, ref.as_matrix(), atol=1e-8) and 0.01 < rmsd2 < 0.1
+    assert np.linalg.det(r2) == pytest.approx(1.0)
+    with pytest.raises(InputError, match="matched"):
+        kabsch_rotation(p[:2], q[:2])
+
+
+@pytest.mark.parametrize("basis", ["6-31g", "def2-svp"])  # s/p only, and with d shells
+def test_rotated_density_is_the_converged_density_of_the_rotated_copy(basis):
+    m = Method(xc="b3lyp", basis=basis, grid_level=2, conv_tol=1e-10, charge_smearing_A=0.0)
+    mf0 = make_scf(build_molecule(SYM, XYZ, m), m)
+    assert run_scf(mf0, m)[0]
+    r = Rotation.random(random_state=11).as_matrix()
+    xyz = XYZ @ r.T + np.array([3.0, 1.0, -2.0])
+    dm, rmsd = aligned_density(mf0.mol, mf0.mo_coeff, mf0.mo_occ, SYM, SYM, xyz)
+    assert rmsd < 1e-10
+    mf1 = make_scf(build_molecule(SYM, xyz, m), m)
+    cycles = []
+    mf1.callback = lambda env: cycles.append(env["cycle"])
+    assert run_scf(mf1, m, dm)[0]
+    # same density up to the grid's small orientation dependence; the SCF starts converged
+    assert np.max(np.abs(mf1.make_rdm1() - dm)) < 2e-4
+    assert mf1.e_tot == pytest.approx(mf0.e_tot, abs=1e-5)
+    assert len(cycles) <= 4
+    mf2 = make_scf(build_molecule(SYM, xyz, m), m)
+    cold = []
+    mf2.callback = lambda env: cold.append(env["cycle"])
+    run_scf(mf2, m)
+    assert len(cold) > len(cycles) + 3
+
+
+def test_aligned_guess_refuses_another_molecule():
+    m = Method(xc="hf", basis="sto-3g")
+    mf0 = make_scf(build_molecule(SYM, XYZ, m), m)
+    run_scf(mf0, m)
+    with pytest.raises(InputError, match="same atoms"):
+        aligned_density(mf0.mol, mf0.mo_coeff, mf0.mo_occ, SYM, ["C", "O", "H", "F"], XYZ)
