@@ -68,3 +68,36 @@ def test_aligned_guess_refuses_another_molecule():
     run_scf(mf0, m)
     with pytest.raises(InputError, match="same atoms"):
         aligned_density(mf0.mol, mf0.mo_coeff, mf0.mo_occ, SYM, ["C", "O", "H", "F"], XYZ)
+
+
+def test_engine_and_worker_start_a_new_copy_from_the_last_one(tmp_path):
+    """excitations(copy_guess=) gives the same states (to SCF precision) with the
+    superposition recorded; the runner's worker passes the last copy of the same
+    molecule kind on its own (waters of a lattice film, HF/STO-3G)."""
+    from clusterlab import ResultStore, film_from_universe
+    from clusterlab.qm.engine import excitations
+    from clusterlab.study import tasks as tasks_mod
+    from clusterlab.study.tasks import cluster_task, run_cluster_tasks
+    from conftest import build_water_universe, lattice_centres
+
+    rng = np.random.default_rng(7)
+    u, _ = build_water_universe(lattice_centres(3, 0.15, rng), np.array([9.3, 9.3, 9.3, 90, 90, 90]), seed=3)
+    film = film_from_universe(u, name="water27-guess")
+    m = Method(xc="hf", basis="sto-3g", n_singlets=1, n_triplets=1, charge_smearing_A=0.0, conv_tol=1e-10)
+    a = excitations(film.carve(0, 4.0), m)
+    cold = excitations(film.carve(1, 4.0), m)
+    warm = excitations(film.carve(1, 4.0), m, copy_guess=a)
+    assert 0 < warm.meta["timings_s"]["copy_guess_rmsd_A"] < 0.2  # rigid-ish waters, other orientation
+    assert "copy_guess_rmsd_A" not in cold.meta["timings_s"]
+    for k in ("S1_eV", "T1_eV", "S1_shift_eV"):
+        assert warm.summary()[k] == pytest.approx(cold.summary()[k], abs=1e-6)
+    tasks_mod._COPIES.clear()
+    st = ResultStore(tmp_path / "s.sqlite")
+    run_cluster_tasks([cluster_task(film, mol, 4.0, m) for mol in (2, 3)], st, desc="x", runner="serial",
+                      progress=False)
+    import json
+
+    rows = st.to_frame().set_index("molecule")
+    assert (rows.status == "done").all()
+    metas = {int(mol): json.loads(st.get(k).result_json)["meta"]["timings_s"] for mol, k in zip(rows.index, rows.key)}
+    assert "copy_guess_rmsd_A" not in metas[2] and metas[3]["copy_guess_rmsd_A"] < 0.2
