@@ -479,6 +479,33 @@ def test_bad_input_from_the_scan_is_one_line(film, monkeypatch):
     assert panel.error == "InputError: radius 0 Å is not positive"
 
 
+def test_plot_is_hidden_until_there_is_one(film, monkeypatch):
+    panel = ShiftScanPanel(film, radii_A=(6, 9))
+    assert panel.plot.value == b"" and panel.plot.layout.display == "none"
+    fake = FakeScan(SCAN_ROWS)
+    for _ in SCAN_ROWS:
+        fake.step.release()
+    monkeypatch.setattr(calc, "radius_scan", fake)
+    panel.run_button.click()
+    assert panel.wait(10.0)
+    assert panel.plot.value[:4] == b"\x89PNG" and panel.plot.layout.display == ""
+
+
+def test_button_input_errors_are_one_line_not_a_traceback(film, tmp_path):
+    dp = DisorderPanel(film, store=str(tmp_path / "s.sqlite"), show_view=False)
+    for button in (dp.transport_button, dp.export_button):
+        dp.errors.clear_output()
+        button.click()  # nothing to export yet: an input problem
+        assert "nothing to export yet" in html.unescape(dp.status.value)
+        assert "\n" not in html.unescape(dp.status.value)
+        assert dp.errors.outputs == ()
+    panel = ShiftScanPanel(film, radii_A=(6,))
+    panel.radii.value = "abc"
+    panel.run_button.click()
+    assert "check the settings: radii 'abc' are not valid" in html.unescape(panel.status.value)
+    assert panel.errors.outputs == () and not panel.running
+
+
 def test_scan_exception_reaches_the_error_output(film, monkeypatch):
     from clusterlab.errors import ConvergenceError
 
@@ -581,6 +608,8 @@ def test_disorder_run_histogram_growth_scene_and_export(film, tmp_path, monkeypa
     # 24 sites give at most a few tens of pairs per distance bin: C(r) would be noise, so the panel says
     # why in words (it used to draw it; see test_correlation_is_drawn_with_intervals_when_pairs_allow)
     assert dp.corr_plot.value == b"" and not dp.correlation.shown.any()
+    # an Image with no picture is hidden (a browser draws an empty one as a broken-image icon)
+    assert dp.corr_plot.layout.display == "none" and dp.hist_plot.layout.display == ""
     assert "C(r) is not drawn: 24 sites give" in html.unescape(dp.corr_note.value)
     # site energies on the film: sampled molecules in chain M, B-factor normalised 0..100
     sub = dp.data[(dp.data.radius_A == 9.0) & (dp.data.frame == 0)].set_index("molecule")["S1_eV"]

@@ -180,7 +180,9 @@ def plot_convergence(
         right.set_ylabel(", ".join(column_label(c) for c in others))
         more = right.get_legend_handles_labels()
         handles, labels = handles + more[0], labels + more[1]
-    ax.legend(handles, labels, fontsize="small")
+    # below the axes: inside, the legend of several quantities covered their curves
+    ax.legend(handles, labels, fontsize="small", loc="upper center", bbox_to_anchor=(0.5, -0.14), ncol=2,
+              frameon=False)
     return fig
 
 

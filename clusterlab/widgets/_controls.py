@@ -14,10 +14,16 @@ import traitlets
 from ..errors import InputError
 from ..ranges import parse_radii
 
-__all__ = ["Radii", "fit_control", "format_radii", "link_radii", "species_dropdown", "ALL_SPECIES"]
+__all__ = ["Radii", "fit_control", "format_radii", "link_radii", "species_dropdown", "row", "ALL_SPECIES"]
 
 #: the value of a species chooser that keeps every species
 ALL_SPECIES = ""
+
+
+def row(*children: widgets.Widget) -> widgets.HBox:
+    """A row of controls that wraps onto a second line where the panel is narrow
+    (instead of cutting the last control off)."""
+    return widgets.HBox(list(children), layout=widgets.Layout(flex_flow="row wrap", align_items="center"))
 
 
 def species_dropdown(film: Any, **kwargs: Any) -> widgets.Dropdown:

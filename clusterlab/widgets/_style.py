@@ -136,7 +136,7 @@ def cluster_scene_pdb(cluster: object, central: int) -> tuple[str, np.ndarray]:
 #: the light boxes beside a view (legend, readout, colour bar): long words
 #: such as file paths wrap inside the box instead of running out of it
 _BOX_STYLE = (f"font-size:12px;color:{INK};background:{PANEL_BG};padding:6px 8px;border-radius:6px;"
-              "border:1px solid #d8d2c4;min-width:220px;max-width:100%;box-sizing:border-box;"
+              "border:1px solid #d8d2c4;min-width:220px;max-width:100%;box-sizing:border-box;line-height:1.45;"
               "overflow-wrap:anywhere;word-break:break-word")
 
 #: the panels' style sheet (a ``<style>`` element in an HTML widget of each panel): tab titles, buttons
@@ -146,8 +146,8 @@ PANEL_CSS = """<style>
   flex: 0 0 auto !important; max-width: none !important; min-width: fit-content !important; }
 .clusterlab-panel .lm-TabBar-tabLabel, .clusterlab-panel .p-TabBar-tabLabel { overflow: visible !important; }
 .clusterlab-panel .widget-toggle-button, .clusterlab-panel .jupyter-button { min-width: fit-content; }
-.clusterlab-panel .clusterlab-status { overflow-wrap: anywhere; word-break: break-word; }
-.clusterlab-panel .widget-html-content { overflow-wrap: anywhere; }
+.clusterlab-panel .clusterlab-status { overflow-wrap: anywhere; word-break: break-word; line-height: 1.4; }
+.clusterlab-panel .clusterlab-table th { white-space: nowrap; }
 </style>"""
 
 #: description width of the panels' labelled controls (wide enough for "QM shell (Å)")
@@ -250,7 +250,8 @@ def _slug(text: str) -> str:
 
 
 def figure_png(fig: object, dpi: int = 96) -> bytes:
-    """PNG bytes of a matplotlib Figure (object API; no pyplot state)."""
+    """PNG bytes of a matplotlib Figure (object API; no pyplot state), cut to
+    what is drawn (a legend below the axes included)."""
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi)  # type: ignore[attr-defined]
+    fig.savefig(buf, format="png", dpi=dpi, bbox_inches="tight")  # type: ignore[attr-defined]
     return buf.getvalue()

@@ -26,7 +26,7 @@ from ..ranges import parse_radii
 from ..store import ResultStore
 from ..study.plots import plot_convergence
 from ..study.scan import pick_species_molecule, radius_scan
-from ._controls import Radii, fit_control, format_radii, link_radii, species_dropdown
+from ._controls import Radii, fit_control, format_radii, link_radii, row, species_dropdown
 from ._jobs import BackgroundJob, count_text
 from . import _style
 
@@ -95,8 +95,8 @@ class MethodControls(widgets.VBox):
             self.singlets.value = int(n_singlets)
         if n_triplets is not None:
             self.triplets.value = int(n_triplets)
-        super().__init__([widgets.HBox([self.preset, self.basis]), self.note,
-                          widgets.HBox([self.singlets, self.triplets])])
+        super().__init__([row(self.preset, self.basis), self.note,
+                          row(self.singlets, self.triplets)])
 
     def _on_preset(self, change: dict) -> None:
         name = change["new"]
@@ -217,6 +217,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         self.triplets = self.method_controls.triplets
         self.radii = widgets.Text(value=format_radii(radii_A), description="radii (Å)",
                                   placeholder="6, 9, 12  or  6-15:3", style=lab)
+        self.radii.add_class("clusterlab-radii")
         self.tol = widgets.BoundedFloatText(value=tol_meV, min=0.01, max=1000.0, step=1.0,
                                             description="tol (meV)", layout=w(width="180px"), style=lab)
         self.periodic_limit = widgets.Checkbox(value=periodic_limit, description="periodic (Ewald) limit",
@@ -264,10 +265,10 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
 
         settings = widgets.VBox([
             self.method_controls,
-            widgets.HBox([self.radii, self.tol, self.periodic_limit]),
-            widgets.HBox([self.species, self.molecule, self.frame, self.rule, self.qm_shell]),
-            widgets.HBox([self.store, self.runner]),
-            widgets.HBox([self.run_button, self.cancel_button, self.progress]),
+            row(self.radii, self.tol, self.periodic_limit),
+            row(self.species, self.molecule, self.frame, self.rule, self.qm_shell),
+            row(self.store, self.runner),
+            row(self.run_button, self.cancel_button, self.progress),
             self.status,
         ])
         results = widgets.VBox([self.plot, widgets.Box([self.table_html],
@@ -332,19 +333,19 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         if self.running:
             self._set_status("a scan is already running; cancel it first", "warn")
             return self
-        self.rows = []
-        self.narration = []
-        self.result = None
         self.error = ""
         self.exception = None
-        self.n_plots = 0
         self.errors.clear_output()
         try:
             settings = self.settings()
             self.method = self.build_method()
-        except Exception as exc:  # noqa: BLE001 - shown to the user
+        except Exception as exc:  # noqa: BLE001 - shown to the user; the last scan's results stay
             self._fail(exc)
             return self
+        self.rows = []
+        self.narration = []
+        self.result = None
+        self.n_plots = 0
         self.progress.max = len(settings["radii"])
         self.progress.value = 0
         self.progress.bar_style = "info"

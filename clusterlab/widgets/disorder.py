@@ -37,7 +37,7 @@ from ..study.doped import host_guest_overview, n_species
 from ..study.plots import plot_correlation, plot_growth, plot_histogram, plot_torsion
 from ..study.sample import SiteSample, choose_molecules, sample_sites, site_correlation, site_table
 from ..export import export_study
-from ._controls import Radii, format_radii, link_radii, species_dropdown
+from ._controls import Radii, format_radii, link_radii, row, species_dropdown
 from ._jobs import BackgroundJob, count_text
 from . import _style
 from .calc import _TABLE_CSS, MethodControls, frame_html
@@ -200,7 +200,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.colourbar = widgets.HTML()
         self.table_html = widgets.HTML()
         self.view: Any = None
-        scene: list[widgets.Widget] = [widgets.HBox([self.frame_pick, self.colourbar])]
+        scene: list[widgets.Widget] = [row(self.frame_pick, self.colourbar)]
         if show_view:
             import nglview
 
@@ -242,17 +242,17 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.tabs.observe(self._on_tab, names="selected_index")
 
         settings = widgets.VBox([
-            widgets.HBox([self.molecules, self.species, self.n_molecules, self.seed]),
-            widgets.HBox([self.frames, self.radii]),
+            row(self.molecules, self.species, self.n_molecules, self.seed),
+            row(self.frames, self.radii),
             self.method_controls,
             self.runner,
-            widgets.HBox([self.store, self.load_button]),
-            widgets.HBox([self.run_button, self.cancel_button, self.progress]),
+            row(self.store, self.load_button),
+            row(self.run_button, self.cancel_button, self.progress),
             self.status,
-            widgets.HBox([self.quantity, self.radius_pick]),
+            row(self.quantity, self.radius_pick),
         ])
-        export = widgets.VBox([widgets.HBox([self.export_path, self.export_button]),
-                               widgets.HBox([self.transport_path, self.transport_cutoff, self.transport_button])])
+        export = widgets.VBox([row(self.export_path, self.export_button),
+                               row(self.transport_path, self.transport_cutoff, self.transport_button)])
         super().__init__([widgets.HTML(_style.PANEL_CSS), settings, self.tabs, export, self.errors], **kwargs)
         self.add_class("clusterlab-disorder-panel")
         self.add_class("clusterlab-panel")

@@ -20,7 +20,7 @@ import traitlets
 
 from ..ranges import is_id_text, parse_ids
 from . import _style
-from ._controls import fit_control, species_dropdown
+from ._controls import fit_control, row, species_dropdown
 
 __all__ = ["FilmExplorer"]
 
@@ -133,7 +133,7 @@ class FilmExplorer(widgets.VBox):
 
         mols = film.molecules
         self.search = widgets.Text(
-            value="", placeholder="id, residue name or selection", description="find",
+            value="", placeholder="id, resname or selection", description="find",
             continuous_update=False, layout=widgets.Layout(width="300px"), style=lab)
         self.species_picker = species_dropdown(film)
         self.molecule_picker = widgets.Dropdown(
@@ -154,18 +154,20 @@ class FilmExplorer(widgets.VBox):
             value=int(frame), min=0, max=max(film.n_frames - 1, 0), description="frame",
             continuous_update=False, disabled=film.n_frames <= 1, layout=widgets.Layout(width="380px"), style=lab)
         self.periodic_box = widgets.Checkbox(
-            value=bool(film.has_box), description="periodic images", disabled=not film.has_box, indent=False)
-        self.click_box = widgets.Checkbox(value=True, description="click in view picks the centre", indent=False)
+            value=bool(film.has_box), description="periodic images", disabled=not film.has_box, indent=False,
+            layout=widgets.Layout(width="auto", margin="2px 24px 2px 12px"))
+        self.click_box = widgets.Checkbox(value=True, description="click in view picks the centre", indent=False,
+                                          layout=widgets.Layout(width="auto"))
         self.readout = widgets.HTML()
         self.legend = widgets.HTML()
         self.errors = widgets.Output(layout=widgets.Layout(max_height="160px", overflow="auto"))
         self.view: Any = None
 
         controls = widgets.VBox([
-            widgets.HBox([self.search, self.species_picker, self.molecule_picker]),
-            widgets.HBox([self.radius_slider, self.shell_slider]),
-            widgets.HBox([self.frame_slider, self.periodic_box, self.click_box]),
-            self.rule_toggle,
+            row(self.search, self.species_picker, self.molecule_picker),
+            row(self.radius_slider, self.shell_slider),
+            row(self.frame_slider, self.rule_toggle),
+            row(self.periodic_box, self.click_box),
         ])
         # the legend and the readout beside the view (not below it): on screen with the view
         side = widgets.VBox([self.legend, self.readout],
@@ -426,6 +428,8 @@ class FilmExplorer(widgets.VBox):
 
     def _attach_view(self, view: Any) -> None:
         self.view = view
+        # nglview's pick label starts empty (a white speck): hidden until a pick fills it
+        view._execute_js_code("if (this.$pickingInfo) { this.$pickingInfo.hide(); }")
         view.observe(self._on_picked, names="picked")
         view.observe(self._on_view_loaded, names=["loaded", "n_components"])
         self._left.children = (view, *self._left.children)
