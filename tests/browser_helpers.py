@@ -183,9 +183,9 @@ TRUNCATED_JS = """() => {
 }"""
 
 
-def save_doc_png(src: Path, dest: Path, *, max_width: int = 960, colours: int = 192) -> int:
-    """Copy a screenshot for the README: at most ``max_width`` px wide, a palette
-    PNG of ``colours`` colours (screens of flat widgets lose nothing visible);
+def save_doc_png(src: Path, dest: Path, *, max_width: int = 960) -> int:
+    """Copy a screenshot for the README: at most ``max_width`` px wide (Lanczos),
+    full colour (a palette loses the few pixels of the QM region), optimised PNG;
     returns the file size in bytes."""
     from PIL import Image
 
@@ -193,6 +193,5 @@ def save_doc_png(src: Path, dest: Path, *, max_width: int = 960, colours: int = 
     if img.width > max_width:
         img = img.resize((max_width, round(img.height * max_width / img.width)), Image.LANCZOS)
     dest.parent.mkdir(parents=True, exist_ok=True)
-    img.quantize(colors=colours, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE).save(
-        dest, format="PNG", optimize=True)
+    img.save(dest, format="PNG", optimize=True)
     return dest.stat().st_size

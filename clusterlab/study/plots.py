@@ -181,7 +181,7 @@ def plot_convergence(
         more = right.get_legend_handles_labels()
         handles, labels = handles + more[0], labels + more[1]
     # below the axes: inside, the legend of several quantities covered their curves
-    ax.legend(handles, labels, fontsize="small", loc="upper center", bbox_to_anchor=(0.5, -0.14), ncol=2,
+    ax.legend(handles, labels, fontsize="small", loc="upper center", bbox_to_anchor=(0.5, -0.2), ncol=2,
               frameon=False)
     return fig
 

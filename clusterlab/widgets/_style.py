@@ -146,8 +146,12 @@ PANEL_CSS = """<style>
   flex: 0 0 auto !important; max-width: none !important; min-width: fit-content !important; }
 .clusterlab-panel .lm-TabBar-tabLabel, .clusterlab-panel .p-TabBar-tabLabel { overflow: visible !important; }
 .clusterlab-panel .widget-toggle-button, .clusterlab-panel .jupyter-button { min-width: fit-content; }
+.clusterlab-panel .widget-toggle-buttons { display: flex; flex-flow: row wrap; align-items: center; }
 .clusterlab-panel .clusterlab-status { overflow-wrap: anywhere; word-break: break-word; line-height: 1.4; }
+.clusterlab-panel .clusterlab-table { line-height: 1.4; }
 .clusterlab-panel .clusterlab-table th { white-space: nowrap; }
+.clusterlab-panel .clusterlab-stats td:first-child { text-align: left; white-space: nowrap; color: #555; }
+.clusterlab-panel .clusterlab-stats td:last-child { text-align: left; }
 </style>"""
 
 #: description width of the panels' labelled controls (wide enough for "QM shell (Å)")

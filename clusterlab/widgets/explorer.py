@@ -149,7 +149,8 @@ class FilmExplorer(widgets.VBox):
             continuous_update=False, readout_format=".2f", layout=widgets.Layout(width="380px"), style=lab)
         self.rule_toggle = widgets.ToggleButtons(
             options=[("atom within radius", "atom"), ("centroid within radius", "centroid")],
-            value=rule, description="cut rule", style={**lab, "button_width": "auto"})
+            value=rule, description="cut rule", style={**lab, "button_width": "auto"},
+            layout=widgets.Layout(width="auto"))
         self.frame_slider = widgets.IntSlider(
             value=int(frame), min=0, max=max(film.n_frames - 1, 0), description="frame",
             continuous_update=False, disabled=film.n_frames <= 1, layout=widgets.Layout(width="380px"), style=lab)
