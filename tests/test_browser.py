@@ -25,6 +25,7 @@ test also writes the README's copies (downscaled palette PNGs) into
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import shutil
@@ -194,6 +195,11 @@ def drive(server, notebook: str, artifacts: Path, *, run_timeout_s: float = 600.
                 "() => { const i = document.querySelector('.clusterlab-disorder-panel img');"
                 " return i ? i.naturalWidth : 0; }")
             panel_screenshot(page, disorder, artifacts / "disorder.png")
+            # the site energies on the film (the tab's 3D view), for a look at the colour scale
+            disorder.locator(".lm-TabBar-tab", has_text="on the film").first.click()
+            page.wait_for_timeout(2500)
+            disorder.screenshot(path=str(artifacts / "08_disorder_on_the_film.png"))
+            disorder.locator(".lm-TabBar-tab", has_text="histogram").first.click()
             out["broken_images"] = page.evaluate(
                 "() => [...document.querySelectorAll('.clusterlab-panel img')]"
                 ".filter(i => i.offsetParent && !(i.naturalWidth > 0)).length")
@@ -259,6 +265,8 @@ def test_walkthrough_in_jupyterlab(tmp_path):
         res = drive(server, "walkthrough.ipynb", ARTIFACTS)
         shutil.copy(server.log, ARTIFACTS / "jupyterlab.log")
     (ARTIFACTS / "console.txt").write_text("\n".join(res["console"]))
+    (ARTIFACTS / "measurements.json").write_text(json.dumps(
+        {k: v for k, v in res.items() if k not in ("page_text", "console")}, indent=1, default=str))
     text = res["page_text"]
     for bad in ("Error displaying widget", "Failed to load model class", "Traceback"):
         assert bad not in text, f"page shows {bad!r}; see {ARTIFACTS}"
@@ -286,6 +294,30 @@ def test_walkthrough_in_jupyterlab(tmp_path):
     if os.environ.get("CLUSTERLAB_DOC_SCREENSHOTS") == "1":
         sizes = {dest: save_doc_png(ARTIFACTS / src, DOC_SHOTS / dest) for src, dest in DOC_COPIES.items()}
         assert max(sizes.values()) < 400_000, sizes
+
+
+def test_long_paths_stay_inside_the_side_box():
+    """A carve error naming a long file path wraps inside the explorer's 330 px
+    readout instead of running out of it (static page, the readout's own HTML)."""
+    from playwright.sync_api import sync_playwright
+
+    from clusterlab.widgets import _style
+
+    path = "/data/larkspur/interlayer_runs/" + "/".join(["equilibration_stage_b"] * 6) + "/film.psf"
+    box = _style.readout_html([("central molecule", "12 (BTH, C8H6S2)")], [f"file {path} has no box"],
+                              [f"FilmError: {path}: frame 40 is not in the file"])
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS, headless=True)
+        try:
+            page = browser.new_page(viewport=VIEWPORT)
+            page.set_content(f'<div id="side" style="width:330px">{box}</div>')
+            size = page.evaluate("() => { const e = document.querySelector('.clusterlab-readout');"
+                                 " return {scroll: e.scrollWidth, client: e.clientWidth,"
+                                 " outer: document.getElementById('side').scrollWidth}; }")
+        finally:
+            browser.close()
+    assert len(path) > 150
+    assert size["scroll"] <= size["client"] + 1 and size["outer"] <= 331, size
 
 
 def test_truncation_check_finds_a_cut_label():

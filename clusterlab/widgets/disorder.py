@@ -37,7 +37,7 @@ from ..study.doped import host_guest_overview, n_species
 from ..study.plots import plot_correlation, plot_growth, plot_histogram, plot_torsion
 from ..study.sample import SiteSample, choose_molecules, sample_sites, site_correlation, site_table
 from ..export import export_study
-from ._controls import Radii, format_radii, link_radii, row, species_dropdown
+from ._controls import Radii, format_radii, link_radii, make_view, row, species_dropdown
 from ._jobs import BackgroundJob, count_text
 from . import _style
 from .calc import _TABLE_CSS, MethodControls, frame_html
@@ -202,11 +202,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.view: Any = None
         scene: list[widgets.Widget] = [row(self.frame_pick, self.colourbar)]
         if show_view:
-            import nglview
-
-            self.view = nglview.NGLWidget()
-            self.view.background = _style.BACKGROUND
-            self.view._set_size("100%", "420px")
+            self.view = make_view("420px")
             scene.append(self.view)
 
         tabs: list[widgets.Widget] = [
@@ -577,11 +573,12 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self.view.remove_component(self._site_comp)
         comp = self.view.add_component(nglview.TextStructure(self.scene_pdb, ext="pdb"),
                                        default_representation=False, name="sites")
-        comp.add_representation("line", selection=f":{_style.CHAIN_FILM}", color=_style.FILM_REST, opacity=0.5)
+        comp.add_representation("line", selection=f":{_style.CHAIN_FILM}", color=_style.FILM_REST, opacity=0.35)
         if self.site_values:
+            # thick enough to read among the film's lines
             comp.add_representation("ball+stick", selection=f":{_style.CHAIN_SITE}", color="bfactor",
                                     color_scale=list(_style.ENERGY_SCALE),
-                                    color_domain=[0.0, _style.BFACTOR_SCALE])
+                                    color_domain=[0.0, _style.BFACTOR_SCALE], radius_scale=1.6)
         self._site_comp = comp
 
     def _on_tab(self, change: dict) -> None:

@@ -20,7 +20,7 @@ import traitlets
 
 from ..ranges import is_id_text, parse_ids
 from . import _style
-from ._controls import fit_control, row, species_dropdown
+from ._controls import fit_control, make_view, row, species_dropdown
 
 __all__ = ["FilmExplorer"]
 
@@ -29,16 +29,6 @@ MAX_LISTED = 2000
 
 #: height of the 3D view: with the controls below it the explorer fits a 900 px high screen
 VIEW_HEIGHT = "430px"
-
-
-def _make_view() -> Any:
-    import nglview
-
-    view = nglview.NGLWidget()
-    view.background = _style.BACKGROUND
-    view._set_size("100%", VIEW_HEIGHT)  # the stage's own size (a Layout height leaves the canvas at 300 px)
-    view.layout = widgets.Layout(flex="1 1 auto", min_width="480px")
-    return view
 
 
 class FilmExplorer(widgets.VBox):
@@ -176,7 +166,7 @@ class FilmExplorer(widgets.VBox):
         self._left = widgets.VBox([controls], layout=widgets.Layout(flex="1 1 auto"))
         self._top = widgets.HBox([self._left, side])
         if show_view:
-            self._attach_view(_make_view())
+            self._attach_view(make_view(VIEW_HEIGHT))
         super().__init__([widgets.HTML(_style.PANEL_CSS), self._top, self.errors], **kwargs)
         self.add_class("clusterlab-explorer")
         self.add_class("clusterlab-panel")
@@ -423,14 +413,12 @@ class FilmExplorer(widgets.VBox):
     def make_view(self) -> Any:
         """Create (if needed) and return the 3D view."""
         if self.view is None:
-            self._attach_view(_make_view())
+            self._attach_view(make_view(VIEW_HEIGHT))
             self._draw()
         return self.view
 
     def _attach_view(self, view: Any) -> None:
         self.view = view
-        # nglview's pick label starts empty (a white speck): hidden until a pick fills it
-        view._execute_js_code("if (this.$pickingInfo) { this.$pickingInfo.hide(); }")
         view.observe(self._on_picked, names="picked")
         view.observe(self._on_view_loaded, names=["loaded", "n_components"])
         self._left.children = (view, *self._left.children)
