@@ -103,6 +103,10 @@ def _scratch_env(scratch: Path) -> dict[str, str]:
     note.mkdir(parents=True, exist_ok=True)
     (note / "notification.jupyterlab-settings").write_text(
         json.dumps({"fetchNews": "false", "checkForUpdates": False}))
+    # every cell stays in the page (no windowing), so that panels out of view can be checked and watched
+    tracker = dirs["JUPYTERLAB_SETTINGS_DIR"] / "@jupyterlab" / "notebook-extension"
+    tracker.mkdir(parents=True, exist_ok=True)
+    (tracker / "tracker.jupyterlab-settings").write_text(json.dumps({"windowingMode": "none"}))
     env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(REPO), os.environ.get("PYTHONPATH")]))
     env.setdefault("OMP_NUM_THREADS", "2")
     return env
@@ -157,3 +161,37 @@ def non_blank_fraction(png: bytes) -> tuple[float, int]:
     background = colours[np.argmax(counts)]
     differs = np.any(np.abs(img.astype(int) - background.astype(int)) > 12, axis=1)
     return float(differs.mean()), int(len(colours))
+
+
+#: page check: every visible label, button, tab title and readout of the clusterlab panels whose text is
+#: wider than its box (the browser cuts it with "…"); returns [{"text", "scroll", "client"}]
+TRUNCATED_JS = """() => {
+  const sel = ['.widget-label', '.widget-label-basic', 'button', '.lm-TabBar-tabLabel', '.p-TabBar-tabLabel',
+               '.widget-readout', '.widget-description', 'select', 'label'].join(',');
+  const out = [];
+  let checked = 0;
+  for (const panel of document.querySelectorAll('.clusterlab-panel')) {
+    for (const el of panel.querySelectorAll(sel)) {
+      if (!el.offsetParent || el.clientWidth === 0) continue;   // hidden (another tab, display:none)
+      checked += 1;
+      if (el.scrollWidth > el.clientWidth + 1)
+        out.push({text: (el.innerText || el.textContent || el.value || '').trim().slice(0, 80),
+                  scroll: el.scrollWidth, client: el.clientWidth});
+    }
+  }
+  return {checked: checked, cut: out};
+}"""
+
+
+def save_doc_png(src: Path, dest: Path, *, max_width: int = 960) -> int:
+    """Copy a screenshot for the README: at most ``max_width`` px wide (Lanczos),
+    full colour (a palette loses the few pixels of the QM region), optimised PNG;
+    returns the file size in bytes."""
+    from PIL import Image
+
+    img = Image.open(src).convert("RGB")
+    if img.width > max_width:
+        img = img.resize((max_width, round(img.height * max_width / img.width)), Image.LANCZOS)
+    dest.parent.mkdir(parents=True, exist_ok=True)
+    img.save(dest, format="PNG", optimize=True)
+    return dest.stat().st_size

@@ -81,7 +81,7 @@ def test_picking_in_the_view_changes_the_centre(film):
     ex = FilmExplorer(film, molecule=0, radius_A=6.0)
     film_comp = ex.view._ngl_component_ids.index(ex._film_comp.id)
     atom = int(film.molecule_atoms(9)[1])
-    ex.view.picked = {"atom1": {"index": atom, "resno": 10, "name": "[WAT]10:F.HW1"}, "component": film_comp}
+    ex.view.picked = {"atom1": {"index": atom, "resno": 9, "name": "[WAT]9:F.HW1"}, "component": film_comp}
     assert ex.molecule == 9
     assert ex.cluster.center == 9
     # an atom of the cluster scene: a point charge of some environment molecule
@@ -95,6 +95,105 @@ def test_picking_in_the_view_changes_the_centre(film):
     ex.click_box.value = False
     ex.view.picked = {"atom1": {"index": int(film.molecule_atoms(3)[0])}, "component": film_comp}
     assert ex.molecule == target
+
+
+def _record_view_calls(view, monkeypatch):
+    """Replace the view's messages to the browser by a list of (method, args, kwargs)."""
+    calls = []
+    monkeypatch.setattr(view, "_remote_call",
+                        lambda name, target="Widget", args=None, kwargs=None, **kw: calls.append((name, args, kwargs)))
+    return calls
+
+
+def test_pick_label_names_the_molecule_id_and_clears_when_the_centre_moves(film, monkeypatch):
+    ex = FilmExplorer(film, molecule=0, radius_A=6.0)
+    calls = _record_view_calls(ex.view, monkeypatch)
+    # the film scene's residue numbers are molecule ids: nglview's own atom name reads "[RES]<id>"
+    from clusterlab.widgets._style import film_scene_pdb
+    text = film_scene_pdb(film.symbols, film.frame_geometry(0).positions_A, film.molecule_of_atom,
+                          film.molecule_resnames)
+    first_of_9 = int(film.molecule_atoms(9)[0])
+    line = [ln for ln in text.splitlines() if ln.startswith("HETATM")][first_of_9]
+    assert int(line[22:26]) == 9  # was 10 (molecule id + 1)
+    # a pick in the film scene: the label names molecule 9 and the view's label box gets that text
+    film_comp = ex.view._ngl_component_ids.index(ex._film_comp.id)
+    ex.view.picked = {"atom1": {"index": first_of_9, "resno": 9}, "component": film_comp}
+    assert ex.molecule == 9
+    assert ex.pick_label.startswith("molecule 9 · ")
+    js = [a[0] for name, a, _ in calls if name == "executeCode"]
+    assert js and '"molecule 9 ' in js[-1] and "toggle(true)" in js[-1]
+    # a pick on a point charge says which charge it is
+    clus_comp = ex.view._ngl_component_ids.index(ex._cluster_comp.id)
+    n_qm = len(ex.cluster.qm_symbols)
+    q = float(ex.cluster.env_charges[2])
+    target = int(ex.cluster.env_molecules[2])
+    ex.view.picked = {"atom1": {"index": n_qm + 2}, "component": clus_comp}
+    assert ex.molecule == target
+    assert ex.pick_label == f"molecule {target} · WAT · point charge {q:+.3f} e"
+    # the centre changed another way (the dropdown): the label goes away in Python and in the view
+    n_js = len([1 for name, _, _ in calls if name == "executeCode"])
+    ex.molecule_picker.value = 3
+    assert ex.molecule == 3 and ex.pick_label == ""
+    js = [a[0] for name, a, _ in calls if name == "executeCode"]
+    assert len(js) == n_js + 1 and "toggle(false)" in js[-1]
+
+
+def test_camera_refits_to_the_cluster_when_radius_or_centre_changes(film, monkeypatch):
+    ex = FilmExplorer(film, molecule=0, radius_A=4.0)
+    calls = _record_view_calls(ex.view, monkeypatch)
+    ex.view.loaded = True
+    fits = lambda: [a for name, a, _ in calls if name == "autoView"]  # noqa: E731
+    n0 = len(fits())
+    ex.radius_A = 7.0  # the cluster grows: the camera must zoom out to hold it
+    assert len(fits()) == n0 + 1
+    ex.molecule = 5
+    assert len(fits()) == n0 + 2
+    ex.click_box.value = False  # not a carve setting: no re-fit
+    assert len(fits()) == n0 + 2
+
+
+def test_scene_colours_are_visible_on_the_dark_background():
+    """WCAG 2.1 contrast ratio (W3C, Web Content Accessibility Guidelines 2.1, 2018, definitions of
+    relative luminance and contrast ratio; 3:1 is its threshold for graphical objects, SC 1.4.11)."""
+    from clusterlab.widgets import _style
+
+    # the formula against its fixed points: black on white is 21:1, a colour on itself 1:1
+    assert _style.contrast_ratio("#000000", "#FFFFFF") == pytest.approx(21.0)
+    assert _style.contrast_ratio("#1F2630", "#1F2630") == pytest.approx(1.0)
+    # mid grey #777777 on white: 4.48:1 (from memory; the classic "just fails AA" example)
+    assert _style.contrast_ratio("#777777", "#FFFFFF") == pytest.approx(4.48, abs=0.01)
+    # the lowest site-energy colour (it was 2.83:1) and every colour of the scales
+    assert _style.contrast_ratio(_style.ENERGY_SCALE[0], _style.BACKGROUND) >= 3.0
+    for c in (*_style.ENERGY_SCALE, *_style.CHARGE_NEG_SCALE, *_style.CHARGE_POS_SCALE, _style.QM_CENTRAL,
+              _style.QM_SHELL):
+        assert _style.contrast_ratio(c, _style.BACKGROUND) >= 3.0, c
+    # the smallest charges keep a saturated colour (the film's grey lines have HSV saturation 0.15)
+    import colorsys
+
+    def saturation(c):
+        return colorsys.rgb_to_hsv(*(int(c[i:i + 2], 16) / 255 for i in (1, 3, 5)))[1]
+
+    assert saturation(_style.FILM_REST) < 0.2
+    assert saturation(_style.CHARGE_NEG_SCALE[0]) > 0.5 and saturation(_style.CHARGE_POS_SCALE[0]) > 0.5
+    # sign by hue: negative and positive floors lie far apart on the colour wheel
+    hue = lambda c: colorsys.rgb_to_hsv(*(int(c[i:i + 2], 16) / 255 for i in (1, 3, 5)))[0]  # noqa: E731
+    d = abs(hue(_style.CHARGE_NEG_SCALE[0]) - hue(_style.CHARGE_POS_SCALE[0]))
+    assert min(d, 1 - d) > 0.3
+
+
+def test_charges_are_drawn_by_sign_with_a_floor_colour(film, monkeypatch):
+    from clusterlab.widgets import _style
+
+    ex = FilmExplorer(film, molecule=0, radius_A=4.0)
+    calls = _record_view_calls(ex.view, monkeypatch)
+    ex.radius_A = 6.0
+    by_sele = {kw["sele"]: kw for name, _, kw in calls if name == "addRepresentation" and "sele" in (kw or {})}
+    neg, pos = by_sele[f":{_style.CHAIN_ENV_NEG}"], by_sele[f":{_style.CHAIN_ENV_POS}"]
+    q = 100 * float(np.max(np.abs(ex.cluster.env_charges)))
+    # zero maps to the floor colour of each sign, the largest |q| to the deep end
+    assert neg["colorScale"] == [_style.CHARGE_NEG_SCALE[1], _style.CHARGE_NEG_SCALE[0]]
+    assert neg["colorDomain"] == pytest.approx([-q, 0.0])
+    assert pos["colorScale"] == list(_style.CHARGE_POS_SCALE) and pos["colorDomain"] == pytest.approx([0.0, q])
 
 
 def test_warning_for_radius_beyond_half_box(film):
@@ -196,12 +295,20 @@ def test_cluster_scene_marks_qm_and_charges(film):
     lines = [ln for ln in text.splitlines() if ln.startswith("HETATM")]
     chains = np.array([ln[21] for ln in lines])
     b = np.array([float(ln[60:66]) for ln in lines])
-    assert (chains[: len(c.qm_symbols)] != "E").all()
+    resno = np.array([int(ln[22:26]) for ln in lines])
+    n_qm = len(c.qm_symbols)
+    assert set(chains[:n_qm]) <= {"Q", "S"}
     assert (chains == "Q").sum() == np.sum(c.qm_atom_molecules == 4)
-    assert (chains == "E").sum() == c.n_charges
+    # charges: chain N for negative, P for positive (or zero), in the cluster's order
+    env = chains[n_qm:]
+    assert len(env) == c.n_charges
+    np.testing.assert_array_equal(env == "N", np.asarray(c.env_charges) < 0)
+    assert (env == "N").any() and (env == "P").any()  # water: O negative, H positive
     # B-factor = 100 x charge (2 decimals in PDB)
-    np.testing.assert_allclose(b[chains == "E"], 100 * c.env_charges, atol=0.006)
+    np.testing.assert_allclose(b[n_qm:], 100 * c.env_charges, atol=0.006)
     np.testing.assert_array_equal(atom_mol, np.r_[c.qm_atom_molecules, c.env_molecules])
+    # the residue number is the molecule id itself (the viewer's own labels show it)
+    np.testing.assert_array_equal(resno, atom_mol)
 
 
 # -------------------------------------------------------------- scan panel
@@ -372,6 +479,33 @@ def test_bad_input_from_the_scan_is_one_line(film, monkeypatch):
     assert panel.error == "InputError: radius 0 Å is not positive"
 
 
+def test_plot_is_hidden_until_there_is_one(film, monkeypatch):
+    panel = ShiftScanPanel(film, radii_A=(6, 9))
+    assert panel.plot.value == b"" and panel.plot.layout.display == "none"
+    fake = FakeScan(SCAN_ROWS)
+    for _ in SCAN_ROWS:
+        fake.step.release()
+    monkeypatch.setattr(calc, "radius_scan", fake)
+    panel.run_button.click()
+    assert panel.wait(10.0)
+    assert panel.plot.value[:4] == b"\x89PNG" and panel.plot.layout.display == ""
+
+
+def test_button_input_errors_are_one_line_not_a_traceback(film, tmp_path):
+    dp = DisorderPanel(film, store=str(tmp_path / "s.sqlite"), show_view=False)
+    for button in (dp.transport_button, dp.export_button):
+        dp.errors.clear_output()
+        button.click()  # nothing to export yet: an input problem
+        assert "nothing to export yet" in html.unescape(dp.status.value)
+        assert "\n" not in html.unescape(dp.status.value)
+        assert dp.errors.outputs == ()
+    panel = ShiftScanPanel(film, radii_A=(6,))
+    panel.radii.value = "abc"
+    panel.run_button.click()
+    assert "check the settings: radii 'abc' are not valid" in html.unescape(panel.status.value)
+    assert panel.errors.outputs == () and not panel.running
+
+
 def test_scan_exception_reaches_the_error_output(film, monkeypatch):
     from clusterlab.errors import ConvergenceError
 
@@ -474,6 +608,8 @@ def test_disorder_run_histogram_growth_scene_and_export(film, tmp_path, monkeypa
     # 24 sites give at most a few tens of pairs per distance bin: C(r) would be noise, so the panel says
     # why in words (it used to draw it; see test_correlation_is_drawn_with_intervals_when_pairs_allow)
     assert dp.corr_plot.value == b"" and not dp.correlation.shown.any()
+    # an Image with no picture is hidden (a browser draws an empty one as a broken-image icon)
+    assert dp.corr_plot.layout.display == "none" and dp.hist_plot.layout.display == ""
     assert "C(r) is not drawn: 24 sites give" in html.unescape(dp.corr_note.value)
     # site energies on the film: sampled molecules in chain M, B-factor normalised 0..100
     sub = dp.data[(dp.data.radius_A == 9.0) & (dp.data.frame == 0)].set_index("molecule")["S1_eV"]

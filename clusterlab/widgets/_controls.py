@@ -14,10 +14,32 @@ import traitlets
 from ..errors import InputError
 from ..ranges import parse_radii
 
-__all__ = ["Radii", "fit_control", "format_radii", "link_radii", "species_dropdown", "ALL_SPECIES"]
+__all__ = ["Radii", "fit_control", "format_radii", "link_radii", "make_view", "species_dropdown", "row",
+           "ALL_SPECIES"]
 
 #: the value of a species chooser that keeps every species
 ALL_SPECIES = ""
+
+
+def make_view(height: str) -> Any:
+    """An nglview 3D view on the panels' dark background, ``height`` high (CSS)."""
+    import nglview
+
+    from ._style import BACKGROUND
+
+    view = nglview.NGLWidget()
+    view.background = BACKGROUND
+    view._set_size("100%", height)  # the stage's own size (a Layout height leaves the canvas at 300 px)
+    view.layout = widgets.Layout(flex="1 1 auto", min_width="480px")
+    # nglview's pick label starts empty (a white speck): hidden until a pick fills it
+    view._execute_js_code("if (this.$pickingInfo) { this.$pickingInfo.hide(); }")
+    return view
+
+
+def row(*children: widgets.Widget) -> widgets.HBox:
+    """A row of controls that wraps onto a second line where the panel is narrow
+    (instead of cutting the last control off)."""
+    return widgets.HBox(list(children), layout=widgets.Layout(flex_flow="row wrap", align_items="center"))
 
 
 def species_dropdown(film: Any, **kwargs: Any) -> widgets.Dropdown:

@@ -10,6 +10,7 @@ import traceback
 from typing import Any
 
 from ..errors import InputError
+from ._style import OK, WARN
 
 
 def count_text(n: int, one: str, many: str) -> str:
@@ -23,7 +24,7 @@ class BackgroundJob:
 
     The class using it sets ``self.exception`` (the job's error, or None) in
     its ``_work`` and provides ``run()``, an ``errors`` Output widget, a
-    ``progress`` bar, ``_set_status(text, kind)`` and ``_cancel_message``;
+    ``progress`` bar, a ``status`` HTML widget and ``_cancel_message``;
     ``_fail(exc)`` shows a failure (a cancel is never one: the panels check
     ``cancel_event`` first).
     """
@@ -66,12 +67,23 @@ class BackgroundJob:
         return not self.running
 
     def _on_run_click(self, _b: Any) -> None:
-        with self.errors:  # type: ignore[attr-defined]
-            self.run()  # type: ignore[attr-defined]
+        self._shown(self.run)  # type: ignore[attr-defined]
 
     def _on_cancel_click(self, _b: Any) -> None:
-        with self.errors:  # type: ignore[attr-defined]
-            self.cancel()
+        self._shown(self.cancel)
+
+    def _shown(self, action: Any) -> None:
+        """Run a button's ``action``; a failure is shown by :meth:`_fail` (one
+        line for an input problem) instead of a traceback under the cell."""
+        try:
+            action()
+        except Exception as exc:  # noqa: BLE001 - shown to the user
+            self._fail(exc)
+
+    def _set_status(self, text: str, kind: str) -> None:
+        """The status line (``text`` is HTML); ``kind`` one of ok, warn, error, info."""
+        colour = {"ok": OK, "warn": WARN, "error": "#a00", "info": "#335"}.get(kind, "#555")
+        self.status.value = f'<span class="clusterlab-status" style="color:{colour}">{text}</span>'  # type: ignore[attr-defined]
 
     def _fail(self, exc: BaseException) -> None:
         """Record ``exc`` and show it: a one-line status for an input problem (a setting to fix), the

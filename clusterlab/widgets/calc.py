@@ -26,7 +26,7 @@ from ..ranges import parse_radii
 from ..store import ResultStore
 from ..study.plots import plot_convergence
 from ..study.scan import pick_species_molecule, radius_scan
-from ._controls import Radii, fit_control, format_radii, link_radii, species_dropdown
+from ._controls import Radii, fit_control, format_radii, link_radii, row, species_dropdown
 from ._jobs import BackgroundJob, count_text
 from . import _style
 
@@ -78,14 +78,15 @@ class MethodControls(widgets.VBox):
         if preset not in presets:
             presets = {preset: "", **presets}
         self._descriptions = presets
-        self.preset = widgets.Dropdown(options=list(presets), value=preset, description="method")
+        lab = _style.LABEL_STYLE
+        self.preset = widgets.Dropdown(options=list(presets), value=preset, description="method", style=lab)
         self.note = widgets.HTML()
         self.basis = widgets.Combobox(value="", options=["sto-3g", "6-31g", "def2-svp", "def2-tzvp"],
-                                      description="basis", ensure_option=False)
+                                      description="basis", ensure_option=False, style=lab)
         self.singlets = widgets.BoundedIntText(value=0, min=0, max=50, description="singlets",
-                                               layout=widgets.Layout(width="170px"))
+                                               layout=widgets.Layout(width="180px"), style=lab)
         self.triplets = widgets.BoundedIntText(value=0, min=0, max=50, description="triplets",
-                                               layout=widgets.Layout(width="170px"))
+                                               layout=widgets.Layout(width="180px"), style=lab)
         self.preset.observe(self._on_preset, names="value")
         self._on_preset({"new": preset})
         if basis:
@@ -94,8 +95,8 @@ class MethodControls(widgets.VBox):
             self.singlets.value = int(n_singlets)
         if n_triplets is not None:
             self.triplets.value = int(n_triplets)
-        super().__init__([widgets.HBox([self.preset, self.basis]), self.note,
-                          widgets.HBox([self.singlets, self.triplets])])
+        super().__init__([row(self.preset, self.basis), self.note,
+                          row(self.singlets, self.triplets)])
 
     def _on_preset(self, change: dict) -> None:
         name = change["new"]
@@ -206,6 +207,8 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         self._cancel_message = 'cancelling after the radius in progress…'
 
         self.errors = widgets.Output(layout=widgets.Layout(max_height="220px", overflow="auto"))
+        lab = _style.LABEL_STYLE
+        w = widgets.Layout
         self.method_controls = MethodControls(preset, basis=basis, n_singlets=n_singlets,
                                               n_triplets=n_triplets)
         self.preset = self.method_controls.preset
@@ -213,30 +216,34 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         self.singlets = self.method_controls.singlets
         self.triplets = self.method_controls.triplets
         self.radii = widgets.Text(value=format_radii(radii_A), description="radii (Å)",
-                                  placeholder="6, 9, 12  or  6-15:3")
+                                  placeholder="6, 9, 12  or  6-15:3", style=lab)
+        self.radii.add_class("clusterlab-radii")
         self.tol = widgets.BoundedFloatText(value=tol_meV, min=0.01, max=1000.0, step=1.0,
-                                            description="tol (meV)", layout=widgets.Layout(width="170px"))
+                                            description="tol (meV)", layout=w(width="180px"), style=lab)
         self.periodic_limit = widgets.Checkbox(value=periodic_limit, description="periodic (Ewald) limit",
-                                               indent=False)
-        self.store = widgets.Text(value=str(store), description="store", placeholder="optional .sqlite path")
+                                               indent=False, layout=w(width="auto"))
+        self.store = widgets.Text(value=str(store), description="store", placeholder="optional .sqlite path",
+                                  layout=w(width="420px"), style=lab)
         self.runner = widgets.Dropdown(options=["serial", "processes", "dask"], value=runner,
-                                       description="runner", layout=widgets.Layout(width="200px"))
+                                       description="runner", layout=w(width="220px"), style=lab)
         self.molecule = widgets.BoundedIntText(value=molecule, min=0, max=max(film.n_molecules - 1, 0),
-                                               description="molecule", layout=widgets.Layout(width="170px"))
+                                               description="molecule", layout=w(width="180px"), style=lab)
         self.species = species_dropdown(film)
         self.frame = widgets.BoundedIntText(value=frame, min=0, max=max(film.n_frames - 1, 0),
-                                            description="frame", layout=widgets.Layout(width="170px"))
+                                            description="frame", layout=w(width="180px"), style=lab)
         self.rule = widgets.Dropdown(options=["atom", "centroid"], value="atom", description="rule",
-                                     layout=widgets.Layout(width="200px"))
+                                     layout=w(width="200px"), style=lab)
         self.qm_shell = widgets.BoundedFloatText(value=0.0, min=0.0, max=20.0, step=0.25,
-                                                 description="QM shell", layout=widgets.Layout(width="170px"))
-        self.run_button = widgets.Button(description="run scan", button_style="success", icon="play")
+                                                 description="QM shell (Å)", layout=w(width="180px"), style=lab)
+        self.run_button = widgets.Button(description="run scan", button_style="success", icon="play",
+                                         layout=w(width="auto"))
         self.cancel_button = widgets.Button(description="cancel", button_style="warning", icon="stop",
-                                            disabled=True)
+                                            disabled=True, layout=w(width="auto"))
         self.progress = widgets.IntProgress(value=0, min=0, max=1, description="radii",
-                                            layout=widgets.Layout(width="320px"))
-        self.status = widgets.HTML(value='<span style="color:#555">ready</span>')
-        self.plot = widgets.Image(format="png", layout=widgets.Layout(max_width="560px"))
+                                            layout=w(width="320px"), style=lab)
+        self.status = widgets.HTML(value='<span class="clusterlab-status" style="color:#555">ready</span>')
+        self.plot = widgets.Image(format="png", layout=w(max_width="560px"))
+        _style.show_png(self.plot, None)
         self.table_html = widgets.HTML(value=_TABLE_CSS + frame_html(pd.DataFrame()))
 
         for name, control in (("molecule_id", self.molecule), ("frame_index", self.frame),
@@ -258,16 +265,17 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
 
         settings = widgets.VBox([
             self.method_controls,
-            widgets.HBox([self.radii, self.tol, self.periodic_limit]),
-            widgets.HBox([self.species, self.molecule, self.frame, self.rule, self.qm_shell]),
-            widgets.HBox([self.store, self.runner]),
-            widgets.HBox([self.run_button, self.cancel_button, self.progress]),
+            row(self.radii, self.tol, self.periodic_limit),
+            row(self.species, self.molecule, self.frame, self.rule, self.qm_shell),
+            row(self.store, self.runner),
+            row(self.run_button, self.cancel_button, self.progress),
             self.status,
         ])
         results = widgets.VBox([self.plot, widgets.Box([self.table_html],
                                                        layout=widgets.Layout(overflow="auto", max_width="100%"))])
-        super().__init__([settings, results, self.errors], **kwargs)
+        super().__init__([widgets.HTML(_style.PANEL_CSS), settings, results, self.errors], **kwargs)
         self.add_class("clusterlab-scan-panel")
+        self.add_class("clusterlab-panel")
 
     def _on_species(self, change: dict) -> None:
         """A chosen species puts its molecule nearest the box centre into the
@@ -325,24 +333,24 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         if self.running:
             self._set_status("a scan is already running; cancel it first", "warn")
             return self
-        self.rows = []
-        self.narration = []
-        self.result = None
         self.error = ""
         self.exception = None
-        self.n_plots = 0
         self.errors.clear_output()
         try:
             settings = self.settings()
             self.method = self.build_method()
-        except Exception as exc:  # noqa: BLE001 - shown to the user
+        except Exception as exc:  # noqa: BLE001 - shown to the user; the last scan's results stay
             self._fail(exc)
             return self
+        self.rows = []
+        self.narration = []
+        self.result = None
+        self.n_plots = 0
         self.progress.max = len(settings["radii"])
         self.progress.value = 0
         self.progress.bar_style = "info"
         self.table_html.value = _TABLE_CSS + frame_html(pd.DataFrame())
-        self.plot.value = b""
+        _style.show_png(self.plot, None)
         self.run_button.disabled = True
         self.cancel_button.disabled = False
         self._set_status(f"running {len(settings['radii'])} radii with {html.escape(self.method.describe())}",
@@ -409,7 +417,7 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
         if not len(rows):
             return
         fig = plot_convergence(rows, states, tol_eV=self.tol_meV * 1e-3)
-        self.plot.value = _style.figure_png(fig)
+        _style.show_png(self.plot, _style.figure_png(fig))
         self.n_plots += 1
 
     def _show_partial(self) -> None:
@@ -451,9 +459,6 @@ class ShiftScanPanel(BackgroundJob, widgets.VBox):
             ok = bool(getattr(verdict, "converged", False))
             self._set_status(f"finished. {html.escape(str(msg))}", "ok" if ok else "warn")
 
-    def _set_status(self, text: str, kind: str) -> None:
-        colour = {"ok": _style.OK, "warn": _style.WARN, "error": "#a00", "info": "#335"}.get(kind, "#555")
-        self.status.value = f'<span class="clusterlab-status" style="color:{colour}">{text}</span>'
 
     @property
     def table(self) -> pd.DataFrame:

@@ -37,7 +37,7 @@ from ..study.doped import host_guest_overview, n_species
 from ..study.plots import plot_correlation, plot_growth, plot_histogram, plot_torsion
 from ..study.sample import SiteSample, choose_molecules, sample_sites, site_correlation, site_table
 from ..export import export_study
-from ._controls import Radii, format_radii, link_radii, species_dropdown
+from ._controls import Radii, format_radii, link_radii, make_view, row, species_dropdown
 from ._jobs import BackgroundJob, count_text
 from . import _style
 from .calc import _TABLE_CSS, MethodControls, frame_html
@@ -147,58 +147,62 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
 
         self.errors = widgets.Output(layout=widgets.Layout(max_height="220px", overflow="auto"))
         w = widgets.Layout
+        lab = _style.LABEL_STYLE
         self.molecules = widgets.Text(value=molecules, description="molecules",
-                                      placeholder="all, ids 0-9, or a selection")
+                                      placeholder="all, ids 0-9, or a selection", layout=w(width="300px"), style=lab)
         self.species = species_dropdown(film)
         self.n_molecules = widgets.BoundedIntText(value=n_molecules, min=0, max=max(film.n_molecules, 1),
-                                                  description="random n", layout=w(width="170px"))
+                                                  description="random n", layout=w(width="180px"), style=lab)
         self.frames = widgets.Text(value=frames, description="frames", placeholder="0 | 0, 10 | 0-19:5 | all",
-                                   layout=w(width="260px"))
+                                   layout=w(width="300px"), style=lab)
         self.radii = widgets.Text(value=format_radii(radii_A), description="radii (Å)",
-                                  placeholder="10  or  6-12:3", layout=w(width="260px"))
+                                  placeholder="10  or  6-12:3", layout=w(width="300px"), style=lab)
         self.method_controls = MethodControls(preset, basis=basis, n_singlets=n_singlets,
                                               n_triplets=n_triplets)
         self.preset = self.method_controls.preset
         self.basis = self.method_controls.basis
         self.singlets = self.method_controls.singlets
         self.triplets = self.method_controls.triplets
-        self.store = widgets.Text(value=str(store), description="store", layout=w(width="420px"))
+        self.store = widgets.Text(value=str(store), description="store", layout=w(width="420px"), style=lab)
         self.runner = widgets.Dropdown(options=["serial", "processes", "dask"], value=runner,
-                                       description="runner", layout=w(width="200px"))
-        self.seed = widgets.IntText(value=seed, description="seed", layout=w(width="170px"))
-        self.run_button = widgets.Button(description="run sample", button_style="success", icon="play")
+                                       description="runner", layout=w(width="220px"), style=lab)
+        self.seed = widgets.IntText(value=seed, description="seed", layout=w(width="180px"), style=lab)
+        auto = w(width="auto")
+        self.run_button = widgets.Button(description="run sample", button_style="success", icon="play", layout=auto)
         self.cancel_button = widgets.Button(description="cancel", button_style="warning", icon="stop",
-                                            disabled=True)
-        self.load_button = widgets.Button(description="load store", icon="folder-open")
-        self.progress = widgets.IntProgress(value=0, min=0, max=1, description="sites", layout=w(width="320px"))
-        self.status = widgets.HTML(value='<span style="color:#555">ready</span>')
+                                            disabled=True, layout=w(width="auto"))
+        self.load_button = widgets.Button(description="load store", icon="folder-open", layout=w(width="auto"))
+        self.progress = widgets.IntProgress(value=0, min=0, max=1, description="sites", layout=w(width="320px"),
+                                            style=lab)
+        self.status = widgets.HTML(value='<span class="clusterlab-status" style="color:#555">ready</span>')
 
-        self.quantity = widgets.Dropdown(options=[], description="quantity", layout=w(width="260px"))
-        self.radius_pick = widgets.Dropdown(options=[], description="radius (Å)", layout=w(width="200px"))
-        self.frame_pick = widgets.Dropdown(options=[], description="3D frame", layout=w(width="200px"))
-        self.export_path = widgets.Text(value="site_energies.csv", description="CSV", layout=w(width="420px"))
-        self.export_button = widgets.Button(description="export CSV", icon="download")
-        self.transport_path = widgets.Text(value="transport_export", description="folder", layout=w(width="420px"))
-        self.transport_cutoff = widgets.BoundedFloatText(value=8.0, min=1.0, max=50.0, description="pairs Å",
-                                                         layout=w(width="170px"))
-        self.transport_button = widgets.Button(description="export for transport", icon="share")
+        self.quantity = widgets.Dropdown(options=[], description="quantity", layout=w(width="300px"), style=lab)
+        self.radius_pick = widgets.Dropdown(options=[], description="radius (Å)", layout=w(width="220px"), style=lab)
+        self.frame_pick = widgets.Dropdown(options=[], description="3D frame", layout=w(width="220px"), style=lab)
+        self.export_path = widgets.Text(value="site_energies.csv", description="CSV file", layout=w(width="420px"),
+                                        style=lab)
+        self.export_button = widgets.Button(description="export CSV", icon="download", layout=w(width="auto"))
+        self.transport_path = widgets.Text(value="transport_export", description="folder", layout=w(width="420px"),
+                                           style=lab)
+        self.transport_cutoff = widgets.BoundedFloatText(value=8.0, min=1.0, max=50.0, description="pairs (Å)",
+                                                         layout=w(width="180px"), style=lab)
+        self.transport_button = widgets.Button(description="export for transport", icon="share",
+                                               layout=w(width="auto"))
 
         self.hist_plot = widgets.Image(format="png", layout=w(max_width="560px"))
         self.stats_html = widgets.HTML()
         self.growth_plot = widgets.Image(format="png", layout=w(max_width="560px"))
         self.growth_note = widgets.HTML()
         self.corr_plot = widgets.Image(format="png", layout=w(max_width="560px"))
+        for image in (self.hist_plot, self.growth_plot, self.corr_plot):
+            _style.show_png(image, None)
         self.corr_note = widgets.HTML()
         self.colourbar = widgets.HTML()
         self.table_html = widgets.HTML()
         self.view: Any = None
-        scene: list[widgets.Widget] = [widgets.HBox([self.frame_pick, self.colourbar])]
+        scene: list[widgets.Widget] = [row(self.frame_pick, self.colourbar)]
         if show_view:
-            import nglview
-
-            self.view = nglview.NGLWidget()
-            self.view.background = _style.BACKGROUND
-            self.view._set_size("100%", "420px")
+            self.view = make_view("420px")
             scene.append(self.view)
 
         tabs: list[widgets.Widget] = [
@@ -214,6 +218,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         if n_species(film) >= 2:
             self.doped_html = widgets.HTML()
             self.torsion_plot = widgets.Image(format="png", layout=w(max_width="560px"))
+            _style.show_png(self.torsion_plot, None)
             tabs.append(widgets.VBox([self.doped_html, self.torsion_plot]))
             titles.append("host:guest")
         self.tabs = widgets.Tab(children=tabs)
@@ -233,19 +238,20 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.tabs.observe(self._on_tab, names="selected_index")
 
         settings = widgets.VBox([
-            widgets.HBox([self.molecules, self.species, self.n_molecules, self.seed]),
-            widgets.HBox([self.frames, self.radii]),
+            row(self.molecules, self.species, self.n_molecules, self.seed),
+            row(self.frames, self.radii),
             self.method_controls,
             self.runner,
-            widgets.HBox([self.store, self.load_button]),
-            widgets.HBox([self.run_button, self.cancel_button, self.progress]),
+            row(self.store, self.load_button),
+            row(self.run_button, self.cancel_button, self.progress),
             self.status,
-            widgets.HBox([self.quantity, self.radius_pick]),
+            row(self.quantity, self.radius_pick),
         ])
-        export = widgets.VBox([widgets.HBox([self.export_path, self.export_button]),
-                               widgets.HBox([self.transport_path, self.transport_cutoff, self.transport_button])])
-        super().__init__([settings, self.tabs, export, self.errors], **kwargs)
+        export = widgets.VBox([row(self.export_path, self.export_button),
+                               row(self.transport_path, self.transport_cutoff, self.transport_button)])
+        super().__init__([widgets.HTML(_style.PANEL_CSS), settings, self.tabs, export, self.errors], **kwargs)
         self.add_class("clusterlab-disorder-panel")
+        self.add_class("clusterlab-panel")
         self._draw_film_scene()
 
     # ---------------------------------------------------------- settings
@@ -462,7 +468,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self.stats_html.value = f"<i>{finite.size} site(s) so far; the statistics need at least 3.</i>"
             return
         self.stats = disorder_stats(finite, seed=int(self.seed.value))
-        self.hist_plot.value = _style.figure_png(plot_histogram(finite, self.stats, label=q.replace("_eV", "")))
+        _style.show_png(self.hist_plot, _style.figure_png(plot_histogram(finite, self.stats,
+                                                                          label=q.replace("_eV", ""))))
         # the same σ and interval as the histogram's text (one rule: stats.disorder_summary)
         rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
                        for k, v in disorder_summary(self.stats).itertuples(index=False))
@@ -476,10 +483,10 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         if len(self.growth) < 2:
             self.growth_note.value = ("<i>σ and mean against radius need at least 2 radii with 3 or more "
                                       "sites each (give several radii).</i>")
-            self.growth_plot.value = b""
+            _style.show_png(self.growth_plot, None)
             return
         self.growth_note.value = f"<span>{html.escape(col)} per radius</span>"
-        self.growth_plot.value = _style.figure_png(plot_growth(self.growth, label=col.replace("_eV", "")))
+        _style.show_png(self.growth_plot, _style.figure_png(plot_growth(self.growth, label=col.replace("_eV", ""))))
 
     def _draw_correlation(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
         ok = np.isfinite(vals)
@@ -497,12 +504,12 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         self.corr_note.value = (f"<span>{html.escape(q)}, {int(ok.sum())} sites: bins with at least "
                                 f"{self.min_pairs} pairs drawn ({int(c.shown.sum())} of {len(c)}), error bars "
                                 f"95 % bootstrap over sites, numbers = pairs per bin</span>")
-        self.corr_plot.value = _style.figure_png(plot_correlation(c))
+        _style.show_png(self.corr_plot, _style.figure_png(plot_correlation(c)))
 
     def _no_correlation(self, why: str) -> None:
         """Say why C(r) is not drawn, in words, instead of empty axes."""
         self.corr_note.value = f'<i class="clusterlab-no-correlation">{html.escape(why)}</i>'
-        self.corr_plot.value = b""
+        _style.show_png(self.corr_plot, None)
 
     def _draw_doped(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
         """The host:guest tab: formats :func:`clusterlab.study.doped.host_guest_overview` of the shown sites."""
@@ -529,7 +536,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
                          f"T1 at {so['n_T1_reordered']}")
         parts += [f"<i>{html.escape(n)}</i>" for n in ov.notes]
         self.doped_html.value = _TABLE_CSS + "<br>".join(parts)
-        self.torsion_plot.value = _style.figure_png(plot_torsion(ov.torsion)) if ov.torsion is not None else b""
+        _style.show_png(self.torsion_plot, _style.figure_png(plot_torsion(ov.torsion)) if ov.torsion is not None
+                        else None)
 
     # ------------------------------------------------------------- scene
     def _draw_film_scene(self) -> None:
@@ -565,11 +573,12 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self.view.remove_component(self._site_comp)
         comp = self.view.add_component(nglview.TextStructure(self.scene_pdb, ext="pdb"),
                                        default_representation=False, name="sites")
-        comp.add_representation("line", selection=f":{_style.CHAIN_FILM}", color=_style.FILM_REST, opacity=0.5)
+        comp.add_representation("line", selection=f":{_style.CHAIN_FILM}", color=_style.FILM_REST, opacity=0.35)
         if self.site_values:
+            # thick enough to read among the film's lines
             comp.add_representation("ball+stick", selection=f":{_style.CHAIN_SITE}", color="bfactor",
                                     color_scale=list(_style.ENERGY_SCALE),
-                                    color_domain=[0.0, _style.BFACTOR_SCALE])
+                                    color_domain=[0.0, _style.BFACTOR_SCALE], radius_scale=1.6)
         self._site_comp = comp
 
     def _on_tab(self, change: dict) -> None:
@@ -615,19 +624,10 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
 
     # ---------------------------------------------------------- handlers
     def _on_transport_click(self, _b: Any) -> None:
-        with self.errors:
-            self.export_transport()
+        self._shown(self.export_transport)
 
     def _on_load_click(self, _b: Any) -> None:
-        with self.errors:
-            self.load()
+        self._shown(self.load)
 
     def _on_export_click(self, _b: Any) -> None:
-        try:
-            self.export()
-        except Exception as exc:  # noqa: BLE001
-            self._fail(exc)
-
-    def _set_status(self, text: str, kind: str) -> None:
-        colour = {"ok": _style.OK, "warn": _style.WARN, "error": "#a00", "info": "#335"}.get(kind, "#555")
-        self.status.value = f'<span class="clusterlab-status" style="color:{colour}">{text}</span>'
+        self._shown(self.export)

@@ -8,6 +8,7 @@ of the coordinates as PDB text (never the analysis Universe).
 
 from __future__ import annotations
 
+import json
 import traceback
 from collections.abc import Callable
 from typing import Any
@@ -19,21 +20,15 @@ import traitlets
 
 from ..ranges import is_id_text, parse_ids
 from . import _style
-from ._controls import fit_control, species_dropdown
+from ._controls import fit_control, make_view, row, species_dropdown
 
 __all__ = ["FilmExplorer"]
 
 #: most molecules listed in the molecule dropdown at once
 MAX_LISTED = 2000
 
-
-def _make_view() -> Any:
-    import nglview
-
-    view = nglview.NGLWidget()
-    view.background = _style.BACKGROUND
-    view._set_size("100%", "460px")  # the stage's own size (a Layout height leaves the canvas at 300 px)
-    return view
+#: height of the 3D view: with the controls below it the explorer fits a 900 px high screen
+VIEW_HEIGHT = "430px"
 
 
 class FilmExplorer(widgets.VBox):
@@ -86,6 +81,10 @@ class FilmExplorer(widgets.VBox):
     view : nglview.NGLWidget or None
     scene_pdb : str
         The cluster PDB text last sent to the view.
+    pick_label : str
+        What the view's label says about the last picked atom (its molecule
+        id, residue name and part of the cluster); "" once the centre has
+        changed by any other way than that pick.
     errors : ipywidgets.Output
         Unexpected exceptions from callbacks.
 
@@ -116,55 +115,61 @@ class FilmExplorer(widgets.VBox):
         self._cluster_comp: Any = None
         self._film_comp_frame: int | None = None
         self._busy = False
-        self._centred: int | None = None
+        self._fitted: tuple | None = None
+        self._picked_molecule: int | None = None
+        self.pick_label = ""
         self.n_carves = 0
+        lab = _style.LABEL_STYLE
 
         mols = film.molecules
         self.search = widgets.Text(
-            value="", placeholder="id, residue name or selection", description="find",
-            continuous_update=False, layout=widgets.Layout(width="260px"))
+            value="", placeholder="id, resname or selection", description="find",
+            continuous_update=False, layout=widgets.Layout(width="300px"), style=lab)
         self.species_picker = species_dropdown(film)
         self.molecule_picker = widgets.Dropdown(
             options=self._options(np.arange(min(len(mols), MAX_LISTED))), description="molecule",
-            layout=widgets.Layout(width="260px"))
+            layout=widgets.Layout(width="300px"), style=lab)
         self.radius_slider = widgets.FloatSlider(
             value=float(radius_A), min=0.0, max=float(max(max_radius_A, radius_A)), step=0.5,
             description="radius (Å)", continuous_update=False, readout_format=".1f",
-            layout=widgets.Layout(width="380px"))
+            layout=widgets.Layout(width="380px"), style=lab)
         self.radius_slider.add_class("clusterlab-radius")
         self.shell_slider = widgets.FloatSlider(
             value=float(qm_shell_A), min=0.0, max=8.0, step=0.25, description="QM shell (Å)",
-            continuous_update=False, readout_format=".2f", layout=widgets.Layout(width="380px"))
+            continuous_update=False, readout_format=".2f", layout=widgets.Layout(width="380px"), style=lab)
         self.rule_toggle = widgets.ToggleButtons(
             options=[("atom within radius", "atom"), ("centroid within radius", "centroid")],
-            value=rule, description="cut rule", style={"button_width": "150px"})
+            value=rule, description="cut rule", style={**lab, "button_width": "auto"},
+            layout=widgets.Layout(width="auto"))
         self.frame_slider = widgets.IntSlider(
             value=int(frame), min=0, max=max(film.n_frames - 1, 0), description="frame",
-            continuous_update=False, disabled=film.n_frames <= 1, layout=widgets.Layout(width="380px"))
+            continuous_update=False, disabled=film.n_frames <= 1, layout=widgets.Layout(width="380px"), style=lab)
         self.periodic_box = widgets.Checkbox(
-            value=bool(film.has_box), description="periodic images", disabled=not film.has_box, indent=False)
-        self.click_box = widgets.Checkbox(value=True, description="click in view picks the centre", indent=False)
+            value=bool(film.has_box), description="periodic images", disabled=not film.has_box, indent=False,
+            layout=widgets.Layout(width="auto", margin="2px 24px 2px 12px"))
+        self.click_box = widgets.Checkbox(value=True, description="click in view picks the centre", indent=False,
+                                          layout=widgets.Layout(width="auto"))
         self.readout = widgets.HTML()
         self.legend = widgets.HTML()
         self.errors = widgets.Output(layout=widgets.Layout(max_height="160px", overflow="auto"))
         self.view: Any = None
 
         controls = widgets.VBox([
-            widgets.HBox([self.search, self.species_picker, self.molecule_picker]),
-            self.radius_slider, self.shell_slider, self.rule_toggle, self.frame_slider,
-            widgets.HBox([self.periodic_box, self.click_box]),
+            row(self.search, self.species_picker, self.molecule_picker),
+            row(self.radius_slider, self.shell_slider),
+            row(self.frame_slider, self.rule_toggle),
+            row(self.periodic_box, self.click_box),
         ])
-        side = widgets.VBox([self.readout, self.legend], layout=widgets.Layout(width="330px"))
-        self._top = widgets.HBox([controls, side])
-        children: list[widgets.Widget] = [self._top]
+        # the legend and the readout beside the view (not below it): on screen with the view
+        side = widgets.VBox([self.legend, self.readout],
+                            layout=widgets.Layout(width="330px", min_width="330px"))
+        self._left = widgets.VBox([controls], layout=widgets.Layout(flex="1 1 auto"))
+        self._top = widgets.HBox([self._left, side])
         if show_view:
-            self.view = _make_view()
-            self.view.observe(self._on_picked, names="picked")
-            self.view.observe(self._on_view_loaded, names=["loaded", "n_components"])
-            children.insert(0, self.view)
-        children.append(self.errors)
-        super().__init__(children, **kwargs)
+            self._attach_view(make_view(VIEW_HEIGHT))
+        super().__init__([widgets.HTML(_style.PANEL_CSS), self._top, self.errors], **kwargs)
         self.add_class("clusterlab-explorer")
+        self.add_class("clusterlab-panel")
 
         self.molecule = int(molecule)
         self.molecule_picker.value = self.molecule
@@ -202,6 +207,9 @@ class FilmExplorer(widgets.VBox):
 
     def _on_molecule(self, change: dict) -> None:
         self.molecule_picker.value = change["new"]
+        if change["new"] != self._picked_molecule:  # the centre changed by another way than a pick
+            self._set_pick_label("")
+            self._picked_molecule = None
 
     def _on_picker(self, change: dict) -> None:
         if change["new"] is not None:
@@ -267,32 +275,65 @@ class FilmExplorer(widgets.VBox):
 
     def _on_picked(self, change: dict) -> None:
         with self.errors:
-            if not self.click_box.value:
+            mol, part = self._pick_target(change["new"])
+            if mol is None:
                 return
-            mol = self.molecule_from_pick(change["new"])
-            if mol is not None and mol != self.molecule:
+            centre = self.click_box.value
+            self._picked_molecule = mol if centre else self._picked_molecule
+            self._set_pick_label(self._describe_pick(mol, part) + ("" if centre or mol == self.molecule
+                                                                   else " (click-to-centre is off)"))
+            if centre and mol != self.molecule:
                 self.select_molecule(mol)
 
     def molecule_from_pick(self, picked: dict) -> int | None:
         """Film molecule id of an atom picked in the view (nglview's
         ``picked`` dict: ``{"atom1": {"index": i, ...}, "component": c}``)."""
+        return self._pick_target(picked)[0]
+
+    def _pick_target(self, picked: dict) -> tuple[int | None, str]:
+        """Molecule id of a picked atom and what the atom is in the scene
+        ("QM region", "QM shell", "point charge +0.123 e", "film")."""
         atom = (picked or {}).get("atom1")
         if not isinstance(atom, dict):
-            return None
+            return None, ""
         comp = picked.get("component")
         idx = atom.get("index")
-        if idx is not None and self.view is not None:
+        if idx is not None and self.view is not None and comp is not None:
             ids = self.view._ngl_component_ids
-            if self._cluster_comp is not None and comp is not None and comp < len(ids) \
+            if self._cluster_comp is not None and comp < len(ids) \
                     and ids[comp] == self._cluster_comp.id and 0 <= idx < len(self._scene_atom_molecule):
-                return int(self._scene_atom_molecule[idx])
-            if self._film_comp is not None and comp is not None and comp < len(ids) \
+                return int(self._scene_atom_molecule[idx]), self._scene_part(int(idx))
+            if self._film_comp is not None and comp < len(ids) \
                     and ids[comp] == self._film_comp.id and 0 <= idx < len(self.film.molecule_of_atom):
-                return int(self.film.molecule_of_atom[idx])
-        resno = atom.get("resno")  # residue number = molecule id + 1 in both scenes
-        if resno is not None and 1 <= int(resno) <= self.film.n_molecules:
-            return int(resno) - 1
-        return None
+                return int(self.film.molecule_of_atom[idx]), "film"
+        resno = atom.get("resno")  # residue number = molecule id in both scenes (_style.RESNO_OFFSET)
+        if resno is not None and 0 <= int(resno) - _style.RESNO_OFFSET < self.film.n_molecules:
+            return int(resno) - _style.RESNO_OFFSET, ""
+        return None, ""
+
+    def _scene_part(self, idx: int) -> str:
+        c = self.cluster
+        n_qm = len(self._scene_atom_molecule) - (c.n_charges if c is not None else 0)
+        if c is None or idx >= len(self._scene_atom_molecule):
+            return ""
+        if idx >= n_qm:
+            return f"point charge {float(c.env_charges[idx - n_qm]):+.3f} e"
+        return "QM region" if int(self._scene_atom_molecule[idx]) == self.molecule else "QM shell"
+
+    def _describe_pick(self, mol: int, part: str) -> str:
+        row = self.film.molecules.iloc[mol]
+        return f"molecule {mol} · {row['resname']}" + (f" · {part}" if part else "")
+
+    def _set_pick_label(self, text: str) -> None:
+        """Write ``text`` into the view's pick label (the box nglview shows at
+        its top left), or hide the label when ``text`` is empty."""
+        if text == self.pick_label:
+            return
+        self.pick_label = text
+        if self.view is not None:
+            self.view._execute_js_code(
+                f"if (this.$pickingInfo) {{ this.$pickingInfo.text({json.dumps(text)});"
+                f" this.$pickingInfo.toggle({'true' if text else 'false'}); }}")
 
     # ------------------------------------------------------------- updates
     def _on_setting(self, change: dict) -> None:
@@ -372,12 +413,15 @@ class FilmExplorer(widgets.VBox):
     def make_view(self) -> Any:
         """Create (if needed) and return the 3D view."""
         if self.view is None:
-            self.view = _make_view()
-            self.view.observe(self._on_picked, names="picked")
-            self.view.observe(self._on_view_loaded, names=["loaded", "n_components"])
-            self.children = (self.view, *self.children)
+            self._attach_view(make_view(VIEW_HEIGHT))
             self._draw()
         return self.view
+
+    def _attach_view(self, view: Any) -> None:
+        self.view = view
+        view.observe(self._on_picked, names="picked")
+        view.observe(self._on_view_loaded, names=["loaded", "n_components"])
+        self._left.children = (view, *self._left.children)
 
     def _draw(self) -> None:
         if self.view is None:
@@ -411,21 +455,29 @@ class FilmExplorer(widgets.VBox):
         if len(self.cluster.qm_molecules) > 1:
             comp.add_representation("ball+stick", selection=f":{_style.CHAIN_SHELL}", color=_style.QM_SHELL,
                                     radius_scale=1.3)
-        if self.cluster.n_charges:
-            comp.add_representation("ball+stick", selection=f":{_style.CHAIN_ENV}", color="bfactor",
-                                    color_scale=list(_style.CHARGE_SCALE), color_domain=[-q, q],
-                                    radius_scale=0.6)
+        env_q = np.asarray(self.cluster.env_charges, dtype=float)
+        # sign by hue, size by depth of colour from a floor colour at zero: a small charge stays coloured
+        for chain, scale, domain, present in (
+                (_style.CHAIN_ENV_NEG, tuple(reversed(_style.CHARGE_NEG_SCALE)), [-q, 0.0], (env_q < 0).any()),
+                (_style.CHAIN_ENV_POS, _style.CHARGE_POS_SCALE, [0.0, q], (env_q >= 0).any())):
+            if present:
+                comp.add_representation("ball+stick", selection=f":{chain}", color="bfactor",
+                                        color_scale=list(scale), color_domain=domain, radius_scale=0.75)
         self._cluster_comp = comp
-        if self._centred != self.molecule and view.loaded:
+        if self._fitted != self._fit_key() and view.loaded:
             self._centre_view()
 
+    def _fit_key(self) -> tuple:
+        """What the camera was fitted to: a change of any of these re-fits it."""
+        return (self.molecule, self.radius_A, self.qm_shell_A, self.rule, self.frame, self.periodic)
+
     def _centre_view(self, duration_ms: int = 0) -> None:
-        """Point the camera at the central molecule."""
+        """Fit the camera to the whole cluster (autoView): it is a sphere
+        around the central molecule, so a larger radius zooms out."""
         if self.view is None or self._cluster_comp is None:
             return
-        # fit the whole cluster: it is a sphere around the central molecule
         self._cluster_comp.center(selection="*", duration=duration_ms)
-        self._centred = self.molecule
+        self._fitted = self._fit_key()
 
     def _on_view_loaded(self, change: dict) -> None:
         # calls made before the front end loaded are replayed without camera
@@ -436,7 +488,7 @@ class FilmExplorer(widgets.VBox):
                 return
             if change["name"] == "loaded":
                 view.handle_resize()
-            if view.n_components >= len(view._ngl_component_ids) and self._centred != self.molecule:
+            if view.n_components >= len(view._ngl_component_ids) and self._fitted != self._fit_key():
                 self._centre_view()
 
     def _add_text(self, text: str, name: str) -> Any:
