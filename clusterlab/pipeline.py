@@ -172,7 +172,7 @@ def sample_parity(film: Film, model: Any, sample: Any) -> pd.DataFrame:
 
 def parity_summary(pairs: pd.DataFrame) -> pd.DataFrame:
     """Per state of :func:`sample_parity`'s pairs: ``n``, ``rms_eV`` and ``mean_eV`` of
-    model − QM, Pearson ``r`` (NaN when a side is constant) and the QM spread
+    model − QM, Pearson ``r`` (NaN for fewer than 3 sites or a constant side) and the QM spread
     ``qm_sigma_eV`` (ddof=1) the RMS is to be read against."""
     rows = []
     for s in PARITY_STATES:
@@ -185,7 +185,7 @@ def parity_summary(pairs: pd.DataFrame) -> pd.DataFrame:
         if x.size < 2:
             continue
         d = y - x
-        r = float(np.corrcoef(x, y)[0, 1]) if np.std(x) > 0 and np.std(y) > 0 else float("nan")
+        r = float(np.corrcoef(x, y)[0, 1]) if x.size >= 3 and np.std(x) > 0 and np.std(y) > 0 else float("nan")
         rows.append({"quantity": f"{s}_shift_eV", "n": int(x.size), "rms_eV": float(np.sqrt(np.mean(d ** 2))),
                      "mean_eV": float(d.mean()), "r": r, "qm_sigma_eV": float(np.std(x, ddof=1))})
     return pd.DataFrame(rows)

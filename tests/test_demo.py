@@ -5,7 +5,6 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
-import warnings
 
 import numpy as np
 import pytest
@@ -13,21 +12,7 @@ import pytest
 from clusterlab.pipeline import COSTS_FILE, StageCosts, parity_summary, run_study
 from clusterlab.studyfile import validate
 
-from conftest import build_water_universe, lattice_centres
-
-
-@pytest.fixture
-def gro(tmp_path):
-    """A periodic water film as GRO (27 molecules, 9.3 Å box) plus its charge table."""
-    u, _ = build_water_universe(lattice_centres(3, 0.1, np.random.default_rng(0)),
-                                np.array([9.3, 9.3, 9.3, 90, 90, 90.0]))
-    path = tmp_path / "water.gro"
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        u.atoms.write(str(path))
-    csv = tmp_path / "q.csv"
-    csv.write_text("resname,name,charge\nWAT,OW,-0.834\nWAT,HW1,0.417\nWAT,HW2,0.417\n")
-    return str(path), str(csv)
+from test_cli import gro  # noqa: F401  (the periodic water film of the CLI tests, as a fixture)
 
 
 def test_stage_costs_count_the_cpu_of_finished_children():
