@@ -92,9 +92,12 @@ def _parser() -> argparse.ArgumentParser:
 
     d = sub.add_parser("demo", help="run the demo study on the bundled film", epilog=EPILOG,
                        description="Radius scan, site-energy sample with disorder statistics, film-wide "
-                                   "electrostatic model and export on demo_traj/, with a report folder.")
+                                   "electrostatic model and export on demo_traj/, with a report folder; "
+                                   "at the end, what each stage cost (wall and CPU time, calculations run "
+                                   "and taken from the store).")
     d.add_argument("--out", default="demo_report", help="report folder (default: demo_report)")
-    d.add_argument("--quick", action="store_true", help="a smaller demo (for tests)")
+    d.add_argument("--quick", action="store_true",
+                   help="a smaller demo: 2 radii, 2 sites, the model on one frame with one conformer reference")
     d.add_argument("--workers", type=int, default=None, help="worker processes (default: one per core)")
     d.add_argument("--quiet", action="store_true")
     return p

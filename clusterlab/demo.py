@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import warnings
 
 from .errors import InputError
 
@@ -53,39 +54,59 @@ def doped_demo_paths() -> tuple[str, str]:
     return top, traj
 
 
-def demo_study(out_dir: str, *, quick: bool = False, workers: int | None = None) -> dict:
+#: the demo's site-energy sample: molecules drawn, seed, frames, radius (Å); quick, then full
+DEMO_SAMPLE = {True: {"n": 2, "seed": 7, "frames": [0], "radius": 8.0},
+               False: {"n": 8, "seed": 7, "frames": [0, 19], "radius": 12.0}}
+
+
+def demo_study(out_dir: str, *, quick: bool = False, workers: int | None = None, film=None) -> dict:
     """The demo study as a validated study dict (see :mod:`clusterlab.studyfile`).
 
     Scenario (invented): an amorphous 2,2'-bithiophene interlayer film; one
     radius scan, a site-energy sample with disorder statistics, the
     film-wide electrostatic model on every molecule and frame (IP and EA of
-    a few molecules with and without Thole polarization), the export.
-    The fast settings (sTDA refined by two full-TDA subspace steps on a
-    B3LYP/6-31G ground state: S1 and T1 close to full TDA) keep the whole
-    study to about a quarter of an hour on 2 cores, most of it QM: the
-    sample's 16 clusters and the film model's reference fits and finite fields.
+    a few molecules with and without Thole polarization, S1 and T1 checked
+    against the sample's QM sites), the export. The fast settings (sTDA
+    refined by two full-TDA subspace steps on a B3LYP/6-31G ground state: S1
+    and T1 close to full TDA) keep the whole study to about 24 minutes of CPU
+    time, an estimated 11 minutes on 2 idle cores (README: the measured cost
+    of each stage; the demo prints its own at the end).
+
+    One stage serves the next: the scanned molecule is one of the sampled
+    ones and the sample's radius is one of the scan's, so that site comes from
+    the store (same task key) instead of being computed twice; the sample's
+    sites are the film model's parity points (no QM of its own for the check).
+    ``film`` is the loaded demo film (:func:`demo_film`; loaded here when not given).
     """
+    from .study.sample import choose_molecules
     from .studyfile import validate
 
     top, traj = demo_paths()
+    smp = DEMO_SAMPLE[bool(quick)]
+    film = demo_film() if film is None else film
+    scanned = int(choose_molecules(film, "all", n=smp["n"], seed=smp["seed"])[0])
     study = {
         "film": {"topology": top, "trajectory": traj},
-        "method": {"preset": "fast-refined"},
-        "scan": {"molecule": 0, "radii": [4.0, 8.0] if quick else [4.0, 7.0, 10.0, 13.0, 16.0],
-                 "periodic_limit": not quick},
-        "sample": {"molecules": "all", "n": 2 if quick else 8, "seed": 7,
-                   "frames": [0] if quick else [0, 19], "radius": 8.0 if quick else 12.0,
-                   "quantities": ["S1_eV", "S1_shift_eV", "S1_vacuum_eV", "T1_eV"]},
+        # one OpenMP thread per calculation: the scan and the film model's QM fits run in this process,
+        # where two threads gave these small molecules no wall time back on 2 idle cores (a 2-thread scan
+        # calculation took as long as a 1-thread sample one) and, on a busy machine, 2.3x the CPU time per
+        # calculation (README: demo timing); the sample's workers run one thread each anyway
+        "method": {"preset": "fast-refined", "threads": 1},
+        # four radii (a verdict needs three) and the periodic limit; the sample's radius among them
+        "scan": {"molecule": scanned, "frame": smp["frames"][0],
+                 "radii": [4.0, 8.0] if quick else [4.0, 8.0, 12.0, 16.0], "periodic_limit": not quick},
+        "sample": {"molecules": "all", **smp, "quantities": ["S1_eV", "S1_shift_eV", "S1_vacuum_eV", "T1_eV"]},
         "model": {"radius": 12.0 if quick else 15.0, "charges_method": "b3lyp/sto-3g",
                   "frames": [0] if quick else None, "polarization": True,
                   # IP/EA with and without polarization. Full demo: induced dipoles on the whole 15 Å
-                  # environment (~20 s a molecule; P- converges slowly with the polarizable radius, README);
+                  # environment (~8 s a molecule; P- converges slowly with the polarizable radius, README);
                   # quick: on the molecules within 8 Å (under a second each)
                   "polarize_molecules": [0, 1, 2] if quick else [0, 1, 2, 3, 4, 5],
                   "polarizable_radius": 8.0 if quick else None,
-                  # S1 of bithiophene needs the second-order response and conformer references
-                  # (README, film-wide model parity: 4 references there; 2 here cover the film's
-                  # two torsional families at half the QM cost)
+                  # S1 of bithiophene needs the second-order response and two conformer references (the
+                  # film's two torsional families): against the sample's 16 QM sites the S1 shift followed
+                  # QM to 22 meV RMS (r = 0.75) with two and not at all with one (60 meV, r = -0.14; QM
+                  # spread 34 meV), for 310 s more CPU on a busy machine (README: demo timing)
                   "n_conformers": 1 if quick else 2, "response": True},
         "export": {"cutoff_A": 8.0},
         "runner": {"kind": "processes", "workers": workers},
@@ -94,11 +115,22 @@ def demo_study(out_dir: str, *, quick: bool = False, workers: int | None = None)
     return validate(study, where="demo study")
 
 
+def demo_film():
+    """The demo film, loaded (:func:`clusterlab.load_film` on :func:`demo_paths`; the
+    element-guessing warning of its topology silenced)."""
+    from .film import load_film
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return load_film(*demo_paths())
+
+
 def run_demo(out_dir: str = "demo_report", *, quick: bool = False, workers: int | None = None,
              progress: bool = True):
     """Run the demo study end to end; returns the :class:`~clusterlab.pipeline.StudyOutcome`."""
     from .pipeline import run_study
 
     os.makedirs(out_dir, exist_ok=True)
-    return run_study(demo_study(out_dir, quick=quick, workers=workers), progress=progress,
+    film = demo_film()
+    return run_study(demo_study(out_dir, quick=quick, workers=workers, film=film), progress=progress, film=film,
                      title="clusterlab demo: amorphous bithiophene interlayer (invented scenario)")

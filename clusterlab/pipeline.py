@@ -9,14 +9,20 @@ from __future__ import annotations
 
 import json
 import os
+import resource
 import time
 import warnings
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
 from .film import Film, load_film
-from .report import (ReportWriter, doped_section, log_section, model_correlation_section, model_section,
-                     polarization_table, sample_section, scan_section)
+from .report import (ReportWriter, doped_section, log_section, model_correlation_section, model_parity_section,
+                     model_section, polarization_table, sample_section, scan_section)
 from .store import ResultStore
 from .studyfile import method_from_study, xc_basis
 
@@ -32,8 +38,13 @@ class StudyOutcome:
     scan: Any = None
     sample: Any = None
     model: Any = None
+    #: the film model against the sample's QM on the sampled sites (:func:`sample_parity`)
+    parity: Any = None
     export: dict[str, str] = field(default_factory=dict)
     timings_s: dict[str, float] = field(default_factory=dict)
+    #: per stage: wall, CPU of this process and of finished worker processes (s), and the cluster
+    #: calculations run now against those the store already held (see :class:`StageCosts`)
+    costs: dict[str, dict[str, float]] = field(default_factory=dict)
 
     @property
     def all_failed(self) -> bool:
@@ -44,6 +55,140 @@ class StudyOutcome:
             return False
         return rep.failed == rep.n_tasks or (rep.failed > 0 and rep.done == 0 and rep.skipped == 0
                                              and not len(self.sample.table))
+
+
+#: the file of the report folder that holds :attr:`StudyOutcome.costs`
+COSTS_FILE = "stage_costs.json"
+
+
+def _cpu_s() -> tuple[float, float]:
+    """CPU time (user + system, s) of this process and of its waited-for children."""
+    own = time.process_time()
+    ch = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return own, ch.ru_utime + ch.ru_stime
+
+
+class StageCosts:
+    """What each stage of a study cost: wall time, CPU time, calculations run and reused.
+
+    CPU time is that of this process (the serial scan and the film model's QM fits run
+    here, on as many threads as PySCF takes) plus that of worker processes once they
+    have exited (a sample's pool is shut down at its end), so on a shared machine
+    ``cpu_s`` says what the study needed even when the wall time says how busy the
+    machine was. ``computed`` and ``reused`` count the stage's cluster calculations:
+    run now, or found finished in the store (by task key: an earlier stage or an
+    earlier run of the same study).
+    """
+
+    def __init__(self) -> None:
+        self.rows: dict[str, dict[str, float]] = {}
+        self._start = (time.perf_counter(), *_cpu_s())
+
+    @contextmanager
+    def stage(self, name: str):
+        """Measure the block as stage ``name``; the block may add counts to the yielded dict."""
+        w0, c0, k0 = time.perf_counter(), *_cpu_s()
+        row: dict[str, float] = {}
+        try:
+            yield row
+        finally:
+            c1, k1 = _cpu_s()
+            self.rows[name] = {"wall_s": time.perf_counter() - w0, "cpu_s": (c1 - c0) + (k1 - k0),
+                               "cpu_workers_s": k1 - k0, **row}
+
+    def total(self) -> dict[str, float]:
+        """The whole study so far (film loading and report writing included)."""
+        c1, k1 = _cpu_s()
+        w0, c0, k0 = self._start
+        return {"wall_s": time.perf_counter() - w0, "cpu_s": (c1 - c0) + (k1 - k0), "cpu_workers_s": k1 - k0}
+
+    def lines(self) -> list[str]:
+        """One line per stage and the total: wall, CPU and the calculations run / reused."""
+        out = []
+        for name, r in self.rows.items():
+            calc = f"; {int(r['computed'])} calculations run, {int(r['reused'])} from the store" if "computed" in r else ""
+            out.append(f"{name:<8} {_clock(r['wall_s']):>9} wall, {_clock(r['cpu_s']):>9} CPU{calc}")
+        return out
+
+
+def _clock(seconds: float) -> str:
+    m, s = divmod(float(seconds), 60.0)
+    return f"{int(m)} min {s:4.1f} s" if m else f"{s:.1f} s"
+
+
+def _counts(report) -> dict[str, float]:
+    """Calculations of a stage from its :class:`~clusterlab.runner.RunReport`."""
+    if report is None:
+        return {}
+    return {"computed": float(report.executed), "reused": float(report.skipped)}
+
+
+#: the states the film model is checked on against the sample's QM
+PARITY_STATES = ("S1", "T1")
+
+
+def sample_parity(film: Film, model: Any, sample: Any) -> pd.DataFrame:
+    """The film-wide model against the sample's embedded QM, site by site, with no new QM.
+
+    The sample's cluster calculations serve as the model's parity points: the model
+    (its fitted charges and, where it has one, its field response) is evaluated again
+    at the sample's largest radius and cut rule on the sampled (frame, molecule) sites
+    only, which costs seconds, and paired with the QM shifts of those sites.
+
+    Parameters
+    ----------
+    film : Film
+    model : FilmModelResult
+        From :func:`~clusterlab.study.filmmodel.run_film_model` (its ``charges`` and
+        ``options["field_response"]`` are used).
+    sample : SiteSample
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per site: ``frame``, ``molecule`` and, for each state S of
+        :data:`PARITY_STATES` both sides have, ``S_shift_qm_eV`` and
+        ``S_shift_model_eV``; ``attrs["radius_A"]``, ``attrs["rule"]``. Empty when the
+        sample has no converged site.
+    """
+    from .study.filmmodel import FilmModel
+
+    t = sample.at()
+    if not len(t):
+        return pd.DataFrame()
+    radius = float(t.radius_A.max())
+    rule = str(t["rule"].iloc[0]) if "rule" in t.columns else "atom"
+    states = [s for s in PARITY_STATES if f"{s}_shift_eV" in t.columns and t[f"{s}_shift_eV"].notna().any()]
+    response = [s for s in (model.options.get("field_response") or ()) if s in states]
+    fm = FilmModel(film, model.charges, radius_A=radius, rule=rule, states=states, field_response=response)
+    ours = fm.run(sorted({int(f) for f in t.frame}), sorted({int(m) for m in t.molecule}), progress=False).table
+    qm = t[["frame", "molecule", *[f"{s}_shift_eV" for s in states]]].astype({"frame": int, "molecule": int})
+    pairs = qm.merge(ours[["frame", "molecule", *[f"{s}_shift_eV" for s in states]]], on=["frame", "molecule"],
+                     suffixes=("_qm", "_model"))
+    pairs = pairs.rename(columns={f"{s}_shift_eV_{w}": f"{s}_shift_{w}_eV" for s in states for w in ("qm", "model")})
+    pairs.attrs.update(radius_A=radius, rule=rule, model=fm.label)
+    return pairs
+
+
+def parity_summary(pairs: pd.DataFrame) -> pd.DataFrame:
+    """Per state of :func:`sample_parity`'s pairs: ``n``, ``rms_eV`` and ``mean_eV`` of
+    model − QM, Pearson ``r`` (NaN for fewer than 3 sites or a constant side) and the QM spread
+    ``qm_sigma_eV`` (ddof=1) the RMS is to be read against."""
+    rows = []
+    for s in PARITY_STATES:
+        if f"{s}_shift_qm_eV" not in pairs.columns:
+            continue
+        x = pairs[f"{s}_shift_qm_eV"].to_numpy(dtype=float)
+        y = pairs[f"{s}_shift_model_eV"].to_numpy(dtype=float)
+        ok = np.isfinite(x) & np.isfinite(y)
+        x, y = x[ok], y[ok]
+        if x.size < 2:
+            continue
+        d = y - x
+        r = float(np.corrcoef(x, y)[0, 1]) if x.size >= 3 and np.std(x) > 0 and np.std(y) > 0 else float("nan")
+        rows.append({"quantity": f"{s}_shift_eV", "n": int(x.size), "rms_eV": float(np.sqrt(np.mean(d ** 2))),
+                     "mean_eV": float(d.mean()), "r": r, "qm_sigma_eV": float(np.std(x, ddof=1))})
+    return pd.DataFrame(rows)
 
 
 def _runner_kwargs(study: dict[str, Any]) -> dict[str, Any]:
@@ -59,14 +204,29 @@ def _runner_kwargs(study: dict[str, Any]) -> dict[str, Any]:
 
 
 def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[str], Any] = print,
-              title: str = "clusterlab study") -> StudyOutcome:
-    """Run every section present in ``study`` and write the report folder."""
-    t_all = time.perf_counter()
+              title: str = "clusterlab study", film: Film | None = None) -> StudyOutcome:
+    """Run every section present in ``study`` and write the report folder.
+
+    The costs of each stage (:class:`StageCosts`) are printed at the end, kept in
+    ``StudyOutcome.costs`` and ``timings_s`` (wall) and written to the report folder
+    (:data:`COSTS_FILE` and its Timings section). ``film``: the study's film already
+    loaded (it must be the film of ``study["film"]``), so it is not read twice.
+
+    Raises
+    ------
+    InputError
+        A ``film`` whose files are not those of the study.
+    """
+    clock = StageCosts()
     present = set(study.get("_present", []))
     f = study["film"]
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        film = load_film(f["topology"], f["trajectory"], charges=f["charges"] or None)
+    if film is None:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            film = load_film(f["topology"], f["trajectory"], charges=f["charges"] or None)
+    elif os.path.abspath(film.topology_path) != os.path.abspath(f["topology"]) or f["charges"]:
+        raise InputError(f"film {film.topology_path!r} is not the study's film {f['topology']!r} (with its "
+                         "charges as the study gives them); pass film=None to load it from the study.")
     method = method_from_study(study)
     out_dir = study["output"]["report"]
     rep = ReportWriter(out_dir, title)
@@ -88,15 +248,16 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         from .study.scan import radius_scan
 
         s = study["scan"]
-        t0 = time.perf_counter()
         molecule = s["molecule"] if s["molecule"] is not None else f"species:{s['species']}"
         if s["molecule"] is not None and s["species"]:
             film.select([s["molecule"]], species=s["species"])  # the molecule must be of that species
         echo(f"radius scan of molecule {molecule} at radii {s['radii']} Å ...")
-        outcome.scan = radius_scan(film, molecule, s["radii"], method, frame=s["frame"], rule=s["rule"],
-                                   qm_shell=s["qm_shell"], periodic_limit=s["periodic_limit"], tol_eV=s["tol_eV"],
-                                   store=store, runner="serial", progress=progress, on_step=narrate)
-        outcome.timings_s["scan"] = time.perf_counter() - t0
+        with clock.stage("scan") as row:
+            outcome.scan = radius_scan(film, molecule, s["radii"], method, frame=s["frame"], rule=s["rule"],
+                                       qm_shell=s["qm_shell"], periodic_limit=s["periodic_limit"],
+                                       tol_eV=s["tol_eV"], store=store, runner="serial", progress=progress,
+                                       on_step=narrate)
+            row.update(_counts(outcome.scan.report))
         echo("  " + outcome.scan.verdict.message)
         scan_section(rep, outcome.scan)
 
@@ -104,14 +265,14 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         from .study.sample import sample_sites
 
         s = study["sample"]
-        t0 = time.perf_counter()
         only = f", species {s['species']!r}" if s["species"] else ""
         echo(f"site-energy sample (molecules {s['molecules']!r}{only}, n={s['n']}, frames {s['frames']}, "
              f"radius {s['radius']} Å) ...")
-        outcome.sample = sample_sites(film, s["molecules"], s["frames"], s["radius"], method, store=store,
-                                      n=s["n"], seed=s["seed"], species=s["species"], rule=s["rule"],
-                                      progress=progress, on_step=narrate, **rkw)
-        outcome.timings_s["sample"] = time.perf_counter() - t0
+        with clock.stage("sample") as row:
+            outcome.sample = sample_sites(film, s["molecules"], s["frames"], s["radius"], method, store=store,
+                                          n=s["n"], seed=s["seed"], species=s["species"], rule=s["rule"],
+                                          progress=progress, on_step=narrate, **rkw)
+            row.update(_counts(outcome.sample.report))
         echo(f"  {outcome.sample.report}")
         if outcome.sample.failures:
             rep.text("Failed sites: " + "; ".join(outcome.sample.failures[:10]))
@@ -126,7 +287,6 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
     if "model" in present:
         from .study.filmmodel import run_film_model
 
-        t0 = time.perf_counter()
         m = study["model"]
         echo(f"film-wide electrostatic model (radius {m['radius']} Å, polarization {m['polarization']}, "
              f"{m['n_conformers']} conformer reference(s), S1 response {m['response']}) ...")
@@ -134,14 +294,24 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         if m["charges_method"]:  # the study method at the fit's xc/basis (charges and finite fields)
             xc, basis = xc_basis(m["charges_method"])
             fit_method = method.replace(xc=xc, basis=basis)
-        outcome.model = run_film_model(film, fit_method, radius_A=m["radius"], frames=m["frames"],
-                                       polarization=m["polarization"], polarize_molecules=m["polarize_molecules"],
-                                       reference_molecule=m["reference_molecule"], n_conformers=m["n_conformers"],
-                                       response=m["response"], polarizable_radius_A=m["polarizable_radius"],
-                                       polarization_scale=m["polarization_scale"], progress=progress, store=store,
-                                       species=m["species"])
-        outcome.timings_s["model"] = time.perf_counter() - t0
+        with clock.stage("model"):
+            outcome.model = run_film_model(film, fit_method, radius_A=m["radius"], frames=m["frames"],
+                                           polarization=m["polarization"],
+                                           polarize_molecules=m["polarize_molecules"],
+                                           reference_molecule=m["reference_molecule"],
+                                           n_conformers=m["n_conformers"], response=m["response"],
+                                           polarizable_radius_A=m["polarizable_radius"],
+                                           polarization_scale=m["polarization_scale"], progress=progress,
+                                           store=store, species=m["species"])
         model_section(rep, outcome.model)
+        if outcome.sample is not None and len(outcome.sample.table):
+            # the sample's QM sites are the model's parity points: no new QM, the model re-evaluated there
+            outcome.parity = sample_parity(film, outcome.model, outcome.sample)
+            parity = parity_summary(outcome.parity)
+            model_parity_section(rep, outcome.parity, parity, qm_method=method, fit_method=fit_method)
+            for r in parity.itertuples(index=False):
+                echo(f"  model vs the sample's QM, {r.quantity}: RMS {r.rms_eV * 1e3:.0f} meV, mean "
+                     f"{r.mean_eV * 1e3:+.0f} meV, r = {r.r:.2f} (QM σ {r.qm_sigma_eV * 1e3:.0f} meV, n={r.n})")
         if m["polarization"]:
             for r in polarization_table(outcome.model).itertuples(index=False):
                 echo(f"  {r.quantity}: mean {r.mean_eV:+.3f} eV, σ {r.sigma_eV * 1e3:.0f} meV (n={r.n})")
@@ -152,21 +322,42 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
 
         e = study["export"]
         folder = e["folder"] if os.path.isabs(e["folder"]) else os.path.join(rep.folder, e["folder"])
-        t0 = time.perf_counter()
-        outcome.export = export_study(film, folder, sample=outcome.sample, model=outcome.model,
-                                      cutoff_A=e["cutoff_A"], criterion=e["criterion"], method=method)
-        outcome.timings_s["export"] = time.perf_counter() - t0
+        with clock.stage("export"):
+            outcome.export = export_study(film, folder, sample=outcome.sample, model=outcome.model,
+                                          cutoff_A=e["cutoff_A"], criterion=e["criterion"], method=method)
         rep.section("Export for transport models",
                     f"Site and pair tables (Parquet + CSV) with a JSON sidecar in `{os.path.relpath(folder, rep.folder)}/`; "
                     "format described in the README.")
         echo(f"export written to {folder}")
 
-    outcome.timings_s["total"] = time.perf_counter() - t_all
-    rep.section("Timings", ", ".join(f"{k} {v:.1f} s" for k, v in outcome.timings_s.items()))
+    _costs_section(rep, clock)
     log_section(rep, {"radius scan": outcome.scan.log if outcome.scan is not None else [],
                       "site sample": outcome.sample.log if outcome.sample is not None else []})
     outcome.summary_path = rep.write()
     with open(os.path.join(rep.folder, "study.json"), "w", encoding="utf-8") as fh:
         json.dump({k: v for k, v in study.items()}, fh, indent=2, default=str)
+    outcome.costs = {**clock.rows, "total": clock.total()}
+    outcome.timings_s = {k: r["wall_s"] for k, r in outcome.costs.items()}
+    with open(os.path.join(rep.folder, COSTS_FILE), "w", encoding="utf-8") as fh:
+        json.dump({"stages": outcome.costs, "cpu_count": os.cpu_count(),
+                   "load_average_1min": os.getloadavg()[0]}, fh, indent=2)
     echo(f"report: {outcome.summary_path}")
+    echo("what each stage cost (CPU: this process and its finished workers):")
+    for line in clock.lines() + [_total_line(outcome.costs["total"])]:
+        echo("  " + line)
     return outcome
+
+
+def _total_line(total: dict[str, float]) -> str:
+    return f"{'total':<8} {_clock(total['wall_s']):>9} wall, {_clock(total['cpu_s']):>9} CPU"
+
+
+def _costs_section(rep: ReportWriter, clock: StageCosts) -> None:
+    """The Timings section: each stage's wall and CPU time and its calculations."""
+    rows = [{"stage": k, "wall_s": r["wall_s"], "cpu_s": r["cpu_s"],
+             "calculations_run": r.get("computed", float("nan")), "from_store": r.get("reused", float("nan"))}
+            for k, r in {**clock.rows, "total (so far)": clock.total()}.items()]
+    rep.section("Timings", f"Wall and CPU time per stage (CPU: this process and its finished worker "
+                f"processes; {os.cpu_count()} cores, 1-minute load average {os.getloadavg()[0]:.1f} at the end). "
+                "Cluster calculations run now and found in the store (by task key).")
+    rep.table(pd.DataFrame(rows), ["stage", "wall_s", "cpu_s", "calculations_run", "from_store"], nd=1)

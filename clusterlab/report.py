@@ -372,6 +372,27 @@ def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None 
                  ", ".join(f"{k} {_fmt(v)}" for k, v in parity.items()))
 
 
+def model_parity_section(rep: ReportWriter, pairs: pd.DataFrame, parity: pd.DataFrame, *, qm_method: Any = None,
+                         fit_method: Any = None) -> None:
+    """The film-wide model against the sample's QM on the sampled sites (pairs and
+    numbers from :func:`clusterlab.pipeline.sample_parity` and ``parity_summary``)."""
+    from .study.plots import plot_parity
+
+    if not len(parity):
+        return
+    fits = f" (charges and field response fitted with {fit_method.describe()})" if fit_method is not None else ""
+    qm = f" ({qm_method.describe()})" if qm_method is not None else ""
+    rep.text(f"Model against the sample's embedded QM{qm} on the {int(parity.n.max())} sampled sites, both at "
+             f"{pairs.attrs.get('radius_A', float('nan')):g} Å: the sample's calculations are the parity points, "
+             f"the model{fits} is evaluated again there (no new QM). RMS and mean of model − QM; read the RMS "
+             "against the QM spread. It contains what the model leaves out and the difference of the two methods.")
+    rep.display(parity, ["quantity", "n", "rms_eV", "mean_eV", "r", "qm_sigma_eV"])
+    q = str(parity.quantity.iloc[0]).replace("_shift_eV", "")
+    rep.figure(plot_parity(pairs[f"{q}_shift_qm_eV"], pairs[f"{q}_shift_model_eV"], xlabel=f"QM {q} shift",
+                           ylabel=f"model {q} shift"),
+               "model_parity.png", f"Film-wide model against the sample's QM: {q} shift per sampled site")
+
+
 def polarization_table(result: Any) -> pd.DataFrame:
     """IP and EA environment shifts of the polarized rows of a film model result,
     with fixed charges and with the Thole polarization, and the polarization
