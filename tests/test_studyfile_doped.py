@@ -214,3 +214,23 @@ def test_report_cli_rebuilds_the_film_for_the_host_guest_section(lattice_files, 
     assert "## Host:guest film (host HOS, 24 molecules" in (tmp_path / "rep_g" / "summary.md").read_text()
     assert main(["report", str(tmp_path / "st.sqlite"), "--charges", csv]) == 1
     assert "add --topology" in capsys.readouterr().err
+
+
+def test_study_keeps_valid_torsion_names_in_its_store(tmp_path):
+    """A [doped] torsion that the film has reaches the store (for `clusterlab report`); no QM section runs."""
+    film = chain_film(ANGLES)
+    pdb = tmp_path / "chains.pdb"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        film.universe.atoms.write(str(pdb))
+    csv = tmp_path / "q.csv"
+    csv.write_text("resname,name,charge\n" + "".join(f"DAX,C{i},0.0\n" for i in range(1, 5))
+                   + "HST,OW,-0.834\nHST,HW1,0.417\nHST,HW2,0.417\n")
+    p = tmp_path / "study.toml"
+    p.write_text(f"[film]\ntopology = '{pdb}'\ncharges = '{csv}'\n[doped]\ntorsion = 'DAX: C1 C2 C3 C4'\n"
+                 f"[output]\nstore = '{tmp_path / 'st.sqlite'}'\nreport = '{tmp_path / 'rep'}'\n")
+    assert main(["run", str(p), "--quiet"]) == 0
+    from clusterlab.store import ResultStore
+
+    with ResultStore(tmp_path / "st.sqlite", readonly=True) as st:
+        assert st.meta["doped_settings"] == {"torsion": {"DAX": ["C1", "C2", "C3", "C4"]}}
