@@ -16,6 +16,7 @@ from clusterlab.study.doped import dest_torsion, torsion_atom_indices, torsion_t
 from clusterlab.studyfile import load_study, parse_override, parse_torsion_names
 
 from lattice_films import DipoleSpecies, dipole_lattice_universe
+from test_cli import _write_study
 from test_doped import chain_film
 
 ANGLES = np.array([-170.0, -120.0, -75.0, -20.0, 10.0, 55.0, 100.0, 140.0, 175.0])
@@ -130,16 +131,8 @@ def lattice_files(tmp_path):
 
 
 def _study(tmp_path, pdb, csv, doped=""):
-    p = tmp_path / "study.toml"
-    p.write_text(f"""
-[film]
-topology = "{pdb}"
-charges = "{csv}"
-[method]
-preset = "fast-stda"
-basis = "sto-3g"
-n_singlets = 1
-n_triplets = 1
+    """test_cli's study file (draft preset at STO-3G, serial) with a sample of the lattice at 4 Å."""
+    return _write_study((pdb, csv), tmp_path, n_singlets=1, sections=f"""
 [sample]
 molecules = "all"
 n = 8
@@ -147,13 +140,7 @@ seed = 3
 radius = 4.0
 quantities = ["S1_eV", "T1_eV"]
 {doped}
-[runner]
-kind = "serial"
-[output]
-store = "{tmp_path / 'st.sqlite'}"
-report = "{tmp_path / 'rep'}"
 """)
-    return p
 
 
 def test_a_missing_torsion_atom_stops_the_study_before_any_calculation(lattice_files, tmp_path, capsys):
