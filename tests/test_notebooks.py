@@ -1,7 +1,8 @@
 """Every notebook in notebooks/ runs top to bottom without an error (nbclient).
 
 They run the real library (demo film, radius scan, site sample) with tiny
-settings, so they take minutes: marked slow. Files they write go to a
+settings, so they take minutes: marked slow. 03_doped_film's defaults are a
+real study of hours; its own test sets small values in its parameter cell. Files they write go to a
 scratch folder (``CLUSTERLAB_WORKDIR``).
 """
 
