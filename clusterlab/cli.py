@@ -79,6 +79,15 @@ def _parser() -> argparse.ArgumentParser:
     rp.add_argument("--quantity", action="append", help="column to report (repeatable; default S1_eV, T1_eV, "
                     "S1_shift_eV)")
     _add_choice_flags(rp)
+    hg = rp.add_argument_group("host:guest section (needs the film: by default rebuilt from the files the "
+                               "store's records name)")
+    hg.add_argument("--topology", help="film topology, when the recorded film files moved")
+    hg.add_argument("--trajectory", nargs="*", default=[], help="film trajectory file(s), with --topology")
+    hg.add_argument("--charges", help="CSV charge table (resname,name,charge), with --topology")
+    hg.add_argument("--torsion", action="append", help="donor-acceptor torsion 'SPECIES: A B C D' by four atom "
+                    "names (repeatable, one per species; default: the study's [doped] torsion kept in the store)")
+    hg.add_argument("--neighbour-cutoff", type=float, help="host-neighbour distance of the triplet confinement "
+                    "(Å; default: the study's, else 9)")
 
     ex = sub.add_parser("export", help="site and pair tables for transport models from a store")
     ex.add_argument("store")
@@ -153,15 +162,7 @@ def _dispatch(args: argparse.Namespace) -> int:
             return 1
         return 0
     if args.command == "report":
-        from .report import ReportWriter, sample_section
-        from .study.sample import SiteSample
-
-        sample = SiteSample.from_store(args.store, film_id=args.film_id, method_key=args.method_key)
-        rep = ReportWriter(args.out, f"clusterlab report of {os.path.basename(args.store)}")
-        stats = sample_section(rep, sample, args.quantity or ["S1_eV", "T1_eV", "S1_shift_eV"])
-        print(stats.to_string(index=False))
-        print(f"report: {rep.write()}")
-        return 0
+        return _report(args)
     if args.command == "export":
         from .film import load_film
         from .study.sample import SiteSample
@@ -179,6 +180,45 @@ def _dispatch(args: argparse.Namespace) -> int:
         run_demo(args.out, quick=args.quick, workers=args.workers, progress=not args.quiet)
         return 0
     raise ClusterlabError(f"unknown command {args.command!r}")  # pragma: no cover
+
+
+def _report(args: argparse.Namespace) -> int:
+    """``clusterlab report``: the sample's statistics, and the host:guest section when the film is found."""
+    from .errors import InputError
+    from .pipeline import DOPED_META_KEY
+    from .report import ReportWriter, doped_section, film_missing_section, report_inputs, sample_section
+    from .store import ResultStore
+    from .studyfile import parse_torsion_names
+
+    if (args.trajectory or args.charges) and not args.topology:
+        raise InputError("--trajectory and --charges describe the film together with --topology; add --topology.")
+    torsion = parse_torsion_names(args.torsion) if args.torsion else None
+    if not os.path.isfile(args.store):
+        raise InputError(f"result store {args.store!r} not found.")
+    with ResultStore(args.store, readonly=True) as st:
+        film = None
+        if args.topology:
+            from .film import load_film
+
+            film = load_film(args.topology, args.trajectory or None, charges=args.charges)
+        sample, film, why = report_inputs(st, film=film, film_id=args.film_id, method_key=args.method_key)
+        recorded = dict(st.meta.get(DOPED_META_KEY, {}))
+        rep = ReportWriter(args.out, f"clusterlab report of {os.path.basename(args.store)}")
+        stats = sample_section(rep, sample, args.quantity or ["S1_eV", "T1_eV", "S1_shift_eV"])
+        print(stats.to_string(index=False))
+        if film is None:
+            film_missing_section(rep, sample, why)
+            print(f"host:guest section left out: {why}; pass --topology (and --trajectory, --charges) to give "
+                  "the film.")
+        else:
+            ov = doped_section(rep, film, sample, states=st, torsion_atoms=torsion or recorded.get("torsion"),
+                               cutoff_A=args.neighbour_cutoff if args.neighbour_cutoff is not None
+                               else recorded.get("neighbour_cutoff_A"))
+            if ov is not None:
+                print(f"host:guest section: host {ov.species.host}, guest {ov.species.guest}"
+                      + (f" ({'; '.join(ov.notes)})" if ov.notes else ""))
+        print(f"report: {rep.write()}")
+    return 0
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -203,6 +203,24 @@ def _runner_kwargs(study: dict[str, Any]) -> dict[str, Any]:
     return kw
 
 
+#: store.meta key of the host:guest settings a study ran with (read back by ``clusterlab report``)
+DOPED_META_KEY = "doped_settings"
+
+
+def _doped_settings(study: dict[str, Any], film: Film, store: ResultStore) -> dict[str, Any]:
+    """The [doped] settings, the torsion atom names checked against the film before any
+    calculation runs, and kept in the store's meta for later reports."""
+    if "doped" not in set(study.get("_present", [])):
+        return {}
+    from .study.doped import torsion_atom_indices
+
+    d = {k: v for k, v in study["doped"].items() if v is not None}
+    if d.get("torsion"):
+        torsion_atom_indices(film, d["torsion"])  # InputError naming a missing atom or species
+    store.meta[DOPED_META_KEY] = d
+    return d
+
+
 def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[str], Any] = print,
               title: str = "clusterlab study", film: Film | None = None) -> StudyOutcome:
     """Run every section present in ``study`` and write the report folder.
@@ -238,6 +256,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
     echo(film.describe())
     echo(f"method: {method.describe()}")
     rkw = _runner_kwargs(study)
+    doped = _doped_settings(study, film, store)
 
     def narrate(line: str) -> None:
         """Each step of a scan or sample on the console (with the bars; --quiet keeps only the summary)."""
@@ -279,7 +298,8 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         if len(outcome.sample.table):
             # C(r) comes from the film-wide model when it runs (every molecule-frame, not a QM sample)
             stats = sample_section(rep, outcome.sample, list(s["quantities"]), correlation="model" not in present)
-            doped_section(rep, film, outcome.sample, states=store)  # nothing for a one-species film
+            doped_section(rep, film, outcome.sample, states=store,  # nothing for a one-species film
+                          torsion_atoms=doped.get("torsion"), cutoff_A=doped.get("neighbour_cutoff_A"))
             for r in stats.itertuples(index=False):
                 echo(f"  {r.quantity}: mean {r.mean_eV:.3f} eV, σ {r.sigma_eV * 1e3:.0f} meV "
                      f"[{r.sigma_lo_eV * 1e3:.0f}, {r.sigma_hi_eV * 1e3:.0f}] (95 % {r.sigma_ci_method}), n={r.n}")

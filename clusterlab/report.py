@@ -518,3 +518,55 @@ def doped_section(rep: ReportWriter, film: Any, sites: Any, *, states: Any = Non
     if ov.notes:
         rep.text("Notes: " + "; ".join(ov.notes) + ".")
     return ov
+
+
+def report_inputs(store: Any, *, film: Any = None, film_id: str | None = None,
+                  method_key: str | None = None) -> tuple[Any, Any, str]:
+    """The site sample of a result store and the film its host:guest section needs.
+
+    Without ``film`` the film is rebuilt from the film spec recorded with the
+    store's records (topology, trajectory and charge source, checked against
+    the recorded content id by :func:`clusterlab.film.film_from_spec`).
+
+    Parameters
+    ----------
+    store : ResultStore
+        Open store (read-only is enough).
+    film : Film, optional
+        The film to use instead of the recorded one (its content id must be
+        the store's).
+    film_id, method_key : str, optional
+        Which film and method to read when the store holds several.
+
+    Returns
+    -------
+    (SiteSample, Film or None, str)
+        The sample (with species and centroids when there is a film), the
+        film, and why there is no film ('' when there is one).
+    """
+    from .errors import ClusterlabError
+    from .film import film_from_spec
+    from .study.sample import SiteSample
+
+    if film is not None:
+        return SiteSample.from_store(store, film=film, film_id=film_id, method_key=method_key), film, ""
+    sample = SiteSample.from_store(store, film_id=film_id, method_key=method_key)
+    rec = store.get(str(sample.table["key"].iloc[0])) if len(sample.table) and "key" in sample.table else None
+    spec = ((rec.spec.get("payload") or {}).get("film") if rec is not None else None) or {}
+    if not spec.get("topology"):
+        return sample, None, "the store's records carry no film description"
+    try:
+        rebuilt = film_from_spec(spec)
+    except (ClusterlabError, OSError) as exc:
+        return sample, None, (f"the recorded film ({spec.get('topology')!r}) could not be rebuilt: "
+                              f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}")
+    return SiteSample.from_store(store, film=rebuilt, film_id=film_id, method_key=method_key), rebuilt, ""
+
+
+def film_missing_section(rep: ReportWriter, sample: Any, why: str) -> None:
+    """Say in the report that the host:guest section needs the film, when the sites hold several species."""
+    t = getattr(sample, "table", None)
+    if t is not None and "species" in t.columns and t["species"].nunique() > 1:
+        rep.section("Host:guest film",
+                    f"(not shown: this part needs the film, for neighbours and torsions, and {why}; give the "
+                    "film's files to the report)")

@@ -20,6 +20,9 @@ Example (every key optional except ``film.topology``)::
     frames = "0-19:5"         # or a list [0, 10]; ranges include both ends
     radius = 12.0
 
+    [doped]                   # host:guest films: ΔEST against a donor-acceptor torsion
+    torsion = "GST: C12 C13 N3 C20"   # species, colon, four atom names (a list for several species)
+
     [runner]
     kind = "processes"
 
@@ -134,6 +137,13 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "criterion": Setting((str,), "centroid", "pair distance criterion", ("centroid", "atom")),
         "folder": Setting((str,), "export", "export folder (inside the report folder when relative)"),
     },
+    "doped": {
+        "torsion": Setting((str, list), None, "donor-acceptor torsion of a species for ΔEST against the torsion: "
+                                              "'SPECIES: A B C D' with four atom names of the molecule (e.g. "
+                                              "'GST: C12 C13 N3 C20'), or a list of such texts, one per species"),
+        "neighbour_cutoff_A": Setting(_num(), None, "host-neighbour distance of the triplet confinement (Å, "
+                                                    "centroids; default 9, capped below half the box width)"),
+    },
     "runner": {
         "kind": Setting((str,), "processes", "runner", ("serial", "processes", "dask")),
         "workers": Setting((int,), None, "worker processes (default: one per core)"),
@@ -242,9 +252,50 @@ def _read_ranges(section: str, key: str, value: Any) -> Any:
             raise InputError(f"species {value!r} must be a species name or a list of names (no spaces or "
                              f"commas inside a name). {SPECIES_GRAMMAR}")
         return value.strip() if isinstance(value, str) else [n.strip() for n in names]
+    if key == "torsion":
+        return parse_torsion_names(value)
+    if key == "neighbour_cutoff_A" and not value > 0:
+        raise InputError(f"{value!r} must be a positive distance (Å).")
     if key == "polarize_molecules":
         return None if _is_all(value) else parse_ids(value, None).tolist()
     return value
+
+
+#: the grammar of a torsion named by atom names, for messages
+TORSION_GRAMMAR = ("write a torsion as 'SPECIES: A B C D' (the species, a colon, four different atom names of "
+                   "the molecule separated by spaces), e.g. 'GST: C12 C13 N3 C20', or a list of such texts")
+
+
+def parse_torsion_names(value: str | list[str]) -> dict[str, list[str]]:
+    """``{species: [four atom names]}`` of a torsion text ``"GST: C12 C13 N3 C20"``
+    (or a list of such texts, one species each). Whether the names exist is
+    checked against the film later
+    (:func:`clusterlab.study.doped.torsion_atom_indices`).
+
+    Raises
+    ------
+    InputError
+        Anything but a species, one colon and four different names; a species
+        named twice.
+    """
+    texts = [value] if isinstance(value, str) else value
+    if not isinstance(texts, list) or not texts:
+        raise InputError(f"torsion {value!r}: {TORSION_GRAMMAR}.")
+    out: dict[str, list[str]] = {}
+    for text in texts:
+        if not isinstance(text, str):
+            raise InputError(f"torsion {text!r} is not text; {TORSION_GRAMMAR}.")
+        sp, colon, rest = text.partition(":")
+        names = rest.replace(",", " ").split()
+        if not colon or not sp.strip() or re.search(r"\s", sp.strip()):
+            raise InputError(f"torsion {text!r} does not start with a species name and a colon; {TORSION_GRAMMAR}.")
+        if len(names) != 4 or len(set(names)) != 4:
+            raise InputError(f"torsion {text!r} names {len(names)} atom(s){' (one twice)' if len(names) == 4 else ''}; "
+                             f"{TORSION_GRAMMAR}.")
+        if sp.strip() in out:
+            raise InputError(f"torsion: species {sp.strip()!r} is named twice; give one torsion per species.")
+        out[sp.strip()] = names
+    return out
 
 
 def _is_all(value: Any) -> bool:

@@ -55,7 +55,7 @@ __all__ = [
     "SPECIES_QUANTITIES", "CT_DISTANCE_THRESHOLD_A", "SpeciesEnergies", "species_energies",
     "ConfinementResult", "triplet_confinement", "torsion_table", "TorsionResult", "dest_torsion",
     "state_table", "StateOrderResult", "state_order", "n_species", "MissingNeighboursError",
-    "HostGuestOverview", "host_guest_overview",
+    "HostGuestOverview", "host_guest_overview", "torsion_atom_indices",
 ]
 
 #: site-energy columns :func:`species_energies` describes (those present are used)
@@ -506,15 +506,91 @@ def triplet_confinement(film: Film, sites: Any, *, cutoff_A: float, host: str | 
 # ---------------------------------------------------------------------------
 # 3. ΔEST and charge-transfer character against the donor-acceptor torsion
 # ---------------------------------------------------------------------------
+def torsion_atom_indices(film: Film, names: Mapping[str, Sequence[str]]) -> dict[str, np.ndarray]:
+    """Indices within the molecule of torsion atoms given by their atom names.
+
+    Parameters
+    ----------
+    film : Film
+    names : mapping species -> 4 str
+        Atom names (the topology's ``names``) of the chain a-b-c-d of each
+        species, e.g. ``{"GST": ("C12", "C13", "N3", "C20")}``.
+
+    Returns
+    -------
+    dict of str to numpy.ndarray, shape (4,), int64
+        0-based positions of the atoms within a molecule of that species
+        (what :func:`torsion_table` takes).
+
+    Raises
+    ------
+    InputError
+        A species the film lacks, not four different names, a name no atom of
+        the species carries (the message names it and lists the names there
+        are), a name used twice within the molecule, or molecules of one
+        species whose atoms carry these names at different positions.
+    """
+    if not isinstance(names, Mapping) or not names:
+        raise InputError("torsion atom names must map a species to four atom names, e.g. "
+                         "{'GST': ('C12', 'C13', 'N3', 'C20')}.")
+    atom_names = np.asarray(film.universe.atoms.names).astype(str) if hasattr(film.universe.atoms, "names") \
+        else None
+    out: dict[str, np.ndarray] = {}
+    for sp, chain in names.items():
+        mols = np.flatnonzero(film.molecule_species == str(sp))
+        if not len(mols):
+            raise InputError(f"torsion atoms: {sp!r} is not a species of the film; species: "
+                             f"{sorted(film.species.index)}.")
+        chain = [str(c).strip() for c in chain]
+        if len(chain) != 4 or len(set(chain)) != 4 or not all(chain):
+            raise InputError(f"torsion atoms of {sp!r}: {chain!r}; give four different atom names of the "
+                             "molecule, e.g. 'C12 C13 N3 C20'.")
+        if atom_names is None:
+            raise InputError(f"torsion atoms of {sp!r}: the film's topology has no atom names; give the "
+                             "torsion as four atom indices within the molecule instead.")
+        first = atom_names[film.molecule_atoms(int(mols[0]))]
+        idx = []
+        for c in chain:
+            hits = np.flatnonzero(first == c)
+            if not len(hits):
+                shown = ", ".join(first[:40]) + (", ..." if len(first) > 40 else "")
+                raise InputError(f"torsion atoms of {sp!r}: no atom named {c!r} in molecule {int(mols[0])} "
+                                 f"of species {sp!r}; its atom names are {shown}.")
+            if len(hits) > 1:
+                raise InputError(f"torsion atoms of {sp!r}: the name {c!r} is carried by {len(hits)} atoms of "
+                                 f"molecule {int(mols[0])} (positions {hits.tolist()}); use atom indices instead.")
+            idx.append(int(hits[0]))
+        arr = np.asarray(idx, dtype=np.int64)
+        for m in mols[1:]:
+            atoms = film.molecule_atoms(int(m))
+            if len(atoms) <= arr.max() or not np.array_equal(atom_names[atoms[arr]], np.asarray(chain)):
+                raise InputError(f"torsion atoms of {sp!r}: molecule {int(m)} does not carry {chain} at the "
+                                 f"positions {arr.tolist()} of molecule {int(mols[0])} (atom order differs); "
+                                 "give atom indices per molecule type instead.")
+        out[str(sp)] = arr
+    return out
+
+
+def _named_to_indices(film: Film, species: Any, chain: Any) -> Any:
+    """``chain`` as indices when it is a sequence of atom names, else unchanged."""
+    if not isinstance(chain, str) and len(chain) and all(isinstance(i, (str, np.str_)) for i in chain):
+        return torsion_atom_indices(film, {species: chain})[str(species)]
+    return chain
+
+
 def _check_atoms(film: Film, atoms: Mapping[str, Sequence[int]], species: set[str]) -> dict[str, np.ndarray]:
     if not isinstance(atoms, Mapping) or not atoms:
         raise InputError("atoms must map a species to four atom indices within its molecule, "
-                         "e.g. {'GST': (3, 4, 9, 10)}.")
+                         "e.g. {'GST': (3, 4, 9, 10)}, or to four atom names, e.g. {'GST': ('C3', 'N1', 'C9', 'C10')}.")
     sizes = film.molecules.groupby("species")["n_atoms"].min().to_dict()
     out = {}
     for sp, idx in atoms.items():
         if str(sp) not in sizes:
             raise InputError(f"atoms: {sp!r} is not a species of the film; species: {sorted(sizes)}.")
+        if isinstance(idx, str):
+            raise InputError(f"atoms[{sp!r}]={idx!r}: give four atom names or indices as a sequence, "
+                             "e.g. ('C3', 'N1', 'C9', 'C10').")
+        idx = _named_to_indices(film, sp, idx)
         arr = np.asarray(idx)
         if arr.shape != (4,) or arr.dtype.kind not in "iu" or len(set(arr.tolist())) != 4:
             raise InputError(f"atoms[{sp!r}]={idx!r}: give four different integer atom indices within the molecule.")
@@ -536,10 +612,11 @@ def torsion_table(film: Film, sites: Any, atoms: Mapping[str, Sequence[int]], *,
     film : Film
     sites : SiteSample or pandas.DataFrame
         Which copies (``frame, molecule``; ``species`` may come from the film).
-    atoms : mapping species -> 4 ints
+    atoms : mapping species -> 4 ints or 4 str
         Atom indices *within the molecule* (0-based, the order of the
         molecule's atoms in the topology) of the chain a-b-c-d whose dihedral
-        is wanted; species not named are left out.
+        is wanted, or the four atom names (:func:`torsion_atom_indices`);
+        species not named are left out.
     radius_A : float, optional
 
     Returns
@@ -683,7 +760,8 @@ def dest_torsion(film: Film, sites: Any, atoms: Mapping[str, Sequence[int]], *, 
             row["environmental_fraction"] = float(ce["frac_env"])
         fits.append(row)
     return TorsionResult(table=table.reset_index(drop=True), fits=pd.DataFrame(fits),
-                         atoms={k: [int(i) for i in v] for k, v in atoms.items()}, n_harmonics=int(n_harmonics))
+                         atoms={str(k): [int(i) for i in _named_to_indices(film, k, v)] for k, v in atoms.items()},
+                         n_harmonics=int(n_harmonics))
 
 
 # ---------------------------------------------------------------------------
@@ -956,7 +1034,7 @@ def host_guest_overview(film: Film, sites: Any, *, cutoff_A: float | None = None
         smallest box width). Host neighbours without a T1 in ``sites`` are
         drawn from the sampled host T1 values (``fallback="host-distribution"``
         of :func:`triplet_confinement`), which ``notes`` then says.
-    torsion_atoms : mapping species -> 4 ints, optional
+    torsion_atoms : mapping species -> 4 ints or 4 atom names, optional
         See :func:`dest_torsion`; without it no torsion analysis.
     states : ResultStore, path or per-state table, optional
         For :func:`state_order` (read with :func:`state_table`).
