@@ -193,7 +193,7 @@ def _report(args: argparse.Namespace) -> int:
     if (args.trajectory or args.charges) and not args.topology:
         raise InputError("--trajectory and --charges describe the film together with --topology; add --topology.")
     torsion = parse_torsion_names(args.torsion) if args.torsion else None
-    if not os.path.isfile(args.store):
+    if not os.path.exists(args.store):
         raise InputError(f"result store {args.store!r} not found.")
     with ResultStore(args.store, readonly=True) as st:
         film = None
