@@ -271,12 +271,15 @@ def _copy_guess_dm(copy_guess, cluster: Cluster, method: Method, timings: dict[s
     ref = ws.vacuum if isinstance(ws, WarmStart) else ws if isinstance(ws, Calculation) else None
     if ref is None or not ref.converged or ref.mol is None:
         return None
-    if list(ref.mol.elements) != [s.capitalize() for s in cluster.qm_symbols] or ref.mol.basis != method.basis:
+    if ref.mol.basis != method.basis:
         return None
     from .guess import aligned_density
 
-    dm, rmsd = aligned_density(ref.mol, ref.mo_coeff, ref.mo_occ, ref.mol.elements,
-                               [s.capitalize() for s in cluster.qm_symbols], cluster.qm_positions)
+    try:  # aligned_density itself refuses another molecule (other atoms or order)
+        dm, rmsd = aligned_density(ref.mol, ref.mo_coeff, ref.mo_occ, ref.mol.elements,
+                                   [s.capitalize() for s in cluster.qm_symbols], cluster.qm_positions)
+    except InputError:
+        return None
     timings["copy_guess_rmsd_A"] = rmsd
     return dm
 
