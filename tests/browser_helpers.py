@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 
 CHROMIUM = "/usr/bin/chromium"
-CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--enable-unsafe-swiftshader", "--disable-quic", "--no-first-run",
                  "--disable-background-networking", "--disable-component-update", "--disable-sync"]
 REPO = Path(__file__).resolve().parents[1]
 

@@ -29,6 +29,7 @@ import json
 import os
 import re
 import shutil
+import time
 from pathlib import Path
 
 import pytest
@@ -122,6 +123,17 @@ def panel_screenshot(page, panel, path: Path) -> None:
         page.wait_for_timeout(300)
 
 
+def drawn_canvas(page, canvas, path: Path, timeout_s: float = 40.0) -> tuple[float, int]:
+    """Screenshot a WebGL canvas until something is drawn on it (software WebGL on a busy machine can
+    take many seconds for a film of thousands of atoms); returns the last (fraction, colours)."""
+    deadline = time.monotonic() + timeout_s
+    while True:
+        fraction, colours = non_blank_fraction(canvas.screenshot(path=str(path)))
+        if (fraction > 0.02 and colours > 20) or time.monotonic() > deadline:
+            return fraction, colours
+        page.wait_for_timeout(1000)
+
+
 def type_into(page, locator, text: str) -> None:
     locator.click()
     page.keyboard.press("Control+A")
@@ -206,10 +218,8 @@ def drive(server, notebook: str, artifacts: Path, *, run_timeout_s: float = 600.
 
             explorer = page.locator(".clusterlab-explorer").first
             explorer.scroll_into_view_if_needed()
-            page.wait_for_timeout(1500)  # let WebGL draw
             canvas = explorer.locator("canvas").first
-            png = canvas.screenshot(path=str(artifacts / "03_view_canvas.png"))
-            out["canvas_fraction"], out["canvas_colours"] = non_blank_fraction(png)
+            out["canvas_fraction"], out["canvas_colours"] = drawn_canvas(page, canvas, artifacts / "03_view_canvas.png")
             explorer.screenshot(path=str(artifacts / "explorer.png"))
             box = explorer.bounding_box()
             legend = explorer.locator(".clusterlab-legend").first.bounding_box()
@@ -231,8 +241,7 @@ def drive(server, notebook: str, artifacts: Path, *, run_timeout_s: float = 600.
             out["count_after"] = count.inner_text().strip()
             page.wait_for_timeout(1500)
             explorer.screenshot(path=str(artifacts / "05_explorer_after_slider.png"))
-            png2 = canvas.screenshot(path=str(artifacts / "06_view_canvas_after.png"))
-            out["canvas_fraction_after"], _ = non_blank_fraction(png2)
+            out["canvas_fraction_after"], _ = drawn_canvas(page, canvas, artifacts / "06_view_canvas_after.png")
 
             # bad radii: one line in the status, no traceback anywhere
             scan.scroll_into_view_if_needed()
