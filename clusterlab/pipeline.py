@@ -380,4 +380,4 @@ def _costs_section(rep: ReportWriter, clock: StageCosts) -> None:
     rep.section("Timings", f"Wall and CPU time per stage (CPU: this process and its finished worker "
                 f"processes; {os.cpu_count()} cores, 1-minute load average {os.getloadavg()[0]:.1f} at the end). "
                 "Cluster calculations run now and found in the store (by task key).")
-    rep.table(pd.DataFrame(rows), ["stage", "wall_s", "cpu_s", "calculations_run", "from_store"], nd=1)
+    rep.table(pd.DataFrame(rows), ["stage", "wall_s", "cpu_s", "calculations_run", "from_store"])

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .labels import display_table
+from .labels import MAX_COLUMNS, column_label, display_table, quantity_name
 
 MODEL_NOTE = (
     "All numbers are model estimates. The QM values use electrostatic point-charge embedding of a "
@@ -39,19 +39,11 @@ def _fmt(x: Any, nd: int = 3) -> str:
     return f"{xf:.{nd}f}"
 
 
-def _table_md(df: pd.DataFrame, cols: list[str], nd: int = 3) -> str:
-    cols = [c for c in cols if c in df.columns]
+def _table_md(shown: pd.DataFrame) -> str:
+    """A Markdown table of a :func:`clusterlab.labels.display_table` copy (cells are text)."""
+    cols = list(shown.columns)
     head = "| " + " | ".join(cols) + " |\n|" + "---|" * len(cols) + "\n"
-    # counts stored as floats (a column with a missing value) still print as counts
-    digits = []
-    for c in cols:
-        v = pd.to_numeric(df[c], errors="coerce").to_numpy(dtype=float)
-        fin = v[np.isfinite(v)]
-        whole = df[c].dtype.kind == "f" and len(fin) and np.all(fin == np.round(fin)) and np.all(np.abs(fin) < 1e9)
-        digits.append(0 if whole else nd)
-    rows = "".join("| " + " | ".join(_fmt(v, d) if not isinstance(v, str) else v for v, d in zip(r, digits))
-                   + " |\n" for r in df[cols].itertuples(index=False))
-    return head + rows
+    return head + "".join("| " + " | ".join(str(v) for v in r) + " |\n" for r in shown.itertuples(index=False))
 
 
 class ReportWriter:
@@ -77,14 +69,24 @@ class ReportWriter:
     def text(self, text: str) -> None:
         self.lines += [text, ""]
 
-    def table(self, df: pd.DataFrame, cols: list[str], nd: int = 3) -> None:
-        self.lines += [_table_md(df, cols, nd), ""]
-
-    def display(self, df: pd.DataFrame, cols: list[str]) -> None:
+    def table(self, df: pd.DataFrame, cols: list[str], *, max_columns: int | None = MAX_COLUMNS,
+              mean_in_meV: bool | None = None) -> None:
         """A table as people read it (:func:`clusterlab.labels.display_table`: human headers, shifts
-        and σ in meV, the vacuum row named)."""
-        shown = display_table(df[[c for c in cols if c in df.columns]])
-        self.lines += [_table_md(shown, list(shown.columns)), ""]
+        and σ in meV, the vacuum row named, at most ``max_columns`` columns). What is left out is said
+        under it: "every SCF converged" for an SCF flag that is True on every judged row, else the
+        names of the columns not shown."""
+        shown = display_table(df[[c for c in cols if c in df.columns]], max_columns=max_columns,
+                              mean_in_meV=mean_in_meV)
+        self.lines += [_table_md(shown), ""]
+        hidden = shown.attrs.get("hidden_columns", [])
+        notes = ["every SCF converged"] if "converged" in hidden else []
+        rest = [column_label(c) for c in hidden if c != "converged"]
+        if rest:
+            notes.append("not shown here (in the store and the export): " + ", ".join(rest))
+        if notes:
+            self.lines += ["(" + "; ".join(notes) + ".)", ""]
+
+    display = table
 
     def figure(self, fig, name: str, caption: str) -> str:
         path = os.path.join(self.folder, name)
@@ -151,7 +153,7 @@ def headline_lines(facts: dict[str, Any]) -> list[str]:
                  else "no S1 shift in the scan")
         if v.converged:
             items.append(f"Convergence with radius: converged from {v.radius_A:g} Å within ±{1e3 * v.tol:g} meV "
-                         f"(slowest quantity: {_axis_name(str(v.quantity))}). {shift}.")
+                         f"(slowest quantity: {quantity_name(str(v.quantity))}). {shift}.")
         elif not v.judged:
             items.append(f"Convergence with radius: not judged yet: {v.message}. {shift}, provisional.")
         else:
@@ -188,11 +190,6 @@ def headline_lines(facts: dict[str, Any]) -> list[str]:
     models += [m for m in ("model", "polarization") if facts.get(m)]
     items += [f"Caution: {CAUTIONS[m]}" for m in models]
     return out + [f"- {x}" for x in items] + [""]
-
-
-def _axis_name(column: str) -> str:
-    """'S1_shift_eV' -> 'S1 shift' (the histogram's axis names the unit itself)."""
-    return column[: -len("_eV")].replace("_", " ") if column.endswith("_eV") else column.replace("_", " ")
 
 
 def scan_section(rep: ReportWriter, scan) -> None:
@@ -240,7 +237,10 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
         notes.append(sigma_interval_note(s))
     stats = pd.DataFrame(rows)
     rep.facts.update({"sample_stats": stats, "sample_sites": len(t), "qm": True})
-    if len(stats):
+    if not len(stats):
+        rep.text(f"{len(t)} site(s) with values: the statistics (σ, histogram) need at least 3; "
+                 "sample more molecules or frames.")
+    else:
         rep.text("σ intervals: " + "; ".join(dict.fromkeys(notes)) + ".")
         rep.display(stats, [c for c in stats.columns if c != "sigma_ci_method"])
         if "species" in t.columns and t["species"].nunique() > 1:
@@ -255,19 +255,19 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
         q0 = stats.quantity.iloc[0]
         values = t[q0].to_numpy(dtype=float)
         shape = skew_check(values)
-        rep.facts.setdefault("shapes", {})[f"the QM sample's {_axis_name(q0)}"] = shape
-        rep.figure(plot_histogram(values, label=_axis_name(q0)), f"histogram_{q0}.png",
-                   f"Distribution of {q0}" + (" (skewed: no Gaussian drawn)" if shape["skewed"] else
+        rep.facts.setdefault("shapes", {})[f"the QM sample's {quantity_name(q0)}"] = shape
+        rep.figure(plot_histogram(values, label=quantity_name(q0)), f"histogram_{q0}.png",
+                   f"Distribution of {quantity_name(q0)}" + (" (skewed: no Gaussian drawn)" if shape["skewed"] else
                                               " with the Gaussian of its mean and σ"))
     if t.frame.nunique() > 1 and "S1_eV" in t.columns:
         sd = sample.static_dynamic("S1_eV")
-        rep.text(f"Static vs dynamic (S1): σ_static = {_fmt(sd['sigma_static'])} eV, "
-                 f"σ_dynamic = {_fmt(sd['sigma_dynamic'])} eV, σ_total = {_fmt(sd['sigma_total'])} eV.")
+        rep.text(f"Static vs dynamic (S1): σ_static = {_mev(sd['sigma_static'])}, "
+                 f"σ_dynamic = {_mev(sd['sigma_dynamic'])}, σ_total = {_mev(sd['sigma_total'])}.")
     if {"S1_vacuum_eV", "S1_shift_eV"} <= set(t.columns) and len(t) >= 3:
         ce = sample.conformational_environmental("S1")
         rep.facts["conf_env"] = ce
-        rep.text(f"Conformational vs environmental (S1): σ_conf = {_fmt(ce['sigma_conf'])} eV, "
-                 f"σ_env = {_fmt(ce['sigma_env'])} eV, correlation {_fmt(ce['correlation'], 2)}.")
+        rep.text(f"Conformational vs environmental (S1): σ_conf = {_mev(ce['sigma_conf'])}, "
+                 f"σ_env = {_mev(ce['sigma_env'])}, correlation {_fmt(ce['correlation'], 2)}.")
     if sample.table.radius_A.nunique() > 1:
         g = sample.growth("S1_shift_eV", n_boot=n_boot, seed=0)
         if len(g) > 1:
@@ -338,6 +338,11 @@ def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None 
     refs = f"{n_asked} conformer reference(s)" + (f" asked for, {n_fit} fitted" if n_asked != n_fit else "")
     response = list(result.options.get("field_response") or [])
     cols = [c for c in model_df.columns if c.endswith("_eV") and model_df[c].notna().sum() > 3]
+    # the cation (anion) shift is the IP (minus the EA) shift when no polarization enters it: one row
+    for ion, site, sign in (("cation_shift_eV", "IP_shift_eV", 1.0), ("anion_shift_eV", "EA_shift_eV", -1.0)):
+        if ion in cols and site in cols and np.allclose(sign * model_df[ion].to_numpy(dtype=float),
+                                                        model_df[site].to_numpy(dtype=float), equal_nan=True):
+            cols.remove(ion)
     rep.section(f"Film-wide electrostatic model ({model_df.molecule.nunique()} molecules x "
                 f"{model_df.frame.nunique()} frames)",
                 "Shift of each state = Σ (q_state − q_ground) × potential of the environment's ground-state "
@@ -361,9 +366,9 @@ def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None 
         c0 = cols[0]
         values = model_df[c0].to_numpy(dtype=float)
         shape = skew_check(values)
-        rep.facts.setdefault("shapes", {})[f"the film-wide model's {_axis_name(c0)}"] = shape
-        rep.figure(plot_histogram(values, label=_axis_name(c0)), "model_histogram.png",
-                   f"Film-wide model: distribution of {c0}" + (" (skewed: no Gaussian drawn)" if shape["skewed"]
+        rep.facts.setdefault("shapes", {})[f"the film-wide model's {quantity_name(c0)}"] = shape
+        rep.figure(plot_histogram(values, label=quantity_name(c0)), "model_histogram.png",
+                   f"Film-wide model: distribution of {quantity_name(c0)}" + (" (skewed: no Gaussian drawn)" if shape["skewed"]
                                                               else ""))
     if "P_cation_eV" in model_df or "P_anion_eV" in model_df:
         polarization_section(rep, result)
@@ -386,7 +391,8 @@ def model_parity_section(rep: ReportWriter, pairs: pd.DataFrame, parity: pd.Data
              f"{pairs.attrs.get('radius_A', float('nan')):g} Å: the sample's calculations are the parity points, "
              f"the model{fits} is evaluated again there (no new QM). RMS and mean of model − QM; read the RMS "
              "against the QM spread. It contains what the model leaves out and the difference of the two methods.")
-    rep.display(parity, ["quantity", "n", "rms_eV", "mean_eV", "r", "qm_sigma_eV"])
+    shown = parity.rename(columns={"rms_eV": "rms_error_eV", "mean_eV": "mean_error_eV", "qm_sigma_eV": "sigma_qm_eV"})
+    rep.display(shown, ["quantity", "n", "rms_error_eV", "mean_error_eV", "r", "sigma_qm_eV"])
     q = str(parity.quantity.iloc[0]).replace("_shift_eV", "")
     rep.figure(plot_parity(pairs[f"{q}_shift_qm_eV"], pairs[f"{q}_shift_model_eV"], xlabel=f"QM {q} shift",
                            ylabel=f"model {q} shift"),
@@ -443,7 +449,7 @@ def polarization_section(rep: ReportWriter, result: Any) -> None:
              + ". Site energy = gas-phase IP (EA) + shift, so the σ of a shift is that of the site energy. "
              "Leaves out the ion's own density response to the dipoles and the periodic images of the dipoles "
              "(README: parity against polarizable QM).")
-    rep.display(st, list(st.columns))
+    rep.display(st, list(st.columns), mean_in_meV=True)
 
 
 def write_lines(rep: ReportWriter, title: str, lines: list[str]) -> None:
@@ -503,8 +509,8 @@ def doped_section(rep: ReportWriter, film: Any, sites: Any, *, states: Any = Non
                  f"T1_host,min − T1_guest: mean {_fmt(s['margin_mean_eV'])} eV, σ {_fmt(s['margin_sigma_eV'])} eV, "
                  f"min {_fmt(s['margin_min_eV'])} eV).")
     if ov.torsion is not None:
-        rep.table(ov.torsion.fits, ["species", "n", "var_dEST_eV2", "torsion_fraction", "sigma_torsion_eV",
-                                    "conformational_fraction"], nd=4)
+        rep.table(ov.torsion.fits, ["species", "n", "sigma_torsion_eV", "torsion_fraction",
+                                    "conformational_fraction"])
         rep.figure(plot_torsion(ov.torsion), "dest_torsion.png", "ΔEST and hole–electron distance vs torsion")
     if ov.state_order is not None:
         so = ov.state_order

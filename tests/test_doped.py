@@ -481,14 +481,14 @@ def test_report_shows_the_per_species_table_once(film, tmp_path):
     sample_section(rep, sample, ["S1_eV"], n_boot=200, correlation=False)
     doped_section(rep, film, sample, cutoff_A=4.5, n_boot=200)
     text = "\n".join(rep.lines)
-    header = "| species | quantity | n | mean (eV) | σ (meV) | σ low (meV) | σ high (meV) | σ interval |"
-    assert text.count(header) == 1 and text.count("| HST | S1_eV |") == 1
+    header = "| species | quantity | n | mean (eV) | σ (meV) | σ 95 % low (meV) | σ 95 % high (meV) | σ interval |"
+    assert text.count(header) == 1 and text.count("| HST | S1 |") == 1  # the quantity by name, not column
     assert "the table of the site-energy sample section above (shown once)" in text
     assert "σ by the one rule of the report (chi-square below 30 sites" in text
     # the numbers of that one table are the host:guest function's (same sites, seed and rule)
     se = species_energies(sites, film=film, n_boot=200, seed=0)
     hst = se.stats.set_index(["species", "quantity"]).loc[("HST", "S1_eV")]
-    assert (f"| HST | S1_eV | 62 | {hst.mean_eV:.3f} | {1e3 * hst.sigma_eV:.1f} | {1e3 * hst.sigma_lo_eV:.1f} | "
+    assert (f"| HST | S1 | 62 | {hst.mean_eV:.3f} | {1e3 * hst.sigma_eV:.1f} | {1e3 * hst.sigma_lo_eV:.1f} | "
             f"{1e3 * hst.sigma_hi_eV:.1f} | bootstrap BCa |") in text
     # the host:guest section alone (no sample section before it) shows the table itself
     alone = ReportWriter(str(tmp_path / "alone"), "t")

@@ -27,6 +27,7 @@ from clusterlab.study.plots import (
     plot_parity,
     skew_check,
     figure_legend,
+    tolerance_bands,
 )
 
 RADII = np.array([6.0, 8.0, 10.0, 12.0, 14.0, 18.0, 22.0])
@@ -63,11 +64,13 @@ def test_convergence_plot(scan_df, tmp_path):
     assert len(ax.lines) == 6
     assert [ln.get_linestyle() for ln in ax.lines].count("--") == 2
     assert [ln.get_linestyle() for ln in ax.lines].count(":") == 2
-    assert len(ax.patches) == 2  # one tolerance band per state
-    # band is +-10 meV around the periodic limit (axhspan: y in data units)
-    band = ax.patches[0]
-    assert band.get_y() == pytest.approx(-0.09)
-    assert band.get_y() + band.get_height() == pytest.approx(-0.07)
+    assert len(tolerance_bands(fig)[ax]) == 2  # one tolerance band per state
+    # band is +-10 meV around the periodic limit -80 meV (axhspan: y in data units, meV like the tables)
+    band = tolerance_bands(fig)[ax][0]
+    assert band.get_y() == pytest.approx(-90.0)
+    assert band.get_y() + band.get_height() == pytest.approx(-70.0)
+    np.testing.assert_allclose(ax.lines[0].get_ydata(), 1e3 * scan_df.S1_shift_eV.to_numpy()[1:])
+    assert ax.get_ylabel() == "environment shift (meV)"
     # converged radius for S1: 30/r^3 <= 0.01 -> r >= 14.4 Å (exact) -> 18 Å
     vlines = [ln for ln in ax.lines if ln.get_linestyle() == ":"]
     assert vlines[0].get_xdata()[0] == 18.0
@@ -86,16 +89,30 @@ def test_convergence_plot_states_and_errors(scan_df):
         plot_convergence(scan_df, periodic=-0.08)
 
 
-def test_convergence_plot_puts_a_non_shift_quantity_on_its_own_axis():
+def test_convergence_plot_puts_a_non_shift_quantity_in_its_own_panel_with_its_own_band():
     r = np.array([5.0, 8.0, 11.0])
     df = pd.DataFrame({"radius_A": r, "S1_shift_eV": [-0.080, -0.087, -0.088], "dEST_eV": [1.93, 1.928, 1.927]})
     fig = plot_convergence(df, states=["S1_shift_eV", "dEST_eV"], tol_eV=0.01)
-    left, right = fig.axes
-    np.testing.assert_allclose(right.lines[0].get_ydata(), df.dEST_eV)
-    assert right.get_ylabel() == "ΔEST (eV)" and left.get_ylabel() == "environment shift (eV)"
+    top, low = fig.axes
+    # one radius axis, the panel below the shifts (not a right axis drawn over them)
+    assert low.get_shared_x_axes().joined(top, low) and low.get_position().y1 <= top.get_position().y0
+    np.testing.assert_allclose(low.lines[0].get_ydata(), df.dEST_eV)
+    assert low.get_ylabel() == "ΔEST (eV)" and top.get_ylabel() == "environment shift (meV)"
     labels = [t.get_text() for t in figure_legend(fig).get_texts()]
     # S1 moves 8 meV from 5 Å on, ΔEST 3 meV: both within 10 meV, converged at 5 Å, said in the entries
-    assert labels[:2] == ["S1 shift, converged at 5 Å", "ΔEST (eV), right axis, converged at 5 Å"]
+    assert labels[:2] == ["S1 shift, converged at 5 Å", "ΔEST (lower panel), converged at 5 Å"]
+    # ΔEST's own band: ±10 meV in eV around its largest-radius value, outlined and hatched
+    (band,) = tolerance_bands(fig)[low]
+    assert (band.get_y(), band.get_y() + band.get_height()) == (pytest.approx(1.917), pytest.approx(1.937))
+    assert [p.get_hatch() for p in low.patches if p.get_gid() == "band-hatch"]
+    # an axes passed in has no room for a panel: a right axis, its band an outline only (dash-dotted, no
+    # hatch), so that it cannot mix with the shift's band behind it
+    host = Figure(figsize=(8, 4))
+    ax = host.add_subplot(position=[0.1, 0.1, 0.5, 0.8])
+    plot_convergence(df, states=["S1_shift_eV", "dEST_eV"], ax=ax)
+    right = host.axes[1]
+    (rband,) = tolerance_bands(host)[right]
+    assert rband.get_linestyle() == "-." and not [p for p in right.patches if p.get_gid() == "band-hatch"]
 
 
 def test_histogram_plot(tmp_path):
@@ -275,18 +292,43 @@ def test_followed_state_stays_visible_over_the_plain_state():
     assert followed.get_markerfacecolor() == "none" and followed.get_markersize() > plain.get_markersize()
 
 
-def test_tolerance_bands_are_hatched_outlines_that_do_not_mix():
-    fig = plot_convergence(_followed_scan(), states=["S1", "T1"], tol_eV=0.02)
-    bands = fig.axes[0].patches
+def _hatched_spans(ax):
+    return [(p.get_y(), p.get_y() + p.get_height()) for p in ax.patches if p.get_gid() == "band-hatch"]
+
+
+def test_tolerance_bands_are_outlines_hatched_only_where_they_do_not_overlap():
+    # the issue: several ±tolerance bands drawn as tints (or crossing hatches) mixed into grey mud
+    df = _followed_scan()
+    df = df.assign(T1_shift_eV=df.S1_shift_eV + 0.012)  # T1's band overlaps S1's over 8 of its 20 meV
+    fig = plot_convergence(df, states=["S1", "T1"], tol_eV=0.01)
+    ax = fig.axes[0]
+    bands = tolerance_bands(fig)[ax]
     assert len(bands) == 2
     for band, colour in zip(bands, PALETTE):
-        assert band.get_facecolor()[3] == 0.0  # no fill: overlapping bands do not add up to grey
-        assert band.get_hatch() and to_rgb(band.get_edgecolor()) == pytest.approx(to_rgb(colour))
-    assert bands[0].get_hatch() != bands[1].get_hatch()  # different directions where they cross
+        assert band.get_facecolor()[3] == 0.0 and not band.get_hatch()  # outline only: no fill
+        assert to_rgb(band.get_edgecolor()) == pytest.approx(to_rgb(colour))
+    s1 = 1e3 * df.S1_shift_eV.iloc[-1]
+    spans = sorted(_hatched_spans(ax))
+    # hatched: S1's band below the overlap and T1's above it, nothing inside the overlap
+    assert spans == [(pytest.approx(s1 - 10), pytest.approx(s1 + 2)), (pytest.approx(s1 + 10), pytest.approx(s1 + 22))]
+    for (a0, a1), (b0, b1) in zip(spans, spans[1:]):
+        assert a1 <= b0 + 1e-9  # no two hatched areas share a y range
     # the histogram's interval of the mean over the bars: an outline too, not a tint over the bars' colour
     ax = plot_histogram(np.random.default_rng(0).normal(0.0, 0.05, 50)).axes[0]
     span = next(p for p in ax.patches if p.get_label() == "interval of the mean")
     assert span.get_facecolor()[3] == 0.0 and span.get_hatch()
+
+
+def test_a_followed_state_on_the_plain_states_reference_draws_no_second_band():
+    fig = plot_convergence(_followed_scan(), states=["S1", "S1_followed"], tol_eV=0.01)
+    assert len(tolerance_bands(fig)[fig.axes[0]]) == 1
+    labels = [t.get_text() for t in figure_legend(fig).get_texts()]
+    assert any("band as S1 shift" in t for t in labels)
+    # a followed state that moved away from the plain one (a state swap) keeps its own band
+    df = _followed_scan()
+    df = df.assign(S1_followed_shift_eV=df.S1_shift_eV + 0.05)
+    swapped = plot_convergence(df, states=["S1", "S1_followed"])
+    assert len(tolerance_bands(swapped)[swapped.axes[0]]) == 2
 
 
 def _bars(ax):

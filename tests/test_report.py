@@ -44,7 +44,8 @@ def test_sample_section_reports_the_one_sigma_interval_in_meV(film, tmp_path):
     assert (row.sigma_lo_eV, row.sigma_hi_eV) == (s["sigma_chi2_lo"], s["sigma_chi2_hi"])
     text = "\n".join(rep.lines)
     assert "chi-square interval of a normal sample (n = 3 is below 30" in text
-    assert "| quantity | n | mean (eV) | σ (meV) | σ low (meV) | σ high (meV) |" in text
+    assert "| quantity | n | mean (eV) | σ (meV) | σ 95 % low (meV) | σ 95 % high (meV) |" in text
+    assert "| S1 | 3 |" in text and "| S1_eV" not in text  # the quantity by name, not its column
     assert f"| {1e3 * s['sigma']:.1f} | {1e3 * s['sigma_chi2_lo']:.1f} | {1e3 * s['sigma_chi2_hi']:.1f} |" in text
     # three sites: C(r) is not drawn, and the report says why
     assert "Spatial correlation of S1 site energies from the QM sample (3 sites): C(r) is not drawn" in text
@@ -92,6 +93,8 @@ def test_scan_section_reads_in_meV_and_names_the_vacuum_row(tmp_path):
     assert "cannot be judged yet" in text and "add a radius beyond 8 Å" in text
     assert "| vacuum | 0 | 3.100 | 0.0 |" in text and "| 8.0 | 90 | 3.013 | -87.3 |" in text
     assert "S1 shift (meV)" in text
+    # every SCF converged: said once under the table, not a column of "yes" beside the vacuum row's blank
+    assert "| SCF converged |" not in text and "(every SCF converged.)" in text
 
 
 class _Method:
@@ -148,12 +151,8 @@ def test_headline_repeats_the_sections_numbers_at_the_top(film, tmp_path):
     ce = sample.conformational_environmental("S1")
     assert ce["sigma_conf"] > ce["sigma_env"]
     assert f"conformational (σ_conf = {1e3 * ce['sigma_conf']:.1f} meV, σ_env = {1e3 * ce['sigma_env']:.1f}" in head
-    assert f"σ_conf = {_fmt_ev(ce['sigma_conf'])} eV" in text  # the section's own line
+    assert f"σ_conf = {1e3 * ce['sigma_conf']:.1f} meV" in text  # the section's own line, in meV too
     assert "Caution: Embedded QM" in head and "Film-wide model" not in head
-
-
-def _fmt_ev(x):
-    return f"{float(x):.3f}"
 
 
 def test_headline_says_in_words_what_is_missing(film, tmp_path):
@@ -201,3 +200,35 @@ def test_headline_takes_sigma_from_the_film_model_when_the_sample_is_too_small(f
     assert "Shape: the film-wide model's S1 shift is skewed (g1 = " in head
     assert "Caution: Film-wide model" in head and "Caution: Embedded QM" not in head
     assert (tmp_path / "r" / "model_histogram.png").exists()
+
+
+def test_tables_show_names_with_units_and_at_most_eight_columns(tmp_path):
+    import re
+
+    from clusterlab.labels import MAX_COLUMNS
+
+    rep = ReportWriter(str(tmp_path / "r"), "t")
+    # a scan table as wide as the engine's: 13 columns, an SCF that failed at 8 Å
+    table = pd.DataFrame({"radius_A": [0.0, 5.0, 8.0], "kind": ["vacuum", "cluster", "cluster"],
+                          "n_env_molecules": [0, 6, 20], "n_charges": [0, 30, 90], "S1_eV": [3.1, 3.02, 3.01],
+                          "S1_shift_eV": [0.0, -0.080, -0.090], "T1_eV": [2.5, 2.49, 2.48],
+                          "T1_shift_eV": [0.0, -0.01, -0.02], "dEST_eV": [0.6, 0.53, 0.53],
+                          "IP_shift_eV": [0.0, -0.2, -0.25], "EA_shift_eV": [0.0, 0.2, 0.26],
+                          "converged": [True, True, False], "wall_s": [3.0, 4.0, 5.0]})
+    rep.table(table, list(table.columns))
+    head = next(ln for ln in rep.lines if ln.startswith("| radius"))
+    headers = head.split("\n")[0].strip("| ").split(" | ")
+    assert len(headers) <= MAX_COLUMNS and headers[0] == "radius (Å)"
+    assert "SCF converged" in headers  # kept: it is False at 8 Å
+    assert "| vacuum |" in head and re.search(r"\| 8\.0 \|.*\| no \|", head)
+    assert all("_" not in h for h in headers)  # no raw column name
+    assert any(ln.startswith("(not shown here") and "wall time (s)" in ln for ln in rep.lines)
+
+    # a table of shifts (the film model's): quantities by name, means in meV like their σ
+    st = pd.DataFrame({"quantity": ["S1_shift_eV", "S1_stark_eV"], "n": [256, 256], "mean_eV": [-0.011, -0.014],
+                       "sigma_eV": [0.0468, 0.0176], "sigma_lo_eV": [0.0424, 0.0157], "sigma_hi_eV": [0.0521, 0.0199]})
+    rep.table(st, list(st.columns))
+    text = "\n".join(rep.lines)
+    assert "| quantity | n | mean (meV) | σ (meV) | σ 95 % low (meV) | σ 95 % high (meV) |" in text
+    assert "| S1 shift | 256 | -11.0 | 46.8 | 42.4 | 52.1 |" in text
+    assert "| S1 second-order (Stark) part | 256 | -14.0 |" in text

@@ -34,7 +34,7 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import MaxNLocator
 
 from ..errors import InputError
-from ..labels import column_label
+from ..labels import column_label, quantity_name, shown_in_meV
 from ..stats import converged_radius, correlation_note, disorder_stats
 
 __all__ = [
@@ -42,6 +42,7 @@ __all__ = [
     "plot_convergence",
     "skew_check",
     "figure_legend",
+    "tolerance_bands",
     "plot_histogram",
     "plot_growth",
     "plot_correlation",
@@ -78,15 +79,43 @@ def _need(df: pd.DataFrame, columns: Sequence[str], what: str) -> None:
             raise InputError(f"{what}: column {c!r} is missing; the table has columns {list(df.columns)}")
 
 
-def _label_of(col: str) -> str:
-    """'S1_shift_eV' -> 'S1'; 'S1_followed_shift_eV' -> 'S1 followed'."""
-    name = col[: -len("_shift_eV")] if col.endswith("_shift_eV") else col
-    return name.replace("_", " ")
+def _state_of(col: str) -> str:
+    """'S1_shift_eV' -> 'S1'; 'S1_followed_shift_eV' -> 'S1_followed' (keys of ``periodic``)."""
+    return col[: -len("_shift_eV")] if col.endswith("_shift_eV") else col
 
 
-#: hatch of each quantity's tolerance band, in turn: different directions, so that two bands that
-#: overlap read as a cross-hatch of two colours instead of one muddy tint
+#: hatch of each quantity's tolerance band, in turn (drawn only where the band overlaps no other band)
 _HATCHES = ("//", "\\\\", "||", "--")
+
+
+def _free_parts(lo: float, hi: float, others: list[tuple[float, float]]) -> list[tuple[float, float]]:
+    """The parts of [lo, hi] that no interval of ``others`` covers."""
+    parts = [(lo, hi)]
+    for a, b in others:
+        parts = [piece for p0, p1 in parts
+                 for piece in ((p0, min(p1, a)), (max(p0, b), p1)) if piece[1] > piece[0]]
+    return parts
+
+
+def _draw_bands(ax: Axes, bands: list[tuple[float, float, str, int]], *, hatch: bool = True,
+                linestyle: Any = "-") -> None:
+    """Tolerance bands of one axes: each an outline in its colour (gid ``"band"``), hatched (gid
+    ``"band-hatch"``) only where no other band of the axes overlaps it, so that overlapping bands
+    read as crossing outlines, never as one muddy tint."""
+    for k, (lo, hi, colour, i) in enumerate(bands):
+        ax.axhspan(lo, hi, facecolor="none", edgecolor=to_rgba(colour, 0.9), lw=1.0, ls=linestyle, zorder=0.6,
+                   gid="band")
+        if not hatch:
+            continue
+        others = [(b[0], b[1]) for j, b in enumerate(bands) if j != k]
+        for p0, p1 in _free_parts(lo, hi, others):
+            ax.axhspan(p0, p1, facecolor="none", edgecolor="none", lw=0.0, hatch=_HATCHES[i % len(_HATCHES)],
+                       hatchcolor=to_rgba(colour, 0.3), hatch_linewidth=0.6, zorder=0.5, gid="band-hatch")
+
+
+def tolerance_bands(fig: Figure) -> dict[Axes, list]:
+    """The band outlines of a convergence figure per axes (patches with gid ``"band"``)."""
+    return {ax: [p for p in ax.patches if p.get_gid() == "band"] for ax in fig.axes}
 
 
 def _outside_legend(fig: Figure, ax: Axes, own: bool, handles: list, labels: list, *, ncols: int = 2,
@@ -128,17 +157,31 @@ def plot_convergence(
 ) -> Figure:
     """Environment shift against cluster radius, one line per quantity.
 
-    Draws each shift (eV) vs ``radius_A``, a band of ±``tol_eV`` around
-    each quantity's reference (the periodic limit when given, else the
-    largest-radius value) as a hatched outline in the quantity's colour
-    (bands of several quantities overlap without mixing into one tint), the
-    periodic limit as a thin dashed line, and the converged radius from
-    :func:`clusterlab.stats.converged_radius` as a dotted vertical line (and
-    in the quantity's legend entry). A followed state (``S1_followed``) is
-    drawn dashed with open squares over the plain state's filled circles, so
-    both show where they coincide. The legend sits outside the axes (below
-    them in a figure made here, to the right of a given ``ax``), one entry
-    per quantity plus one each for the band and the periodic limit.
+    Draws each shift (in meV, as the tables show it) vs ``radius_A``, a band of
+    ±``tol_eV`` around each quantity's reference (the periodic limit when given,
+    else the largest-radius value), the periodic limit as a thin dashed line,
+    and the converged radius from :func:`clusterlab.stats.converged_radius` as
+    a dotted vertical line (and in the quantity's legend entry).
+
+    Bands: an outline in the quantity's colour, hatched only where no other
+    band of the same axes overlaps it, so that overlapping bands read as
+    crossing outlines and never mix into one grey tint. A followed state
+    (``S1_followed``) whose reference equals the plain state's (within a tenth
+    of the tolerance) draws no band of its own: it would lie on the plain
+    state's. The followed line is dashed with open squares over the plain
+    state's filled circles, so both show where they coincide.
+
+    A quantity that is not a shift (ΔEST, a few eV) goes into its own panel
+    below the shifts (shared radius axis), with its own outlined and hatched
+    band: on one axes with the shifts, or on a right axis over them, its band
+    would cross theirs. When ``ax`` is given there is no room for a panel; such
+    a quantity then goes on a right axis and its band is an outline only,
+    dash-dotted like its line, with no hatch (so that it cannot mix with the
+    shifts' bands behind it).
+
+    The legend sits outside the axes (below them in a figure made here, to the
+    right of a given ``ax``), one entry per quantity plus one each for the band
+    and the periodic limit.
 
     Parameters
     ----------
@@ -157,10 +200,11 @@ def plot_convergence(
     Returns
     -------
     matplotlib.figure.Figure
-        Lines: one per quantity, one dashed per periodic limit, one dotted
-        per converged quantity. Patches: one tolerance band per quantity.
-        A quantity that is not a shift (ΔEST) is drawn dash-dotted on a
-        right axis, with its band there.
+        Axes: the shifts (meV), then the panel (or right axis) of the other
+        quantities (eV) when there are any. Lines: one per quantity, one
+        dashed per periodic limit, one dotted per converged quantity. Patches:
+        band outlines (gid ``"band"``, see :func:`tolerance_bands`) and their
+        hatched free parts (gid ``"band-hatch"``).
 
     Raises
     ------
@@ -194,69 +238,81 @@ def plot_convergence(
     else:
         limits = {}
         for c in cols:
-            for key in (c, _label_of(c), c[: -len("_shift_eV")] if c.endswith("_shift_eV") else c):
+            for key in (c, _state_of(c)):
                 if key in periodic:
                     limits[c] = float(periodic[key])
     own = ax is None
-    fig, ax = _new_axes(ax, figsize=(5.4, 3.8))
+    # shifts (tens of meV) in meV on the main axes; the others (ΔEST, a few eV) in eV beside them
+    others = [c for c in cols if not shown_in_meV(c)]
+    if own:
+        fig = Figure(figsize=(5.4, 5.4 if others else 3.8), layout="constrained")
+        if others:
+            main, low = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [2.0, 1.0]})
+        else:
+            main, low = fig.add_subplot(), None
+    else:
+        fig, main = ax.figure, ax  # type: ignore[assignment]
+        low = main.twinx() if others else None
     rows = scan_df[np.isfinite(pd.to_numeric(scan_df["radius_A"], errors="coerce"))]
     rows = rows.sort_values("radius_A")
     r = rows["radius_A"].to_numpy(dtype=float)
-    # a judged quantity that is not a shift (ΔEST, a few eV) gets its own axis on the right, so the
-    # shifts (tens of meV) stay readable
-    others = [c for c in cols if not str(c).endswith("_shift_eV")]
-    right = ax.twinx() if others else None
-    main = ax
     handles: list[Any] = []
-    any_band = any_limit = False
+    bands: dict[Any, list[tuple[float, float, str, int]]] = {main: [], low: []}
+    refs: dict[str, float] = {}
+    any_limit = False
     for i, c in enumerate(cols):
         colour = PALETTE[i % len(PALETTE)]
         y = rows[c].to_numpy(dtype=float)
-        name = _label_of(c)
-        ax = right if c in others else main
+        scale = 1.0 if c in others else 1e3
+        a = low if c in others else main
+        name = quantity_name(c)
         if c in others:
             style = {"ls": "-.", "marker": "D", "ms": 5, "zorder": 2.5}
-            label = f"{column_label(c)}, right axis"
+            label = f"{name} ({'lower panel' if own else 'right axis'})"
         elif "followed" in str(c):
             # over the plain state: open squares and dashes leave the plain line visible underneath
             style = {"ls": (0, (4, 2)), "marker": "s", "ms": 8, "mfc": "none", "mew": 1.4, "zorder": 3}
-            label = f"{name} shift (open squares)"
+            label = f"{name} (open squares)"
         else:
             style = {"ls": "-", "marker": "o", "ms": 5, "zorder": 2.5}
-            label = f"{name} shift"
-        (line,) = ax.plot(r, y, color=colour, lw=1.5, label=label, **style)
+            label = name
+        (line,) = a.plot(r, scale * y, color=colour, lw=1.5, label=label, **style)
         handles.append(line)
         ref = limits.get(c)
         finite = np.isfinite(y)
-        if ref is None and finite.any():
-            ref_val = float(y[finite][-1])
-        else:
-            ref_val = ref  # type: ignore[assignment]
+        ref_val = float(y[finite][-1]) if ref is None and finite.any() else ref
         if ref_val is not None and np.isfinite(ref_val):
-            ax.axhspan(ref_val - tol_eV, ref_val + tol_eV, facecolor="none", edgecolor=to_rgba(colour, 0.85),
-                       lw=0.9, hatch=_HATCHES[i % len(_HATCHES)], hatchcolor=to_rgba(colour, 0.22),
-                       hatch_linewidth=0.6, zorder=0.5)
-            any_band = True
+            refs[c] = float(ref_val)
+            plain = str(c).replace("_followed", "")
+            if "followed" in str(c) and plain in refs and abs(refs[plain] - ref_val) <= 0.1 * tol_eV:
+                line.set_label(f"{label}, band as {quantity_name(plain)}")
+                label = line.get_label()
+            else:
+                bands[a].append((scale * (ref_val - tol_eV), scale * (ref_val + tol_eV), colour, i))
         if ref is not None:
-            ax.axhline(ref, color=colour, ls="--", lw=1.0, zorder=1)
+            a.axhline(scale * ref, color=colour, ls="--", lw=1.0, zorder=1)
             any_limit = True
         if finite.sum() >= 2:
             verdict = converged_radius(r, y, tol=tol_eV, reference=ref)
             if verdict.converged:
-                ax.axvline(verdict.radius_A, color=colour, ls=":", lw=1.2, zorder=1)
+                a.axvline(verdict.radius_A, color=colour, ls=":", lw=1.2, zorder=1)
                 line.set_label(f"{label}, converged at {verdict.radius_A:g} Å")
-    if any_band:
-        handles.append(Patch(facecolor="none", edgecolor=_GREY, hatch="//", lw=0.9,
-                             label=f"±{1e3 * tol_eV:g} meV around the reference"))
+    _draw_bands(main, bands[main])
+    if low is not None:
+        # its own panel: hatched and outlined like the shifts'; a right axis over the shifts: outline only
+        _draw_bands(low, bands[low], hatch=own, linestyle="-" if own else "-.")
+    if bands[main] or bands[low]:
+        handles.append(Patch(facecolor="none", edgecolor=_GREY, hatch="//", lw=1.0,
+                             label=f"±{1e3 * tol_eV:g} meV around the reference (hatched where no other band is)"))
     if any_limit:
         handles.append(Line2D([], [], color=_GREY, ls="--", lw=1.0, label="periodic limit (its colour)"))
-    ax = main
-    ax.set_xlabel("cluster radius (Å)")
-    ax.set_ylabel("environment shift (eV)")
-    ax.set_title(f"shift vs radius (band: ±{1e3 * tol_eV:g} meV)", fontsize="medium")
-    if right is not None:
-        right.set_ylabel(", ".join(column_label(c) for c in others))
-    _outside_legend(fig, main, own, handles, [h.get_label() for h in handles], right_axis=right is not None)
+    main.set_ylabel("environment shift (meV)")
+    main.set_title(f"shift vs radius (band: ±{1e3 * tol_eV:g} meV)", fontsize="medium")
+    (low if own and low is not None else main).set_xlabel("cluster radius (Å)")
+    if low is not None:
+        low.set_ylabel(", ".join(column_label(c) for c in others))
+    _outside_legend(fig, low if own and low is not None else main, own, handles, [h.get_label() for h in handles],
+                    right_axis=low is not None and not own)
     return fig
 
 
