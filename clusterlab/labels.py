@@ -31,8 +31,8 @@ import pandas as pd
 LEADING_COLUMNS = ("molecule", "frame", "radius_A", "polarizable_radius_A")
 
 #: the columns a shortened table keeps first (after :data:`LEADING_COLUMNS`), most telling first
-PRIORITY_COLUMNS = ("species", "quantity", "carrier", "stage", "n", "n_charges", "S1_eV", "S1_shift_eV", "T1_eV",
-                    "T1_shift_eV", "dEST_eV", "S1_osc", "IP_shift_eV", "EA_shift_eV", "n_env_molecules")
+PRIORITY_COLUMNS = ("species", "quantity", "carrier", "stage", "n", "S1_shift_eV", "T1_shift_eV", "dEST_eV",
+                    "S1_eV", "n_charges", "S1_osc", "T1_eV", "IP_shift_eV", "EA_shift_eV", "n_env_molecules")
 
 #: how many columns a table shows by default (:func:`display_table` ``max_columns``)
 MAX_COLUMNS = 8
@@ -266,3 +266,14 @@ def display_table(df: pd.DataFrame, *, max_columns: int | None = None, mean_in_m
     shown_df = pd.DataFrame(out)
     shown_df.attrs["hidden_columns"] = hidden
     return shown_df
+
+
+def left_out_note(shown: pd.DataFrame, where: str = "in the store and the export") -> str:
+    """What a shortened :func:`display_table` copy leaves out, in words ('' when nothing):
+    "every SCF converged" for a dropped SCF flag, else the headers of the columns not shown."""
+    hidden = shown.attrs.get("hidden_columns", [])
+    notes = ["every SCF converged"] if "converged" in hidden else []
+    rest = [column_label(c) for c in hidden if c != "converged"]
+    if rest:
+        notes.append(f"not shown here ({where}): " + ", ".join(rest))
+    return "; ".join(notes)

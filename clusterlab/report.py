@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .labels import MAX_COLUMNS, column_label, display_table, quantity_name
+from .labels import MAX_COLUMNS, display_table, left_out_note, quantity_name
 
 MODEL_NOTE = (
     "All numbers are model estimates. The QM values use electrostatic point-charge embedding of a "
@@ -78,13 +78,9 @@ class ReportWriter:
         shown = display_table(df[[c for c in cols if c in df.columns]], max_columns=max_columns,
                               mean_in_meV=mean_in_meV)
         self.lines += [_table_md(shown), ""]
-        hidden = shown.attrs.get("hidden_columns", [])
-        notes = ["every SCF converged"] if "converged" in hidden else []
-        rest = [column_label(c) for c in hidden if c != "converged"]
-        if rest:
-            notes.append("not shown here (in the store and the export): " + ", ".join(rest))
-        if notes:
-            self.lines += ["(" + "; ".join(notes) + ".)", ""]
+        note = left_out_note(shown)
+        if note:
+            self.lines += [f"({note}.)", ""]
 
     display = table
 

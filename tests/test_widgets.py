@@ -621,6 +621,10 @@ def test_disorder_run_histogram_growth_scene_and_export(film, tmp_path, monkeypa
         assert float(ln[60:66]) == pytest.approx(100 * (sub[m] - lo) / (hi - lo), abs=0.006)
     assert sum(ln[21] == "M" for ln in lines) == 3 * 12
     assert f"{lo:.3f}" in dp.colourbar.value and f"{hi:.3f}" in dp.colourbar.value
+    # names, not columns: the quantity list, the colour bar and the notes (the value stays the column)
+    assert ("S1", "S1_eV") in dp.quantity.options and ("S1 shift", "S1_shift_eV") in dp.quantity.options
+    assert "S1 (eV), frame 0" in html.unescape(dp.colourbar.value) and "S1_eV" not in dp.colourbar.value
+    assert "S1 shift per radius" in dp.growth_note.value
     # switching quantity redraws from the other column
     dp.quantity.value = "S1_shift_eV"
     assert dp.stats["mean"] == pytest.approx(dp.data.loc[dp.data.radius_A == 9.0, "S1_shift_eV"].mean())
@@ -837,3 +841,34 @@ def test_preset_choice_fills_method_boxes(film):
                                                                               ref.n_triplets)
     panel.basis.value = "sto-3g"
     assert panel.build_method() == Method.preset("balanced", basis="sto-3g")
+
+
+def test_panel_tables_show_at_most_eight_named_columns_and_say_what_they_leave_out():
+    import re
+
+    from clusterlab.labels import MAX_COLUMNS
+
+    # a scan table as wide as the engine's (14 columns once the bookkeeping ones are hidden)
+    rows = pd.DataFrame({"frame": 0, "molecule": 3, "radius_A": [0.0, 6.0, 9.0], "kind": ["vacuum", "cluster", "cluster"],
+                         "n_env_molecules": [0, 8, 24], "n_charges": [0, 40, 120], "net_env_charge": 0.0,
+                         "S1_eV": [3.1, 3.02, 3.01], "S1_shift_eV": [0.0, -0.08, -0.09], "S1_osc": [0.1, 0.11, 0.12],
+                         "T1_eV": [2.5, 2.49, 2.48], "T1_shift_eV": [0.0, -0.01, -0.02], "dEST_eV": [0.6, 0.53, 0.53],
+                         "IP_eV": [7.0, 6.8, 6.75], "IP_shift_eV": [0.0, -0.2, -0.25], "converged": True,
+                         "wall_s": [1.0, 2.0, 3.0]})
+    page = calc.frame_html(rows)
+    headers = [html.unescape(h) for h in re.findall(r"<th>(.*?)</th>", page)]
+    assert len(headers) == MAX_COLUMNS
+    assert headers[:3] == ["molecule", "frame", "radius (Å)"]  # who and where first
+    assert "S1 shift (meV)" in headers and "ΔEST (eV)" in headers
+    assert not any("_" in h for h in headers)
+    note = html.unescape(page.split('class="clusterlab-hidden-columns"', 1)[1])
+    assert "every SCF converged" in note and "wall time (s)" in note
+    # the vacuum row: "vacuum" in the radius column, never "converged yes" beside it
+    assert "<td>vacuum</td>" in page and "SCF converged" not in headers
+    # a failed SCF keeps its column (a warning is never cut); the vacuum row's cell stays blank
+    failed = calc.frame_html(rows.assign(converged=[True, True, False]))
+    headers = [html.unescape(h) for h in re.findall(r"<th>(.*?)</th>", failed)]
+    assert "SCF converged" in headers and len(headers) == MAX_COLUMNS
+    cells = re.findall(r"<tr>\s*(.*?)</tr>", failed, flags=re.S)
+    first = re.findall(r"<td>(.*?)</td>", cells[0])  # the first body row (the header row has a style)
+    assert first[headers.index("radius (Å)")] == "vacuum" and first[headers.index("SCF converged")] == ""

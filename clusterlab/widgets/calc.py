@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 import traitlets
 
-from ..labels import display_table
+from ..labels import MAX_COLUMNS, display_table, left_out_note
 from ..qm.method import Method
 from ..ranges import parse_radii
 from ..store import ResultStore
@@ -48,15 +48,20 @@ HIDDEN_COLUMNS = frozenset({
 
 
 def frame_html(df: pd.DataFrame, *, max_rows: int = 200, css_class: str = "clusterlab-table",
-               hide: frozenset[str] = HIDDEN_COLUMNS) -> str:
+               hide: frozenset[str] = HIDDEN_COLUMNS, max_columns: int | None = MAX_COLUMNS) -> str:
     """HTML table of a DataFrame as :func:`clusterlab.labels.display_table`
     shows it (human headers, shifts and σ in meV, molecule/frame/radius
-    first); non-scalar and bookkeeping columns (``hide``) left out."""
+    first, at most ``max_columns`` columns, the left-out ones named under
+    it); non-scalar and bookkeeping columns (``hide``) left out."""
     if df is None or len(df) == 0:
         return '<div style="color:#777">no results yet</div>'
     keep = [c for c in df.columns if c not in hide
             and df[c].map(lambda v: np.isscalar(v) or v is None).all()]
-    return display_table(df[keep].head(max_rows)).to_html(index=False, classes=css_class, border=0)
+    shown = display_table(df[keep].head(max_rows), max_columns=max_columns)
+    note = left_out_note(shown, "in the panel's table and the export")
+    note = (f'<div class="clusterlab-hidden-columns" style="color:#555;font-size:11px">'
+            f'{html.escape(note)}</div>') if note else ""
+    return shown.to_html(index=False, classes=css_class, border=0) + note
 
 
 _TABLE_CSS = ("<style>.clusterlab-table{border-collapse:collapse;font-size:12px}"

@@ -29,6 +29,7 @@ import pandas as pd
 import traitlets
 
 from ..errors import InputError
+from ..labels import quantity_name
 from ..ranges import parse_frames, parse_radii
 from ..stats import MIN_PAIRS_PER_BIN, correlation_note, disorder_stats, disorder_summary
 from ..stats import spatial_correlation  # noqa: F401 - the kernel under site_correlation, kept importable here
@@ -403,7 +404,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         keep_q = self.quantity.value if self.quantity.value in qs else (qs[0] if qs else None)
         self._refreshing = True
         try:
-            self.quantity.options = qs
+            # shown by name ("S1 shift"), the value stays the column
+            self.quantity.options = [(quantity_name(c), c) for c in qs]
             self.quantity.value = keep_q
             radii = sorted(pd.to_numeric(self.data.get("radius_A", pd.Series(dtype=float)),
                                          errors="coerce").dropna().unique().tolist())
@@ -469,7 +471,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             return
         self.stats = disorder_stats(finite, seed=int(self.seed.value))
         _style.show_png(self.hist_plot, _style.figure_png(plot_histogram(finite, self.stats,
-                                                                          label=q.replace("_eV", ""))))
+                                                                          label=quantity_name(q))))
         # the same σ and interval as the histogram's text (one rule: stats.disorder_summary)
         rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
                        for k, v in disorder_summary(self.stats).itertuples(index=False))
@@ -485,8 +487,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
                                       "sites each (give several radii).</i>")
             _style.show_png(self.growth_plot, None)
             return
-        self.growth_note.value = f"<span>{html.escape(col)} per radius</span>"
-        _style.show_png(self.growth_plot, _style.figure_png(plot_growth(self.growth, label=col.replace("_eV", ""))))
+        self.growth_note.value = f"<span>{html.escape(quantity_name(col))} per radius</span>"
+        _style.show_png(self.growth_plot, _style.figure_png(plot_growth(self.growth, label=quantity_name(col))))
 
     def _draw_correlation(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
         ok = np.isfinite(vals)
@@ -501,7 +503,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self._no_correlation(note)
             return
         c = self.correlation
-        self.corr_note.value = (f"<span>{html.escape(q)}, {int(ok.sum())} sites: bins with at least "
+        self.corr_note.value = (f"<span>{html.escape(quantity_name(q))}, {int(ok.sum())} sites: bins with at least "
                                 f"{self.min_pairs} pairs drawn ({int(c.shown.sum())} of {len(c)}), error bars "
                                 f"95 % bootstrap over sites, numbers = pairs per bin</span>")
         _style.show_png(self.corr_plot, _style.figure_png(plot_correlation(c)))
@@ -563,7 +565,7 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
         geo = film.frame_geometry(int(frame), periodic=film.has_box)
         self.scene_pdb = _style.film_scene_pdb(film.symbols, geo.positions_A, mol_of_atom, film.molecule_resnames,
                                                bfactors=b, chain=list(chains), title=f"site energies, frame {frame}")
-        self.colourbar.value = _style.colourbar_html(lo, hi, f"{q or 'site energy'} (eV), frame {frame}") \
+        self.colourbar.value = _style.colourbar_html(lo, hi, f"{quantity_name(q) if q else 'site energy'} (eV), frame {frame}") \
             if self.site_values else '<i style="color:#777">no site energies yet</i>'
         if self.view is None:
             return
