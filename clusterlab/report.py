@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .labels import MAX_COLUMNS, display_table, left_out_note, quantity_name
+from .labels import MAX_COLUMNS, display_table, left_out_note, quantity_name, shown_in_meV
 
 MODEL_NOTE = (
     "All numbers are model estimates. The QM values use electrostatic point-charge embedding of a "
@@ -188,6 +188,11 @@ def headline_lines(facts: dict[str, Any]) -> list[str]:
     return out + [f"- {x}" for x in items] + [""]
 
 
+def _meV_or_none(column: str) -> str | None:
+    """``show_in`` of a histogram: "meV" for the columns the tables show in meV."""
+    return "meV" if shown_in_meV(column) else None
+
+
 def scan_section(rep: ReportWriter, scan) -> None:
     """Radius-scan table, verdict and convergence plot."""
     species = f", species {scan.species}" if getattr(scan, "species", None) else ""
@@ -252,7 +257,7 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
         values = t[q0].to_numpy(dtype=float)
         shape = skew_check(values)
         rep.facts.setdefault("shapes", {})[f"the QM sample's {quantity_name(q0)}"] = shape
-        rep.figure(plot_histogram(values, label=quantity_name(q0)), f"histogram_{q0}.png",
+        rep.figure(plot_histogram(values, label=quantity_name(q0), show_in=_meV_or_none(q0)), f"histogram_{q0}.png",
                    f"Distribution of {quantity_name(q0)}" + (" (skewed: no Gaussian drawn)" if shape["skewed"] else
                                               " with the Gaussian of its mean and σ"))
     if t.frame.nunique() > 1 and "S1_eV" in t.columns:
@@ -363,7 +368,7 @@ def model_section(rep: ReportWriter, result: Any, parity: dict[str, Any] | None 
         values = model_df[c0].to_numpy(dtype=float)
         shape = skew_check(values)
         rep.facts.setdefault("shapes", {})[f"the film-wide model's {quantity_name(c0)}"] = shape
-        rep.figure(plot_histogram(values, label=quantity_name(c0)), "model_histogram.png",
+        rep.figure(plot_histogram(values, label=quantity_name(c0), show_in=_meV_or_none(c0)), "model_histogram.png",
                    f"Film-wide model: distribution of {quantity_name(c0)}" + (" (skewed: no Gaussian drawn)" if shape["skewed"]
                                                               else ""))
     if "P_cation_eV" in model_df or "P_anion_eV" in model_df:
@@ -390,8 +395,9 @@ def model_parity_section(rep: ReportWriter, pairs: pd.DataFrame, parity: pd.Data
     shown = parity.rename(columns={"rms_eV": "rms_error_eV", "mean_eV": "mean_error_eV", "qm_sigma_eV": "sigma_qm_eV"})
     rep.display(shown, ["quantity", "n", "rms_error_eV", "mean_error_eV", "r", "sigma_qm_eV"])
     q = str(parity.quantity.iloc[0]).replace("_shift_eV", "")
-    rep.figure(plot_parity(pairs[f"{q}_shift_qm_eV"], pairs[f"{q}_shift_model_eV"], xlabel=f"QM {q} shift",
-                           ylabel=f"model {q} shift"),
+    # shifts in meV, as the tables show them
+    rep.figure(plot_parity(1e3 * pairs[f"{q}_shift_qm_eV"], 1e3 * pairs[f"{q}_shift_model_eV"],
+                           xlabel=f"QM {q} shift", ylabel=f"model {q} shift", unit="meV"),
                "model_parity.png", f"Film-wide model against the sample's QM: {q} shift per sampled site")
 
 

@@ -201,6 +201,10 @@ def test_correlation_plot_intervals_counts_and_words():
     assert len(ax.collections) == 1  # the error bars
     assert [t.get_text() for t in ax.texts] == [str(k) for k in shown.n_pairs]
     assert ax.get_xlim()[0] == 0.0
+    # the counts sit in a row above the axes: they used to sit on the points and their error bars
+    renderer = _drawn(ax.figure)
+    frame = ax.get_window_extent(renderer)
+    assert all(t.get_window_extent(renderer).y0 >= frame.y1 for t in ax.texts)
     # nothing to draw: the reason in words, no negative distances
     few = spatial_correlation(rng.uniform(0, 20, (3, 3)), [1.0, 2.0, 4.0], box, n_bins=8)
     ax = plot_correlation(few).axes[0]
@@ -411,3 +415,34 @@ def test_growth_and_correlation_legends_cover_no_axes():
         box = leg.get_window_extent(renderer)
         assert all(not _overlap(box, ax.get_window_extent(renderer)) for ax in fig.axes)
         assert box.y0 >= fig.bbox.y0 - 1  # inside the figure
+
+
+def test_histogram_shows_shifts_in_meV_with_the_same_statistics():
+    rng = np.random.default_rng(11)
+    shift = rng.normal(-0.011, 0.047, 256)  # eV, like the film model's S1 shift
+    st = disorder_stats(shift, seed=0, n_boot=300)
+    ax = plot_histogram(shift, st, label="S1 shift", show_in="meV").axes[0]
+    assert ax.get_xlabel() == "S1 shift (meV)" and ax.get_ylabel() == "probability density (1/meV)"
+    text = ax.texts[0].get_text()
+    # the same numbers as the eV statistics, times 1000 (the side table's σ and interval)
+    assert f"mean = {1e3 * st['mean']:.1f} meV" in text
+    assert f"σ = {1e3 * st['sigma']:.0f} meV [{1e3 * st['sigma_ci_lo']:.0f}, {1e3 * st['sigma_ci_hi']:.0f}]" in text
+    gx, gy = ax.lines[0].get_data()
+    np.testing.assert_allclose(gy, sps.norm.pdf(gx, 1e3 * np.mean(shift), 1e3 * np.std(shift, ddof=1)), rtol=1e-10)
+    with pytest.raises(InputError, match="show_in='meV' with unit='meV'"):
+        plot_histogram(1e3 * shift, unit="meV", show_in="meV")
+
+
+def test_parity_note_covers_no_point_and_gives_no_r_from_two_pairs():
+    # the report's parity plot hid one of its two points under the note, and printed r = -1.000
+    qm, model = np.array([-15.2, -6.7]), np.array([12.0, 4.5])
+    fig = plot_parity(qm, model, unit="meV")
+    ax = fig.axes[0]
+    renderer = _drawn(fig)
+    note = ax.texts[0].get_window_extent(renderer)
+    points = ax.collections[0].get_offsets()
+    for x, y in ax.transData.transform(points):
+        assert not (note.x0 <= x <= note.x1 and note.y0 <= y <= note.y1)
+    assert not _overlap(note, ax.get_window_extent(renderer))
+    lines = ax.texts[0].get_text().splitlines()
+    assert "r: needs 3 pairs" in lines and not any(t.startswith("r = ") for t in lines)

@@ -322,6 +322,10 @@ def plot_convergence(
 HISTOGRAM_PERCENTILES = (0.5, 99.5)
 HISTOGRAM_PAD = 0.25
 
+#: the entries of :func:`clusterlab.stats.disorder_stats` in the values' unit
+_ENERGY_STATS = ("mean", "sigma", "mean_lo", "mean_hi", "sigma_lo", "sigma_hi", "sigma_chi2_lo", "sigma_chi2_hi",
+                 "gauss_mu", "gauss_sigma", "sigma_ci_lo", "sigma_ci_hi")
+
 #: significance level of the skewness test that decides whether a Gaussian is drawn
 SKEW_ALPHA = 0.05
 
@@ -365,6 +369,7 @@ def plot_histogram(
     unit: str = "eV",
     bins: int | str = "auto",
     seed: int | None = 0,
+    show_in: str | None = None,
 ) -> Figure:
     """Histogram of site energies with the Gaussian of its mean and σ (when it fits) and the
     interval on the mean.
@@ -392,6 +397,9 @@ def plot_histogram(
         Passed to numpy's histogram (over the shown range).
     seed : int or None, default 0
         Bootstrap seed when ``stats`` is computed here.
+    show_in : {"meV"}, optional
+        Draw values given in eV (and their ``stats``) in meV, as the tables
+        show shifts (:func:`clusterlab.labels.shown_in_meV`).
 
     Returns
     -------
@@ -409,6 +417,16 @@ def plot_histogram(
                 "sigma_ci_lo", "sigma_ci_hi", "sigma_ci_method"):
         if key not in stats.index:
             raise InputError(f"plot_histogram: stats has no entry {key!r}; pass disorder_stats(values)")
+    if show_in is not None:
+        if (unit, show_in) != ("eV", "meV"):
+            raise InputError(f"plot_histogram: show_in={show_in!r} with unit={unit!r}; only eV values are "
+                             "shown in 'meV'")
+        # every statistic in the values' unit scales with them (the counts and shape numbers do not)
+        stats = stats.copy()
+        for key in _ENERGY_STATS:
+            if key in stats.index:
+                stats[key] = 1e3 * float(stats[key])
+        x, unit = 1e3 * x, "meV"
     fig, ax = _new_axes(ax, figsize=(6.6, 3.6))
     mu, sg = float(stats["mean"]), float(stats["sigma"])
     p_lo, p_hi = np.percentile(x, HISTOGRAM_PERCENTILES)
@@ -440,10 +458,11 @@ def plot_histogram(
     ax.xaxis.set_major_locator(MaxNLocator(nbins=5))
     conf = float(stats.get("confidence", 0.95))
     scale, sunit = (1e3, "meV") if unit == "eV" else (1.0, unit)
+    nd = 3 if unit == "eV" else 1
     lines = [
         f"n = {int(stats.get('n', x.size))}",
-        f"mean = {mu:.3f} {unit}",
-        f"  [{float(stats['mean_lo']):.3f}, {float(stats['mean_hi']):.3f}]",
+        f"mean = {mu:.{nd}f} {unit}",
+        f"  [{float(stats['mean_lo']):.{nd}f}, {float(stats['mean_hi']):.{nd}f}]",
         f"σ = {scale * sg:.0f} {sunit} "
         f"[{scale * float(stats['sigma_ci_lo']):.0f}, {scale * float(stats['sigma_ci_hi']):.0f}]",
         f"{100 * conf:g} % intervals",
@@ -558,17 +577,19 @@ def plot_correlation(corr_df: pd.DataFrame, *, ax: Axes | None = None, min_pairs
         else:
             ax.plot(r, c, marker="o", color=PALETTE[2], label="C(r)")
         if "n_pairs" in d.columns:
-            for x, y, k in zip(r, c, d["n_pairs"].to_numpy()):
-                ax.annotate(f"{int(k)}", (x, y), textcoords="offset points", xytext=(0, 6), ha="center",
-                            fontsize="x-small", color=_GREY)
+            # a row along the top edge, outside the data: beside each point they collided with the
+            # point and its error bar
+            for x, k in zip(r, d["n_pairs"].to_numpy()):
+                ax.annotate(f"{int(k)}", (x, 1.0), xycoords=ax.get_xaxis_transform(), textcoords="offset points",
+                            xytext=(0, 3), ha="center", va="bottom", fontsize="x-small", color=_GREY)
         ax.set_xlim(0.0, r_top if r_top else None)
         handles, labels = ax.get_legend_handles_labels()
-        _outside_legend(fig, ax, own, handles, [f"{labels[0]} (numbers: pairs per bin)"] + labels[1:]
+        _outside_legend(fig, ax, own, handles, [f"{labels[0]} (numbers on top: pairs per bin)"] + labels[1:]
                         if "n_pairs" in d.columns else labels)
     ax.set_xlabel("centroid distance r (Å)")
     ax.set_ylabel("C(r) = ⟨δE_i δE_j⟩ / σ² (dimensionless)")
     if title:
-        ax.set_title(title, fontsize="medium")
+        ax.set_title(title, fontsize="medium", pad=14)  # above the row of pair counts
     return fig
 
 
@@ -584,7 +605,10 @@ def plot_parity(
     """Parity plot of a model against reference (QM) values.
 
     Annotates the RMS error sqrt(mean((y-x)²)), the mean error mean(y-x)
-    (in meV when ``unit`` is eV) and Pearson's r.
+    (in meV when ``unit`` is eV) and Pearson's r (from 3 pairs on: two
+    points always give ±1, which says nothing; the report's tables leave it
+    blank below 3 as well). The note and the legend sit right of the axes, so
+    they cover no point.
 
     Parameters
     ----------
@@ -617,26 +641,30 @@ def plot_parity(
     err = ya - xa
     rms = float(np.sqrt(np.mean(err**2)))
     mean_err = float(np.mean(err))
-    r = float(np.corrcoef(xa, ya)[0, 1]) if np.std(xa) > 0 and np.std(ya) > 0 else float("nan")
-    fig, ax = _new_axes(ax, figsize=(4.2, 4.0))
+    r = float(np.corrcoef(xa, ya)[0, 1]) if xa.size >= 3 and np.std(xa) > 0 and np.std(ya) > 0 else float("nan")
+    fig, ax = _new_axes(ax, figsize=(6.0, 4.0))
     lo = float(min(xa.min(), ya.min()))
     hi = float(max(xa.max(), ya.max()))
     pad = 0.05 * (hi - lo if hi > lo else 1.0)
     ax.plot([lo - pad, hi + pad], [lo - pad, hi + pad], color=_GREY, lw=1, ls="--", label="y = x")
     ax.scatter(xa, ya, s=18, color=PALETTE[0], alpha=0.8, label="sites")
     scale, eunit = (1e3, "meV") if unit == "eV" else (1.0, unit)
+    r_text = f"r = {r:.3f}" if np.isfinite(r) else "r: needs 3 pairs" if xa.size < 3 else "r: a side is constant"
     text = (
         f"RMS error = {scale * rms:.1f} {eunit}\nmean error = {scale * mean_err:+.1f} {eunit}\n"
-        f"r = {r:.3f}   (n = {xa.size})"
+        f"{r_text}\nn = {xa.size}"
     )
-    ax.text(0.03, 0.97, text, transform=ax.transAxes, va="top", ha="left", fontsize="small",
+    ax.text(1.04, 1.0, text, transform=ax.transAxes, va="top", ha="left", fontsize="small",
             bbox={"boxstyle": "round", "facecolor": "white", "alpha": 0.85, "edgecolor": _GREY})
     ax.set_xlim(lo - pad, hi + pad)
     ax.set_ylim(lo - pad, hi + pad)
     ax.set_aspect("equal")
+    # few ticks: long labels (-0.015) of a square axes ran into each other
+    ax.xaxis.set_major_locator(MaxNLocator(nbins=5))
+    ax.yaxis.set_major_locator(MaxNLocator(nbins=5))
     ax.set_xlabel(f"{xlabel} ({unit})")
     ax.set_ylabel(f"{ylabel} ({unit})")
-    ax.legend(fontsize="small", loc="lower right")
+    ax.legend(fontsize="small", loc="lower left", bbox_to_anchor=(1.02, 0.0), frameon=False)
     return fig
 
 

@@ -29,7 +29,7 @@ import pandas as pd
 import traitlets
 
 from ..errors import InputError
-from ..labels import quantity_name
+from ..labels import quantity_name, shown_in_meV
 from ..ranges import parse_frames, parse_radii
 from ..stats import MIN_PAIRS_PER_BIN, correlation_note, disorder_stats, disorder_summary
 from ..stats import spatial_correlation  # noqa: F401 - the kernel under site_correlation, kept importable here
@@ -470,8 +470,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             self.stats_html.value = f"<i>{finite.size} site(s) so far; the statistics need at least 3.</i>"
             return
         self.stats = disorder_stats(finite, seed=int(self.seed.value))
-        _style.show_png(self.hist_plot, _style.figure_png(plot_histogram(finite, self.stats,
-                                                                          label=quantity_name(q))))
+        _style.show_png(self.hist_plot, _style.figure_png(plot_histogram(
+            finite, self.stats, label=quantity_name(q), show_in="meV" if shown_in_meV(q) else None)))
         # the same σ and interval as the histogram's text (one rule: stats.disorder_summary)
         rows = "".join(f"<tr><td>{html.escape(k)}</td><td>{html.escape(v)}</td></tr>"
                        for k, v in disorder_summary(self.stats).itertuples(index=False))
