@@ -272,7 +272,7 @@ def sample_section(rep: ReportWriter, sample, quantities: list[str], *, n_boot: 
     if sample.table.radius_A.nunique() > 1:
         g = sample.growth("S1_shift_eV", n_boot=n_boot, seed=0)
         if len(g) > 1:
-            rep.figure(plot_growth(g), "growth.png", "Mean S1 shift and σ vs cut radius (95 % CI)")
+            rep.figure(plot_growth(g, label="S1 shift", show_in="meV"), "growth.png", "Mean S1 shift and σ vs cut radius (95 % CI)")
     if correlation and len(t) >= 3 and "S1_eV" in t.columns:
         try:
             corr = sample.correlation("S1_eV", n_bins=8, n_boot=min(n_boot, 500), seed=0)

@@ -283,6 +283,16 @@ def test_dest_torsion_noise_free_is_all_torsion_and_plots():
     assert {"S1_ct_distance_A", "T1_ct_distance_A"} <= set(res.table.columns)
     fig = plot_torsion(res)
     assert len(fig.axes) == 2
+    # each legend right of its axes, covering no point (inside, it sat on them)
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    for ax in fig.axes:
+        box = ax.get_legend().get_window_extent(renderer)
+        assert box.x0 >= ax.get_window_extent(renderer).x1
+        assert box.x1 <= fig.bbox.x1 + 1  # and inside the figure
     back = TorsionResult.from_json(res.to_json())
     pd.testing.assert_frame_equal(back.table, res.table)
     pd.testing.assert_frame_equal(back.fits, res.fits)

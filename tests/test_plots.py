@@ -173,6 +173,12 @@ def test_growth_plot(tmp_path):
     # sigma drawn in meV
     np.testing.assert_allclose(fig.axes[1].lines[0].get_ydata(), 1e3 * growth["sigma"].astype(float))
     _saves(fig, tmp_path, "growth.png")
+    # a shift's mean in meV as well, as the tables show it
+    top = plot_growth(growth, label="S1 shift", show_in="meV").axes[0]
+    assert top.get_ylabel() == "mean S1 shift (meV)"
+    np.testing.assert_allclose(top.lines[0].get_ydata(), 1e3 * growth["mean"].astype(float))
+    with pytest.raises(InputError, match="show_in='eV'"):
+        plot_growth(growth, show_in="eV")
     with pytest.raises(InputError, match="'sigma_lo' is missing"):
         plot_growth(growth.drop(columns="sigma_lo"))
 

@@ -482,7 +482,7 @@ def plot_histogram(
     return fig
 
 
-def plot_growth(growth_df: pd.DataFrame, *, label: str = "environment shift") -> Figure:
+def plot_growth(growth_df: pd.DataFrame, *, label: str = "environment shift", show_in: str | None = None) -> Figure:
     """Mean shift and disorder width σ against cluster radius, with interval bands.
 
     Parameters
@@ -493,23 +493,28 @@ def plot_growth(growth_df: pd.DataFrame, *, label: str = "environment shift") ->
         :func:`clusterlab.stats.disorder_stats` rows per radius.
     label : str
         What the values are, for the y axis of the top panel.
+    show_in : {"meV"}, optional
+        Draw the mean in meV too (a shift, as the tables show it).
 
     Returns
     -------
     matplotlib.figure.Figure
-        Two axes (mean in eV on top, σ in meV below), one line and one
-        shaded band each.
+        Two axes (mean in eV, or meV with ``show_in``, on top; σ in meV
+        below), one line and one shaded band each.
     """
+    if show_in not in (None, "meV"):
+        raise InputError(f"plot_growth: show_in={show_in!r}; give 'meV' or None (eV)")
+    m_scale, m_unit = (1e3, "meV") if show_in == "meV" else (1.0, "eV")
     cols = ["radius_A", "mean", "mean_lo", "mean_hi", "sigma", "sigma_lo", "sigma_hi"]
     _need(growth_df, cols, "plot_growth")
     g = growth_df[cols].apply(pd.to_numeric, errors="coerce").sort_values("radius_A")
     r = g["radius_A"].to_numpy(dtype=float)
     fig = Figure(figsize=(5.0, 5.2), layout="constrained")
     ax_m, ax_s = fig.subplots(2, 1, sharex=True)
-    ax_m.fill_between(r, g["mean_lo"].to_numpy(dtype=float), g["mean_hi"].to_numpy(dtype=float),
+    ax_m.fill_between(r, m_scale * g["mean_lo"].to_numpy(dtype=float), m_scale * g["mean_hi"].to_numpy(dtype=float),
                       color=PALETTE[0], alpha=0.25, lw=0, label="interval of the mean")
-    ax_m.plot(r, g["mean"].to_numpy(dtype=float), marker="o", color=PALETTE[0], label="mean")
-    ax_m.set_ylabel(f"mean {label} (eV)")
+    ax_m.plot(r, m_scale * g["mean"].to_numpy(dtype=float), marker="o", color=PALETTE[0], label="mean")
+    ax_m.set_ylabel(f"mean {label} ({m_unit})")
     ax_s.fill_between(r, 1e3 * g["sigma_lo"].to_numpy(dtype=float), 1e3 * g["sigma_hi"].to_numpy(dtype=float),
                       color=PALETTE[1], alpha=0.25, lw=0, label="interval of σ")
     ax_s.plot(r, 1e3 * g["sigma"].to_numpy(dtype=float), marker="s", color=PALETTE[1], label="σ")
@@ -705,10 +710,11 @@ def plot_torsion(result, *, species: str | None = None) -> Figure:
             axes[1].scatter(sub["torsion_deg"], sub[c].astype(float), s=14, color=colour, marker=marker,
                             label=f"{sp} {c.split('_')[0]}")
     axes[0].set_ylabel("ΔEST = S1 − T1 (meV)")
-    axes[0].legend(fontsize="small")
+    # legends right of the axes: inside, they sat on the points
+    axes[0].legend(fontsize="small", loc="center left", bbox_to_anchor=(1.02, 0.5), frameon=False)
     if ct_cols:
         axes[1].set_ylabel("hole–electron distance (Å)")
-        axes[1].legend(fontsize="small")
+        axes[1].legend(fontsize="small", loc="center left", bbox_to_anchor=(1.02, 0.5), frameon=False)
     axes[-1].set_xlabel("torsion (degrees)")
     axes[-1].set_xlim(-180, 180)
     return fig

@@ -488,7 +488,8 @@ class DisorderPanel(BackgroundJob, widgets.VBox):
             _style.show_png(self.growth_plot, None)
             return
         self.growth_note.value = f"<span>{html.escape(quantity_name(col))} per radius</span>"
-        _style.show_png(self.growth_plot, _style.figure_png(plot_growth(self.growth, label=quantity_name(col))))
+        _style.show_png(self.growth_plot, _style.figure_png(plot_growth(
+            self.growth, label=quantity_name(col), show_in="meV" if shown_in_meV(col) else None)))
 
     def _draw_correlation(self, q: str, sub: pd.DataFrame, vals: np.ndarray) -> None:
         ok = np.isfinite(vals)
