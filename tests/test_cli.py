@@ -185,7 +185,7 @@ response = true
     assert "2 conformer reference(s), S1 response True" in out
     summary = (tmp_path / "rep" / "summary.md").read_text()
     assert "2 conformer reference(s)" in summary and "finite-field response" in summary
-    assert "| S1_shift_eV |" in summary
+    assert "| S1 shift |" in summary  # the model table names its quantities
     bad = tmp_path / "bad.toml"
     bad.write_text(f"[film]\ntopology = '{gro[0]}'\n[model]\nresponse = 1\n")
     with pytest.raises(StudyFileError, match=r"\[model\] response = 1 has the wrong type; expected bool"):

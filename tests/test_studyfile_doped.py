@@ -180,7 +180,7 @@ def test_report_cli_rebuilds_the_film_for_the_host_guest_section(lattice_files, 
     assert "## Host:guest film (host HOS, 24 molecules; guest GUE, 3 molecules)" in text
     # (shown once, in the sample section's per-species table, for the reported quantity)
     s1 = done.assign(species=names[done.molecule.astype(int)]).groupby("species")["S1_eV"].mean()
-    assert f"| GUE | S1_eV | 3 | {s1['GUE']:.3f} |" in text and f"| HOS | S1_eV | 5 | {s1['HOS']:.3f} |" in text
+    assert f"| GUE | S1 | 3 | {s1['GUE']:.3f} |" in text and f"| HOS | S1 | 5 | {s1['HOS']:.3f} |" in text
     assert "Triplet confinement:" in text and "within 5.00 Å" in text  # the study's neighbour distance
     # a torsion flag on a three-atom molecule names the missing atom in the report's notes
     assert main(["report", str(tmp_path / "st.sqlite"), "--out", str(tmp_path / "rep_t"),
