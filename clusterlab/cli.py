@@ -205,7 +205,10 @@ def _report(args: argparse.Namespace) -> int:
         recorded = dict(st.meta.get(DOPED_META_KEY, {}))
         rep = ReportWriter(args.out, f"clusterlab report of {os.path.basename(args.store)}")
         stats = sample_section(rep, sample, args.quantity or ["S1_eV", "T1_eV", "S1_shift_eV"])
-        print(stats.to_string(index=False))
+        if len(stats):
+            from .labels import MAX_COLUMNS, display_table
+
+            print(display_table(stats, max_columns=MAX_COLUMNS).to_string(index=False))
         if film is None:
             film_missing_section(rep, sample, why)
             print(f"host:guest section left out: {why}; pass --topology (and --trajectory, --charges) to give "

@@ -175,6 +175,8 @@ def test_report_cli_rebuilds_the_film_for_the_host_guest_section(lattice_files, 
     assert main(["report", str(tmp_path / "st.sqlite"), "--out", str(out), "--quantity", "S1_eV"]) == 0
     printed = capsys.readouterr().out
     assert "host:guest section: host HOS, guest GUE" in printed
+    # the printed statistics read as the report's table: names and units, not column names
+    assert "σ 95 % low (meV)" in printed and "sigma_lo_eV" not in printed and "mean_eV" not in printed
     text = (out / "summary.md").read_text()
     # species counts of the constructed film, and the per-species means against pandas on the stored records
     assert "## Host:guest film (host HOS, 24 molecules; guest GUE, 3 molecules)" in text
