@@ -44,12 +44,12 @@ LIQUIDS = {
                           "0.8737 at 25 C)"},
     "toluene": {"smiles": "Cc1ccccc1", "resname": "TOL",
                 "density_g_cm3": {293.15: 0.8668, 298.15: 0.8623},
-                "source": "CRC Handbook of Chemistry and Physics (toluene: 0.8668 g/cm3 at 20 C, "
-                          "0.8623 at 25 C; from memory)"},
+                "source": "CRC Handbook of Chemistry and Physics (toluene: 0.8623 g/cm3 at 25 C, confirmed as "
+                          "quoted on a reference page citing it; 0.8668 at 20 C from memory)"},
     "pyridine": {"smiles": "c1ccncc1", "resname": "PYR",
                  "density_g_cm3": {293.15: 0.9819, 298.15: 0.9782},
-                 "source": "CRC Handbook of Chemistry and Physics (pyridine: 0.9819 g/cm3 at 20 C, "
-                           "0.9782 at 25 C; from memory)"},
+                 "source": "CRC Handbook of Chemistry and Physics (pyridine: 0.9819 g/cm3 at 20 C, confirmed as "
+                           "quoted on a reference page; 0.9782 at 25 C from memory)"},
 }
 START_DENSITY = 0.35          # g/cm^3 for random insertion
 SHRINK_TO = 0.80              # g/cm^3, rigid shrink before MD (below every liquid here)

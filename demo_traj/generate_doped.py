@@ -16,7 +16,9 @@ donor-acceptor emitter. This script builds it as a periodic cubic box of
 
 The force field is built by a general route from a SMILES string: RDKit
 (embedding, MMFF94 optimisation, MMFF94 parameters) -> OpenMM native forces
-(:func:`species_from_smiles`, :func:`add_species`); charges are ESP fits to a
+(:func:`species_from_smiles`, :func:`add_species`), with OPLS-AA Lennard-Jones
+terms between molecules by default (``VDW_MODEL``; MMFF94's own van der Waals
+makes liquids far too light, see ``check_liquid_density.py``); charges are ESP fits to a
 PySCF Hartree-Fock density (:func:`esp_fit`). Shared pieces (placement, PSF
 writer, phase runner, trajectory writer) live in ``filmkit.py``.
 
@@ -398,7 +400,12 @@ def add_species(system, forces: dict, sp: dict, charges_e: list[float], hmr: boo
       small-angle curvature when phi is taken equal to chi (an approximation):
       2 k = 3 x 143.9325 koop / 2.
     * nonbonded: ESP charges; 1-2 and 1-3 pairs excluded; 1-4 Coulomb x 0.75,
-      1-4 Lennard-Jones unscaled (MMFF94); LJ from :func:`lj_sigma_eps`.
+      1-4 van der Waals unscaled (MMFF94). van der Waals by ``forces["model"]``
+      (``VDW_MODELS``): ``lj-lb`` LJ from :func:`lj_sigma_eps`; ``lj-liquid``
+      :func:`liquid_lj` between molecules and :func:`lj_sigma_eps` for every pair
+      inside the molecule (exceptions, full Coulomb beyond 1-4); the custom
+      models from the MMFF94 pair table (:func:`mmff_pair_table`), 1-4 pairs in
+      a CustomBondForce.
     * hydrogen mass repartitioning: each H gets 3.024 amu, its heavy atom 2.016 less.
     """
     off = system.getNumParticles()
