@@ -14,6 +14,7 @@ Usage::
     python demo_traj/check_liquid_density.py benzene                  # 250 molecules, 20 + 60 ps
     python demo_traj/check_liquid_density.py benzene --equil-ps 10 --prod-ps 20 --molecules 150
     python demo_traj/check_liquid_density.py toluene --vdw lj-lb      # the route before the fix
+    python demo_traj/check_liquid_density.py doped-box                # 60 hosts + 4 guests, short melt-quench
 
 Handbook densities (``LIQUIDS``) are from the CRC Handbook of Chemistry and
 Physics (the values at 20 and 25 °C as quoted; see each entry).

@@ -264,11 +264,12 @@ def liquid_lj(sp: dict) -> list[tuple[float, float]]:
 #               (OpenMM NonbondedForce; the route of the first doped film)
 #   "lj-mmff"   Lennard-Jones 12-6 with the R*_ij, eps_ij of MMFF94's own combining rule for every pair
 #   "mmff-14-7" MMFF94's buffered 14-7 with its own combining rule (Halgren, J. Am. Chem. Soc. 114, 7827 (1992))
-# The two last ones are a CustomNonbondedForce over MMFF atom-type pairs (same cutoff, long-range correction).
 #   "lj-liquid" Lennard-Jones 12-6 between molecules from a condensed-phase table (OPLS-AA values by MMFF atom
 #               type, LIQUID_LJ); inside a molecule every pair keeps "lj-lb" (NonbondedForce exceptions with
 #               full Coulomb beyond 1-4), so one molecule alone has the same energy surface as with "lj-lb"
 #               (the MMFF torsions and the guest's D-A twist go with it); Lorentz-Berthelot; NonbondedForce
+# "lj-mmff" and "mmff-14-7" are a CustomNonbondedForce over MMFF atom-type pairs (same cutoff, long-range
+# correction), their 1-4 pairs a CustomBondForce.
 VDW_MODELS = {
     "lj-lb": None,
     "lj-liquid": None,
