@@ -16,7 +16,9 @@ donor-acceptor emitter. This script builds it as a periodic cubic box of
 
 The force field is built by a general route from a SMILES string: RDKit
 (embedding, MMFF94 optimisation, MMFF94 parameters) -> OpenMM native forces
-(:func:`species_from_smiles`, :func:`add_species`); charges are ESP fits to a
+(:func:`species_from_smiles`, :func:`add_species`), with OPLS-AA Lennard-Jones
+terms between molecules by default (``VDW_MODEL``; MMFF94's own van der Waals
+makes liquids far too light, see ``check_liquid_density.py``); charges are ESP fits to a
 PySCF Hartree-Fock density (:func:`esp_fit`). Shared pieces (placement, PSF
 writer, phase runner, trajectory writer) live in ``filmkit.py``.
 
@@ -235,11 +237,120 @@ def lj_sigma_eps(sp: dict) -> list[tuple[float, float]]:
     return [(r / 2 ** (1 / 6) / 10.0, kj(e)) for r, e in sp["terms"]["vdw"]]
 
 
-def new_system(box_nm: float):
-    """Empty periodic OpenMM system and its forces (bond, angle, torsion, PME nonbonded)."""
+def liquid_lj(sp: dict) -> list[tuple[float, float]]:
+    """Lennard-Jones (sigma nm, epsilon kJ/mol) per atom from ``LIQUID_LJ`` by MMFF94 type.
+
+    H atoms take ``HA`` on an aromatic carbon and ``HC`` on an sp3 carbon. An
+    MMFF type without an entry is a ``KeyError`` that names it (add a row).
+    """
+    out = []
+    for i, t in enumerate(sp["types"]):
+        num = int(t[1:])
+        if sp["symbols"][i] == "H":
+            (c,) = sp["neighbours"][i]
+            kind = {"CA": "HA", "CT": "HC"}.get(MMFF_TO_LIQUID.get(int(sp["types"][c][1:]), ""))
+        else:
+            kind = MMFF_TO_LIQUID.get(num)
+        if kind is None:
+            raise KeyError(f"{sp['key']} atom {sp['names'][i]} (MMFF type {t}) has no LIQUID_LJ type; "
+                           f"known MMFF types: {sorted(MMFF_TO_LIQUID)} and H on them")
+        sig_A, eps_kcal = LIQUID_LJ[kind]
+        out.append((sig_A / 10.0, kj(eps_kcal)))
+    return out
+
+
+# van der Waals models of the route (see the README of demo_traj/doped for the density check):
+#   "lj-lb"     Lennard-Jones 12-6 from each atom's like-pair MMFF94 R*, eps; unlike pairs by Lorentz-Berthelot
+#               (OpenMM NonbondedForce; the route of the first doped film)
+#   "lj-mmff"   Lennard-Jones 12-6 with the R*_ij, eps_ij of MMFF94's own combining rule for every pair
+#   "mmff-14-7" MMFF94's buffered 14-7 with its own combining rule (Halgren, J. Am. Chem. Soc. 114, 7827 (1992))
+#   "lj-liquid" Lennard-Jones 12-6 between molecules from a condensed-phase table (OPLS-AA values by MMFF atom
+#               type, LIQUID_LJ); inside a molecule every pair keeps "lj-lb" (NonbondedForce exceptions with
+#               full Coulomb beyond 1-4), so one molecule alone has the same energy surface as with "lj-lb"
+#               (the MMFF torsions and the guest's D-A twist go with it); Lorentz-Berthelot; NonbondedForce
+# "lj-mmff" and "mmff-14-7" are a CustomNonbondedForce over MMFF atom-type pairs (same cutoff, long-range
+# correction), their 1-4 pairs a CustomBondForce.
+VDW_MODELS = {
+    "lj-lb": None,
+    "lj-liquid": None,
+    "lj-mmff": "eps*((rs/r)^12 - 2*(rs/r)^6)",
+    "mmff-14-7": "eps*(1.07*rs/(r + 0.07*rs))^7*(1.12*rs^7/(r^7 + 0.12*rs^7) - 2)",
+}
+VDW_DESCRIPTION = {
+    "lj-lb": "Lennard-Jones 12-6 with sigma = R*/2^(1/6) and epsilon = eps of MMFF's buffered 14-7 like-pair "
+             "(same minimum position and depth; approximation); Lorentz-Berthelot for unlike pairs",
+    "lj-liquid": "between molecules: Lennard-Jones 12-6 of OPLS-AA atom types (sigma_A, epsilon_kcal; values "
+                 "from memory), Lorentz-Berthelot; inside a molecule (1-4 and beyond): the MMFF-mapped 12-6 of "
+                 "lj-lb (intramolecular_sigma_A, intramolecular_epsilon_kcal), 1-4 unscaled",
+    "lj-mmff": "Lennard-Jones 12-6 with each pair's R*_ij, eps_ij from MMFF94's combining rule",
+    "mmff-14-7": "MMFF94 buffered 14-7 with MMFF94's combining rule (RDKit's pair parameters)",
+}
+VDW_MODEL = "lj-liquid"          # the route's default since the liquid-density check (doped/README.md)
+# Lennard-Jones (sigma Å, epsilon kcal/mol) of "lj-liquid", OPLS-AA atom types (Jorgensen, Maxwell,
+# Tirado-Rives, J. Am. Chem. Soc. 118, 11225 (1996) and the OPLS-AA papers it builds on; values from
+# memory), fitted to liquid densities and heats of vaporisation; keyed by OPLS-AA type name.
+LIQUID_LJ = {
+    "CA": (3.55, 0.070),    # aromatic C (benzene, also 5-ring aromatic C)
+    "HA": (2.42, 0.030),    # H on aromatic C
+    "CT": (3.50, 0.066),    # sp3 C
+    "HC": (2.50, 0.030),    # H on sp3 C
+    "CZ": (3.30, 0.066),    # nitrile C
+    "NZ": (3.20, 0.170),    # nitrile N
+    "NB": (3.25, 0.170),    # aromatic N, 6-ring (pyridine, triazine)
+    "NA": (3.25, 0.170),    # aromatic N with three bonds (pyrrole, carbazole)
+    "NT": (3.30, 0.170),    # amine N (also a tri-aryl amine N)
+    "OS": (2.90, 0.140),    # ether O (also aryl ether)
+}
+# MMFF94 numeric atom type -> OPLS-AA type of LIQUID_LJ (H by the type of its carbon)
+MMFF_TO_LIQUID = {1: "CT", 37: "CA", 63: "CA", 64: "CA", 4: "CZ", 42: "NZ", 38: "NB", 39: "NA", 40: "NT",
+                  6: "OS"}
+
+
+def mmff_pair_table(species: list[dict]) -> tuple[dict[str, int], np.ndarray, np.ndarray]:
+    """MMFF94 van der Waals R*_ij (nm) and eps_ij (kJ/mol) for every pair of MMFF atom types present.
+
+    RDKit types one molecule holding a copy of each distinct species (MMFF typing
+    is local, so the types equal each species' own) and gives each pair's
+    parameters by MMFF94's combining rule, donor-acceptor scaling included
+    (``GetMMFFVdWParams``, the scaled pair). Returns the type -> class index
+    map and the (n, n) tables.
+    """
+    from rdkit import Chem
+    from rdkit.Chem import AllChem
+
+    distinct = list({sp["smiles"]: sp for sp in species}.values())
+    mol = Chem.AddHs(Chem.MolFromSmiles(distinct[0]["smiles"]))
+    for sp in distinct[1:]:
+        mol = Chem.CombineMols(mol, Chem.AddHs(Chem.MolFromSmiles(sp["smiles"])))
+    props = AllChem.MMFFGetMoleculeProperties(mol)
+    types = [t for sp in distinct for t in sp["types"]]
+    if [f"M{props.GetMMFFAtomType(i)}" for i in range(mol.GetNumAtoms())] != types:
+        raise RuntimeError("MMFF94 typing of the combined species differs from the species' own")
+    first = {}
+    for i, t in enumerate(types):
+        first.setdefault(t, i)
+    classes = {t: k for k, t in enumerate(first)}
+    n = len(classes)
+    r_nm, eps_kj = np.zeros((n, n)), np.zeros((n, n))
+    for ta, a in first.items():
+        for tb, b in first.items():
+            p = props.GetMMFFVdWParams(a, b)
+            r_nm[classes[ta], classes[tb]] = p[2] / 10.0
+            eps_kj[classes[ta], classes[tb]] = kj(p[3])
+    return classes, r_nm, eps_kj
+
+
+def new_system(box_nm: float, vdw: str = VDW_MODEL, species: list[dict] | None = None):
+    """Empty periodic OpenMM system and its forces (bond, angle, torsion, PME nonbonded, vdW).
+
+    ``vdw`` is a key of ``VDW_MODELS``; the custom models need ``species``
+    (every species that will be added) for their pair table.
+    """
     import openmm as mm
     import openmm.unit as u
 
+    if vdw not in VDW_MODELS:
+        raise ValueError(f"vdw model {vdw!r} unknown; choose one of {sorted(VDW_MODELS)}")
     system = mm.System()
     system.setDefaultPeriodicBoxVectors(mm.Vec3(box_nm, 0, 0), mm.Vec3(0, box_nm, 0), mm.Vec3(0, 0, box_nm))
     forces = {"bond": mm.HarmonicBondForce(), "angle": mm.HarmonicAngleForce(),
@@ -249,8 +360,28 @@ def new_system(box_nm: float):
     nb.setCutoffDistance(CUTOFF_NM * u.nanometer)
     nb.setEwaldErrorTolerance(5e-4)
     nb.setUseDispersionCorrection(True)                    # isotropic tail correction (common practice)
+    if VDW_MODELS[vdw] is not None:
+        if not species:
+            raise ValueError(f"vdw model {vdw!r} needs the species list for its pair table")
+        classes, r_nm, eps_kj = mmff_pair_table(species)
+        n = len(classes)
+        expr = VDW_MODELS[vdw]
+        pair = mm.CustomNonbondedForce(f"{expr}; rs = rtab(c1, c2); eps = etab(c1, c2)")
+        pair.addPerParticleParameter("c")
+        pair.addTabulatedFunction("rtab", mm.Discrete2DFunction(n, n, r_nm.T.ravel().tolist()))
+        pair.addTabulatedFunction("etab", mm.Discrete2DFunction(n, n, eps_kj.T.ravel().tolist()))
+        pair.setNonbondedMethod(mm.CustomNonbondedForce.CutoffPeriodic)
+        pair.setCutoffDistance(CUTOFF_NM * u.nanometer)
+        pair.setUseLongRangeCorrection(True)                # same isotropic tail correction
+        near = mm.CustomBondForce(expr)                      # 1-4 pairs, unscaled (MMFF94)
+        near.addPerBondParameter("rs")
+        near.addPerBondParameter("eps")
+        forces.update({"vdw": pair, "vdw14": near})
+        forces["vdw_table"] = (classes, r_nm, eps_kj)
     for f in forces.values():
-        system.addForce(f)
+        if isinstance(f, mm.Force):
+            system.addForce(f)
+    forces["model"] = vdw
     return system, forces
 
 
@@ -270,7 +401,12 @@ def add_species(system, forces: dict, sp: dict, charges_e: list[float], hmr: boo
       small-angle curvature when phi is taken equal to chi (an approximation):
       2 k = 3 x 143.9325 koop / 2.
     * nonbonded: ESP charges; 1-2 and 1-3 pairs excluded; 1-4 Coulomb x 0.75,
-      1-4 Lennard-Jones unscaled (MMFF94); LJ from :func:`lj_sigma_eps`.
+      1-4 van der Waals unscaled (MMFF94). van der Waals by ``forces["model"]``
+      (``VDW_MODELS``): ``lj-lb`` LJ from :func:`lj_sigma_eps`; ``lj-liquid``
+      :func:`liquid_lj` between molecules and :func:`lj_sigma_eps` for every pair
+      inside the molecule (exceptions, full Coulomb beyond 1-4); the custom
+      models from the MMFF94 pair table (:func:`mmff_pair_table`), 1-4 pairs in
+      a CustomBondForce.
     * hydrogen mass repartitioning: each H gets 3.024 amu, its heavy atom 2.016 less.
     """
     off = system.getNumParticles()
@@ -282,11 +418,19 @@ def add_species(system, forces: dict, sp: dict, charges_e: list[float], hmr: boo
                 if sp["symbols"][h] == "H":
                     masses[heavy] -= HMR_H_MASS - masses[h]
                     masses[h] = HMR_H_MASS
-    lj = lj_sigma_eps(sp)
+    custom = "vdw" in forces
+    split = forces.get("model") == "lj-liquid"               # intramolecular pairs keep the MMFF-mapped LJ
+    lj14 = lj_sigma_eps(sp)                                  # 1-4 pairs of the LJ models
+    lj = [(0.1, 0.0)] * len(masses) if custom else (liquid_lj(sp) if split else lj14)
     nb = forces["nonbonded"]
     for i, m in enumerate(masses):
         system.addParticle(m)
         nb.addParticle(float(charges_e[i]), lj[i][0], lj[i][1])
+    if custom:
+        classes, r_nm, eps_kj = forces["vdw_table"]
+        cls = [classes[t] for t in sp["types"]]
+        for c in cls:
+            forces["vdw"].addParticle([float(c)])
     for i, j, r0, kb in terms["bonds"]:
         if "H" in (sp["symbols"][i], sp["symbols"][j]):
             system.addConstraint(off + i, off + j, r0 / 10.0)
@@ -309,7 +453,14 @@ def add_species(system, forces: dict, sp: dict, charges_e: list[float], hmr: boo
                 nb.addException(off + i, off + j, 0.0, 1.0, 0.0)
             elif gd[i, j] == 3:
                 nb.addException(off + i, off + j, MMFF_SCALE_14_COULOMB * charges_e[i] * charges_e[j],
-                                0.5 * (lj[i][0] + lj[j][0]), np.sqrt(lj[i][1] * lj[j][1]))
+                                0.5 * (lj14[i][0] + lj14[j][0]), 0.0 if custom else np.sqrt(lj14[i][1] * lj14[j][1]))
+                if custom:
+                    forces["vdw14"].addBond(off + i, off + j, [r_nm[cls[i], cls[j]], eps_kj[cls[i], cls[j]]])
+            elif split:                                          # full Coulomb, MMFF-mapped LJ (Lorentz-Berthelot)
+                nb.addException(off + i, off + j, charges_e[i] * charges_e[j],
+                                0.5 * (lj14[i][0] + lj14[j][0]), np.sqrt(lj14[i][1] * lj14[j][1]))
+            if custom and gd[i, j] <= 3:
+                forces["vdw"].addExclusion(off + i, off + j)
 
 
 def shrink_box(ctx, integ, starts: np.ndarray, sizes: np.ndarray, total_mass: float, target_g_cm3: float,
@@ -345,9 +496,9 @@ def shrink_box(ctx, integ, starts: np.ndarray, sizes: np.ndarray, total_mass: fl
     return out
 
 
-def build_system(species: list[dict], charges: dict, box_nm: float):
+def build_system(species: list[dict], charges: dict, box_nm: float, vdw: str = VDW_MODEL):
     """OpenMM system of the molecules in ``species`` (one record per molecule, file order)."""
-    system, forces = new_system(box_nm)
+    system, forces = new_system(box_nm, vdw, species)
     for sp in species:
         add_species(system, forces, sp, charges[sp["key"]])
     return system
@@ -422,6 +573,8 @@ def main(argv: list[str] | None = None) -> int:
                     help="fit the schedule to this many minutes of MD: after measuring steps/s on the "
                          "full system, shorten every phase by one common factor (at most 1)")
     ap.add_argument("--threads", type=int, default=2)
+    ap.add_argument("--vdw", choices=sorted(VDW_MODELS), default=VDW_MODEL,
+                    help="van der Waals model (see VDW_MODELS; the first committed film used lj-lb)")
     ap.add_argument("--out", type=Path, default=OUT)
     ap.add_argument("--esp-cache", type=Path,
                     default=Path(os.environ.get("TMPDIR", "/tmp")) / "clusterlab_doped_esp.json")
@@ -470,7 +623,7 @@ def main(argv: list[str] | None = None) -> int:
     print(f"  placed {len(molecules)} molecules ({len(pos_A)} atoms) in a {box0_nm * 10:.1f} Å box "
           f"({START_DENSITY} g/cm^3) in {timings['placement_s']:.0f} s", flush=True)
 
-    system = build_system(molecules, charges, box0_nm)
+    system = build_system(molecules, charges, box0_nm, vdw=args.vdw)
     baro = mm.MonteCarloBarostat(1.0 * u.bar, 300 * u.kelvin, 25)
     baro.setRandomNumberSeed(SEED % 2 ** 31)
     system.addForce(baro)
@@ -562,14 +715,14 @@ def main(argv: list[str] | None = None) -> int:
         "steps_per_s_full_system": round(steps_per_s, 2),
         "timings_s": {k: round(v, 1) for k, v in timings.items()},
         "md_wall_s": round(md_wall, 1), "total_wall_s": round(time.perf_counter() - t_start, 1),
-        "openmm_platform": "CPU", "threads": args.threads,
+        "openmm_platform": "CPU", "threads": args.threads, "vdw_model": args.vdw,
         "versions": {"openmm": mm.__version__, "rdkit": _rdkit_version(), "numpy": np.__version__,
                      "python": sys.version.split()[0]},
         "wrapping": "every atom wrapped into [0, L) per frame; molecules are broken across box faces",
     }
     if "guest_check" in old:
         record["guest_check"] = old["guest_check"]
-    ff = forcefield_record(sps, esp)
+    ff = forcefield_record(sps, esp, args.vdw)
     (out / "forcefield.json").write_text(json.dumps(ff, indent=1) + "\n")
     rec_path.write_text(json.dumps(record, indent=1) + "\n")
     print(json.dumps({k: v for k, v in record.items() if k != "schedule"}, indent=1))
@@ -582,7 +735,7 @@ def _rdkit_version() -> str:
     return rdkit.__version__
 
 
-def forcefield_record(sps: dict, esp: dict) -> dict:
+def forcefield_record(sps: dict, esp: dict, vdw: str = VDW_MODEL) -> dict:
     """Every force-field number of the run with its source, per species."""
     out = {
         "description": "Force field of the clusterlab doped demo film (MMFF94-derived terms for OpenMM); "
@@ -597,8 +750,8 @@ def forcefield_record(sps: dict, esp: dict) -> dict:
                        "none about linear centres",
             "out_of_plane": "one improper k (1 - cos 2 phi) per trivalent centre, 2k = 3 x 143.9325 koop/2 "
                             "(curvature of MMFF's three Wilson terms with phi taken as chi; approximation)",
-            "vdw": "Lennard-Jones 12-6 with sigma = R*/2^(1/6) and epsilon = eps of MMFF's buffered 14-7 "
-                   "like-pair (same minimum position and depth; approximation); Lorentz-Berthelot for unlike pairs",
+            "vdw_model": vdw,
+            "vdw": VDW_DESCRIPTION[vdw],
             "scale_14": {"coulomb": MMFF_SCALE_14_COULOMB, "lj": 1.0},
             "exclusions": "1-2 and 1-3 pairs",
             "electrostatics": "plain Coulomb with ESP charges (MMFF's own bond-increment charges and "
@@ -613,7 +766,8 @@ def forcefield_record(sps: dict, esp: dict) -> dict:
     for k, sp in sps.items():
         t = sp["terms"]
         nm = sp["names"]
-        lj = lj_sigma_eps(sp)
+        lj_mmff = lj_sigma_eps(sp)
+        lj = liquid_lj(sp) if vdw == "lj-liquid" else lj_mmff
         out["species"][k] = {
             "resname": sp["resname"], "smiles": sp["smiles"], "label": SPECIES[k]["label"],
             "geometry": "RDKit ETKDG embedding (seed %d), MMFF94 optimisation" % SEED,
@@ -622,7 +776,9 @@ def forcefield_record(sps: dict, esp: dict) -> dict:
             "atoms": [{"name": nm[i], "element": sp["symbols"][i], "type": sp["types"][i],
                        "mass_amu": sp["masses"][i], "charge_e": esp[k]["charges_e"][i],
                        "mmff_R_star_A": round(t["vdw"][i][0], 5), "mmff_eps_kcal": round(t["vdw"][i][1], 6),
-                       "sigma_A": round(lj[i][0] * 10, 5), "epsilon_kcal": round(lj[i][1] / KCAL_TO_KJ, 6)}
+                       "sigma_A": round(lj[i][0] * 10, 5), "epsilon_kcal": round(lj[i][1] / KCAL_TO_KJ, 6),
+                       "intramolecular_sigma_A": round(lj_mmff[i][0] * 10, 5),
+                       "intramolecular_epsilon_kcal": round(lj_mmff[i][1] / KCAL_TO_KJ, 6)}
                       for i in range(len(nm))],
             "charges_source": {k2: v for k2, v in esp[k].items() if k2 != "charges_e"},
             "bonds": [{"atoms": [nm[i], nm[j]], "r0_A": round(r0, 4), "kb_md_A": kb} for i, j, r0, kb in t["bonds"]],
