@@ -24,7 +24,7 @@ from .film import Film, load_film
 from .report import (ReportWriter, doped_section, log_section, model_correlation_section, model_parity_section,
                      model_section, polarization_table, sample_section, scan_section)
 from .store import ResultStore
-from .studyfile import method_from_study, xc_basis
+from .studyfile import CONVERGED, method_from_study, xc_basis
 
 
 @dataclass
@@ -36,6 +36,8 @@ class StudyOutcome:
     summary_path: str = ""
     store_path: str = ""
     scan: Any = None
+    #: the same scan with a polarizable inner layer (``[scan] polarizable_radius``)
+    polarizable_scan: Any = None
     sample: Any = None
     model: Any = None
     #: the film model against the sample's QM on the sampled sites (:func:`sample_parity`)
@@ -279,11 +281,29 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
             row.update(_counts(outcome.scan.report))
         echo("  " + outcome.scan.verdict.message)
         scan_section(rep, outcome.scan)
+        if s["polarizable_radius"] is not None:
+            # the engine refuses a periodic limit with induced dipoles: this scan has none
+            pol_method = method.replace(environment="polarizable")
+            echo(f"radius scan of molecule {outcome.scan.molecule} with a polarizable inner layer "
+                 f"({s['polarizable_radius']:g} Å) at radii {s['radii']} Å ...")
+            with clock.stage("scan_polarizable") as row:
+                outcome.polarizable_scan = radius_scan(
+                    film, outcome.scan.molecule, s["radii"], pol_method, frame=s["frame"], rule=s["rule"],
+                    qm_shell=s["qm_shell"], polarizable_radius=s["polarizable_radius"], tol_eV=s["tol_eV"],
+                    store=store, runner="serial", progress=progress, on_step=narrate)
+                row.update(_counts(outcome.polarizable_scan.report))
+            echo("  " + outcome.polarizable_scan.verdict.message)
+            _polarizable_scan_section(rep, outcome.polarizable_scan, s["polarizable_radius"])
 
     if "sample" in present:
         from .study.sample import sample_sites
 
-        s = study["sample"]
+        s = dict(study["sample"])
+        if s["radius"] == CONVERGED:
+            s["radius"] = scan_radius(outcome.scan)
+            echo(f"  sample radius {s['radius']:g} Å: "
+                 + ("the scan's converged radius" if outcome.scan.verdict.converged
+                    else "the scan's largest radius (the scan did not converge)"))
         only = f", species {s['species']!r}" if s["species"] else ""
         echo(f"site-energy sample (molecules {s['molecules']!r}{only}, n={s['n']}, frames {s['frames']}, "
              f"radius {s['radius']} Å) ...")
@@ -366,6 +386,26 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
     for line in clock.lines() + [_total_line(outcome.costs["total"])]:
         echo("  " + line)
     return outcome
+
+
+def scan_radius(scan: Any) -> float:
+    """The radius a study's sample takes from its scan (``[sample] radius = "converged"``):
+    the scan's converged radius, else its largest finite radius (Å)."""
+    if scan.verdict.converged and scan.verdict.radius_A is not None:
+        return float(scan.verdict.radius_A)
+    r = scan.table["radius_A"].to_numpy(dtype=float)
+    return float(r[np.isfinite(r)].max())
+
+
+def _polarizable_scan_section(rep: ReportWriter, scan: Any, inner_A: float) -> None:
+    """The scan with a polarizable inner layer: its table and verdict (the fixed-charge scan has the plot)."""
+    rep.section(f"Radius scan with a polarizable inner layer ({inner_A:g} Å)",
+                f"Method: {scan.method.describe()}. **Verdict:** {scan.message}. Induced dipoles are not "
+                "periodic, so this scan has no periodic limit; the fixed-charge scan above has it.")
+    cols = [c for c in ("radius_A", "n_polarizable", "S1_shift_eV", "T1_shift_eV", "IP_shift_eV", "EA_shift_eV",
+                        "S1_polarization_eV", "T1_polarization_eV", "IP_polarization_eV", "EA_polarization_eV",
+                        "converged") if c in scan.table.columns]
+    rep.display(scan.table, cols)
 
 
 def _total_line(total: dict[str, float]) -> str:

@@ -12,13 +12,15 @@ Example (every key optional except ``film.topology``)::
     [scan]
     molecule = 0              # or species = "GST": its molecule nearest the box centre
     radii = [6.0, 9.0, 12.0]
+    periodic_limit = true
+    polarizable_radius = 8.0  # optional: a second scan with Thole dipoles within 8 Å
 
     [sample]
     molecules = "all"         # or ids "0-99", species "species:GST", a selection "resname GST", a list [0, 5]
     species = "GST"           # optional: only molecules of these species (a name or a list)
     n = 12
     frames = "0-19:5"         # or a list [0, 10]; ranges include both ends
-    radius = 12.0
+    radius = 12.0             # or "converged": the radius the scan judged converged
 
     [doped]                   # host:guest films: ΔEST against a donor-acceptor torsion
     torsion = "GST: C12 C13 N3 C20"   # species, colon, four atom names (a list for several species)
@@ -96,6 +98,10 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "rule": Setting((str,), "atom", "carving rule", ("atom", "centroid")),
         "qm_shell": Setting(_num(), 0.0, "QM shell (Å): whole neighbours this close join the QM region"),
         "periodic_limit": Setting((bool,), False, "end the scan with the periodic (Ewald) embedding"),
+        "polarizable_radius": Setting(_num(), None, "also scan the same molecule and radii with a polarizable "
+                                                    "inner layer: Thole dipoles on the molecules within this "
+                                                    "radius (Å; environment 'polarizable'), beside the study "
+                                                    "method's fixed-charge scan that keeps the periodic limit"),
         "tol_eV": Setting(_num(), 0.010, "convergence tolerance (eV)"),
     },
     "sample": {
@@ -108,7 +114,8 @@ SCHEMA: dict[str, dict[str, Setting]] = {
         "frames": Setting((int, list, str), None, "frame, list of frames or a text such as '0-19:5' (ends "
                                                   "included; -1 is the last frame); omit for all"),
         "radius": Setting(_num(list, str), 12.0, "cut radius (Å), or a list or text such as '6-12:3' for the "
-                                                 "growth of the statistics"),
+                                                 "growth of the statistics, or 'converged': the radius the "
+                                                 "[scan] judged converged (its largest radius if none)"),
         "rule": Setting((str,), "atom", "carving rule", ("atom", "centroid")),
         "quantities": Setting((list,), ["S1_eV", "T1_eV", "S1_shift_eV"], "columns to report statistics for"),
     },
@@ -187,6 +194,8 @@ def _check_value(section: str, key: str, value: Any, where: str) -> Any:
             xc_basis(value)
         except StudyFileError as exc:
             raise StudyFileError(f"{where}: [{section}] {key} = {value!r}: {exc}") from None
+    if key == "polarizable_radius" and not value > 0:
+        raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must be a positive radius (Å).")
     if key == "radius" and isinstance(value, list) and not all(isinstance(r, (int, float)) and r > 0 for r in value):
         raise StudyFileError(f"{where}: [{section}] {key} = {value!r} must hold positive radii (Å).")
     try:
@@ -228,12 +237,18 @@ def _check_quantity_states(study: dict[str, Any], where: str) -> None:
                                  "states; set [method] charged_states = true or drop it.")
 
 
+#: ``[sample] radius = "converged"``: the radius the study's own scan judged converged
+CONVERGED = "converged"
+
+
 def _read_ranges(section: str, key: str, value: Any) -> Any:
     """Radii, frames and molecule ids written in the grammar of
     :mod:`clusterlab.ranges` (or as TOML lists) as plain lists. The film is
     not loaded yet: ids and frames are bounded later, negative frames stay
     negative (counted from the end by the film) and ``"all"`` means None
     (every frame / molecule)."""
+    if section == "sample" and key == "radius" and isinstance(value, str) and value.strip().lower() == CONVERGED:
+        return CONVERGED
     if key == "radii" or (key == "radius" and isinstance(value, (list, str))):
         radii = parse_radii(value)
         return radii[0] if key == "radius" and isinstance(value, str) and len(radii) == 1 else radii
@@ -343,6 +358,11 @@ def validate(data: dict[str, Any], where: str = "study") -> dict[str, dict[str, 
         raise StudyFileError(f"{where}: [film] topology is required (the film's topology file).")
     if "sample" in present:
         _check_quantity_states(out, where)
+        if out["sample"]["radius"] == CONVERGED and not ("scan" in present and (
+                out["scan"]["molecule"] is not None or out["scan"]["species"])):
+            raise StudyFileError(f"{where}: [sample] radius = 'converged' takes the radius from the study's radius "
+                                 "scan, but there is none; add a [scan] section with a molecule or species, or "
+                                 "give the radius in Å.")
     out["_present"] = sorted(present)  # type: ignore[assignment]
     return out
 
