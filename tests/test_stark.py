@@ -240,3 +240,18 @@ def test_stark_term_uses_rotated_tensor_and_least_squares_field():
         film_site_energies(film, StateChargeSet.from_arrays({"WAT": ref.charges_e}), states=("S1",), radius_A=6.0,
                            second_order=True, progress=False)
     assert isinstance(c, Cluster)
+
+
+def test_one_field_strength_matches_two_strengths():
+    """The cheaper design (one strength, 1 + 12 calculations, exactly determined)
+    against the default two-strength least-squares fit (1 + 24) on formaldehyde,
+    CIS/6-31G. Both estimate the same Taylor coefficients; they differ by the
+    quartic term's share of the curvature (s^2-weighted) and by the cubic term in
+    Δμ. Tolerances: 0.02 D and 3 % of the largest Δα element (common practice for
+    finite-difference agreement; not a published value)."""
+    two = differential_polarizability(*FORMALDEHYDE, CIS, states=("S1",), steps_V_A=(0.1, 0.2))
+    one = differential_polarizability(*FORMALDEHYDE, CIS, states=("S1",), steps_V_A=(0.2,))
+    assert one.converged and two.converged
+    np.testing.assert_allclose(one.dmu_D["S1"], two.dmu_D["S1"], atol=0.02)
+    scale = np.max(np.abs(two.dalpha_A3["S1"]))
+    np.testing.assert_allclose(one.dalpha_A3["S1"], two.dalpha_A3["S1"], atol=0.03 * scale)
