@@ -342,7 +342,10 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
                                            n_conformers=m["n_conformers"], response=m["response"],
                                            polarizable_radius_A=m["polarizable_radius"],
                                            polarization_scale=m["polarization_scale"], progress=progress,
-                                           store=store, species=m["species"])
+                                           store=store, species=m["species"],
+                                           # references' finite fields side by side on a local runner
+                                           workers=1 if study["runner"]["kind"] == "serial"
+                                           else study["runner"]["workers"])
         model_section(rep, outcome.model)
         if outcome.sample is not None and len(outcome.sample.table):
             # the sample's QM sites are the model's parity points: no new QM, the model re-evaluated there

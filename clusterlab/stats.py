@@ -24,6 +24,7 @@ import pandas as pd
 from scipy import special, stats
 
 from .errors import InputError
+from .labels import quantity_name
 from .geometry import half_box_width_A
 
 __all__ = [
@@ -873,11 +874,8 @@ class ConvergenceVerdict:
 
 
 def _pretty(name: str) -> str:
-    s = str(name)
-    for suffix in ("_eV", "_ev"):
-        if s.endswith(suffix):
-            s = s[: -len(suffix)]
-    return s.replace("_", " ")
+    """A quantity's display name in messages ('dEST_eV' -> 'ΔEST'; :mod:`clusterlab.labels`)."""
+    return quantity_name(str(name))
 
 
 def _fmt_r(r: float) -> str:

@@ -137,3 +137,28 @@ def test_equivalence_classes_from_the_film_and_fitted_ground_charges():
     assert np.allclose(src.atom_charges(film)[:3], [-0.8, 0.4, 0.4])
     with pytest.raises(InputError, match="no molecules named 'BTH'"):
         film_equivalence_classes(film, ["BTH"])
+
+
+def test_field_response_in_worker_processes_matches_in_process():
+    """Two conformer references (HOH 104.5° and 85°) fitted by finite fields in
+    this process and in two spawned worker processes: the same Δμ and Δα on each
+    reference (the same engine calculations, only placed elsewhere), and the two
+    shapes give different tensors, so a swapped assignment would show."""
+    from clusterlab.electrostatics.chargeset import ConformerCharges
+
+    film = _two_shape_water_film()
+    pos = film.frame_geometry(0).positions_A
+    refs = [ConformerCharges(positions_A=pos[film.molecule_atoms(m)], charges_e={"S0": np.array(TIP3P_Q)},
+                             frame=0, molecule=m) for m in (0, 1)]
+    cset = StateChargeSet.from_conformers({"WAT": refs})
+    cis = HF.replace(n_singlets=1, n_triplets=0, excited="tda", threads=1)
+    kw = dict(states=("S1",), steps_V_A=(0.2,), progress=False)
+    here = add_field_response(cset, film, cis, workers=1, **kw)
+    there = add_field_response(cset, film, cis, workers=2, **kw)
+    a, b = here.conformers["WAT"], there.conformers["WAT"]
+    for ra, rb in zip(a, b):
+        np.testing.assert_allclose(rb.dmu_D["S1"], ra.dmu_D["S1"], atol=1e-7)
+        np.testing.assert_allclose(rb.dalpha_A3["S1"], ra.dalpha_A3["S1"], atol=1e-6)
+    assert np.abs(a[0].dalpha_A3["S1"] - a[1].dalpha_A3["S1"]).max() > 0.05
+    with pytest.raises(InputError, match="workers=0 must be at least 1"):
+        add_field_response(cset, film, cis, workers=0, **kw)

@@ -525,6 +525,9 @@ def test_table_of_quantities_names_the_slowest():
     assert out.radius_by_quantity["S1_shift_eV"] == 6.0
     assert out.radius_A == out.radius_by_quantity["IP_shift_eV"] > 6.0
     assert "slowest: IP shift" in out.message
+    # messages use display names: ΔEST, not the column name dEST_eV
+    gap = converged_radius(R, pd.DataFrame({"dEST_eV": 0.3 + 3.0 / R}), tol=0.1)
+    assert "ΔEST converged" in gap.message and "dEST" not in gap.message
     with_ref = converged_radius(R, df, tol=0.1, reference={"S1_shift_eV": -0.05, "IP_shift_eV": -1.0})
     assert with_ref.reference == {"S1_shift_eV": -0.05, "IP_shift_eV": -1.0}
     with pytest.raises(InputError, match="no periodic limit for 'IP_shift_eV'"):

@@ -36,6 +36,7 @@ from ..electrostatics.conformers import bonds_by_distance, equivalence_classes, 
 from ..electrostatics.pairsum import environment_potential
 from ..errors import InputError
 from ..progress import progress_bar
+from ..runner import _init_process_worker, default_workers
 from ..qm.finitefield import differential_polarizability
 from ..qm.method import Method, require_method
 from ..qm.statecharges import state_charges
@@ -200,7 +201,8 @@ def fit_state_charges(film: "Film", method: Method, *, species: Sequence[str] | 
 def add_field_response(charges: StateChargeSet, film: "Film", method: Method, *,
                        states: Sequence[str] = ("S1", "T1"), steps_V_A: Sequence[float] = (0.1, 0.2),
                        refit: bool = True, progress: bool = True,
-                       on_reference: Callable[[StateChargeSet], Any] | None = None) -> StateChargeSet:
+                       on_reference: Callable[[StateChargeSet], Any] | None = None,
+                       workers: int | None = 1) -> StateChargeSet:
     """A copy of ``charges`` with the dipole and polarizability changes of ``states``
     fitted on every conformer reference by finite fields with the engine ``method``
     (:func:`~clusterlab.qm.finitefield.differential_polarizability`; 1 + 12
@@ -225,6 +227,12 @@ def add_field_response(charges: StateChargeSet, film: "Film", method: Method, *,
     on_reference : callable, optional
         Called with the partly fitted copy after each reference (checkpoints:
         with ``refit=False`` a later call skips the references that were done).
+    workers : int or None
+        Worker processes that fit references side by side (one reference each,
+        ``method.threads`` threads; the field calculations of one reference
+        stay in one process, where each starts from the previous field's
+        density). Default 1: in this process. None: one per usable core. The
+        numbers do not depend on it.
 
     Returns
     -------
@@ -239,8 +247,8 @@ def add_field_response(charges: StateChargeSet, film: "Film", method: Method, *,
     """
     require_method(method, "add_field_response")
     out = copy.deepcopy(charges)
-    todo = sum(1 for refs in out.conformers.values() for ref in refs if refit or not ref.has_response(states))
-    bar = progress_bar(todo * (1 + 12 * len(steps_V_A)), desc="finite fields", enabled=progress, unit="calc")
+    per_ref = 1 + 12 * len(steps_V_A)
+    jobs = []  # (reference, symbols, positions, net charge), checked before anything runs
     for res in out.resnames:
         refs = out.conformers.get(res)
         if not refs:
@@ -252,15 +260,34 @@ def add_field_response(charges: StateChargeSet, film: "Film", method: Method, *,
             raise InputError(f"references of {res!r} have {len(refs[0].positions_A)} atoms, but molecule {mol} of "
                              f"the film has {len(syms)}; the set does not fit this film.")
         q = molecule_net_charge(film, mol)
-        for ref in refs:
-            if not refit and ref.has_response(states):
-                continue
-            fit = differential_polarizability(syms, ref.positions_A, method, states=states, charge=q,
-                                              steps_V_A=steps_V_A, on_field=lambda: bar.update(1))
-            ref.dalpha_A3.update(fit.dalpha_A3)
-            ref.dmu_D.update(fit.dmu_D)
-            if on_reference is not None:
-                on_reference(out)
+        jobs += [(ref, syms, ref.positions_A, q) for ref in refs if refit or not ref.has_response(states)]
+    n_proc = min(len(jobs), default_workers() if workers is None else int(workers))
+    if n_proc < 1 and jobs:
+        raise InputError(f"workers={workers!r} must be at least 1 (or None: one per core).")
+    bar = progress_bar(len(jobs) * per_ref, desc="finite fields", enabled=progress, unit="calc")
+
+    def _done(ref: ConformerCharges, fit: Any) -> None:
+        ref.dalpha_A3.update(fit.dalpha_A3)
+        ref.dmu_D.update(fit.dmu_D)
+        if on_reference is not None:
+            on_reference(out)
+
+    if n_proc <= 1:
+        for ref, syms, pos, q in jobs:
+            _done(ref, differential_polarizability(syms, pos, method, states=states, charge=q,
+                                                   steps_V_A=steps_V_A, on_field=lambda: bar.update(1)))
+    else:
+        import concurrent.futures as cf
+        import multiprocessing
+
+        ctx = multiprocessing.get_context("spawn")  # fork is unsafe with OpenMP threads (runner notes)
+        with cf.ProcessPoolExecutor(max_workers=n_proc, mp_context=ctx, initializer=_init_process_worker,
+                                    initargs=(method.threads or max(1, default_workers() // n_proc), None)) as pool:
+            futures = {pool.submit(differential_polarizability, syms, pos, method, states=list(states),
+                                   charge=q, steps_V_A=list(steps_V_A)): ref for ref, syms, pos, q in jobs}
+            for fut in cf.as_completed(futures):
+                _done(futures[fut], fut.result())
+                bar.update(per_ref)
     bar.close()
     out.stark_method = {**method.to_dict(), "steps_V_A": [float(x) for x in steps_V_A]}
     return out

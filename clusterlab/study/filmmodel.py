@@ -877,7 +877,8 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
                    progress: bool = True, n_conformers: int = 1, response: bool = False,
                    symmetrize: bool = False, response_states: Sequence[str] = ("S1",),
                    polarizable_radius_A: float | None = None, polarization_scale: float = 1.0,
-                   store: Any = None, species: Sequence[str] | None = None) -> FilmModelResult:
+                   store: Any = None, species: Sequence[str] | None = None,
+                   workers: int | None = 1) -> FilmModelResult:
     """Fit state charges on reference copies (unless given) and evaluate the
     film-wide model for S1, T1, cation and anion of every molecule and frame.
 
@@ -914,6 +915,9 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
     every fit setting; a later call with the same settings (a study resumed
     after a crash) starts from it, so only the reference being fitted when the
     run stopped is redone (or the state-charge fits, if it stopped in those).
+
+    ``workers`` processes fit the finite fields of the references side by side
+    (default 1: in this process; None: one per core; the numbers are the same).
 
     Raises
     ------
@@ -953,7 +957,7 @@ def run_film_model(film: "Film", method: Method, *, radius_A: float, frames: Seq
         stark_m = method.replace(n_singlets=max(method.n_singlets, 1) if "S1" in response_states else 0,
                                  n_triplets=max(method.n_triplets, 1) if "T1" in response_states else 0)
         charges = add_field_response(charges, film, stark_m, states=response_states, refit=False,
-                                     progress=progress, on_reference=save)
+                                     progress=progress, on_reference=save, workers=workers)
         if save is not None:
             save(charges)
     result = FilmModel(film, charges, radius_A=radius_A, field_response=response_states if response else ()
