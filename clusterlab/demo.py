@@ -56,7 +56,7 @@ def doped_demo_paths() -> tuple[str, str]:
 
 #: the demo's site-energy sample: molecules drawn, seed, frames, radius (Å); quick, then full
 DEMO_SAMPLE = {True: {"n": 2, "seed": 7, "frames": [0], "radius": 8.0},
-               False: {"n": 8, "seed": 7, "frames": [0, 19], "radius": 12.0}}
+               False: {"n": 6, "seed": 7, "frames": [0, 19], "radius": 12.0}}
 
 
 def demo_study(out_dir: str, *, quick: bool = False, workers: int | None = None, film=None) -> dict:
@@ -87,10 +87,10 @@ def demo_study(out_dir: str, *, quick: bool = False, workers: int | None = None,
     scanned = int(choose_molecules(film, "all", n=smp["n"], seed=smp["seed"])[0])
     study = {
         "film": {"topology": top, "trajectory": traj},
-        # one OpenMP thread per calculation: the scan and the film model's QM fits run in this process,
-        # where two threads gave these small molecules no wall time back on 2 idle cores (a 2-thread scan
-        # calculation took as long as a 1-thread sample one) and, on a busy machine, 2.3x the CPU time per
-        # calculation (README: demo timing); the sample's workers run one thread each anyway
+        # one OpenMP thread per calculation, one calculation per core: the scan, the sample and the
+        # references' finite fields run in worker processes side by side; two threads gave these small
+        # molecules no wall time back on 2 idle cores (a 2-thread calculation took as long as a 1-thread
+        # one) and, on a busy machine, 2.3x the CPU time per calculation (README: demo timing)
         "method": {"preset": "fast-refined", "threads": 1},
         # four radii (a verdict needs three) and the periodic limit; the sample's radius among them
         "scan": {"molecule": scanned, "frame": smp["frames"][0],
@@ -101,12 +101,13 @@ def demo_study(out_dir: str, *, quick: bool = False, workers: int | None = None,
                   # IP/EA with and without polarization. Full demo: induced dipoles on the whole 15 Å
                   # environment (~8 s a molecule; P- converges slowly with the polarizable radius, README);
                   # quick: on the molecules within 8 Å (under a second each)
-                  "polarize_molecules": [0, 1, 2] if quick else [0, 1, 2, 3, 4, 5],
+                  "polarize_molecules": [0, 1, 2] if quick else [0, 1, 2, 3],
                   "polarizable_radius": 8.0 if quick else None,
                   # S1 of bithiophene needs the second-order response and two conformer references (the
-                  # film's two torsional families): against the sample's 16 QM sites the S1 shift followed
-                  # QM to 22 meV RMS (r = 0.75) with two and not at all with one (60 meV, r = -0.14; QM
-                  # spread 34 meV), for 310 s more CPU on a busy machine (README: demo timing)
+                  # film's two torsional families): against 16 QM sites the S1 shift followed QM to
+                  # 22 meV RMS (r = 0.75) with two and not at all with one (60 meV, r = -0.14; QM spread
+                  # 34 meV), for 310 s more CPU on a busy machine (README: demo timing); the demo's own
+                  # parity is against its 12 sampled sites
                   "n_conformers": 1 if quick else 2, "response": True},
         "export": {"cutoff_A": 8.0},
         "runner": {"kind": "processes", "workers": workers},

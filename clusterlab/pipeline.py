@@ -73,9 +73,10 @@ def _cpu_s() -> tuple[float, float]:
 class StageCosts:
     """What each stage of a study cost: wall time, CPU time, calculations run and reused.
 
-    CPU time is that of this process (the serial scan and the film model's QM fits run
-    here, on as many threads as PySCF takes) plus that of worker processes once they
-    have exited (a sample's pool is shut down at its end), so on a shared machine
+    CPU time is that of this process (the film model's state-charge fits and Thole
+    sums run here, on as many threads as PySCF takes) plus that of worker processes
+    once they have exited (the pools of a scan, a sample and the finite fields are
+    shut down at their ends), so on a shared machine
     ``cpu_s`` says what the study needed even when the wall time says how busy the
     machine was. ``computed`` and ``reused`` count the stage's cluster calculations:
     run now, or found finished in the store (by task key: an earlier stage or an
@@ -276,8 +277,8 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
         with clock.stage("scan") as row:
             outcome.scan = radius_scan(film, molecule, s["radii"], method, frame=s["frame"], rule=s["rule"],
                                        qm_shell=s["qm_shell"], periodic_limit=s["periodic_limit"],
-                                       tol_eV=s["tol_eV"], store=store, runner="serial", progress=progress,
-                                       on_step=narrate)
+                                       tol_eV=s["tol_eV"], store=store, progress=progress,
+                                       on_step=narrate, **rkw)
             row.update(_counts(outcome.scan.report))
         echo("  " + outcome.scan.verdict.message)
         scan_section(rep, outcome.scan)
@@ -290,7 +291,7 @@ def run_study(study: dict[str, Any], *, progress: bool = True, echo: Callable[[s
                 outcome.polarizable_scan = radius_scan(
                     film, outcome.scan.molecule, s["radii"], pol_method, frame=s["frame"], rule=s["rule"],
                     qm_shell=s["qm_shell"], polarizable_radius=s["polarizable_radius"], tol_eV=s["tol_eV"],
-                    store=store, runner="serial", progress=progress, on_step=narrate)
+                    store=store, progress=progress, on_step=narrate, **rkw)
                 row.update(_counts(outcome.polarizable_scan.report))
             echo("  " + outcome.polarizable_scan.verdict.message)
             _polarizable_scan_section(rep, outcome.polarizable_scan, s["polarizable_radius"])

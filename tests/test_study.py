@@ -207,3 +207,30 @@ def test_site_table_keeps_one_films_finished_sites(film, tmp_path):
     assert sample.stats("S1_eV", n_boot=200, seed=0)["n"] == 4
     with pytest.raises(InputError, match="holds no finished site-energy records"):
         site_table(path, film=film, kinds=("transfer",))
+
+
+def test_periodic_limit_reuses_the_scans_vacuum_and_agrees_with_a_cold_start(film, tmp_path):
+    """The periodic limit is the scan's last step on the same QM region: it takes
+    the vacuum calculation of the finite radii instead of repeating it (no vacuum
+    time in its record), and its shift equals a cold periodic calculation that
+    computes its own vacuum (independent path, to 1e-4 eV)."""
+    import json
+
+    from clusterlab.qm.periodic import periodic_excitations
+    from clusterlab.study import tasks
+
+    tasks._WARM.clear()  # earlier tests computed this QM region in this process: start from nothing
+    tasks._COPIES.clear()
+    path = tmp_path / "p.sqlite"
+    res = radius_scan(film, 4, [3.0], METHOD, store=path, progress=False, periodic_limit=True)
+    t = res.table.set_index("radius_A")
+    assert np.isinf(t.index[-1])
+    with ResultStore(path, readonly=True) as st:
+        df = st.to_frame(status="done")
+        timings = {r["kind"]: json.loads(st.get(r["key"]).result_json)["meta"]["timings_s"]
+                   for _, r in df.iterrows()}
+    assert "vacuum" in timings["excitations"] and "vacuum" not in timings["periodic"]
+    assert t.loc[np.inf, "S1_vacuum_eV"] == t.loc[3.0, "S1_vacuum_eV"]
+    cold = periodic_excitations(film.cell_cluster(4, frame=0), METHOD, vacuum=True)
+    assert abs(cold.s1.shift_eV - t.loc[np.inf, "S1_shift_eV"]) < 1e-4
+    assert abs(cold.t1.energy_eV - t.loc[np.inf, "T1_eV"]) < 1e-4

@@ -284,11 +284,18 @@ def _copy_guess_dm(copy_guess, cluster: Cluster, method: Method, timings: dict[s
     return dm
 
 
-def _excitations(cluster: Cluster, method: Method, *, vacuum: bool | Calculation = True, guess=None,
+def _excitations(cluster: Cluster, method: Method, *, vacuum: "bool | Calculation | ExcitationResult" = True,
+                 guess=None,
                  raise_on_failure: bool = False, progress=None, embedding: Embedding | None = None,
                  radius_A: float | None = None, copy_guess=None) -> ExcitationResult:
     t_start = time.perf_counter()
     _validate(cluster, method)
+    if isinstance(vacuum, ExcitationResult):  # an earlier result of this QM region: reuse its vacuum
+        vac = vacuum.warm_start.vacuum if vacuum.warm_start is not None else None
+        if vac is None:
+            raise InputError("vacuum= was given a result without an in-memory vacuum calculation "
+                             "(results loaded from JSON carry none); pass vacuum=True.")
+        vacuum = vac
     if embedding is None:
         embedding = cluster_embedding(cluster, method)
     env_q = embedding.charges_e
@@ -520,12 +527,6 @@ def excitations(cluster: Cluster, method: Method, *, vacuum: "bool | ExcitationR
     >>> r = excitations(c, Method.preset("draft", n_triplets=0))  # doctest: +SKIP
     >>> r.to_frame()[["state", "energy_eV", "shift_eV"]]  # doctest: +SKIP
     """
-    if isinstance(vacuum, ExcitationResult):
-        vac = vacuum.warm_start.vacuum if vacuum.warm_start is not None else None
-        if vac is None:
-            raise InputError("vacuum= was given a result without an in-memory vacuum calculation "
-                             "(results loaded from JSON carry none); pass vacuum=True.")
-        vacuum = vac
     return _excitations(cluster, method, vacuum=vacuum, guess=guess, raise_on_failure=raise_on_failure,
                         progress=progress, copy_guess=copy_guess)
 

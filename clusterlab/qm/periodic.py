@@ -109,6 +109,9 @@ def periodic_excitations(cluster: Cluster, method: Method, *, vacuum: bool = Tru
         own images (``env_molecules`` in ``qm_molecules``) are dropped; see
         the module notes for how PySCF includes those images instead.
     method : Method
+    vacuum : bool or ExcitationResult
+        True computes the vacuum reference; an earlier in-memory result of the
+        same QM region (a finite radius of a scan) reuses its vacuum calculation.
     rcut_hcore_A : float, optional
         Charges within this distance of the QM centroid enter the one-electron
         Hamiltonian exactly; default half the shortest box length (it must

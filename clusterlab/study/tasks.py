@@ -267,16 +267,21 @@ def run_cluster_task(payload: dict[str, Any]) -> tuple[str, dict[str, Any]]:
     wkey = _warm_key(payload)
     with _WARM_LOCK:
         prev = _WARM.get(wkey)
+    def same_region(cluster) -> bool:
+        """The previous result of this molecule has this QM region and a converged vacuum to reuse."""
+        ws = prev.warm_start if prev is not None else None
+        return ws is not None and ws.fits(cluster) and prev.scf_converged and ws.vacuum is not None
+
     if kind == "periodic":
         cluster = film.cell_cluster(mol, frame=frame)
-        res = periodic_excitations(cluster, method, vacuum=True, guess=prev)
+        # the scan's last step: its finite radii already computed this QM region's vacuum
+        res = periodic_excitations(cluster, method, vacuum=prev if same_region(cluster) else True, guess=prev)
     else:
         cluster = film.carve(mol, float(payload["radius_A"]), frame=frame, rule=payload["rule"],
                              qm_shell=float(payload["qm_shell_A"]),
                              polarizable_radius=payload.get("polarizable_radius_A"))
-        ws = prev.warm_start if prev is not None else None
         ckey = _copy_key(payload, cluster)
-        if ws is not None and ws.fits(cluster) and prev.scf_converged and ws.vacuum is not None:
+        if same_region(cluster):
             res = excitations(cluster, method, vacuum=prev, guess=prev)
         else:  # a new QM region: its vacuum SCF starts from the last copy of the same molecule
             with _WARM_LOCK:
