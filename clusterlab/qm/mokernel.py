@@ -18,7 +18,10 @@ fitting integrals (the same numbers PySCF's AO route contracts), so the
 exchange of one vector costs ``naux * (no**2 nv + no nv**2)``. The
 exchange-correlation kernel is PySCF's (``cache_xc_kernel``, spin-adapted as
 in ``nr_rks_fxc_st``), contracted with the transition density built from the
-window's orbitals on the response grid (LDA and GGA functionals).
+window's orbitals on the response grid (LDA and GGA functionals). What does
+not depend on the spin (the ground-state density on the grid, the window's
+orbitals there, B_oo/B_vv and B_ov) is one :class:`OperatorSetup`, built once
+and shared by the singlet and triplet operators of the same SCF.
 
 The **orbital window** keeps the occupied orbitals within ``window_Eh`` of the
 HOMO and the virtual orbitals within ``window_Eh`` of the LUMO: low-lying
@@ -292,12 +295,15 @@ class OperatorSetup:
             if k:
                 self.b_oo, self.b_vv = b_oo, b_vv
 
-    @property
-    def nbytes(self) -> int:
-        """Bytes held now (density, orbitals on the grid, fitted blocks)."""
-        held = [self._rho_a, self.b_ov, self.b_oo, self.b_vv]
-        held += [a for item in (self._orbitals or ()) for a in item[:3]]
-        return int(sum(a.nbytes for a in held if a is not None))
+    def held_MB(self) -> dict[str, float]:
+        """Memory held now (MB): the density on the grid, the window orbitals
+        on the grid, B_ov, and B_oo with B_vv."""
+        def mb(*arrays) -> float:
+            return sum(a.nbytes for a in arrays if a is not None) / 1e6
+
+        orbitals = [a for item in (self._orbitals or ()) for a in item[:3]]
+        return {"density": mb(self._rho_a), "orbitals": mb(*orbitals), "b_ov": mb(self.b_ov),
+                "b_oo_vv": mb(self.b_oo, self.b_vv)}
 
 
 class _XCKernel:
