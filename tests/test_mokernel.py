@@ -17,10 +17,13 @@ import pytest
 
 from clusterlab.cluster import Cluster
 from clusterlab.errors import InputError
-from clusterlab.qm.calc import Embedding, build_molecule, make_scf, run_scf, solve_states
+from clusterlab.qm import calc as qcalc
+from clusterlab.qm import mokernel
+from clusterlab.qm.calc import VACUUM, Embedding, build_molecule, calculate, make_scf, run_scf, solve_states
 from clusterlab.qm.engine import excitations
 from clusterlab.qm.method import Method
-from clusterlab.qm.mokernel import orbital_window, supported, tda_operator
+from clusterlab.qm.mokernel import OperatorSetup, orbital_window, supported, tda_operator
+from clusterlab.units import HARTREE_TO_EV
 
 from conftest import TIP3P_Q, TIP3P_XYZ
 
@@ -147,3 +150,125 @@ def test_unsupported_and_bad_input_are_clear():
     # methods without the new fields keep their stored keys
     assert "response_kernel" not in Method.preset("draft").canonical_json()
     assert "response_kernel" in Method.preset("draft", response_kernel="mo").canonical_json()
+
+
+# ------------------------------------------------ one set-up for both spins
+#: B3LYP/6-31G, density fitting, SCF and response grid 1, full TDA 3+3 on the MO-basis operator, every orbital
+#: kept (so PySCF's own TDA is the same matrix); response grid 2 -> 1 in the copy case
+SHARED = Method(xc="b3lyp", basis="6-31g", grid_level=1, response_grid_level=1, n_singlets=3, n_triplets=3,
+                excited="tda", response_kernel="mo", charge_smearing_A=0.0, response_conv_tol=1e-7)
+EMBEDDINGS = {"vacuum": VACUUM, "charges": Embedding(positions_A=CHARGES[0], charges_e=CHARGES[1])}
+
+
+def _fresh_share(monkeypatch):
+    """Make every solve build its operator from scratch (the behaviour before sharing)."""
+    monkeypatch.setattr(qcalc, "_share", lambda mf: qcalc._ResponseShare())
+
+
+def _count(monkeypatch, owner, name):
+    calls = []
+    orig = getattr(owner, name)
+
+    def wrapped(*a, **kw):
+        calls.append(name)
+        return orig(*a, **kw)
+
+    monkeypatch.setattr(owner, name, wrapped)
+    return calls
+
+
+@pytest.mark.parametrize("where", ["vacuum", "charges"])
+def test_shared_setup_gives_the_fresh_operators_states_and_pyscf_tda(where, monkeypatch):
+    """S1-S3/T1-T3 with one set-up for both spins equal those of a fresh
+    operator per spin (same numbers, so to rounding: 1e-9 eV asked) and PySCF's
+    own TDA on the same density-fitted SCF (AO route, its own Davidson:
+    ``pyscf.tdscf.rhf.TDA``, Sun et al., WIREs Comput. Mol. Sci. 8, e1340
+    (2018)) to the 2e-6 Eh of the door test above (measured: shared minus
+    fresh 0.0 eV, minus PySCF at most 1.6e-13 eV)."""
+    from pyscf.dft import numint
+
+    mf = make_scf(build_molecule(*FORMALDEHYDE, SHARED), SHARED, EMBEDDINGS[where])
+    assert run_scf(mf, SHARED)[0]
+    kernels = _count(monkeypatch, numint.NumInt, "cache_xc_kernel")
+    blocks = _count(monkeypatch, mokernel, "_fitted_blocks")
+    shared = {k: solve_states(mf, SHARED, k, 3) for k in ("singlet", "triplet")}
+    assert len(kernels) == 1 and len(blocks) == 1  # triplets reuse the singlets' set-up
+    assert all(r.extra["kernel"] == "mo" for r in shared.values())
+    with monkeypatch.context() as m:
+        _fresh_share(m)
+        fresh = {k: solve_states(mf, SHARED, k, 3) for k in ("singlet", "triplet")}
+    assert len(kernels) == 3 and len(blocks) == 3  # one per spin without sharing
+    for kind, singlet in (("singlet", True), ("triplet", False)):
+        a, b = shared[kind].energies_Eh * HARTREE_TO_EV, fresh[kind].energies_Eh * HARTREE_TO_EV
+        assert len(a) == 3 and np.max(np.abs(a - b)) < 1e-9
+        td = mf.TDA()
+        td.singlet, td.nstates, td.conv_tol, td.max_cycle, td.verbose = singlet, 5, 1e-7, 200, 0
+        td.kernel()
+        assert np.all(td.converged[:3])
+        assert np.allclose(shared[kind].energies_Eh, np.sort(td.e)[:3], atol=2e-6)
+    assert np.allclose(shared["singlet"].osc_strength, fresh["singlet"].osc_strength, atol=1e-10)
+    # the XC kernel really differs by spin (a shared kernel would give the triplets the singlets' f_xc)
+    assert shared["singlet"].energies_Eh[0] - shared["triplet"].energies_Eh[0] > 0.01
+
+
+def test_one_calculation_builds_the_setup_once_and_frees_it(monkeypatch):
+    """Through calculate (response grid 1 on an SCF grid 2: the response SCF is
+    a copy, built once): one XC kernel and one pass of fitted blocks for
+    singlets and triplets; after the calculation the SCF keeps nothing."""
+    from pyscf.dft import gen_grid, numint
+
+    m = SHARED.replace(grid_level=2, orbital_window_Eh=1.0)
+    kernels = _count(monkeypatch, numint.NumInt, "cache_xc_kernel")
+    blocks = _count(monkeypatch, mokernel, "_fitted_blocks")
+    setups = _count(monkeypatch, mokernel, "OperatorSetup")
+    grids = _count(monkeypatch, gen_grid.Grids, "build")
+    res = calculate(*FORMALDEHYDE, m, EMBEDDINGS["charges"])
+    assert res.converged and set(res.states) == {"singlet", "triplet"}
+    assert (len(kernels), len(blocks), len(setups)) == (1, 1, 1)
+    assert len(grids) == 2  # the SCF's grid and the response grid, not one more per spin
+    assert qcalc._SHARE_ATTR not in vars(res.mf)
+    assert res.mf.with_df._cderi is None
+    # the same numbers as a fresh operator per spin on a fresh SCF of the same molecule
+    _fresh_share(monkeypatch)
+    ref = calculate(*FORMALDEHYDE, m, EMBEDDINGS["charges"])
+    assert len(kernels) == 3
+    for kind in ("singlet", "triplet"):
+        assert np.max(np.abs(res.states[kind].energies_Eh - ref.states[kind].energies_Eh)) * HARTREE_TO_EV < 1e-9
+
+
+def test_a_changed_scf_never_reuses_the_setup(monkeypatch):
+    """Other orbitals (the same SCF object re-run at another geometry), another
+    window or another SCF: a new set-up, and the states of the new geometry are
+    those of a fresh SCF there."""
+    from pyscf.dft import numint
+
+    mf = make_scf(build_molecule(*FORMALDEHYDE, SHARED), SHARED, VACUUM)
+    assert run_scf(mf, SHARED)[0]
+    solve_states(mf, SHARED, "singlet", 3)
+    before = solve_states(mf, SHARED, "triplet", 3)
+    first = vars(mf)[qcalc._SHARE_ATTR].setup
+    stretched = FORMALDEHYDE[1] + np.array([[0, 0, 0], [0, 0, 0.05], [0, 0, 0], [0, 0, 0]])  # C=O 1.21 -> 1.26 Å
+    mf.mol.set_geom_(stretched, unit="Angstrom")
+    mf.reset(mf.mol)
+    assert run_scf(mf, SHARED)[0]
+    kernels = _count(monkeypatch, numint.NumInt, "cache_xc_kernel")
+    moved = solve_states(mf, SHARED, "triplet", 3)
+    assert len(kernels) == 1 and vars(mf)[qcalc._SHARE_ATTR].setup is not first
+    with monkeypatch.context() as m:
+        _fresh_share(m)
+        fresh = solve_states(mf, SHARED, "triplet", 3)
+    assert np.max(np.abs(moved.energies_Eh - fresh.energies_Eh)) * HARTREE_TO_EV < 1e-9
+    # a fresh SCF at the new geometry (its own SCF path: equal to the SCF's convergence, 1e-5 Eh)
+    other = make_scf(build_molecule(FORMALDEHYDE[0], stretched, SHARED), SHARED, VACUUM)
+    assert run_scf(other, SHARED)[0]
+    ref = solve_states(other, SHARED, "triplet", 3)
+    assert np.allclose(moved.energies_Eh, ref.energies_Eh, atol=1e-5)
+    assert np.max(np.abs(before.energies_Eh - ref.energies_Eh)) > 1e-3  # the stretch does move the states
+    # a set-up is refused by another SCF and by another window of its own SCF
+    w = orbital_window(other.mo_energy, other.mo_occ, None)
+    setup = OperatorSetup(mf, orbital_window(mf.mo_energy, mf.mo_occ, None))
+    with pytest.raises(InputError, match="another SCF"):
+        tda_operator(other, True, w, setup=setup)
+    with pytest.raises(InputError, match="another SCF"):
+        tda_operator(mf, True, orbital_window(mf.mo_energy, mf.mo_occ, 1.0), setup=setup)
+    assert mokernel.setup_key(mf, w) == setup.key  # same orbitals, same window: reusable

@@ -45,6 +45,7 @@ from ..units import AU_DIPOLE_TO_DEBYE
 from . import ct as _ct
 from .following import rotate_amplitudes
 from .induction import attach_induced_dipoles, has_induced_dipoles
+from .mokernel import fingerprint
 from .method import PERIODIC_POLARIZABLE_ALTERNATIVE, Method, check_periodic_environment
 from .response import ResponseStates, subspace_refine
 
@@ -333,16 +334,51 @@ def omp_threads(n: int | None):
 
 
 # ------------------------------------------------------------ response
+#: Attribute of an SCF object holding what its response solves share (:class:`_ResponseShare`).
+_SHARE_ATTR = "_clusterlab_response_share"
+
+
+@dataclass(eq=False)
+class _ResponseShare:
+    """What the response solves of one SCF share within one calculation: the
+    SCF on the response grid (its grid built once, not per spin) and the
+    MO-basis operator's spin-independent set-up
+    (:class:`~clusterlab.qm.mokernel.OperatorSetup`). One per SCF, replaced
+    when the SCF's orbitals change (keys are digests of the numbers), dropped
+    by :func:`_release_fitted_integrals`."""
+
+    response_key: tuple | None = None
+    mf_resp: Any = None
+    setup: Any = None
+
+
+def _share(mf) -> _ResponseShare:
+    share = vars(mf).get(_SHARE_ATTR)
+    if share is None:
+        share = _ResponseShare()
+        setattr(mf, _SHARE_ATTR, share)
+    return share
+
+
 def _response_scf(mf, method: Method):
-    """The SCF object whose grid the response kernel uses."""
+    """The SCF object whose grid the response kernel uses (``mf`` itself when
+    the response grid is the SCF grid; else one copy per SCF and orbitals,
+    reused by the later solves)."""
     if method.is_hf or method.response_grid_level is None or method.response_grid_level == method.grid_level:
         return mf
     from pyscf.dft import gen_grid
 
+    key = (method.response_grid_level, fingerprint(mf.mo_coeff, mf.mo_occ, mf.mo_energy, mf.mol.atom_coords()))
+    share = _share(mf)
+    if share.response_key == key:
+        return share.mf_resp
+    share.response_key = share.mf_resp = share.setup = None  # stale: another SCF's orbitals
     mfr = mf.copy()
+    vars(mfr).pop(_SHARE_ATTR, None)  # the copy does not own the share
     mfr.grids = gen_grid.Grids(mf.mol)
     mfr.grids.level = method.response_grid_level
     mfr.grids.build()
+    share.response_key, share.mf_resp = key, mfr
     return mfr
 
 
@@ -379,12 +415,13 @@ def _tda_davidson(vind, hdiag: FloatArray, guess: FloatArray, nroots: int, metho
             np.atleast_2d(np.asarray(xs, dtype=float)))
 
 
-def _tda_operator(td, mf_resp, method: Method, singlet: bool, n_solve: int):
+def _tda_operator(td, mf, mf_resp, method: Method, singlet: bool, n_solve: int):
     """(vind, hdiag, window) of the TDA operator: clusterlab's MO-basis
     operator on the method's orbital window where ``method.response_kernel``
     is "mo" and it applies (window then an
     :class:`~clusterlab.qm.mokernel.OrbitalWindow`), else PySCF's AO route
-    (window None)."""
+    (window None). The MO-basis operator's set-up is kept on ``mf`` and
+    shared by both spins (and any later solve of the same orbitals)."""
     if method.response_kernel == "mo":
         from . import mokernel
 
@@ -393,9 +430,14 @@ def _tda_operator(td, mf_resp, method: Method, singlet: bool, n_solve: int):
             window = mokernel.orbital_window(mf_resp.mo_energy, mf_resp.mo_occ, method.orbital_window_Eh)
             if window.n_pairs < 2 * n_solve:  # too narrow for the states asked: all orbitals
                 window = mokernel.orbital_window(mf_resp.mo_energy, mf_resp.mo_occ, None)
-            vind, hdiag = mokernel.tda_operator(mf_resp, singlet, window,
+            max_memory_MB = float(getattr(mf_resp, "max_memory", 2000))
+            share = _share(mf)
+            if share.setup is None or share.setup.key != mokernel.setup_key(mf_resp, window):
+                share.setup = None  # a stale set-up goes before the new one is built
+                share.setup = mokernel.OperatorSetup(mf_resp, window, max_memory_MB)
+            vind, hdiag = mokernel.tda_operator(mf_resp, singlet, window, setup=share.setup,
                                                 environment_response=singlet and has_induced_dipoles(mf_resp),
-                                                max_memory_MB=float(getattr(mf_resp, "max_memory", 2000)))
+                                                max_memory_MB=max_memory_MB)
             return vind, hdiag, window
         log.info("MO-basis response kernel not used (%s); PySCF's AO route runs", why)
     vind, hdiag = td.gen_vind(mf_resp)
@@ -451,7 +493,7 @@ def _tdscf_states(mf, mf_resp, method: Method, kind: str, n: int, x0: FloatArray
         energies = np.asarray(td.e, float).reshape(-1)
         vecs = np.array([(np.asarray(x, float) + np.asarray(y, float)).ravel() for x, y in td.xy])
     else:
-        vind, hdiag, window = _tda_operator(td, mf_resp, method, singlet, n_solve)
+        vind, hdiag, window = _tda_operator(td, mf, mf_resp, method, singlet, n_solve)
         extra["kernel"] = "ao" if window is None else "mo"
         if window is not None:
             extra["window_pairs"] = [window.n_pairs, nov]
@@ -636,7 +678,10 @@ def _release_fitted_integrals(mf) -> None:
     """Drop the SCF's in-memory density-fitting tensor once its states are
     solved: a kept Calculation (warm starts hold several) would otherwise hold
     naux*nao^2/2 numbers (1.9 GB for a 60-atom molecule in 6-31G). PySCF
-    rebuilds it if the SCF object is used again."""
+    rebuilds it if the SCF object is used again. The response solves' shared
+    set-up (response-grid copy, operator set-up: orbitals on the grid, fitted
+    blocks) goes with it."""
+    vars(mf).pop(_SHARE_ATTR, None)
     df = getattr(mf, "with_df", None)
     if df is not None and isinstance(getattr(df, "_cderi", None), np.ndarray):
         df._cderi = None

@@ -18,7 +18,10 @@ fitting integrals (the same numbers PySCF's AO route contracts), so the
 exchange of one vector costs ``naux * (no**2 nv + no nv**2)``. The
 exchange-correlation kernel is PySCF's (``cache_xc_kernel``, spin-adapted as
 in ``nr_rks_fxc_st``), contracted with the transition density built from the
-window's orbitals on the response grid (LDA and GGA functionals).
+window's orbitals on the response grid (LDA and GGA functionals). What does
+not depend on the spin (the ground-state density on the grid, the window's
+orbitals there, B_oo/B_vv and B_ov) is one :class:`OperatorSetup`, built once
+and shared by the singlet and triplet operators of the same SCF.
 
 The **orbital window** keeps the occupied orbitals within ``window_Eh`` of the
 HOMO and the virtual orbitals within ``window_Eh`` of the LUMO: low-lying
@@ -38,12 +41,15 @@ PySCF's own solvent term (``_B_dot_x`` on the AO transition density).
 
 from __future__ import annotations
 
+import hashlib
 import logging
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import numpy.typing as npt
+
+from ..errors import InputError
 
 FloatArray = npt.NDArray[np.float64]
 log = logging.getLogger("clusterlab.qm")
@@ -152,54 +158,160 @@ _ORBITAL_CACHE_MB = 3000.0
 _CHUNK_MB = 200.0
 
 
-class _XCKernel:
-    """f_xc contracted with window transition densities on a grid (LDA/GGA)."""
+def fingerprint(*arrays: npt.ArrayLike) -> str:
+    """A short digest of the bytes (and shapes) of ``arrays``: equal digests
+    mean equal numbers (blake2b; ~1 ms per MB)."""
+    h = hashlib.blake2b(digest_size=16)
+    for a in arrays:
+        a = np.ascontiguousarray(a)
+        h.update(f"{a.dtype}{a.shape}".encode())
+        h.update(a.tobytes())
+    return h.hexdigest()
 
-    def __init__(self, mf: Any, c_o: FloatArray, c_v: FloatArray, singlet: bool, max_memory_MB: float):
-        ni = mf._numint
-        mol, grids = mf.mol, mf.grids
+
+def setup_key(mf: Any, window: OrbitalWindow) -> tuple[str, str, str]:
+    """What an :class:`OperatorSetup` of ``mf`` on ``window`` depends on: the
+    orbitals (coefficients, occupations, energies), the atoms, the response
+    grid (points and weights), the window's index arrays, the functional and
+    the fitting basis. A changed SCF (other geometry, other environment,
+    other grid) gives another key."""
+    grids = getattr(mf, "grids", None)
+    grid = () if grids is None or grids.coords is None else (grids.coords, grids.weights)
+    digest = fingerprint(mf.mo_coeff, mf.mo_occ, mf.mo_energy, mf.mol.atom_coords(), window.occ, window.vir, *grid)
+    return digest, str(getattr(mf, "xc", "hf")), str(getattr(mf.with_df, "auxbasis", None))
+
+
+class OperatorSetup:
+    """The spin-independent set-up of the TDA operators of one SCF on one
+    orbital window and response grid, built on first use and shared by the
+    singlet and triplet operators (and any later operator of the same SCF).
+
+    * the ground-state density on the grid (PySCF's ``cache_xc_kernel``, the
+      costly part of the XC kernel: AO values times every occupied orbital);
+      each spin's kernel f_xc is then evaluated from it by libxc
+      (``eval_xc_eff``, the call ``cache_xc_kernel`` itself ends with), so the
+      set-up keeps 4 numbers per grid point instead of a second 16-number
+      kernel;
+    * the window's orbitals (and gradients) on the grid, cached when they fit
+      in :data:`_ORBITAL_CACHE_MB` (recomputed at each use otherwise);
+    * the fitted blocks B_oo and B_vv (exchange, both spins) and B_ov
+      (Coulomb, singlets only: built when a singlet operator first asks).
+
+    Memory: what one singlet operator held before sharing, plus the density
+    (4 numbers per grid point); triplets add nothing. ``key`` is
+    :func:`setup_key`; the owner (``clusterlab.qm.calc``) keeps one per SCF
+    and drops it with the SCF's fitting integrals after the calculation.
+    """
+
+    def __init__(self, mf: Any, window: OrbitalWindow, max_memory_MB: float = 2000.0):
+        from pyscf import dft
+
+        self.key = setup_key(mf, window)
+        self.mf, self.window, self.max_memory_MB = mf, window, max_memory_MB
+        mo_e = np.asarray(mf.mo_energy, float)
+        occ_mask = np.asarray(mf.mo_occ) > 0
+        c_all = np.asarray(mf.mo_coeff, float)
+        self.c_o = c_all[:, occ_mask][:, window.occ]
+        self.c_v = c_all[:, ~occ_mask][:, window.vir]
+        self.e_ia = mo_e[~occ_mask][window.vir][None, :] - mo_e[occ_mask][window.occ][:, None]
+        self.xctype = "HF"
+        self.hyb = 1.0
+        if isinstance(mf, dft.rks.KohnShamDFT):
+            _omega, _alpha, self.hyb = mf._numint.rsh_and_hybrid_coeff(mf.xc, mf.mol.spin)
+            self.xctype = mf._numint._xc_type(mf.xc)
+        self.deriv = 1 if self.xctype == "GGA" else 0
+        self._rho_a: FloatArray | None = None
+        self._orbitals: list[tuple[FloatArray, FloatArray, FloatArray, int, int]] | None = None
+        self._orbitals_fit: bool | None = None
+        self.b_ov: FloatArray | None = None
+        self.b_oo: FloatArray | None = None
+        self.b_vv: FloatArray | None = None
+
+    @property
+    def has_xc(self) -> bool:
+        return self.xctype != "HF"
+
+    def _grids(self):
+        grids = self.mf.grids
         if grids.coords is None:
             grids.build()
-        self.xctype = ni._xc_type(mf.xc)
-        self.deriv = 1 if self.xctype == "GGA" else 0
-        _rho0, _vxc, fxc = ni.cache_xc_kernel(mol, grids, mf.xc, mf.mo_coeff, mf.mo_occ, spin=1,
-                                              max_memory=max_memory_MB)
-        # spin adaptation as in pyscf.dft.numint.nr_rks_fxc_st, with the 1/2 of
-        # pyscf.scf._response_functions (its density matrices carry both spins)
-        f = fxc[0, :, 0] + fxc[0, :, 1] if singlet else fxc[0, :, 0] - fxc[0, :, 1]
-        self.fxc = 0.5 * f  # (nvar, nvar, ngrid)
-        if self.deriv == 0:
-            self.fxc = self.fxc.reshape(1, 1, -1)
-        self.ni, self.mol, self.grids = ni, mol, grids
-        self.c_o, self.c_v = c_o, c_v
-        self.max_memory_MB = max_memory_MB
-        nvar = 4 if self.deriv else 1
-        size_MB = nvar * len(grids.weights) * (c_o.shape[1] + c_v.shape[1]) * 8 / 1e6
-        self._cache_ok = size_MB <= _ORBITAL_CACHE_MB
-        self._blocks: list[tuple[FloatArray, FloatArray, FloatArray, int, int]] | None = None
+        return grids
 
-    def _orbital_blocks(self):
-        """Window orbitals (and gradients) on the grid, block by block (cached
-        when they fit in :data:`_ORBITAL_CACHE_MB`)."""
-        if self._blocks is not None:
-            yield from self._blocks
+    def xc_kernel(self, singlet: bool) -> FloatArray:
+        """0.5 (f_aa ± f_ab) on the grid, shape (nvar, nvar, ngrid): the
+        spin-adapted kernel of ``pyscf.dft.numint.nr_rks_fxc_st`` with the
+        1/2 of ``pyscf.scf._response_functions`` (its density matrices carry
+        both spins)."""
+        mf = self.mf
+        ni = mf._numint
+        if self._rho_a is None:
+            rho0, _vxc, fxc = ni.cache_xc_kernel(mf.mol, self._grids(), mf.xc, mf.mo_coeff, mf.mo_occ, spin=1,
+                                                 max_memory=self.max_memory_MB)
+            self._rho_a = np.array(rho0[0])  # spin=1 from a closed shell: two equal halves
+            del rho0, _vxc
+        else:
+            rho = np.repeat(self._rho_a[np.newaxis], 2, axis=0)
+            fxc = ni.eval_xc_eff(mf.xc, rho, deriv=2, xctype=self.xctype, spin=1)[2]
+        f = 0.5 * (fxc[0, :, 0] + fxc[0, :, 1] if singlet else fxc[0, :, 0] - fxc[0, :, 1])
+        return f.reshape(1, 1, -1) if self.deriv == 0 else f
+
+    def orbital_blocks(self):
+        """Window orbitals (and gradients) on the grid, block by block:
+        (phi_o (nvar, blk, no), phi_v (nvar, blk, nv), weights, p0, p1);
+        cached on first use when they fit in :data:`_ORBITAL_CACHE_MB`."""
+        if self._orbitals is not None:
+            yield from self._orbitals
             return
         from pyscf.dft.numint import BLKSIZE
 
-        nao = self.mol.nao
+        mol, grids = self.mf.mol, self._grids()
+        if self._orbitals_fit is None:
+            nvar = 4 if self.deriv else 1
+            size_MB = nvar * len(grids.weights) * (self.c_o.shape[1] + self.c_v.shape[1]) * 8 / 1e6
+            self._orbitals_fit = size_MB <= _ORBITAL_CACHE_MB
+        nao = mol.nao
         cache: list = []
         p1 = 0
-        for ao, _mask, weight, _coords in self.ni.block_loop(self.mol, self.grids, nao, self.deriv,
-                                                             max_memory=self.max_memory_MB,
-                                                             blksize=_GRID_BLOCK // BLKSIZE * BLKSIZE):
+        for ao, _mask, weight, _coords in self.mf._numint.block_loop(mol, grids, nao, self.deriv,
+                                                                     max_memory=self.max_memory_MB,
+                                                                     blksize=_GRID_BLOCK // BLKSIZE * BLKSIZE):
             p0, p1 = p1, p1 + weight.size
             ao = ao.reshape(-1, weight.size, nao)
-            item = (ao @ self.c_o, ao @ self.c_v, np.array(weight), p0, p1)  # (nvar, blk, no), (nvar, blk, nv)
-            if self._cache_ok:
+            item = (ao @ self.c_o, ao @ self.c_v, np.array(weight), p0, p1)
+            if self._orbitals_fit:
                 cache.append(item)
             yield item
-        if self._cache_ok:
-            self._blocks = cache
+        if self._orbitals_fit:
+            self._orbitals = cache
+
+    def fitted(self, need_j: bool, need_k: bool) -> None:
+        """Build the fitted blocks asked for that are not there yet."""
+        j = need_j and self.b_ov is None
+        k = need_k and self.b_oo is None
+        if j or k:
+            b_ov, b_oo, b_vv = _fitted_blocks(self.mf, self.c_o, self.c_v, need_j=j, need_k=k)
+            if j:
+                self.b_ov = b_ov
+            if k:
+                self.b_oo, self.b_vv = b_oo, b_vv
+
+    def held_MB(self) -> dict[str, float]:
+        """Memory held now (MB): the density on the grid, the window orbitals
+        on the grid, B_ov, and B_oo with B_vv."""
+        def mb(*arrays) -> float:
+            return sum(a.nbytes for a in arrays if a is not None) / 1e6
+
+        orbitals = [a for item in (self._orbitals or ()) for a in item[:3]]
+        return {"density": mb(self._rho_a), "orbitals": mb(*orbitals), "b_ov": mb(self.b_ov),
+                "b_oo_vv": mb(self.b_oo, self.b_vv)}
+
+
+class _XCKernel:
+    """f_xc contracted with window transition densities on a grid (LDA/GGA)."""
+
+    def __init__(self, setup: OperatorSetup, singlet: bool):
+        self.setup = setup
+        self.fxc = setup.xc_kernel(singlet)  # (nvar, nvar, ngrid)
 
     def __call__(self, z: FloatArray) -> FloatArray:
         """(f_xc Z)_jb for Z of shape (n, no, nv)."""
@@ -207,7 +319,7 @@ class _XCKernel:
         out = np.zeros_like(z)
         nvar = self.fxc.shape[0]
         chunk = max(1, int(_CHUNK_MB * 1e6 / (8 * _GRID_BLOCK * (nvar + 1) * nv)))
-        for phi_o, phi_v, weight, p0, p1 in self._orbital_blocks():
+        for phi_o, phi_v, weight, p0, p1 in self.setup.orbital_blocks():
             f = self.fxc[:, :, p0:p1]
             for c0 in range(0, n, chunk):
                 zc = z[c0:c0 + chunk]
@@ -239,7 +351,7 @@ class _XCKernel:
 
 
 def tda_operator(mf: Any, singlet: bool, window: OrbitalWindow, *, environment_response: bool = False,
-                 max_memory_MB: float = 2000.0):
+                 max_memory_MB: float = 2000.0, setup: OperatorSetup | None = None):
     """The TDA operator of a closed-shell density-fitted SCF on ``window``.
 
     Parameters
@@ -251,6 +363,12 @@ def tda_operator(mf: Any, singlet: bool, window: OrbitalWindow, *, environment_r
     environment_response : bool
         Add the induced dipoles' answer to the transition density (singlets,
         polarizable environments: PySCF's ``with_solvent._B_dot_x``).
+    max_memory_MB : float
+        Memory for PySCF's grid loops.
+    setup : OperatorSetup, optional
+        The shared set-up of this SCF and window (the other spin's operator
+        built it, or builds it now); its key must be :func:`setup_key` of
+        (``mf``, ``window``). None: a private one (nothing shared).
 
     Returns
     -------
@@ -259,24 +377,23 @@ def tda_operator(mf: Any, singlet: bool, window: OrbitalWindow, *, environment_r
     hdiag : ndarray, shape (no_w*nv_w,)
         Orbital-energy differences (the operator's diagonal without coupling,
         the Davidson preconditioner of PySCF's route).
-    """
-    from pyscf import dft
 
-    mo_e = np.asarray(mf.mo_energy, float)
-    occ_mask = np.asarray(mf.mo_occ) > 0
-    c_all = np.asarray(mf.mo_coeff, float)
-    c_o = c_all[:, occ_mask][:, window.occ]
-    c_v = c_all[:, ~occ_mask][:, window.vir]
-    e_o = mo_e[occ_mask][window.occ]
-    e_v = mo_e[~occ_mask][window.vir]
-    no, nv = len(e_o), len(e_v)
-    e_ia = e_v[None, :] - e_o[:, None]
-    if isinstance(mf, dft.rks.KohnShamDFT):
-        _omega, _alpha, hyb = mf._numint.rsh_and_hybrid_coeff(mf.xc, mf.mol.spin)
-        xc = _XCKernel(mf, c_o, c_v, singlet, max_memory_MB) if mf._numint._xc_type(mf.xc) != "HF" else None
-    else:
-        hyb, xc = 1.0, None
-    b_ov, b_oo, b_vv = _fitted_blocks(mf, c_o, c_v, need_j=singlet, need_k=hyb != 0)
+    Raises
+    ------
+    InputError
+        ``setup`` belongs to another SCF, grid or window.
+    """
+    if setup is None:
+        setup = OperatorSetup(mf, window, max_memory_MB)
+    elif setup.key != setup_key(mf, window):
+        raise InputError("the operator set-up belongs to another SCF, response grid or orbital window; build a "
+                         "new OperatorSetup for this one.")
+    c_o, c_v, e_ia, hyb = setup.c_o, setup.c_v, setup.e_ia, setup.hyb
+    no, nv = e_ia.shape
+    xc = _XCKernel(setup, singlet) if setup.has_xc else None
+    setup.fitted(need_j=singlet, need_k=hyb != 0)
+    b_ov = setup.b_ov if singlet else None
+    b_oo, b_vv = (setup.b_oo, setup.b_vv) if hyb != 0 else (None, None)
     solvent = getattr(mf, "with_solvent", None) if environment_response else None
 
     def vind(xs: FloatArray) -> FloatArray:
