@@ -68,9 +68,9 @@ def demo_study(out_dir: str, *, quick: bool = False, workers: int | None = None,
     a few molecules with and without Thole polarization, S1 and T1 checked
     against the sample's QM sites), the export. The fast settings (sTDA
     refined by two full-TDA subspace steps on a B3LYP/6-31G ground state: S1
-    and T1 close to full TDA) keep the whole study to about 24 minutes of CPU
-    time, an estimated 11 minutes on 2 idle cores (README: the measured cost
-    of each stage; the demo prints its own at the end).
+    and T1 close to full TDA) keep the whole study to about 16 minutes of CPU
+    time, 9 minutes on 2 idle cores (measured; README: the cost of each
+    stage; the demo prints its own at the end).
 
     One stage serves the next: the scanned molecule is one of the sampled
     ones and the sample's radius is one of the scan's, so that site comes from
