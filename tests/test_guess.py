@@ -101,3 +101,19 @@ def test_engine_and_worker_start_a_new_copy_from_the_last_one(tmp_path):
     assert (rows.status == "done").all()
     metas = {int(mol): json.loads(st.get(k).result_json)["meta"]["timings_s"] for mol, k in zip(rows.index, rows.key)}
     assert "copy_guess_rmsd_A" not in metas[2] and metas[3]["copy_guess_rmsd_A"] < 0.2
+
+
+def test_a_guess_that_fails_is_dropped_before_the_slower_fallbacks():
+    """A given guess DIIS cannot converge from (a nonsense density here; in a film,
+    another copy's aligned density can be one) is dropped: DIIS is rerun from
+    PySCF's atomic guess (route "fresh-guess") instead of going on to the level
+    shift and the second-order solver, and reaches the ground state of a cold
+    start (the variational minimum is unique here: HF/STO-3G formaldehyde)."""
+    m = Method(xc="hf", basis="sto-3g", max_cycle=10)
+    cold = make_scf(build_molecule(SYM, XYZ, m), m)
+    assert run_scf(cold, m) == (True, "diis")
+    n = cold.mol.nao
+    a = np.random.default_rng(0).standard_normal((n, n))
+    mf = make_scf(build_molecule(SYM, XYZ, m), m)
+    assert run_scf(mf, m, 5.0 * (a + a.T)) == (True, "fresh-guess")
+    assert mf.e_tot == pytest.approx(cold.e_tot, abs=1e-8)

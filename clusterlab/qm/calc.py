@@ -281,10 +281,22 @@ def make_scf(mol, method: Method, embedding: Embedding = VACUUM, *, unrestricted
 
 def run_scf(mf, method: Method, dm0=None) -> tuple[bool, str]:
     """Run the SCF with the documented fallback; returns (converged, route),
-    route one of "diis", "level-shift", "newton", "failed"."""
+    route one of "diis", "fresh-guess", "level-shift", "newton", "failed".
+
+    A given guess (``dm0``: an earlier density, another copy's aligned density)
+    that DIIS does not converge from is dropped first: DIIS is retried from
+    PySCF's own atomic guess ("fresh-guess") before the level shift and the
+    second-order solver (a copy with other torsions can give a guess worse
+    than none)."""
     mf.kernel(dm0=dm0)
     if mf.converged:
         return True, "diis"
+    if dm0 is not None:
+        log.warning("SCF not converged in %d cycles from the given guess; retrying from PySCF's atomic guess",
+                    method.max_cycle)
+        mf.kernel()
+        if mf.converged:
+            return True, "fresh-guess"
     log.warning("SCF not converged in %d cycles; retrying with level shift %.2f Eh", method.max_cycle,
                 FALLBACK_LEVEL_SHIFT_EH)
     mf.level_shift = FALLBACK_LEVEL_SHIFT_EH

@@ -181,8 +181,9 @@ class ExcitationResult:
         Ground-state total energies (nan if not converged / not computed).
     scf_converged, vacuum_scf_converged : bool
     scf_route, vacuum_scf_route : str
-        Which SCF attempt converged: "diis", "level-shift", "newton" or
-        "failed".
+        Which SCF attempt converged: "diis", "fresh-guess" (DIIS again from
+        PySCF's atomic guess after the given guess failed), "level-shift",
+        "newton" or "failed".
     ground_dipole_D, vacuum_dipole_D : list of 3 float
         Ground-state dipole moment (Debye; QM nuclei and electrons, origin at
         the QM centre of nuclear charge).
