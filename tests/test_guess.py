@@ -14,7 +14,7 @@ import pytest
 from scipy.spatial.transform import Rotation
 
 from clusterlab.errors import InputError
-from clusterlab.qm.calc import build_molecule, make_scf, run_scf
+from clusterlab.qm.calc import build_molecule, guess_cycles, make_scf, run_scf
 from clusterlab.qm.guess import aligned_density, kabsch_rotation
 from clusterlab.qm.method import Method
 
@@ -117,3 +117,6 @@ def test_a_guess_that_fails_is_dropped_before_the_slower_fallbacks():
     mf = make_scf(build_molecule(SYM, XYZ, m), m)
     assert run_scf(mf, m, 5.0 * (a + a.T)) == (True, "fresh-guess")
     assert mf.e_tot == pytest.approx(cold.e_tot, abs=1e-8)
+    # the guessed attempt is capped (a quarter of max_cycle, at least 15), the fresh one is not
+    assert guess_cycles(Method(xc="hf", basis="sto-3g")) == 25 and guess_cycles(m) == 10
+    assert mf.max_cycle == m.max_cycle
