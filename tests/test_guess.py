@@ -111,12 +111,19 @@ def test_a_guess_that_fails_is_dropped_before_the_slower_fallbacks():
     start (the variational minimum is unique here: HF/STO-3G formaldehyde)."""
     m = Method(xc="hf", basis="sto-3g", max_cycle=10)
     cold = make_scf(build_molecule(SYM, XYZ, m), m)
+    cold_cycles = []
+    cold.callback = lambda env: cold_cycles.append(env["cycle"])
     assert run_scf(cold, m) == (True, "diis")
     n = cold.mol.nao
     a = np.random.default_rng(0).standard_normal((n, n))
     mf = make_scf(build_molecule(SYM, XYZ, m), m)
+    cycles = []
+    mf.callback = lambda env: cycles.append(env["cycle"])
     assert run_scf(mf, m, 5.0 * (a + a.T)) == (True, "fresh-guess")
     assert mf.e_tot == pytest.approx(cold.e_tot, abs=1e-8)
+    # the retry is a true cold start (not a restart from the failed orbitals): the same cycles as one
+    second = cycles[cycles.index(0, 1):]
+    assert second == cold_cycles
     # the guessed attempt is capped (a quarter of max_cycle, at least 15), the fresh one is not
     assert guess_cycles(Method(xc="hf", basis="sto-3g")) == 25 and guess_cycles(m) == 10
     assert mf.max_cycle == m.max_cycle

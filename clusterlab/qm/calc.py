@@ -308,7 +308,8 @@ def run_scf(mf, method: Method, dm0=None) -> tuple[bool, str]:
             return True, "diis"
         log.warning("SCF not converged in %d cycles from the given guess; retrying from PySCF's atomic guess",
                     guess_cycles(method))
-        mf.kernel()
+        # explicitly: a bare kernel() would restart from the failed orbitals the SCF object now holds
+        mf.kernel(dm0=mf.get_init_guess(mf.mol, mf.init_guess))
         if mf.converged:
             return True, "fresh-guess"
     else:
