@@ -350,6 +350,17 @@ def _init_process_worker(n_threads: int | None, start_queue: Any) -> None:
     _exit_with_parent()
 
 
+def worker_pool(n_workers: int, threads_per_worker: int | None, *, ctx: Any = None,
+                start_queue: Any = None) -> cf.ProcessPoolExecutor:
+    """Local worker processes as every clusterlab pool starts them: spawned
+    (``ctx``; default the "spawn" context: fork is unsafe with OpenMP/BLAS
+    threads), each limited to ``threads_per_worker`` threads, ignoring Ctrl-C
+    and ending with its parent (:func:`_init_process_worker`)."""
+    ctx = multiprocessing.get_context("spawn") if ctx is None else ctx
+    return cf.ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx, initializer=_init_process_worker,
+                                  initargs=(threads_per_worker, start_queue))
+
+
 #: how often a pool worker checks that its parent (the client) is alive (s)
 PARENT_POLL_S = 0.5
 
@@ -532,12 +543,7 @@ class ProcessRunner(Runner):
         # feeder thread that os._exit or a segfault would cut off).  A fresh
         # queue per pool: a worker killed inside put() may leave its lock taken.
         start_q = ctx.SimpleQueue()
-        pool = cf.ProcessPoolExecutor(
-            max_workers=self.n_workers, mp_context=ctx,
-            initializer=_init_process_worker,
-            initargs=(self.threads_per_worker, start_q),
-        )
-        return pool, start_q
+        return worker_pool(self.n_workers, self.threads_per_worker, ctx=ctx, start_queue=start_q), start_q
 
     def execute(self, tasks, fn_ref, *, retries, cancel):
         ctx = multiprocessing.get_context(self.start_method)

@@ -302,8 +302,10 @@ def run_scf(mf, method: Method, dm0=None) -> tuple[bool, str]:
     found before it costs a whole cold SCF."""
     if dm0 is not None:
         mf.max_cycle = guess_cycles(method)
-        mf.kernel(dm0=dm0)
-        mf.max_cycle = method.max_cycle
+        try:
+            mf.kernel(dm0=dm0)
+        finally:
+            mf.max_cycle = method.max_cycle
         if mf.converged:
             return True, "diis"
         log.warning("SCF not converged in %d cycles from the given guess; retrying from PySCF's atomic guess",

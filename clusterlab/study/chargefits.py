@@ -36,10 +36,10 @@ from ..electrostatics.conformers import bonds_by_distance, equivalence_classes, 
 from ..electrostatics.pairsum import environment_potential
 from ..errors import InputError
 from ..progress import progress_bar
-from ..runner import _init_process_worker, default_workers
 from ..qm.finitefield import differential_polarizability
 from ..qm.method import Method, require_method
 from ..qm.statecharges import state_charges
+from ..runner import default_workers, worker_pool
 from .filmmap import SHIFT_STATES, check_radius_A, check_rule, frame_families, molecule_net_charge
 from .jsonio import json_of_kind, table_from_dict, table_to_dict
 
@@ -278,11 +278,8 @@ def add_field_response(charges: StateChargeSet, film: "Film", method: Method, *,
                                                    steps_V_A=steps_V_A, on_field=lambda: bar.update(1)))
     else:
         import concurrent.futures as cf
-        import multiprocessing
 
-        ctx = multiprocessing.get_context("spawn")  # fork is unsafe with OpenMP threads (runner notes)
-        with cf.ProcessPoolExecutor(max_workers=n_proc, mp_context=ctx, initializer=_init_process_worker,
-                                    initargs=(method.threads or max(1, default_workers() // n_proc), None)) as pool:
+        with worker_pool(n_proc, method.threads or max(1, default_workers() // n_proc)) as pool:
             futures = {pool.submit(differential_polarizability, syms, pos, method, states=list(states),
                                    charge=q, steps_V_A=list(steps_V_A)): ref for ref, syms, pos, q in jobs}
             for fut in cf.as_completed(futures):
