@@ -6,12 +6,15 @@ film, frame 0, cut radius ``--radius`` (all environment molecules whose
 atoms come within it; fixed point charges, 1 Å Gaussian width on both sides).
 
 * **plain**: what a skilled PySCF user writes for the same numbers: B3LYP/6-31G
-  with density fitting and grid level 1, the vacuum SCF, then the embedded
+  with density fitting and grid level 1 (``max_memory`` raised so the fitting
+  tensor stays in memory), the vacuum SCF, then the embedded
   SCF (``qmmm.mm_charge``) started from the vacuum density, and PySCF's own
   TDA solver (``td.TDA()``, 3 singlets and 3 triplets, its default Davidson)
   on each. Shifts are embedded minus vacuum of the lowest state.
 * **fast**: ``clusterlab.excitations`` with the ``fast-large`` preset: the
-  same functional, basis, fitting and grid; the refined-sTDA response with
+  same functional, basis and fitting, SCF and response on grid level 0, SCF
+  to 1e-7 Eh, one fitting tensor for the vacuum and embedded SCFs, the
+  charge-transfer measures from one pass over the grid; the refined-sTDA response with
   the MO-basis density-fitted TDA operator on an orbital window
   (``clusterlab.qm.mokernel``); each vacuum SCF started from the previous
   copy's orbitals rotated onto it (``clusterlab.qm.guess``).
@@ -53,10 +56,16 @@ def _cpu() -> float:
     return r.ru_utime + r.ru_stime
 
 
+#: The plain side's PySCF memory budget: a skilled user raises PySCF's 4,000 MB default so the 1.9 GB
+#: fitting tensor stays in memory (it is written to disk otherwise), as clusterlab does
+#: (``clusterlab.qm.calc.scf_memory_MB``): the ratio then holds no lever a user would set by hand.
+PLAIN_MEMORY_MB = 12000
+
+
 def plain_site(cluster, nstates: int = 3) -> dict:
     """The plain PySCF route (no clusterlab code)."""
     mol = gto.M(atom=[(s, tuple(p)) for s, p in zip(cluster.qm_symbols, cluster.qm_positions)], basis="6-31g",
-                unit="Angstrom", verbose=0)
+                unit="Angstrom", verbose=0, max_memory=PLAIN_MEMORY_MB)
 
     def states(mf):
         out = {}

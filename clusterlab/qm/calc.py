@@ -207,9 +207,50 @@ def check_method(method: Method, symbols: Sequence[str]) -> None:
                          "spelling (e.g. '6-31g', 'def2-svp', 'cc-pvdz') or pick a basis that covers them.")
 
 
+#: Environment variable that sets the memory (MB) PySCF may plan with, per process.
+MEMORY_ENV = "CLUSTERLAB_SCF_MEMORY_MB"
+
+
+def scf_memory_MB() -> float:
+    """The memory PySCF may plan with in this process (``max_memory``, MB).
+
+    PySCF keeps a density-fitting tensor in memory only when it fits in 90 %
+    of ``max_memory`` minus what the process already holds, else it writes
+    it to a scratch file and reads it back in every SCF cycle. Its default
+    (4,000 MB) sends the doped film's 60-atom emitter (a 1.9 GB tensor) to
+    disk as soon as the process holds 1.9 GB, which a worker does after its
+    first site (measured: about 50 s instead of 8 s per SCF cycle). So the
+    budget is half the memory available when the molecule is built (never
+    less than PySCF's default), or ``$CLUSTERLAB_SCF_MEMORY_MB``.
+    """
+    import os
+
+    from pyscf import lib
+
+    default = float(lib.param.MAX_MEMORY)
+    text = os.environ.get(MEMORY_ENV)
+    if text:
+        try:
+            value = float(text)
+        except ValueError:
+            raise InputError(f"${MEMORY_ENV}={text!r} must be a number of megabytes.") from None
+        if not value > 0:
+            raise InputError(f"${MEMORY_ENV}={text!r} must be a positive number of megabytes.")
+        return value
+    try:
+        with open("/proc/meminfo") as fh:
+            info = {ln.split(":")[0]: ln.split()[1] for ln in fh if ":" in ln}
+        available = float(info["MemAvailable"]) / 1024.0
+    except (OSError, KeyError, ValueError, IndexError):  # not Linux: PySCF's default
+        return default
+    return max(default, 0.5 * available)
+
+
 def build_molecule(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method, *, charge: int = 0,
                    spin: int = 0):
-    """A built ``pyscf.gto.Mole`` (Å, the method's basis, quiet).
+    """A built ``pyscf.gto.Mole`` (Å, the method's basis, quiet, with the
+    memory budget of :func:`scf_memory_MB`, which its SCF and
+    density-fitting objects inherit).
 
     ``spin`` is 2S (number of unpaired electrons), as PySCF counts it.
     """
@@ -228,6 +269,7 @@ def build_molecule(symbols: Sequence[str], positions_A: npt.ArrayLike, method: M
     mol.charge = int(charge)
     mol.spin = int(spin)
     mol.verbose = 0
+    mol.max_memory = scf_memory_MB()
     mol.build()
     return mol
 
@@ -378,7 +420,7 @@ class _ResponseShare:
     MO-basis operator's spin-independent set-up
     (:class:`~clusterlab.qm.mokernel.OperatorSetup`). One per SCF, replaced
     when the SCF's orbitals change (keys are digests of the numbers), dropped
-    by :func:`_release_fitted_integrals`."""
+    by :func:`release_fitted_integrals`."""
 
     response_key: tuple | None = None
     mf_resp: Any = None
@@ -620,13 +662,15 @@ class Calculation:
     unconverged_energy_Eh: float = NAN
 
 
-def _ct_measures(mf, mol, calc: Calculation, rs: ResponseStates, method: Method):
+def _ct_measures(mf, mol, calc: Calculation) -> dict[str, tuple[FloatArray, FloatArray, list[str]]]:
+    """Charge-transfer measures (hole-electron distance, Peach Λ, leading
+    pairs) of every solved kind, with one evaluation of the orbitals the
+    states are made of on the SCF grid (block by block)."""
     nocc = int((calc.mo_occ > 0).sum())
     z = mol.atom_charges()
     origin = z @ mol.atom_coords() / z.sum()
     with mol.with_common_orig(origin):
         r_ao = mol.intor_symmetric("int1e_r", comp=3)
-    dist = _ct.hole_electron_distance_A(rs.amplitudes, calc.mo_coeff, nocc, r_ao)
     grids = getattr(mf, "grids", None)
     if grids is None or getattr(grids, "coords", None) is None:
         from pyscf.dft import gen_grid
@@ -634,17 +678,18 @@ def _ct_measures(mf, mol, calc: Calculation, rs: ResponseStates, method: Method)
         grids = gen_grid.Grids(mol)
         grids.level = 1
         grids.build()
-    from pyscf.dft import numint
-
-    ao = numint.eval_ao(mol, grids.coords)
-    lam = _ct.peach_lambda(rs.amplitudes, ao @ calc.mo_coeff, grids.weights, nocc)
-    return dist, lam, _ct.dominant_pairs(rs.amplitudes, nocc)
+    amps = {kind: rs.amplitudes for kind, rs in calc.states.items()}
+    overlaps = _ct.orbital_overlaps(mol, grids.coords, grids.weights, calc.mo_coeff, nocc,
+                                    _ct.significant_pairs(list(amps.values())))
+    return {kind: (_ct.hole_electron_distance_A(a, calc.mo_coeff, nocc, r_ao), _ct.lambda_from_overlaps(a, overlaps),
+                   _ct.dominant_pairs(a, nocc)) for kind, a in amps.items()}
 
 
 def calculate(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method, embedding: Embedding = VACUUM, *,
               charge: int = 0, guess_dm=None, warm_from: "Calculation | None" = None, with_states: bool = True,
               n_states: Mapping[str, int] | None = None, progress: Callable[[str], None] | None = None,
-              tag: str = "") -> Calculation:
+              tag: str = "", integrals_from: "Calculation | None" = None, keep_integrals: bool = False
+              ) -> Calculation:
     """Closed-shell SCF of a QM region in ``embedding`` and its excited states.
 
     Parameters
@@ -666,10 +711,20 @@ def calculate(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method
     progress : callable(str), optional
     tag : str
         Prefix of the progress messages.
+    integrals_from : Calculation, optional
+        A calculation of the same atoms, basis and fitting basis (another
+        environment, another charge) whose density-fitting tensor this one
+        reuses instead of rebuilding it (see :func:`share_fitted_integrals`).
+    keep_integrals : bool
+        Keep the density-fitting tensor after the states are solved (for a
+        later ``integrals_from``); the caller then frees it with
+        :func:`release_fitted_integrals`.
     """
     t0 = time.perf_counter()
     mol = build_molecule(symbols, positions_A, method, charge=charge)
     mf = make_scf(mol, method, embedding)
+    if integrals_from is not None:
+        share_fitted_integrals(integrals_from.mf, mf)
     if progress:
         progress(f"{tag} SCF")
     conv, route = run_scf(mf, method, guess_dm)
@@ -680,10 +735,11 @@ def calculate(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method
                        mo_energy=np.asarray(mf.mo_energy), s_ao=mol.intor_symmetric("int1e_ovlp"),
                        dipole_D=dipole_D(mol, dm) if conv else [NAN] * 3, mf=mf, mol=mol)
     calc.timings["scf"] = t1 - t0
-    if not conv:
-        calc.unconverged_energy_Eh = float(mf.e_tot)
-        return calc
-    if not with_states:
+    if not conv or not with_states:
+        if not conv:
+            calc.unconverged_energy_Eh = float(mf.e_tot)
+        if not keep_integrals:
+            release_fitted_integrals(mf)
         return calc
     counts = {"singlet": method.n_singlets, "triplet": method.n_triplets} if n_states is None else dict(n_states)
     for kind in ("singlet", "triplet"):
@@ -701,19 +757,53 @@ def calculate(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method
         calc.vectors[kind] = rs.extra.pop("solved_vectors", rs.amplitudes)
         calc.timings[f"{kind}s"] = time.perf_counter() - t
         t = time.perf_counter()
-        calc.ct[kind] = _ct_measures(mf, mol, calc, rs, method)
-        calc.timings["ct_measures"] = calc.timings.get("ct_measures", 0.0) + time.perf_counter() - t
-    _release_fitted_integrals(mf)
+    if calc.states:
+        t = time.perf_counter()
+        calc.ct.update(_ct_measures(mf, mol, calc))
+        calc.timings["ct_measures"] = time.perf_counter() - t
+    if not keep_integrals:
+        release_fitted_integrals(mf)
     return calc
 
 
-def _release_fitted_integrals(mf) -> None:
+def _fitting_key(mf) -> tuple | None:
+    """What a density-fitting tensor depends on: atoms, positions, basis and
+    fitting basis (not the charge, the spin or the environment). None for an
+    SCF without density fitting."""
+    df = getattr(mf, "with_df", None)
+    if df is None:
+        return None
+    mol = mf.mol
+    return (tuple(mol.elements), mol.atom_coords().round(10).tobytes(), repr(mol.basis), repr(df.auxbasis),
+            mol.cart)
+
+
+def share_fitted_integrals(source_mf, mf) -> bool:
+    """Give ``mf`` the density-fitting object of ``source_mf`` when both fit
+    the same atoms in the same basis and fitting basis; returns whether it
+    did. The three-index tensor depends on neither the environment nor the
+    charge, so the vacuum, embedded, fixed-charge and ion SCFs of one QM
+    region can share one (the doped film's 60-atom emitter: 1.9 GB and about
+    15 s per build, measured in ``bench/bench_large_site.py``)."""
+    if source_mf is None or source_mf is mf:
+        return False
+    key = _fitting_key(mf)
+    if key is None or key != _fitting_key(source_mf):
+        return False
+    mf.with_df = source_mf.with_df
+    return True
+
+
+def release_fitted_integrals(mf) -> None:
     """Drop the SCF's in-memory density-fitting tensor once its states are
     solved: a kept Calculation (warm starts hold several) would otherwise hold
     naux*nao^2/2 numbers (1.9 GB for a 60-atom molecule in 6-31G). PySCF
     rebuilds it if the SCF object is used again. The response solves' shared
     set-up (response-grid copy, operator set-up: orbitals on the grid, fitted
-    blocks) goes with it."""
+    blocks) goes with it. A tensor shared by several SCFs
+    (:func:`share_fitted_integrals`) goes for all of them."""
+    if mf is None:
+        return
     vars(mf).pop(_SHARE_ATTR, None)
     df = getattr(mf, "with_df", None)
     if df is not None and isinstance(getattr(df, "_cderi", None), np.ndarray):
@@ -736,30 +826,40 @@ class IonState:
 
 def ion_states(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method, embedding: Embedding = VACUUM, *,
                neutral: Calculation | None = None, charge: int = 0, ions: Sequence[str] = ("cation", "anion"),
-               keep_density: bool = False) -> dict[str, IonState]:
+               keep_density: bool = False, integrals_from: Calculation | None = None) -> dict[str, IonState]:
     """Cation (one electron fewer) and anion (one more) of a closed-shell QM
     region by unrestricted SCF in ``embedding``, vertical (same geometry).
 
     The converged ``neutral`` density (halved per spin) is the SCF guess.
-    An unconverged ion has energy nan.
+    An unconverged ion has energy nan. ``integrals_from``: a calculation of
+    the same atoms whose density-fitting tensor the ions reuse (see
+    :func:`share_fitted_integrals`); without one, the ions share the first
+    ion's tensor, freed when they are done.
     """
     out: dict[str, IonState] = {}
-    for name in ions:
-        dq = {"cation": +1, "anion": -1}.get(name)
-        if dq is None:
-            raise InputError(f"{name!r} is not an ion; use 'cation' or 'anion'.")
-        mol = build_molecule(symbols, positions_A, method, charge=charge + dq, spin=1)
-        mf = make_scf(mol, method, embedding, unrestricted=True)
-        dm0 = None
-        if neutral is not None and neutral.converged:
-            dm0 = np.array([neutral.dm / 2, neutral.dm / 2])
-        conv, route = run_scf(mf, method, dm0)
-        dm = None
-        if keep_density:
-            d = np.asarray(mf.make_rdm1())
-            dm = d[0] + d[1]
-        out[name] = IonState(name=name, charge=charge + dq, energy_Eh=float(mf.e_tot) if conv else NAN,
-                             converged=bool(conv), route=route, dm=dm, mol=mol if keep_density else None)
+    source = integrals_from.mf if integrals_from is not None else None
+    own = None  # the first ion's SCF when the ions build their own tensor
+    try:
+        for name in ions:
+            dq = {"cation": +1, "anion": -1}.get(name)
+            if dq is None:
+                raise InputError(f"{name!r} is not an ion; use 'cation' or 'anion'.")
+            mol = build_molecule(symbols, positions_A, method, charge=charge + dq, spin=1)
+            mf = make_scf(mol, method, embedding, unrestricted=True)
+            if not (share_fitted_integrals(source, mf) or share_fitted_integrals(own, mf)) and own is None:
+                own = mf
+            dm0 = None
+            if neutral is not None and neutral.converged:
+                dm0 = np.array([neutral.dm / 2, neutral.dm / 2])
+            conv, route = run_scf(mf, method, dm0)
+            dm = None
+            if keep_density:
+                d = np.asarray(mf.make_rdm1())
+                dm = d[0] + d[1]
+            out[name] = IonState(name=name, charge=charge + dq, energy_Eh=float(mf.e_tot) if conv else NAN,
+                                 converged=bool(conv), route=route, dm=dm, mol=mol if keep_density else None)
+    finally:
+        release_fitted_integrals(own)
     return out
 
 

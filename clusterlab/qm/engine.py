@@ -21,6 +21,7 @@ energy that depends on it is ``nan`` with ``converged=False``, or
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import time
 import warnings
@@ -45,6 +46,7 @@ from .calc import (
     ion_states,
     n_electrons,
     omp_threads,
+    release_fitted_integrals,
 )
 from .following import assign_states, transition_overlaps
 from .induction import induced_dipole_options
@@ -314,7 +316,8 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: "bool | Calculatio
     log.info("clusterlab.qm: %s; %d QM atoms, %d charges", method.describe(), cluster.n_qm_atoms, len(env_q))
     guess_dm, guess_calc = _guess_parts(guess)
     timings: dict[str, float] = {}
-    with omp_threads(method.threads):
+    held: list[Calculation] = []  # calculations whose fitting tensor the next ones reuse; freed at the end
+    with omp_threads(method.threads), _holding(held):
         vac: Calculation | None = None
         if isinstance(vacuum, Calculation):
             vac = vacuum
@@ -322,7 +325,8 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: "bool | Calculatio
             t = time.perf_counter()
             vac_dm = _copy_guess_dm(copy_guess, cluster, method, timings) if copy_guess is not None else None
             vac = calculate(*qm, VACUUM, charge=cluster.qm_charge, guess_dm=vac_dm, progress=progress,
-                            tag="vacuum")
+                            tag="vacuum", keep_integrals=True)
+            held.append(vac)
             timings["vacuum"] = time.perf_counter() - t
             for k, v in vac.timings.items():
                 timings[f"vacuum_{k}"] = v
@@ -338,12 +342,16 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: "bool | Calculatio
                 ref_dm, ref_calc = _reference_guess(guess, guess_dm, guess_calc)
                 t = time.perf_counter()
                 fixed = calculate(*qm, embedding.fixed(), charge=cluster.qm_charge, guess_dm=ref_dm,
-                                  warm_from=ref_calc, progress=progress, tag="fixed charges")
+                                  warm_from=ref_calc, progress=progress, tag="fixed charges",
+                                  integrals_from=held[-1] if held else None, keep_integrals=True)
+                held.append(fixed)
                 timings["fixed_charges"] = time.perf_counter() - t
                 if fixed.converged:  # the polarizable SCF and Davidson start from the fixed-charge solution
                     guess_dm, guess_calc = fixed.dm, fixed
             emb = calculate(*qm, embedding, charge=cluster.qm_charge, guess_dm=guess_dm, warm_from=guess_calc,
-                            progress=progress, tag="embedded")
+                            progress=progress, tag="embedded", integrals_from=held[-1] if held else None,
+                            keep_integrals=method.charged_states)
+            held.append(emb)
         if method.is_polarizable and method.polarization_reference and not embedding.is_polarizable:
             fixed = emb  # no dipole inside the inner radius: the calculation is its own reference
         timings.update(emb.timings)
@@ -375,6 +383,18 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: "bool | Calculatio
         warm_start=WarmStart(qm_fingerprint=cluster.fingerprint_qm(), ground=emb, vacuum=vac, fixed=fixed))
     _check_failure(res, raise_on_failure)
     return res
+
+
+@contextlib.contextmanager
+def _holding(held: list[Calculation]):
+    """Free the fitting tensors of ``held`` calculations when the block ends
+    (also on an error): they were kept only for the next SCFs of the same QM
+    region (:func:`~clusterlab.qm.calc.share_fitted_integrals`)."""
+    try:
+        yield held
+    finally:
+        for c in held:
+            release_fitted_integrals(c.mf)
 
 
 def _check_failure(res: ExcitationResult, raise_on_failure: bool) -> None:
@@ -439,7 +459,7 @@ def polarizable_meta(embedding: Embedding, method: Method) -> dict[str, Any]:
 def _ion_energies(cluster: Cluster, method: Method, neutral: Calculation, embedding: Embedding
                   ) -> tuple[dict[str, float], dict[str, bool]]:
     ions = ion_states(cluster.qm_symbols, cluster.qm_positions, method, embedding, neutral=neutral,
-                      charge=cluster.qm_charge)
+                      charge=cluster.qm_charge, integrals_from=neutral)
     energies = {"neutral": neutral.energy_Eh, **{k: v.energy_Eh for k, v in ions.items()}}
     flags = {"neutral": neutral.converged, **{k: v.converged for k, v in ions.items()}}
     return energies, flags
