@@ -127,3 +127,24 @@ def test_a_guess_that_fails_is_dropped_before_the_slower_fallbacks():
     # the guessed attempt is capped (a quarter of max_cycle, at least 15), the fresh one is not
     assert guess_cycles(Method(xc="hf", basis="sto-3g")) == 25 and guess_cycles(m) == 10
     assert mf.max_cycle == m.max_cycle
+
+
+def test_a_copy_that_does_not_superpose_gets_no_guess():
+    """A copy with other internal coordinates (RMSD above the limit) gets no
+    aligned guess (its vacuum SCF starts cold); a near-rigid one does; the
+    RMSD is recorded either way."""
+    from clusterlab.cluster import Cluster
+    from clusterlab.qm.engine import COPY_GUESS_MAX_RMSD_A, _copy_guess_dm, excitations
+
+    m = Method(xc="hf", basis="sto-3g", n_singlets=1, n_triplets=0, charge_smearing_A=0.0)
+    a = excitations(Cluster.from_arrays(SYM, XYZ, np.zeros((0, 3)), np.zeros(0)), m)
+    bent = XYZ.copy()
+    bent[1] = [0.0, 0.0, 2.6]  # C=O pulled apart and the Hs swung round: not the same shape (RMSD 0.82 Å)
+    bent[2] = [0.0, 1.6, -0.2]
+    bent[3] = [0.0, -0.3, -1.6]
+    far = Cluster.from_arrays(SYM, bent, np.zeros((0, 3)), np.zeros(0))
+    t: dict = {}
+    assert _copy_guess_dm(a, far, m, t) is None and t["copy_guess_rmsd_A"] > COPY_GUESS_MAX_RMSD_A
+    near = Cluster.from_arrays(SYM, XYZ + 0.01 * np.arange(12).reshape(4, 3) / 12, np.zeros((0, 3)), np.zeros(0))
+    t = {}
+    assert _copy_guess_dm(a, near, m, t) is not None and t["copy_guess_rmsd_A"] < 0.05

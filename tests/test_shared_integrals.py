@@ -18,8 +18,8 @@ import numpy as np
 import pytest
 
 from clusterlab.qm import ct as _ct
-from clusterlab.qm.calc import (VACUUM, Embedding, build_molecule, calculate, ion_states, make_scf,
-                                release_fitted_integrals, share_fitted_integrals)
+from clusterlab.qm.calc import (VACUUM, Embedding, build_molecule, calculate, clear_fitting_tensors, ion_states,
+                                make_scf)
 from clusterlab.qm.method import Method
 
 SYM = ["C", "O", "H", "H"]
@@ -34,43 +34,60 @@ def _energies(c):
     return np.array([c.energy_Eh, *c.states["singlet"].energies_Eh, *c.states["triplet"].energies_Eh])
 
 
-def test_embedded_scf_on_the_vacuum_tensor_equals_its_own_build():
-    vac = calculate(SYM, XYZ, M, VACUUM, keep_integrals=True)
-    assert vac.mf.with_df._cderi is not None  # kept for the next SCF
-    shared = calculate(SYM, XYZ, M, ENV, guess_dm=vac.dm, integrals_from=vac, keep_integrals=True)
-    assert shared.mf.with_df is vac.mf.with_df
-    own = calculate(SYM, XYZ, M, ENV, guess_dm=vac.dm)
-    assert own.mf.with_df is not vac.mf.with_df
-    assert np.max(np.abs(_energies(shared) - _energies(own))) < 1e-9
-    assert shared.energy_Eh != pytest.approx(vac.energy_Eh, abs=1e-4)  # the charges do act
-    # an unkept calculation frees its tensor; releasing one sharer frees it for both
-    assert own.mf.with_df._cderi is None
-    release_fitted_integrals(shared.mf)
-    assert vac.mf.with_df._cderi is None
+def _builds(monkeypatch):
+    """Count PySCF's density-fitting tensor builds."""
+    from pyscf.df import incore
+
+    n = []
+    real = incore.cholesky_eri
+
+    def counting(*a, **k):
+        n.append(1)
+        return real(*a, **k)
+
+    monkeypatch.setattr(incore, "cholesky_eri", counting)
+    return n
 
 
-def test_tensor_is_not_shared_across_geometry_or_basis():
+def test_one_tensor_serves_the_vacuum_embedded_and_ion_scfs(monkeypatch):
+    clear_fitting_tensors()
+    n = _builds(monkeypatch)
+    vac = calculate(SYM, XYZ, M, VACUUM)
+    emb = calculate(SYM, XYZ, M, ENV, guess_dm=vac.dm)
+    ions = ion_states(SYM, XYZ, M, ENV, neutral=emb)
+    assert len(n) == 1  # built once, for the vacuum SCF
+    # the same numbers as with a tensor of its own (cache emptied before each)
+    clear_fitting_tensors()
+    emb_own = calculate(SYM, XYZ, M, ENV, guess_dm=vac.dm)
+    clear_fitting_tensors()
+    ions_own = ion_states(SYM, XYZ, M, ENV, neutral=emb)
+    assert len(n) == 3
+    assert np.max(np.abs(_energies(emb) - _energies(emb_own))) < 1e-9
+    assert emb.energy_Eh != pytest.approx(vac.energy_Eh, abs=1e-4)  # the charges do act
+    for k in ("cation", "anion"):
+        assert ions[k].converged and ions[k].energy_Eh == pytest.approx(ions_own[k].energy_Eh, abs=1e-9)
+    # finished SCFs hold no tensor (warm starts keep several Calculations); PySCF rebuilds one on use
+    assert vac.mf.with_df._cderi is None and emb.mf.with_df._cderi is None
+    e = vac.mf.energy_tot(vac.dm)
+    assert e == pytest.approx(vac.energy_Eh, abs=1e-9)
+
+
+def test_tensor_is_not_shared_across_geometry_or_basis(monkeypatch):
+    clear_fitting_tensors()
     a = make_scf(build_molecule(SYM, XYZ, M), M)
+    b = make_scf(build_molecule(SYM, XYZ, M, charge=1, spin=1), M, ENV, unrestricted=True)
+    assert b.with_df is a.with_df  # charge, spin and environment do not matter
     moved = XYZ.copy()
     moved[1, 2] += 0.01
-    assert not share_fitted_integrals(a, make_scf(build_molecule(SYM, moved, M), M))
+    c = make_scf(build_molecule(SYM, moved, M), M)
+    assert c.with_df is not a.with_df
     svp = M.replace(basis="def2-svp")
-    assert not share_fitted_integrals(a, make_scf(build_molecule(SYM, XYZ, svp), svp))
+    d = make_scf(build_molecule(SYM, moved, svp), svp)
+    assert d.with_df is not c.with_df
     no_df = M.replace(density_fit=False)
-    assert not share_fitted_integrals(a, make_scf(build_molecule(SYM, XYZ, no_df), no_df))
-    b = make_scf(build_molecule(SYM, XYZ, M, charge=1, spin=1), M, ENV, unrestricted=True)
-    assert share_fitted_integrals(a, b) and b.with_df is a.with_df  # charge and environment do not matter
-
-
-def test_ions_on_the_neutral_tensor_equal_their_own_builds():
-    neutral = calculate(SYM, XYZ, M, ENV, with_states=False, keep_integrals=True)
-    shared = ion_states(SYM, XYZ, M, ENV, neutral=neutral, integrals_from=neutral)
-    own = ion_states(SYM, XYZ, M, ENV, neutral=neutral)
-    for k in ("cation", "anion"):
-        assert shared[k].converged and own[k].converged
-        assert shared[k].energy_Eh == pytest.approx(own[k].energy_Eh, abs=1e-9)
-    assert neutral.mf.with_df._cderi is not None  # the owner frees it, not the ions
-    release_fitted_integrals(neutral.mf)
+    assert getattr(make_scf(build_molecule(SYM, moved, no_df), no_df), "with_df", None) is None
+    clear_fitting_tensors()
+    assert make_scf(build_molecule(SYM, XYZ, M), M).with_df is not a.with_df
 
 
 def test_blocked_lambda_equals_the_direct_quadrature():
@@ -106,11 +123,13 @@ def test_memory_budget_keeps_the_fitting_tensor_in_memory(monkeypatch):
 
     monkeypatch.delenv(MEMORY_ENV, raising=False)
     assert scf_memory_MB() >= lib.param.MAX_MEMORY
+    clear_fitting_tensors()  # a cached fitting object keeps the budget of the SCF that made it
     mol = build_molecule(SYM, XYZ, M)
     mf = make_scf(mol, M)
     # the SCF and its fitting object plan with the molecule's budget, never below PySCF's default
     assert mf.max_memory == mol.max_memory == mf.with_df.max_memory >= lib.param.MAX_MEMORY
     monkeypatch.setenv(MEMORY_ENV, "1234")
+    clear_fitting_tensors()
     mf = make_scf(build_molecule(SYM, XYZ, M), M)
     assert mf.max_memory == mf.with_df.max_memory == 1234.0
     for bad in ("lots", "-5"):

@@ -33,6 +33,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import logging
+import threading
 import time
 from dataclasses import dataclass, field
 from typing import Any, Callable, Mapping, Sequence
@@ -299,6 +300,7 @@ def make_scf(mol, method: Method, embedding: Embedding = VACUUM, *, unrestricted
     mf.verbose = 0
     if method.density_fit:
         mf = mf.density_fit()
+        _FITTING_TENSORS.adopt(mf)
     env_pos, env_q = embedding.positions_A, embedding.charges_e
     radii = None
     if method.charge_smearing_A > 0 and len(env_q):
@@ -688,8 +690,7 @@ def _ct_measures(mf, mol, calc: Calculation) -> dict[str, tuple[FloatArray, Floa
 def calculate(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method, embedding: Embedding = VACUUM, *,
               charge: int = 0, guess_dm=None, warm_from: "Calculation | None" = None, with_states: bool = True,
               n_states: Mapping[str, int] | None = None, progress: Callable[[str], None] | None = None,
-              tag: str = "", integrals_from: "Calculation | None" = None, keep_integrals: bool = False
-              ) -> Calculation:
+              tag: str = "") -> Calculation:
     """Closed-shell SCF of a QM region in ``embedding`` and its excited states.
 
     Parameters
@@ -711,20 +712,10 @@ def calculate(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method
     progress : callable(str), optional
     tag : str
         Prefix of the progress messages.
-    integrals_from : Calculation, optional
-        A calculation of the same atoms, basis and fitting basis (another
-        environment, another charge) whose density-fitting tensor this one
-        reuses instead of rebuilding it (see :func:`share_fitted_integrals`).
-    keep_integrals : bool
-        Keep the density-fitting tensor after the states are solved (for a
-        later ``integrals_from``); the caller then frees it with
-        :func:`release_fitted_integrals`.
     """
     t0 = time.perf_counter()
     mol = build_molecule(symbols, positions_A, method, charge=charge)
     mf = make_scf(mol, method, embedding)
-    if integrals_from is not None:
-        share_fitted_integrals(integrals_from.mf, mf)
     if progress:
         progress(f"{tag} SCF")
     conv, route = run_scf(mf, method, guess_dm)
@@ -738,8 +729,7 @@ def calculate(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method
     if not conv or not with_states:
         if not conv:
             calc.unconverged_energy_Eh = float(mf.e_tot)
-        if not keep_integrals:
-            release_fitted_integrals(mf)
+        release_fitted_integrals(mf)
         return calc
     counts = {"singlet": method.n_singlets, "triplet": method.n_triplets} if n_states is None else dict(n_states)
     for kind in ("singlet", "triplet"):
@@ -761,8 +751,7 @@ def calculate(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method
         t = time.perf_counter()
         calc.ct.update(_ct_measures(mf, mol, calc))
         calc.timings["ct_measures"] = time.perf_counter() - t
-    if not keep_integrals:
-        release_fitted_integrals(mf)
+    release_fitted_integrals(mf)
     return calc
 
 
@@ -775,39 +764,73 @@ def _fitting_key(mf) -> tuple | None:
         return None
     mol = mf.mol
     return (tuple(mol.elements), mol.atom_coords().round(10).tobytes(), repr(mol.basis), repr(df.auxbasis),
-            mol.cart)
+            bool(mol.cart))
 
 
-def share_fitted_integrals(source_mf, mf) -> bool:
-    """Give ``mf`` the density-fitting object of ``source_mf`` when both fit
-    the same atoms in the same basis and fitting basis; returns whether it
-    did. The three-index tensor depends on neither the environment nor the
-    charge, so the vacuum, embedded, fixed-charge and ion SCFs of one QM
-    region can share one (the doped film's 60-atom emitter: 1.9 GB and about
-    15 s per build, measured in ``bench/bench_large_site.py``)."""
-    if source_mf is None or source_mf is mf:
-        return False
-    key = _fitting_key(mf)
-    if key is None or key != _fitting_key(source_mf):
-        return False
-    mf.with_df = source_mf.with_df
-    return True
+class _FittingTensorCache:
+    """The density-fitting object of the last QM region this process built
+    an SCF for, handed to every later SCF of the same atoms, basis and
+    fitting basis (its vacuum, embedded, fixed-charge and ion SCFs, the
+    radii of a scan, the periodic limit, the finite fields of a reference):
+    the three-index tensor depends on neither the environment nor the
+    charge. One entry, so a process holds at most one tensor beyond the SCFs
+    it is running (the doped film's 60-atom emitter: 1.9 GB, about 15 s per
+    build; ``bench/bench_large_site.py``). A new QM region replaces it before
+    its own tensor is built."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._key: tuple | None = None
+        self._df: Any = None
+
+    def adopt(self, mf) -> bool:
+        """Give ``mf`` the cached fitting object if it fits the same atoms;
+        else make ``mf``'s own object the cached one. Returns whether ``mf``
+        got the cached object."""
+        key = _fitting_key(mf)
+        if key is None:
+            return False
+        with self._lock:
+            if key == self._key and self._df is not None:
+                mf.with_df = self._df
+                return True
+            self._key, self._df = key, mf.with_df  # filled when that SCF runs
+            return False
+
+    def clear(self) -> None:
+        with self._lock:
+            self._key = self._df = None
+
+
+_FITTING_TENSORS = _FittingTensorCache()
+
+
+def clear_fitting_tensors() -> None:
+    """Forget the cached density-fitting tensor of this process (it is freed
+    once no SCF holds it); for a long-lived process that is done with a
+    large molecule."""
+    _FITTING_TENSORS.clear()
 
 
 def release_fitted_integrals(mf) -> None:
-    """Drop the SCF's in-memory density-fitting tensor once its states are
-    solved: a kept Calculation (warm starts hold several) would otherwise hold
-    naux*nao^2/2 numbers (1.9 GB for a 60-atom molecule in 6-31G). PySCF
-    rebuilds it if the SCF object is used again. The response solves' shared
-    set-up (response-grid copy, operator set-up: orbitals on the grid, fitted
-    blocks) goes with it. A tensor shared by several SCFs
-    (:func:`share_fitted_integrals`) goes for all of them."""
+    """Detach a finished SCF from its density-fitting tensor and drop its
+    response set-up: a kept Calculation (warm starts hold several) would
+    otherwise hold naux*nao^2/2 numbers each (1.9 GB for a 60-atom molecule
+    in 6-31G) and the set-up (response-grid copy, operator set-up: orbitals
+    on the grid, fitted blocks). The SCF gets a fresh, unbuilt fitting
+    object, which PySCF builds if the SCF is used again; the tensor itself
+    stays with the process cache for the next SCF of the same atoms
+    (:class:`_FittingTensorCache`)."""
     if mf is None:
         return
     vars(mf).pop(_SHARE_ATTR, None)
-    df = getattr(mf, "with_df", None)
-    if df is not None and isinstance(getattr(df, "_cderi", None), np.ndarray):
-        df._cderi = None
+    old = getattr(mf, "with_df", None)
+    if old is not None and getattr(old, "_cderi", None) is not None:
+        from pyscf import df as pyscf_df
+
+        fresh = pyscf_df.DF(old.mol, auxbasis=old.auxbasis)
+        fresh.max_memory, fresh.verbose = old.max_memory, old.verbose
+        mf.with_df = fresh
 
 
 @dataclass
@@ -826,40 +849,31 @@ class IonState:
 
 def ion_states(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method, embedding: Embedding = VACUUM, *,
                neutral: Calculation | None = None, charge: int = 0, ions: Sequence[str] = ("cation", "anion"),
-               keep_density: bool = False, integrals_from: Calculation | None = None) -> dict[str, IonState]:
+               keep_density: bool = False) -> dict[str, IonState]:
     """Cation (one electron fewer) and anion (one more) of a closed-shell QM
     region by unrestricted SCF in ``embedding``, vertical (same geometry).
 
     The converged ``neutral`` density (halved per spin) is the SCF guess.
-    An unconverged ion has energy nan. ``integrals_from``: a calculation of
-    the same atoms whose density-fitting tensor the ions reuse (see
-    :func:`share_fitted_integrals`); without one, the ions share the first
-    ion's tensor, freed when they are done.
+    An unconverged ion has energy nan.
     """
     out: dict[str, IonState] = {}
-    source = integrals_from.mf if integrals_from is not None else None
-    own = None  # the first ion's SCF when the ions build their own tensor
-    try:
-        for name in ions:
-            dq = {"cation": +1, "anion": -1}.get(name)
-            if dq is None:
-                raise InputError(f"{name!r} is not an ion; use 'cation' or 'anion'.")
-            mol = build_molecule(symbols, positions_A, method, charge=charge + dq, spin=1)
-            mf = make_scf(mol, method, embedding, unrestricted=True)
-            if not (share_fitted_integrals(source, mf) or share_fitted_integrals(own, mf)) and own is None:
-                own = mf
-            dm0 = None
-            if neutral is not None and neutral.converged:
-                dm0 = np.array([neutral.dm / 2, neutral.dm / 2])
-            conv, route = run_scf(mf, method, dm0)
-            dm = None
-            if keep_density:
-                d = np.asarray(mf.make_rdm1())
-                dm = d[0] + d[1]
-            out[name] = IonState(name=name, charge=charge + dq, energy_Eh=float(mf.e_tot) if conv else NAN,
-                                 converged=bool(conv), route=route, dm=dm, mol=mol if keep_density else None)
-    finally:
-        release_fitted_integrals(own)
+    for name in ions:
+        dq = {"cation": +1, "anion": -1}.get(name)
+        if dq is None:
+            raise InputError(f"{name!r} is not an ion; use 'cation' or 'anion'.")
+        mol = build_molecule(symbols, positions_A, method, charge=charge + dq, spin=1)
+        mf = make_scf(mol, method, embedding, unrestricted=True)
+        dm0 = None
+        if neutral is not None and neutral.converged:
+            dm0 = np.array([neutral.dm / 2, neutral.dm / 2])
+        conv, route = run_scf(mf, method, dm0)
+        dm = None
+        if keep_density:
+            d = np.asarray(mf.make_rdm1())
+            dm = d[0] + d[1]
+        out[name] = IonState(name=name, charge=charge + dq, energy_Eh=float(mf.e_tot) if conv else NAN,
+                             converged=bool(conv), route=route, dm=dm, mol=mol if keep_density else None)
+        release_fitted_integrals(mf)
     return out
 
 

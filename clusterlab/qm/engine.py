@@ -21,7 +21,6 @@ energy that depends on it is ``nan`` with ``converged=False``, or
 
 from __future__ import annotations
 
-import contextlib
 import logging
 import time
 import warnings
@@ -46,7 +45,6 @@ from .calc import (
     ion_states,
     n_electrons,
     omp_threads,
-    release_fitted_integrals,
 )
 from .following import assign_states, transition_overlaps
 from .induction import induced_dipole_options
@@ -266,9 +264,18 @@ def _guess_parts(guess) -> tuple[Any, Calculation | None]:
     return np.asarray(guess, dtype=float), None
 
 
+#: An aligned copy's density is the vacuum SCF guess only when the copies superpose this well (Å):
+#: rigid copies (RMSD ~0.1 Å) converge in <= 4 cycles (tests/test_guess.py), while the doped film's
+#: emitter 1401 from 1400 (RMSD 1.25 Å, other torsions) took 130 s against 75 s cold
+#: (bench/bench_large_site.py). 0.5 Å lies between the two measured points; it is not tuned further.
+COPY_GUESS_MAX_RMSD_A = 0.5
+
+
 def _copy_guess_dm(copy_guess, cluster: Cluster, method: Method, timings: dict[str, float]):
     """The vacuum orbitals of another copy of the same molecule rotated onto
-    this one (qm.guess.aligned_density), or None when they do not apply."""
+    this one (qm.guess.aligned_density), or None when they do not apply
+    (another molecule or basis, or a superposition RMSD above
+    :data:`COPY_GUESS_MAX_RMSD_A`; the RMSD is recorded either way)."""
     ws = copy_guess.warm_start if isinstance(copy_guess, ExcitationResult) else copy_guess
     ref = ws.vacuum if isinstance(ws, WarmStart) else ws if isinstance(ws, Calculation) else None
     if ref is None or not ref.converged or ref.mol is None:
@@ -283,6 +290,10 @@ def _copy_guess_dm(copy_guess, cluster: Cluster, method: Method, timings: dict[s
     except InputError:
         return None
     timings["copy_guess_rmsd_A"] = rmsd
+    if rmsd > COPY_GUESS_MAX_RMSD_A:
+        log.info("copy guess not used: the copies superpose to %.2f Å RMSD (limit %.2f Å)", rmsd,
+                 COPY_GUESS_MAX_RMSD_A)
+        return None
     return dm
 
 
@@ -316,8 +327,7 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: "bool | Calculatio
     log.info("clusterlab.qm: %s; %d QM atoms, %d charges", method.describe(), cluster.n_qm_atoms, len(env_q))
     guess_dm, guess_calc = _guess_parts(guess)
     timings: dict[str, float] = {}
-    held: list[Calculation] = []  # calculations whose fitting tensor the next ones reuse; freed at the end
-    with omp_threads(method.threads), _holding(held):
+    with omp_threads(method.threads):
         vac: Calculation | None = None
         if isinstance(vacuum, Calculation):
             vac = vacuum
@@ -325,8 +335,7 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: "bool | Calculatio
             t = time.perf_counter()
             vac_dm = _copy_guess_dm(copy_guess, cluster, method, timings) if copy_guess is not None else None
             vac = calculate(*qm, VACUUM, charge=cluster.qm_charge, guess_dm=vac_dm, progress=progress,
-                            tag="vacuum", keep_integrals=True)
-            held.append(vac)
+                            tag="vacuum")
             timings["vacuum"] = time.perf_counter() - t
             for k, v in vac.timings.items():
                 timings[f"vacuum_{k}"] = v
@@ -342,16 +351,12 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: "bool | Calculatio
                 ref_dm, ref_calc = _reference_guess(guess, guess_dm, guess_calc)
                 t = time.perf_counter()
                 fixed = calculate(*qm, embedding.fixed(), charge=cluster.qm_charge, guess_dm=ref_dm,
-                                  warm_from=ref_calc, progress=progress, tag="fixed charges",
-                                  integrals_from=held[-1] if held else None, keep_integrals=True)
-                held.append(fixed)
+                                  warm_from=ref_calc, progress=progress, tag="fixed charges")
                 timings["fixed_charges"] = time.perf_counter() - t
                 if fixed.converged:  # the polarizable SCF and Davidson start from the fixed-charge solution
                     guess_dm, guess_calc = fixed.dm, fixed
             emb = calculate(*qm, embedding, charge=cluster.qm_charge, guess_dm=guess_dm, warm_from=guess_calc,
-                            progress=progress, tag="embedded", integrals_from=held[-1] if held else None,
-                            keep_integrals=method.charged_states)
-            held.append(emb)
+                            progress=progress, tag="embedded")
         if method.is_polarizable and method.polarization_reference and not embedding.is_polarizable:
             fixed = emb  # no dipole inside the inner radius: the calculation is its own reference
         timings.update(emb.timings)
@@ -383,18 +388,6 @@ def _excitations(cluster: Cluster, method: Method, *, vacuum: "bool | Calculatio
         warm_start=WarmStart(qm_fingerprint=cluster.fingerprint_qm(), ground=emb, vacuum=vac, fixed=fixed))
     _check_failure(res, raise_on_failure)
     return res
-
-
-@contextlib.contextmanager
-def _holding(held: list[Calculation]):
-    """Free the fitting tensors of ``held`` calculations when the block ends
-    (also on an error): they were kept only for the next SCFs of the same QM
-    region (:func:`~clusterlab.qm.calc.share_fitted_integrals`)."""
-    try:
-        yield held
-    finally:
-        for c in held:
-            release_fitted_integrals(c.mf)
 
 
 def _check_failure(res: ExcitationResult, raise_on_failure: bool) -> None:
@@ -459,7 +452,7 @@ def polarizable_meta(embedding: Embedding, method: Method) -> dict[str, Any]:
 def _ion_energies(cluster: Cluster, method: Method, neutral: Calculation, embedding: Embedding
                   ) -> tuple[dict[str, float], dict[str, bool]]:
     ions = ion_states(cluster.qm_symbols, cluster.qm_positions, method, embedding, neutral=neutral,
-                      charge=cluster.qm_charge, integrals_from=neutral)
+                      charge=cluster.qm_charge)
     energies = {"neutral": neutral.energy_Eh, **{k: v.energy_Eh for k, v in ions.items()}}
     flags = {"neutral": neutral.converged, **{k: v.converged for k, v in ions.items()}}
     return energies, flags
