@@ -33,6 +33,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import logging
+import os
 import threading
 import time
 from dataclasses import dataclass, field
@@ -224,8 +225,6 @@ def scf_memory_MB() -> float:
     budget is half the memory available when the molecule is built (never
     less than PySCF's default), or ``$CLUSTERLAB_SCF_MEMORY_MB``.
     """
-    import os
-
     from pyscf import lib
 
     default = float(lib.param.MAX_MEMORY)
@@ -746,7 +745,6 @@ def calculate(symbols: Sequence[str], positions_A: npt.ArrayLike, method: Method
         calc.states[kind] = rs
         calc.vectors[kind] = rs.extra.pop("solved_vectors", rs.amplitudes)
         calc.timings[f"{kind}s"] = time.perf_counter() - t
-        t = time.perf_counter()
     if calc.states:
         t = time.perf_counter()
         calc.ct.update(_ct_measures(mf, mol, calc))

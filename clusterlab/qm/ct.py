@@ -90,12 +90,11 @@ def orbital_overlaps(mol, coords: FloatArray, weights: FloatArray, mo_coeff: Flo
     from pyscf.dft import numint
 
     used = sorted({i for i, _ in pairs} | {nocc + a for _, a in pairs})
-    col = {m: k for k, m in enumerate(used)}
-    local = [(col[i], col[nocc + a]) for i, a in pairs]
+    col = {m: k for k, m in enumerate(used)}  # orbital index -> its column among the evaluated ones
+    ii = np.array([col[i] for i, _ in pairs])
+    aa = np.array([col[nocc + a] for _, a in pairs])
     c = mo_coeff[:, used]
     total = np.zeros(len(pairs))
-    ii = np.array([p for p, _ in local])
-    aa = np.array([q for _, q in local])
     for p0 in range(0, len(weights), block):
         mo = np.abs(numint.eval_ao(mol, coords[p0:p0 + block]) @ c)
         total += weights[p0:p0 + block] @ (mo[:, ii] * mo[:, aa])

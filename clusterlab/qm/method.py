@@ -78,7 +78,8 @@ _PRESETS: dict[str, tuple[str, dict[str, Any]]] = {
         "in the MO basis on orbitals within 1 Eh of the gap, SCF and response on PySCF's grid level 0, "
         "SCF converged to 1e-7 Eh (S1/T1 shifts within ~1 meV of grid 1, 1e-9 Eh and the full space)",
         # measured on the doped film's emitter (README, large-site row): grid 0 moved the S1/T1 shifts by
-        # 0.3 meV, the response grid 0 by < 0.1 meV, 1e-7 Eh by 0.05 meV (tests/test_shared_integrals.py checks a small one)
+        # 0.3 meV, the response grid 0 by < 0.1 meV, 1e-7 Eh by 0.05 meV; tests/test_shared_integrals.py
+        # holds a small molecule to 1 meV
         dict(xc="b3lyp", basis="6-31g", density_fit=True, grid_level=0, response_grid_level=0, conv_tol=1e-7,
              n_singlets=3, n_triplets=3, excited="stda-refined", response_kernel="mo", orbital_window_Eh=1.0),
     ),
