@@ -188,10 +188,8 @@ def test_warm_series_matches_cold_runs():
             assert sw.shift_eV == pytest.approx(sc.shift_eV, abs=1e-5)
 
 
-def test_periodic_embedding_matches_large_cluster_direction_and_radius_inf():
-    """Water in a 12 Å box with four other waters. The Ewald shift must be
-    finite, labelled radius inf, and close to the minimum-image cluster's
-    shift (the difference is the long-range tail and the QM images)."""
+def _water_in_a_box():
+    """Water in a 12 Å box with four other waters (TIP3P-like charges) as a Cluster."""
     rng = np.random.default_rng(0)
     from scipy.spatial.transform import Rotation
 
@@ -203,8 +201,15 @@ def test_periodic_embedding_matches_large_cluster_direction_and_radius_inf():
         q += [-0.834, 0.417, 0.417]
     env = np.vstack(env)
     box = [12.0, 12.0, 12.0, 90, 90, 90]
-    c = Cluster.from_arrays(["O", "H", "H"], water(), env, q, box=box, qm_molecules=(0,),
-                            env_molecules=np.repeat([1, 2, 3, 4], 3))
+    return Cluster.from_arrays(["O", "H", "H"], water(), env, q, box=box, qm_molecules=(0,),
+                               env_molecules=np.repeat([1, 2, 3, 4], 3)), env, q
+
+
+def test_periodic_embedding_matches_large_cluster_direction_and_radius_inf():
+    """Water in a 12 Å box with four other waters. The Ewald shift must be
+    finite, labelled radius inf, and close to the minimum-image cluster's
+    shift (the difference is the long-range tail and the QM images)."""
+    c, env, q = _water_in_a_box()
     m = DFT_SMALL.replace(n_singlets=1, n_triplets=0)
     rp = periodic_excitations(c, m)
     rc = excitations(c, m)
@@ -215,6 +220,42 @@ def test_periodic_embedding_matches_large_cluster_direction_and_radius_inf():
     tri = Cluster.from_arrays(["O", "H", "H"], water(), env, q, box=[12, 12, 12, 90, 80, 90])
     with pytest.raises(InputError, match="orthorhombic"):
         periodic_excitations(tri, m)
+
+
+def test_periodic_embedding_of_the_delta_scf_ions():
+    """The periodic limit with ΔSCF ions (unrestricted SCFs; PySCF's periodic point-charge
+    interface takes restricted densities only, clusterlab sums the spins). Checks: the
+    unrestricted SCF of the closed-shell neutral in the same Ewald embedding gives the
+    restricted energy (a closed shell has equal spin densities: exact identity); and the
+    periodic IP and EA shifts differ from the minimum-image cluster's by the ion's self-image
+    term, −q²α/(2L) for the ion's energy (α = 2.837297 for a simple cubic lattice, Makov &
+    Payne, Phys. Rev. B 51, 4014, 1995): IP lower, EA higher by 1.70 eV in this 12 Å box.
+    The remainder (measured −0.16 eV for IP, −0.26 eV for EA) is the environment beyond the
+    minimum image and the ion's higher image multipoles; 0.35 eV bounds it. Spin densities
+    taken from one spin only would put the ion's charge at half or double weight and miss the
+    self-image term by ~0.9 eV or more."""
+    from clusterlab.qm.calc import build_molecule, make_scf
+    from clusterlab.qm.periodic import periodic_embedding
+    from clusterlab.units import BOHR_A, HARTREE_TO_EV
+
+    c, _, _ = _water_in_a_box()
+    m = DFT_SMALL.replace(n_singlets=1, n_triplets=0, charged_states=True, conv_tol=1e-10)
+    emb = periodic_embedding(c)
+    mol = build_molecule(c.qm_symbols, c.qm_positions, m)
+    e = {}
+    for unrestricted in (False, True):
+        mf = make_scf(mol, m, emb, unrestricted=unrestricted)
+        e[unrestricted] = mf.kernel()
+        assert mf.converged
+    assert e[True] == pytest.approx(e[False], abs=1e-8)
+    rp = periodic_excitations(c, m)
+    rc = excitations(c, m)
+    assert rp.converged and math.isinf(rp.radius_A)
+    self_image = 2.837297 / (2 * 12.0 / BOHR_A) * HARTREE_TO_EV
+    assert self_image == pytest.approx(1.702, abs=1e-3)
+    for q, sign in (("IP_shift_eV", -1.0), ("EA_shift_eV", +1.0)):
+        got, ref = rp.summary()[q], rc.summary()[q]
+        assert np.isfinite(got) and abs(got - ref - sign * self_image) < 0.35, (q, got, ref)
 
 
 def test_davidson_finds_the_lowest_states_of_ethylene():

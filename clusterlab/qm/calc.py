@@ -311,6 +311,8 @@ def make_scf(mol, method: Method, embedding: Embedding = VACUUM, *, unrestricted
         mf = pbc_itrf.add_mm_charges(mf, env_pos, periodic["lattice_A"], env_q, radii=radii,
                                      rcut_ewald=periodic["rcut_ewald_A"], rcut_hcore=periodic["rcut_hcore_A"],
                                      unit="Angstrom")
+        if unrestricted:
+            mf = _ewald_spin_summed(mf)
         mf.verbose = 0
         mf.mm_mol.verbose = 0
     elif len(env_q):
@@ -319,6 +321,33 @@ def make_scf(mol, method: Method, embedding: Embedding = VACUUM, *, unrestricted
         mf = qmmm.mm_charge(mf, env_pos, env_q, radii=radii, unit="Angstrom")
     if embedding.is_polarizable:
         mf = attach_induced_dipoles(mf, env_pos, env_q, embedding.polarizabilities_A3, embedding.groups)
+    return mf
+
+
+def _ewald_spin_summed(mf):
+    """``mf`` (an unrestricted SCF with PySCF's periodic point charges) with the QM
+    multipoles of its Ewald terms taken from the total density.
+
+    PySCF's ``qmmm.pbc`` interface (2.x) builds the QM region's atomic charges, dipoles and
+    quadrupoles from a restricted density matrix only: an unrestricted one (2, n, n), as in
+    the ΔSCF ions, fails inside its ``einsum``. The Ewald energy and potential depend on the
+    total density alone, so the two spin blocks are summed first; the potential then acts on
+    both spins alike (its correction is spin-independent). Set on the class so copies keep it.
+    """
+    base = type(mf)
+
+    def summed(name):
+        f = getattr(base, name)
+
+        def method_(self, dm, *args, **kwargs):
+            dm = np.asarray(dm)
+            return f(self, dm[0] + dm[1] if dm.ndim == 3 else dm, *args, **kwargs)
+
+        method_.__name__ = name
+        return method_
+
+    names = ("get_qm_charges", "get_qm_dipoles", "get_qm_quadrupoles")
+    mf.__class__ = type(base.__name__, (base,), {n: summed(n) for n in names})
     return mf
 
 

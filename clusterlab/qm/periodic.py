@@ -91,6 +91,30 @@ def _minimum_image_set(cluster: Cluster, lengths: FloatArray) -> tuple[FloatArra
     return wrapped, q
 
 
+def periodic_embedding(cluster: Cluster, *, rcut_hcore_A: float | None = None,
+                       rcut_ewald_A: float | None = None) -> Embedding:
+    """The Ewald :class:`~clusterlab.qm.calc.Embedding` of ``cluster`` (its box's other atoms as
+    periodic charges), as :func:`periodic_excitations` uses it; arguments and errors as there."""
+    lengths = _orthorhombic_lengths(cluster.box)
+    lat = np.diag(lengths)
+    centre = cluster.qm_positions.mean(axis=0)
+    extent = float(np.max(np.linalg.norm(cluster.qm_positions - centre, axis=1)))
+    lmin = float(lengths.min())
+    rcut_hcore = 0.5 * lmin if rcut_hcore_A is None else float(rcut_hcore_A)
+    rcut_ewald = 0.5 * lmin if rcut_ewald_A is None else float(rcut_ewald_A)
+    if not extent < rcut_hcore < lmin - extent:
+        raise InputError(f"rcut_hcore_A={rcut_hcore:g} Å must exceed the QM region's extent ({extent:.2f} Å from "
+                         f"its centroid) and stay below box length minus extent ({lmin - extent:.2f} Å); "
+                         "the box is too small for this QM region.")
+    if not 0 < rcut_ewald < lmin:
+        raise InputError(f"rcut_ewald_A={rcut_ewald:g} Å must be between 0 and the shortest box length {lmin:g} Å.")
+    pos, q = _minimum_image_set(cluster, lengths)
+    periodic = {"lattice_A": lat, "rcut_hcore_A": rcut_hcore, "rcut_ewald_A": rcut_ewald,
+                "n_charges_in_cell": int(len(q)),
+                "qm_images": "included by PySCF as self-consistent QM atom multipoles (SCF only)"}
+    return Embedding(pos, q, periodic)
+
+
 def periodic_excitations(cluster: Cluster, method: Method, *, vacuum: bool = True, guess=None,
                          raise_on_failure: bool = False, rcut_hcore_A: float | None = None,
                          rcut_ewald_A: float | None = None,
@@ -131,23 +155,7 @@ def periodic_excitations(cluster: Cluster, method: Method, *, vacuum: bool = Tru
         message says what to use instead).
     """
     check_periodic_environment(method, "periodic_excitations")
-    lengths = _orthorhombic_lengths(cluster.box)
-    lat = np.diag(lengths)
-    centre = cluster.qm_positions.mean(axis=0)
-    extent = float(np.max(np.linalg.norm(cluster.qm_positions - centre, axis=1)))
-    lmin = float(lengths.min())
-    rcut_hcore = 0.5 * lmin if rcut_hcore_A is None else float(rcut_hcore_A)
-    rcut_ewald = 0.5 * lmin if rcut_ewald_A is None else float(rcut_ewald_A)
-    if not extent < rcut_hcore < lmin - extent:
-        raise InputError(f"rcut_hcore_A={rcut_hcore:g} Å must exceed the QM region's extent ({extent:.2f} Å from "
-                         f"its centroid) and stay below box length minus extent ({lmin - extent:.2f} Å); "
-                         "the box is too small for this QM region.")
-    if not 0 < rcut_ewald < lmin:
-        raise InputError(f"rcut_ewald_A={rcut_ewald:g} Å must be between 0 and the shortest box length {lmin:g} Å.")
-    pos, q = _minimum_image_set(cluster, lengths)
-    periodic = {"lattice_A": lat, "rcut_hcore_A": rcut_hcore, "rcut_ewald_A": rcut_ewald,
-                "n_charges_in_cell": int(len(q)),
-                "qm_images": "included by PySCF as self-consistent QM atom multipoles (SCF only)"}
+    embedding = periodic_embedding(cluster, rcut_hcore_A=rcut_hcore_A, rcut_ewald_A=rcut_ewald_A)
     res = _excitations(cluster, method, vacuum=vacuum, guess=guess, raise_on_failure=raise_on_failure,
-                       progress=progress, embedding=Embedding(pos, q, periodic), radius_A=math.inf)
+                       progress=progress, embedding=embedding, radius_A=math.inf)
     return res
